@@ -1,0 +1,122 @@
+"""Fixed-key AES as a public random permutation, the tweakable hash built on it, and an AES-CTR PRG.
+
+Theory of operation
+-------------------
+Garbling and OT extension need a hash that is fast on huge batches. Following Bellare–Hoang–Keelveedhi–Rogaway
+(IEEE S&P 2013) we model AES-128 under a fixed, public key as a random permutation π. From π we build the
+tweakable circular correlation-robust hash of Guo–Katz–Wang–Yu (IEEE S&P 2020, section 7.3):
+
+    H(x, i) = π(π(x) ⊕ i) ⊕ π(x)
+
+Each call of H costs two AES blocks. The tweak i must be unique per use (per AND gate and half in garbling, per
+OT index in OT extension). All functions take and return ``(n, 2)`` arrays of little-endian 64-bit words (see
+``blocks``) and call AES in batches of ``BATCH`` blocks into preallocated buffers (``update_into``), because
+allocation, not AES, dominates otherwise.
+
+The AES itself is FIPS 197, provided by the ``cryptography`` package (OpenSSL, AES-NI where the CPU has it).
+"""
+
+from __future__ import annotations
+
+import hashlib
+
+import numpy as np
+from cryptography.hazmat.primitives.ciphers import Cipher, algorithms, modes
+
+from jointstat.primitives.blocks import BLOCK_BYTES, BLOCK_DTYPE
+
+# The fixed public key: any fixed value works in the random-permutation model; ours is derived from a label so
+# that nobody can claim it was chosen with a backdoor in mind.
+FIXED_KEY = hashlib.sha256(b"jointstat fixed-key AES permutation v1").digest()[:16]
+
+BATCH = 1 << 15  # blocks per AES call: large enough to amortise the call, small enough to stay in cache
+
+
+class FixedKeyAES:
+    """π: AES-128 encryption under a fixed key, applied to whole block arrays."""
+
+    def __init__(self, key: bytes = FIXED_KEY) -> None:
+        self._enc = Cipher(algorithms.AES(key), modes.ECB()).encryptor()
+        # update_into needs room for one extra block beyond the input.
+        self._scratch = np.empty((BATCH + 1) * 2, dtype=BLOCK_DTYPE)
+
+    def permute(self, blocks: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """π applied to each block; ``out`` (same shape) may be given to avoid an allocation, and may be ``blocks``."""
+        src = np.ascontiguousarray(blocks, dtype=BLOCK_DTYPE)
+        n = src.shape[0]
+        if out is None:
+            out = np.empty_like(src)
+        flat_in = src.reshape(-1)
+        flat_out = out.reshape(-1)
+        whole_out = memoryview(flat_out).cast("B")
+        scratch = memoryview(self._scratch).cast("B")
+        for start in range(0, n, BATCH):
+            stop = min(n, start + BATCH)
+            chunk = memoryview(flat_in[2 * start : 2 * stop]).cast("B")
+            if stop < n:
+                # update_into insists on 15 spare bytes past the payload; the rest of ``out`` provides them.
+                self._enc.update_into(chunk, whole_out[16 * start :])
+            else:
+                self._enc.update_into(chunk, scratch)
+                flat_out[2 * start : 2 * stop] = self._scratch[: 2 * (stop - start)]
+        return out
+
+    def hash(self, blocks: np.ndarray, tweaks: np.ndarray) -> np.ndarray:
+        """H(x, i) = π(π(x) ⊕ i) ⊕ π(x) for each row (Guo–Katz–Wang–Yu 2020, TCCR hash).
+
+        ``tweaks`` is either an ``(n, 2)`` block array or an ``(n,)`` array of 64-bit integers (placed in the low word).
+        """
+        px = self.permute(blocks)
+        t = px.copy()
+        if tweaks.ndim == 1:
+            t[:, 0] ^= tweaks.astype(BLOCK_DTYPE, copy=False)
+        else:
+            t ^= tweaks
+        self.permute(t, out=t)
+        t ^= px
+        return t
+
+
+_DEFAULT: FixedKeyAES | None = None
+
+
+def default_permutation() -> FixedKeyAES:
+    """A process-wide π instance (the key is public, so sharing it is safe; it is not thread-safe, see below).
+
+    ``cryptography`` encryptor contexts must not be used from two threads at once; code that hashes in worker
+    threads creates its own ``FixedKeyAES``.
+    """
+    global _DEFAULT
+    if _DEFAULT is None:
+        _DEFAULT = FixedKeyAES()
+    return _DEFAULT
+
+
+def prg_expand(seed: bytes, nbytes: int, *, nonce: bytes = bytes(16)) -> np.ndarray:
+    """Expand a 16-byte seed into ``nbytes`` pseudo-random bytes with AES-128-CTR (NIST SP 800-38A), as uint8.
+
+    Used as the PRG G of IKNP OT extension. The seed is the AES key; ``nonce`` is the initial counter block.
+    """
+    if len(seed) != BLOCK_BYTES:
+        raise ValueError(f"PRG seed must be 16 bytes, got {len(seed)}")
+    enc = Cipher(algorithms.AES(seed), modes.CTR(nonce)).encryptor()
+    out = bytearray(nbytes + BLOCK_BYTES)
+    n = enc.update_into(bytes(nbytes), out)
+    return np.frombuffer(out, dtype=np.uint8, count=n)
+
+
+def aes_blocks_per_second(batch: int = 1 << 14, seconds: float = 0.3) -> float:
+    """Raw fixed-key AES throughput in this process at the given batch size (the benchmarks' yardstick)."""
+    import time
+
+    perm = FixedKeyAES()
+    x = np.zeros((batch, 2), dtype=BLOCK_DTYPE)
+    out = np.empty_like(x)
+    done = 0
+    start = time.perf_counter()
+    while True:
+        perm.permute(x, out=out)
+        done += batch
+        elapsed = time.perf_counter() - start
+        if elapsed >= seconds:
+            return done / elapsed
