@@ -61,20 +61,33 @@ class FixedKeyAES:
                 flat_out[2 * start : 2 * stop] = self._scratch[: 2 * (stop - start)]
         return out
 
-    def hash(self, blocks: np.ndarray, tweaks: np.ndarray) -> np.ndarray:
+    def hash(self, blocks: np.ndarray, tweaks: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
         """H(x, i) = π(π(x) ⊕ i) ⊕ π(x) for each row (Guo–Katz–Wang–Yu 2020, TCCR hash).
 
-        ``tweaks`` is either an ``(n, 2)`` block array or an ``(n,)`` array of 64-bit integers (placed in the low word).
+        ``tweaks`` is either an ``(n, 2)`` block array or an ``(n,)`` array of 64-bit integers (the low word; the
+        high word is then 0). Works batch by batch in the instance's scratch buffer: two AES calls, one copy and
+        two XORs per batch, no allocation besides ``out``.
         """
-        px = self.permute(blocks)
-        t = px.copy()
-        if tweaks.ndim == 1:
-            t[:, 0] ^= tweaks.astype(BLOCK_DTYPE, copy=False)
-        else:
-            t ^= tweaks
-        self.permute(t, out=t)
-        t ^= px
-        return t
+        src = np.ascontiguousarray(blocks, dtype=BLOCK_DTYPE)
+        n = src.shape[0]
+        if out is None:
+            out = np.empty_like(src)
+        low_word_only = tweaks.ndim == 1
+        scratch = self._scratch.reshape(-1, 2)
+        scratch_bytes = memoryview(self._scratch).cast("B")
+        for start in range(0, n, BATCH):
+            stop = min(n, start + BATCH)
+            m = stop - start
+            self._enc.update_into(memoryview(src[start:stop].reshape(-1)).cast("B"), scratch_bytes)
+            px = scratch[:m]
+            out[start:stop] = px
+            if low_word_only:
+                px[:, 0] ^= tweaks[start:stop]
+            else:
+                px ^= tweaks[start:stop]
+            self._enc.update_into(scratch_bytes[: 16 * m], scratch_bytes)  # in place; scratch has a spare block
+            out[start:stop] ^= px
+        return out
 
 
 _DEFAULT: FixedKeyAES | None = None
