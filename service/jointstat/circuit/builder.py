@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from jointstat.circuit.model import ONE_WIRE, ZERO_WIRE, Circuit, CircuitError, GateKind, Party
+from jointstat.circuit.model import ONE_WIRE, WIRE_LIMIT, ZERO_WIRE, Circuit, CircuitError, GateKind, Party
 
 Wires = np.ndarray
 
@@ -46,6 +46,7 @@ class Builder:
         self._outputs: dict[Party, list[np.ndarray]] = {p: [] for p in Party}
         self._output_count = {p: 0 for p in Party}
         self.and_gates = 0
+        self._built = False
 
     # -- wires --------------------------------------------------------------------------------------------------
     def _fresh(self, n: int) -> np.ndarray:
@@ -88,13 +89,17 @@ class Builder:
 
     # -- gates --------------------------------------------------------------------------------------------------
     def _emit(self, kind: GateKind, a: np.ndarray, b: np.ndarray | None) -> np.ndarray:
+        if self._built:
+            raise CircuitError("builder: the circuit has been built already; start a new Builder")
         n = a.shape[0]
         out = self._fresh(n)
         if n:
+            if self._next >= WIRE_LIMIT:
+                raise CircuitError(f"builder: more than {WIRE_LIMIT} wires")
             self._kinds.append(np.full(n, int(kind), dtype=np.uint8))
-            self._in0.append(a)
-            self._in1.append(b if b is not None else np.full(n, -1, dtype=np.int64))
-            self._out.append(out)
+            self._in0.append(a.astype(np.int32))
+            self._in1.append(b.astype(np.int32) if b is not None else np.full(n, -1, dtype=np.int32))
+            self._out.append(out.astype(np.int32))
             if kind == GateKind.AND:
                 self.and_gates += n
         return out
@@ -334,17 +339,24 @@ class Builder:
 
     # -- result -------------------------------------------------------------------------------------------------
     def build(self) -> Circuit:
-        """The validated circuit of everything emitted so far."""
+        """The validated circuit of everything emitted; the builder's buffers are released as they are joined."""
+        self._built = True
 
-        def cat(parts: list[np.ndarray], dtype: np.dtype | type = np.int64) -> np.ndarray:
-            return np.concatenate(parts).astype(dtype, copy=False) if parts else np.zeros(0, dtype=dtype)
+        def join(parts: list[np.ndarray], dtype: np.dtype | type) -> np.ndarray:
+            arr = np.concatenate(parts).astype(dtype, copy=False) if parts else np.zeros(0, dtype=dtype)
+            parts.clear()
+            return arr
 
+        kinds = join(self._kinds, np.uint8)
+        in0 = join(self._in0, np.int32)
+        in1 = join(self._in1, np.int32)
+        out = join(self._out, np.int32)
         return Circuit.create(
             n_wires=self._next,
-            kinds=cat(self._kinds, np.uint8),
-            in0=cat(self._in0),
-            in1=cat(self._in1),
-            out=cat(self._out),
-            inputs={p: cat(self._inputs[p]) for p in Party},
-            outputs={p: cat(self._outputs[p]) for p in Party},
+            kinds=kinds,
+            in0=in0,
+            in1=in1,
+            out=out,
+            inputs={p: join(self._inputs[p], np.int64) for p in Party},
+            outputs={p: join(self._outputs[p], np.int64) for p in Party},
         )

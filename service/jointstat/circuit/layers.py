@@ -22,7 +22,7 @@ import numpy as np
 
 from jointstat.circuit.model import ONE_WIRE, ZERO_WIRE, Circuit, GateKind, Party
 
-SLOT_DTYPE = np.dtype(np.int64)
+SLOT_DTYPE = np.dtype(np.int32)  # slots never outnumber wires, which are 32-bit
 
 
 def gate_levels(circuit: Circuit) -> np.ndarray:

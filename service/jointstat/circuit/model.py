@@ -30,7 +30,8 @@ import numpy as np
 ZERO_WIRE = 0
 ONE_WIRE = 1
 CANONICAL_MAGIC = b"jointstat.circuit.v1\n"
-WIRE_DTYPE = np.dtype("<i4")
+WIRE_DTYPE = np.dtype(np.int32)
+WIRE_LIMIT = 2**31 - 1  # wire numbers are stored as 32-bit integers
 
 
 class CircuitError(ValueError):
@@ -50,13 +51,16 @@ class Party(IntEnum):
     EVALUATOR = 1
 
 
-def _wire_array(values: object, what: str) -> np.ndarray:
+def _wire_array(values: object, what: str, dtype: np.dtype | type = np.int64) -> np.ndarray:
     arr = np.asarray(values)
     if arr.ndim != 1:
         raise CircuitError(f"{what}: expected a one-dimensional array of wire numbers, got shape {arr.shape}")
     if arr.size and not np.issubdtype(arr.dtype, np.integer):
         raise CircuitError(f"{what}: wire numbers must be integers, got dtype {arr.dtype}")
-    return np.ascontiguousarray(arr, dtype=np.int64)
+    if arr.size and (int(arr.min()) < -1 or int(arr.max()) > WIRE_LIMIT):
+        bad = int(np.argmax((arr < -1) | (arr > WIRE_LIMIT)))
+        raise CircuitError(f"{what} {bad}: wire number {int(arr[bad])} is out of range")
+    return np.ascontiguousarray(arr, dtype=dtype)
 
 
 @dataclass(frozen=True, eq=False)
@@ -89,18 +93,20 @@ class Circuit:
         if kinds_arr.ndim != 1:
             raise CircuitError(f"gate kinds: expected a one-dimensional array, got shape {kinds_arr.shape}")
         g = kinds_arr.shape[0]
+        if int(n_wires) > WIRE_LIMIT:
+            raise CircuitError(f"circuit has {int(n_wires)} wires; at most {WIRE_LIMIT} are supported")
         arrays = {}
         for name, values in (("in0", in0), ("in1", in1), ("out", out)):
-            arr = _wire_array(values, f"gate {name}")
+            arr = _wire_array(values, f"gate {name}", WIRE_DTYPE)
             if arr.shape[0] != g:
                 raise CircuitError(f"gate {name}: has {arr.shape[0]} entries but there are {g} gate kinds")
             arrays[name] = arr
         circuit = cls(
             n_wires=int(n_wires),
             kinds=np.ascontiguousarray(kinds_arr, dtype=np.uint8),
-            in0=arrays["in0"].astype(WIRE_DTYPE) if int(n_wires) < 2**31 else arrays["in0"],
-            in1=arrays["in1"].astype(WIRE_DTYPE) if int(n_wires) < 2**31 else arrays["in1"],
-            out=arrays["out"].astype(WIRE_DTYPE) if int(n_wires) < 2**31 else arrays["out"],
+            in0=arrays["in0"],
+            in1=arrays["in1"],
+            out=arrays["out"],
             inputs={Party(p): _wire_array(inputs.get(p, []), f"{Party(p).name.lower()} inputs") for p in Party},
             outputs={
                 Party(p): _wire_array(outputs.get(p, []), f"{Party(p).name.lower()} outputs") for p in Party
@@ -153,8 +159,8 @@ class Circuit:
             raise CircuitError(f"gate {i}: a NOT gate has one input; in1 must be -1, got {int(self.in1[i])}")
 
         # Where each wire is defined: -2 constants, -1 inputs, g for gates; UNDEF if never.
-        undefined = np.iinfo(np.int64).max
-        defined_at = np.full(n, undefined, dtype=np.int64)
+        undefined = np.iinfo(np.int32).max
+        defined_at = np.full(n, undefined, dtype=np.int32)
         defined_at[[ZERO_WIRE, ONE_WIRE]] = -2
         for party in Party:
             wires = self.inputs[party]
@@ -179,15 +185,17 @@ class Circuit:
                 raise CircuitError(
                     f"gate {i}: output wire {int(self.out[i])} is defined twice (it is a constant or an input)"
                 )
-            # The first gate to define each wire wins; any later gate defining it again is an error.
-            order = np.argsort(self.out, kind="stable")
-            sorted_out = self.out[order]
-            repeat = np.flatnonzero(sorted_out[1:] == sorted_out[:-1]) + 1
-            if repeat.size:
-                i = int(order[repeat].min())
-                raise CircuitError(f"gate {i}: output wire {int(self.out[i])} is defined twice (by an earlier gate)")
-            defined_at[self.out] = np.arange(g, dtype=np.int64)
-            gate_idx = np.arange(g, dtype=np.int64)
+            # Scatter each gate's index onto its output wire; a wire defined by two gates keeps only one of them,
+            # so the other gate reads back a different index.
+            gate_idx = np.arange(g, dtype=np.int32)
+            defined_at[self.out] = gate_idx
+            clash = np.flatnonzero(defined_at[self.out] != gate_idx)
+            if clash.size:
+                i = int(clash[0])
+                j = int(defined_at[self.out[i]])
+                raise CircuitError(
+                    f"gate {max(i, j)}: output wire {int(self.out[i])} is defined twice (also by gate {min(i, j)})"
+                )
             for name, arr, mask in (("in0", self.in0, None), ("in1", self.in1, ~is_not)):
                 where = defined_at[np.where(arr < 0, 0, arr)]
                 if mask is not None:

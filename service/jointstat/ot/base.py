@@ -24,10 +24,10 @@ States and transitions (the ``TABLE`` of each class; every other (state, event) 
 
 | party            | state                  | event                              | reply                          | next       |
 |------------------|------------------------|------------------------------------|--------------------------------|------------|
-| BaseOTSender     | new                    | start()                            | base_ot_sender_point (32 B)    | awaiting receiver points |
-| BaseOTSender     | awaiting receiver points | base_ot_receiver_points (32·n B) | —                              | done       |
-| BaseOTReceiver   | new                    | start()                            | —                              | awaiting sender point |
-| BaseOTReceiver   | awaiting sender point  | base_ot_sender_point (32 B)        | base_ot_receiver_points (32·n B) | done     |
+| BaseOTSender     | new                     | start()                          | base_ot_sender_point (32 B)      | awaiting base OT points |
+| BaseOTSender     | awaiting base OT points | base_ot_receiver_points (32·n B) | —                                | done                    |
+| BaseOTReceiver   | new                     | start()                          | —                                | awaiting base OT point  |
+| BaseOTReceiver   | awaiting base OT point  | base_ot_sender_point (32 B)      | base_ot_receiver_points (32·n B) | done                    |
 """
 
 from __future__ import annotations
@@ -47,8 +47,8 @@ KEY_BYTES = 16
 MAX_SESSION_ID_BYTES = 1024
 _KDF_LABEL = b"jointstat base OT key v1"
 
-AWAITING_RECEIVER_POINTS = "awaiting receiver points"
-AWAITING_SENDER_POINT = "awaiting sender point"
+AWAITING_RECEIVER_POINTS = "awaiting base OT points"  # the base-OT sender waits for the receiver's 128 points
+AWAITING_SENDER_POINT = "awaiting base OT point"  # the base-OT receiver waits for the sender's point
 
 
 def check_session_id(session_id: bytes) -> bytes:
@@ -96,8 +96,8 @@ class BaseOTSender(StateMachine):
         (AWAITING_RECEIVER_POINTS, BASE_OT_RECEIVER_POINTS): ("_on_receiver_points", (DONE,)),
     }
 
-    def __init__(self, session_id: bytes, count: int = BASE_OT_COUNT) -> None:
-        super().__init__()
+    def __init__(self, session_id: bytes, count: int = BASE_OT_COUNT, *, role: str | None = None) -> None:
+        super().__init__(role)
         self._session_id = check_session_id(session_id)
         self._count = _check_count(count)
         self._scalar: bytes | None = None
@@ -153,8 +153,8 @@ class BaseOTReceiver(StateMachine):
         (AWAITING_SENDER_POINT, BASE_OT_SENDER_POINT): ("_on_sender_point", (DONE,)),
     }
 
-    def __init__(self, session_id: bytes, choices: np.ndarray) -> None:
-        super().__init__()
+    def __init__(self, session_id: bytes, choices: np.ndarray, *, role: str | None = None) -> None:
+        super().__init__(role)
         self._session_id = check_session_id(session_id)
         bits = np.asarray(choices)
         check_choice_bits(bits, what="base OT choices")

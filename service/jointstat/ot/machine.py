@@ -32,8 +32,9 @@ class StateMachine:
     ROLE: ClassVar[str] = "OT party"
     TABLE: ClassVar[Mapping[tuple[str, str], Transition]] = {}
 
-    def __init__(self) -> None:
+    def __init__(self, role: str | None = None) -> None:
         self._state = NEW
+        self.role = role or self.ROLE
 
     @property
     def state(self) -> str:
@@ -53,19 +54,19 @@ class StateMachine:
         """Take one message from the peer; return the messages to send in reply (possibly none)."""
         if not isinstance(message, OTMessage):
             self._state = FAILED
-            raise OTError(f"{self.ROLE} in state {self._state!r}: expected an OTMessage")
+            raise OTError(f"{self.role} in state {self._state!r}: expected an OTMessage")
         return self._dispatch(message.kind, message)
 
     def _dispatch(self, event: str, message: OTMessage | None) -> list[OTMessage]:
         state = self._state
         if state == FAILED:
-            raise OTError(f"{self.ROLE} in state 'failed': refusing {event!r}, an earlier error aborted this OT")
+            raise OTError(f"{self.role} in state 'failed': refusing {event!r}, an earlier error aborted this OT")
         transition = self.TABLE.get((state, event))
         if transition is None:
             accepted = sorted(ev for (st, ev) in self.TABLE if st == state) or ["nothing"]
             self._state = FAILED
             what = "start() called" if event == START else f"unexpected {event!r} message"
-            raise OTError(f"{self.ROLE} in state {state!r}: {what}; this state accepts {', '.join(accepted)}")
+            raise OTError(f"{self.role} in state {state!r}: {what}; this state accepts {', '.join(accepted)}")
         handler_name, allowed = transition
         handler: Handler = getattr(self, handler_name)
         try:
@@ -75,19 +76,19 @@ class StateMachine:
             raise
         except PointError as exc:
             self._state = FAILED
-            raise OTError(f"{self.ROLE} in state {state!r}: {event!r} message: {exc}") from None
+            raise OTError(f"{self.role} in state {state!r}: {event!r} message: {exc}") from None
         except Exception:
             self._state = FAILED
             raise
         if next_state not in allowed:
             self._state = FAILED
-            raise AssertionError(f"{self.ROLE}: handler for {state!r}/{event!r} chose {next_state!r}")
+            raise AssertionError(f"{self.role}: handler for {state!r}/{event!r} chose {next_state!r}")
         self._state = next_state
         return replies
 
     def _error(self, event: str, problem: str) -> OTError:
         """An ``OTError`` whose text names the current state, the event and the problem (never a secret)."""
-        return OTError(f"{self.ROLE} in state {self._state!r}: {event!r} message: {problem}")
+        return OTError(f"{self.role} in state {self._state!r}: {event!r} message: {problem}")
 
     def _expect_size(self, message: OTMessage, expected: int, unit: str) -> None:
         if len(message.payload) != expected:
@@ -97,4 +98,4 @@ class StateMachine:
 
     def _require_done(self, output: str) -> None:
         if self._state != DONE:
-            raise OTError(f"{self.ROLE} in state {self._state!r}: {output} is only available when done")
+            raise OTError(f"{self.role} in state {self._state!r}: {output} is only available when done")

@@ -1,0 +1,33 @@
+"""``jointstat bench …``: each benchmark module adds one subcommand here."""
+
+from __future__ import annotations
+
+import argparse
+
+
+def _garble(args: argparse.Namespace) -> int:
+    from jointstat.bench.garble import run
+
+    return run(and_gates=args.and_gates, width=args.width, as_json=args.json)
+
+
+def _ot(args: argparse.Namespace) -> int:
+    from jointstat.bench.ot import run
+
+    return run(count=args.count, as_json=args.json)
+
+
+def add_commands(sub: argparse._SubParsersAction) -> None:
+    bench = sub.add_parser("bench", help="measure this machine (prints JSON with --json)")
+    which = bench.add_subparsers(dest="what", required=True, metavar="WHAT")
+
+    garble = which.add_parser("garble", help="garbling and evaluation speed of a wide circuit")
+    garble.add_argument("--and-gates", type=int, default=1 << 20, help="AND gates in the circuit (default 2^20)")
+    garble.add_argument("--width", type=int, default=8192, help="AND gates per layer (default 8192)")
+    garble.add_argument("--json", action="store_true", help="print one JSON object")
+    garble.set_defaults(handler=_garble)
+
+    ot = which.add_parser("ot", help="base OT and OT extension speed")
+    ot.add_argument("--count", type=int, default=1 << 20, help="correlated OTs to extend (default 2^20)")
+    ot.add_argument("--json", action="store_true", help="print one JSON object")
+    ot.set_defaults(handler=_ot)
