@@ -22,7 +22,9 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     which = bench.add_subparsers(dest="what", required=True, metavar="WHAT")
 
     garble = which.add_parser("garble", help="garbling and evaluation speed of a wide circuit")
-    garble.add_argument("--and-gates", type=int, default=1 << 20, help="AND gates in the circuit (default 2^20)")
+    garble.add_argument(
+        "--and-gates", type=int, default=1 << 20, help="AND gates in the circuit (default 2^20)"
+    )
     garble.add_argument("--width", type=int, default=8192, help="AND gates per layer (default 8192)")
     garble.add_argument("--json", action="store_true", help="print one JSON object")
     garble.set_defaults(handler=_garble)

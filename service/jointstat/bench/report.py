@@ -21,5 +21,7 @@ def emit(title: str, figures: dict[str, Any], as_json: bool) -> None:
     width = max(len(k) for k in figures)
     print(title)
     for key, value in figures.items():
-        shown = f"{value:,.3f}" if isinstance(value, float) else f"{value:,}" if isinstance(value, int) else value
+        shown = (
+            f"{value:,.3f}" if isinstance(value, float) else f"{value:,}" if isinstance(value, int) else value
+        )
         print(f"  {key:<{width}}  {shown}")

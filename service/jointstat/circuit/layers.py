@@ -172,14 +172,22 @@ def evaluate_plain(layered: LayeredCircuit, inputs: dict[Party, np.ndarray]) -> 
     against; it shares only the layer schedule with it.
     """
     c = layered.circuit
-    given = {p: np.asarray(inputs.get(p, np.zeros(c.n_inputs(p), dtype=np.uint8)), dtype=np.uint8) for p in Party}
-    extra = given[Party.GARBLER].shape[1:] if given[Party.GARBLER].ndim > 1 else given[Party.EVALUATOR].shape[1:]
+    given = {
+        p: np.asarray(inputs.get(p, np.zeros(c.n_inputs(p), dtype=np.uint8)), dtype=np.uint8) for p in Party
+    }
+    extra = (
+        given[Party.GARBLER].shape[1:] if given[Party.GARBLER].ndim > 1 else given[Party.EVALUATOR].shape[1:]
+    )
     for p in Party:
         if given[p].shape[0] != c.n_inputs(p):
-            raise ValueError(f"{p.name.lower()} inputs: expected {c.n_inputs(p)} bits, got {given[p].shape[0]}")
+            raise ValueError(
+                f"{p.name.lower()} inputs: expected {c.n_inputs(p)} bits, got {given[p].shape[0]}"
+            )
         if given[p].size and given[p].max() > 1:
             raise ValueError(f"{p.name.lower()} inputs: bits must be 0 or 1")
-        given[p] = np.broadcast_to(given[p].reshape(given[p].shape[0], *([1] * len(extra))), (c.n_inputs(p), *extra))
+        if given[p].ndim == 1:
+            given[p] = given[p].reshape(given[p].shape[0], *([1] * len(extra)))
+        given[p] = np.broadcast_to(given[p], (c.n_inputs(p), *extra))
     values = np.zeros((layered.n_slots, *extra), dtype=np.uint8)
     values[1] = 1
     for p in Party:

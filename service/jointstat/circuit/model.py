@@ -57,9 +57,9 @@ def _wire_array(values: object, what: str, dtype: np.dtype | type = np.int64) ->
         raise CircuitError(f"{what}: expected a one-dimensional array of wire numbers, got shape {arr.shape}")
     if arr.size and not np.issubdtype(arr.dtype, np.integer):
         raise CircuitError(f"{what}: wire numbers must be integers, got dtype {arr.dtype}")
-    if arr.size and (int(arr.min()) < -1 or int(arr.max()) > WIRE_LIMIT):
-        bad = int(np.argmax((arr < -1) | (arr > WIRE_LIMIT)))
-        raise CircuitError(f"{what} {bad}: wire number {int(arr[bad])} is out of range")
+    if arr.size and (int(arr.min()) < -WIRE_LIMIT or int(arr.max()) > WIRE_LIMIT):
+        bad = int(np.argmax((arr < -WIRE_LIMIT) | (arr > WIRE_LIMIT)))
+        raise CircuitError(f"{what}, entry {bad}: wire number {int(arr[bad])} does not fit in 32 bits")
     return np.ascontiguousarray(arr, dtype=dtype)
 
 
@@ -107,7 +107,9 @@ class Circuit:
             in0=arrays["in0"],
             in1=arrays["in1"],
             out=arrays["out"],
-            inputs={Party(p): _wire_array(inputs.get(p, []), f"{Party(p).name.lower()} inputs") for p in Party},
+            inputs={
+                Party(p): _wire_array(inputs.get(p, []), f"{Party(p).name.lower()} inputs") for p in Party
+            },
             outputs={
                 Party(p): _wire_array(outputs.get(p, []), f"{Party(p).name.lower()} outputs") for p in Party
             },
@@ -146,7 +148,11 @@ class Circuit:
             i = int(np.argmax(bad_kind))
             raise CircuitError(f"gate {i}: unknown gate kind {int(self.kinds[i])}")
         is_not = self.kinds == GateKind.NOT
-        for name, arr, allowed_neg in (("out", self.out, None), ("in0", self.in0, None), ("in1", self.in1, is_not)):
+        for name, arr, allowed_neg in (
+            ("out", self.out, None),
+            ("in0", self.in0, None),
+            ("in1", self.in1, is_not),
+        ):
             low = arr < 0 if allowed_neg is None else (arr < 0) & ~allowed_neg
             bad = low | (arr >= n)
             if bad.any():
@@ -171,7 +177,9 @@ class Circuit:
             taken = defined_at[wires] != undefined
             if taken.any():
                 k = int(np.argmax(taken))
-                raise CircuitError(f"{label} {k}: wire {int(wires[k])} is defined twice (a constant or an input)")
+                raise CircuitError(
+                    f"{label} {k}: wire {int(wires[k])} is defined twice (a constant or an input)"
+                )
             # duplicates within the same list
             uniq, first = np.unique(wires, return_index=True)
             if uniq.size != wires.size:

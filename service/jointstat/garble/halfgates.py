@@ -70,7 +70,12 @@ def _tweaks(first_and: int, k: int) -> np.ndarray:
 
 
 def _linear_layer(
-    lc: LayeredCircuit, k: int, first_slot: int, labels: np.ndarray, cells: np.ndarray, delta_tile: np.ndarray | None
+    lc: LayeredCircuit,
+    k: int,
+    first_slot: int,
+    labels: np.ndarray,
+    cells: np.ndarray,
+    delta_tile: np.ndarray | None,
 ) -> None:
     """Layer k's XOR gates (C = A ⊕ B on both sides) and NOT gates (garbler: C⁰ = A⁰ ⊕ Δ; evaluator: C = A).
 
@@ -138,7 +143,9 @@ class Garbler:
         evaluator_zero_labels: np.ndarray | None = None,
     ) -> None:
         self.layered = layered
-        self.delta = fresh_delta() if delta is None else np.asarray(delta, dtype=BLOCK_DTYPE).reshape(2).copy()
+        self.delta = (
+            fresh_delta() if delta is None else np.asarray(delta, dtype=BLOCK_DTYPE).reshape(2).copy()
+        )
         if not int(self.delta[0]) & 1:
             raise GarbleError("Δ must have its least significant bit set (point-and-permute)")
         self._perm = FixedKeyAES()
@@ -173,7 +180,9 @@ class Garbler:
         slots = self.layered.input_slots[Party(party)]
         bit_arr = np.asarray(bits, dtype=np.uint8).reshape(-1)
         if bit_arr.shape[0] != slots.size:
-            raise GarbleError(f"{Party(party).name.lower()} inputs: expected {slots.size} bits, got {bit_arr.size}")
+            raise GarbleError(
+                f"{Party(party).name.lower()} inputs: expected {slots.size} bits, got {bit_arr.size}"
+            )
         if bit_arr.size and bit_arr.max() > 1:
             raise GarbleError(f"{Party(party).name.lower()} inputs: bits must be 0 or 1")
         return self._zero[slots] ^ (self.delta & select_mask(bit_arr))
@@ -299,7 +308,9 @@ class Evaluator:
         ):
             arr = np.asarray(labels, dtype=BLOCK_DTYPE)
             if arr.shape != (slots.size, 2):
-                raise GarbleError(f"{what}: expected {slots.size} labels of 16 bytes, got array of shape {arr.shape}")
+                raise GarbleError(
+                    f"{what}: expected {slots.size} labels of 16 bytes, got array of shape {arr.shape}"
+                )
             self._w[slots] = arr
         self._cells = as_cells(self._w)
         self._layer = 0
@@ -327,7 +338,9 @@ class Evaluator:
         rest = self._advance(buf)
         if rest.nbytes:
             if self.done:
-                raise GarbleError(f"received {rest.nbytes} table bytes more than the circuit's AND gates need")
+                raise GarbleError(
+                    f"received {rest.nbytes} table bytes more than the circuit's AND gates need"
+                )
             self._pending = bytes(rest)
 
     def _advance(self, buf: memoryview) -> memoryview:

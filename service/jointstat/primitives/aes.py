@@ -85,7 +85,9 @@ class FixedKeyAES:
                 px[:, 0] ^= tweaks[start:stop]
             else:
                 px ^= tweaks[start:stop]
-            self._enc.update_into(scratch_bytes[: 16 * m], scratch_bytes)  # in place; scratch has a spare block
+            self._enc.update_into(
+                scratch_bytes[: 16 * m], scratch_bytes
+            )  # in place; scratch has a spare block
             out[start:stop] ^= px
         return out
 
