@@ -1,16 +1,19 @@
-"""``jointstat bench ot``: wall time of 128 Chou–Orlandi base OTs and the rate of IKNP correlated-OT extension.
+"""``jointstat bench ot``: wall time of 128 Chou–Orlandi base OTs and the rate of IKNP correlated-OT
+extension.
 
 Theory of operation: both parties run in this one process, connected by the in-memory pipe of ``ot.pipe``, so
 every figure is the real wall time of both sides' work together (on one core, as the pipe is sequential).
 
-* ``base_ot_seconds`` — 128 base OTs, both sides, the median of three runs (``BaseOTSender``/``BaseOTReceiver``).
+* ``base_ot_seconds`` — 128 base OTs, both sides, the median of three runs
+  (``BaseOTSender``/``BaseOTReceiver``).
 * ``extension_ot_per_s`` — ``count`` correlated OTs by the extension phase alone (``ExtensionSender``/
   ``ExtensionReceiver``, started from the keys of the last base-OT run), divided by its wall time.
 * ``bytes_per_ot`` — all payload bytes of the extension phase, both directions, over ``count``.
-* ``end_to_end_seconds`` — the whole ``CorrelatedOTSender``/``CorrelatedOTReceiver`` protocol once more, for scale.
+* ``end_to_end_seconds`` — the whole ``CorrelatedOTSender``/``CorrelatedOTReceiver`` protocol once more,
+  for scale.
 
-Each run's output is checked (the evaluator's labels equal K ⊕ choices·Δ) before any figure is printed; a wrong
-result exits with status 1 and prints nothing but the failure.
+Each run's output is checked (the evaluator's labels equal K ⊕ choices·Δ) before any figure is printed; a
+wrong result exits with status 1 and prints nothing but the failure.
 """
 
 from __future__ import annotations
@@ -98,5 +101,9 @@ def run(count: int, as_json: bool) -> int:
         "largest_message_bytes": end_to_end.largest_payload,
         "peak_rss_mib": peak_rss_mib(),
     }
-    emit("OT: 128 Chou–Orlandi base OTs, IKNP correlated-OT extension (both sides, one process)", figures, as_json)
+    emit(
+        "OT: 128 Chou–Orlandi base OTs, IKNP correlated-OT extension (both sides, one process)",
+        figures,
+        as_json,
+    )
     return 0

@@ -1,33 +1,38 @@
-"""Base OT: the "simplest OT" of Chou and Orlandi (Latincrypt 2015) over the prime-order group of edwards25519.
+"""Base OT: the "simplest OT" of Chou and Orlandi (Latincrypt 2015) over the prime-order group of
+edwards25519.
 
 Theory of operation
 -------------------
-n random 1-out-of-2 OTs (the sender learns two keys per OT, the receiver the one it chose), all sharing one sender
-point, in one round trip. B is the RFC 8032 base point, all points are checked by ``group.check_point``.
+n random 1-out-of-2 OTs (the sender learns two keys per OT, the receiver the one it chose), all sharing
+one sender point, in one round trip. B is the RFC 8032 base point, all points are checked by
+``group.check_point``.
 
 1. Sender: random scalar a, sends A = [a]B; keeps T = [a]A.
 2. Receiver, for each i with choice c_i: random scalar b_i, sends R_i = [b_i]B + c_i·A; its key is
    k_i = KDF(i, A, R_i, [b_i]A).
 3. Sender, for each i: k_i^0 = KDF(i, A, R_i, [a]R_i), k_i^1 = KDF(i, A, R_i, [a]R_i − T).
 
-Correctness: [a]R_i = [a b_i]B + c_i·T, so [a]R_i − c_i·T = [b_i]A. The sender sees R_i, which is uniform whatever
-c_i is; the receiver cannot compute [a](R_i − c̄_i·A) without solving CDH. Security here is semi-honest.
+Correctness: [a]R_i = [a b_i]B + c_i·T, so [a]R_i − c_i·T = [b_i]A. The sender sees R_i, which is uniform
+whatever c_i is; the receiver cannot compute [a](R_i − c̄_i·A) without solving CDH. Security here is
+semi-honest.
 
-KDF(i, A, R, P) = SHA-256("jointstat base OT key v1" ‖ len(sid) ‖ sid ‖ i ‖ A ‖ R ‖ P), first 16 bytes, where sid is
-the session identifier (2-byte big-endian length, then the bytes) and i a 4-byte big-endian index. Hashing the
-session id, the index and the transcript points separates keys across sessions and OTs.
+KDF(i, A, R, P) = SHA-256("jointstat base OT key v1" ‖ len(sid) ‖ sid ‖ i ‖ A ‖ R ‖ P), first 16 bytes,
+where sid is the session identifier (2-byte big-endian length, then the bytes) and i a 4-byte big-endian
+index. Hashing the session id, the index and the transcript points separates keys across sessions and OTs.
 
-The receiver computes both [b_i]B and [b_i]B + A for every i and selects one, so its running time does not depend
-on how many choice bits are 1.
+The receiver computes both [b_i]B and [b_i]B + A for every i and selects one, so its running time does not
+grow with the number of choice bits that are 1.
 
 States and transitions (the ``TABLE`` of each class; every other (state, event) pair raises ``OTError``)
 
-| party            | state                  | event                              | reply                          | next       |
-|------------------|------------------------|------------------------------------|--------------------------------|------------|
-| BaseOTSender     | new                     | start()                          | base_ot_sender_point (32 B)      | awaiting base OT points |
-| BaseOTSender     | awaiting base OT points | base_ot_receiver_points (32·n B) | —                                | done                    |
-| BaseOTReceiver   | new                     | start()                          | —                                | awaiting base OT point  |
-| BaseOTReceiver   | awaiting base OT point  | base_ot_sender_point (32 B)      | base_ot_receiver_points (32·n B) | done                    |
+| party          | state                   | event                            | reply                          |
+|----------------|-------------------------|----------------------------------|--------------------------------|
+| BaseOTSender   | new                     | start()                          | base_ot_sender_point, 32 B     |
+| BaseOTSender   | awaiting base OT points | base_ot_receiver_points, 32·n B  | — (then done)                  |
+| BaseOTReceiver | new                     | start()                          | —                              |
+| BaseOTReceiver | awaiting base OT point  | base_ot_sender_point, 32 B       | base_ot_receiver_points, 32·n B (then done) |
+
+The sender goes new → awaiting base OT points → done; the receiver new → awaiting base OT point → done.
 """
 
 from __future__ import annotations
@@ -60,7 +65,9 @@ def check_session_id(session_id: bytes) -> bytes:
     return bytes(session_id)
 
 
-def derive_key(session_id: bytes, index: int, sender_point: bytes, receiver_point: bytes, shared: bytes) -> bytes:
+def derive_key(
+    session_id: bytes, index: int, sender_point: bytes, receiver_point: bytes, shared: bytes
+) -> bytes:
     """KDF(i, A, R, P) of the module docstring: 16 bytes of SHA-256 over the session id, index and points."""
     h = hashlib.sha256(_KDF_LABEL)
     h.update(len(session_id).to_bytes(2, "big"))

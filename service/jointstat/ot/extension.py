@@ -3,48 +3,54 @@ Asharov–Lindell–Schneider–Zohner (CCS 2013), on top of 128 Chou–Orlandi 
 
 Theory of operation
 -------------------
-Roles: the garbler is the OT-extension *sender* S (it holds the free-XOR offset Δ and ends with zero labels K_j);
-the evaluator is the OT-extension *receiver* R (choice bits r_j, ends with K_j ⊕ r_j·Δ). κ = 128.
+Roles: the garbler is the OT-extension *sender* S (it holds the free-XOR offset Δ and ends with zero
+labels K_j); the evaluator is the OT-extension *receiver* R (choice bits r_j, ends with K_j ⊕ r_j·Δ). κ =
+128.
 
-1. Base OT with the roles swapped: R is the base-OT sender of 128 random key pairs (k_i^0, k_i^1); S is the base-OT
-   receiver with 128 random choice bits s and learns k_i^{s_i}.
-2. For each batch of n OTs (n ≤ ``batch``, padded up to a multiple of 128 bits), with G the AES-CTR PRG keyed by a
-   base-OT key and read on from where the previous batch stopped:
-   R builds the columns t^i = G(k_i^0) and u^i = t^i ⊕ G(k_i^1) ⊕ r and sends the 128 columns u^i
-   (``ot_extension_columns``: 16 bytes per OT). S computes q^i = G(k_i^{s_i}) ⊕ s_i·u^i = t^i ⊕ s_i·r.
+1. Base OT with the roles swapped: R is the base-OT sender of 128 random key pairs (k_i^0, k_i^1); S is
+   the base-OT receiver with 128 random choice bits s and learns k_i^{s_i}.
+2. For each batch of n OTs (n ≤ ``batch``, padded up to a multiple of 128 bits), with G the AES-CTR PRG
+   keyed by a base-OT key and read on from where the previous batch stopped: R builds the columns t^i =
+   G(k_i^0) and u^i = t^i ⊕ G(k_i^1) ⊕ r and sends the 128 columns u^i (``ot_extension_columns``: 16 bytes
+   per OT). S computes q^i = G(k_i^{s_i}) ⊕ s_i·u^i = t^i ⊕ s_i·r.
 3. Both transpose their 128 × n matrices (``transpose.transpose_bits``); row j gives q_j = t_j ⊕ r_j·s.
-4. S sets K_j = H(q_j, j) and sends y_j = K_j ⊕ Δ ⊕ H(q_j ⊕ s, j) (``ot_extension_corrections``: 16 bytes per OT).
-   R outputs H(t_j, j) ⊕ r_j·y_j, which is K_j when r_j = 0 and, since q_j ⊕ s = t_j when r_j = 1, K_j ⊕ Δ otherwise.
+4. S sets K_j = H(q_j, j) and sends y_j = K_j ⊕ Δ ⊕ H(q_j ⊕ s, j) (``ot_extension_corrections``: 16 bytes
+   per OT). R outputs H(t_j, j) ⊕ r_j·y_j, which is K_j when r_j = 0 and, since q_j ⊕ s = t_j when r_j =
+   1, K_j ⊕ Δ otherwise.
 
 H is the tweakable correlation-robust hash of Guo–Katz–Wang–Yu (IEEE S&P 2020) over fixed-key AES
-(``FixedKeyAES.hash``); the tweak of OT j is the block (j, ``HASH_TWEAK_DOMAIN``): its high word keeps OT tweaks
-apart from the garbling tweaks, whose high word is expected to differ (it is zero for gate indices). S's view — the
-columns u^i — is G(k_i^0) ⊕ G(k_i^1) ⊕ r with one of the two keys unknown to it, hence pseudo-random whatever r is;
-R's view of K_j ⊕ Δ for an unchosen label needs H(t_j ⊕ s, j) for the secret s.
+(``FixedKeyAES.hash``); the tweak of OT j is the block (j, ``HASH_TWEAK_DOMAIN``): its high word keeps OT
+tweaks apart from the garbling tweaks, whose high word is expected to differ (it is zero for gate
+indices). S's view — the columns u^i — is G(k_i^0) ⊕ G(k_i^1) ⊕ r with one of the two keys unknown to it,
+hence pseudo-random whatever r is; R's view of K_j ⊕ Δ for an unchosen label needs H(t_j ⊕ s, j) for the
+secret s.
 
-Streaming: R sends at most ``window`` batches ahead of the corrections it has received, each batch message is at
-most 128 · ``batch`` / 8 bytes (1 MiB by default, 4 MiB at the largest batch), and both sides keep only O(batch)
-working memory besides their output arrays.
+Streaming: R sends at most ``window`` batches ahead of the corrections it has received, each batch message
+is at most 128 · ``batch`` / 8 bytes (1 MiB by default, 4 MiB at the largest batch), and both sides keep
+only O(batch) working memory besides their output arrays.
 
-States and transitions (``TABLE`` of each class; any other (state, event) pair raises ``OTError``; any error leaves
-the party in ``failed``, which refuses everything)
+States and transitions (``TABLE`` of each class; any other (state, event) pair raises ``OTError``; any
+error leaves the party in ``failed``, which refuses everything)
 
-| party                         | state                | event                         | reply                         | next |
-|-------------------------------|----------------------|-------------------------------|-------------------------------|------|
-| CorrelatedOTSender (garbler)  | new                  | start()                       | —                             | awaiting base OT point; done if count = 0 |
-| CorrelatedOTSender            | awaiting base OT point | base_ot_sender_point (32 B) | base_ot_receiver_points (4096 B) | receiving columns |
-| CorrelatedOTSender            | receiving columns    | ot_extension_columns (batch b) | ot_extension_corrections (b) | receiving columns; done after the last batch |
-| CorrelatedOTReceiver (evaluator) | new               | start()                       | base_ot_sender_point          | awaiting base OT points; done if count = 0 |
-| CorrelatedOTReceiver          | awaiting base OT points | base_ot_receiver_points (4096 B) | columns of the first ``window`` batches | extending |
-| CorrelatedOTReceiver          | extending            | ot_extension_corrections (batch b) | columns of batch b + ``window``, if any | extending; done after the last batch |
-| ExtensionSender               | new                  | start()                       | —                             | receiving columns; done if count = 0 |
-| ExtensionSender               | receiving columns    | ot_extension_columns          | ot_extension_corrections      | as above |
-| ExtensionReceiver             | new                  | start()                       | columns of the first ``window`` batches | extending; done if count = 0 |
-| ExtensionReceiver             | extending            | ot_extension_corrections      | as above                      | as above |
+Garbler, ``CorrelatedOTSender`` (``ExtensionSender`` is the same from "receiving columns" on):
 
-``ExtensionSender``/``ExtensionReceiver`` are the extension phase alone, started from base-OT keys obtained
-elsewhere (the benchmark times the two phases separately with them); the session layer uses the ``CorrelatedOT*``
-classes, which run the base OTs themselves.
+| state                  | event                          | reply                            | next               |
+|------------------------|--------------------------------|----------------------------------|--------------------|
+| new                    | start()                        | —                                | awaiting base OT point (done if count = 0) |
+| awaiting base OT point | base_ot_sender_point, 32 B     | base_ot_receiver_points, 4096 B  | receiving columns  |
+| receiving columns      | ot_extension_columns, batch b  | ot_extension_corrections, b      | receiving columns; done after the last batch |
+
+Evaluator, ``CorrelatedOTReceiver`` (``ExtensionReceiver``: start() sends the first columns at once):
+
+| state                   | event                             | reply                              | next      |
+|-------------------------|-----------------------------------|------------------------------------|-----------|
+| new                     | start()                           | base_ot_sender_point, 32 B         | awaiting base OT points (done if count = 0) |
+| awaiting base OT points | base_ot_receiver_points, 4096 B   | columns of batches 0 … window − 1  | extending |
+| extending               | ot_extension_corrections, batch b | columns of batch b + window, if any | extending; done after the last batch |
+
+``ExtensionSender``/``ExtensionReceiver`` are the extension phase alone, started from base-OT keys
+obtained elsewhere (the benchmark times the two phases separately with them); the session layer uses the
+``CorrelatedOT*`` classes, which run the base OTs themselves.
 """
 
 from __future__ import annotations
@@ -92,15 +98,13 @@ AWAITING_BASE_POINTS = AWAITING_RECEIVER_POINTS  # the evaluator, as base-OT sen
 RECEIVING_COLUMNS = "receiving columns"
 EXTENDING = "extending"
 
-_ALL_ONES = np.uint64(0xFFFFFFFFFFFFFFFF)
-
 
 class SeedStreams:
     """The PRG G of IKNP for many seeds at once: one AES-128-CTR keystream per 16-byte seed (counter from 0).
 
-    ``read(nbytes)`` returns the next ``nbytes`` of every stream as a ``(len(seeds), nbytes)`` uint8 matrix. The
-    streams are the same as ``primitives.aes.prg_expand(seed, total)``; keeping one encryptor per seed avoids
-    re-keying AES for every batch.
+    ``read(nbytes)`` returns the next ``nbytes`` of every stream as a ``(len(seeds), nbytes)`` uint8
+    matrix. The streams are the same as ``primitives.aes.prg_expand(seed, total)``; keeping one encryptor
+    per seed avoids re-keying AES for every batch.
     """
 
     def __init__(self, seeds: Sequence[bytes]) -> None:
@@ -352,7 +356,9 @@ class CorrelatedOTSender(StateMachine):
         (RECEIVING_COLUMNS, EXTENSION_COLUMNS): ("_on_columns", (RECEIVING_COLUMNS, DONE)),
     }
 
-    def __init__(self, session_id: bytes, delta: np.ndarray, count: int, *, batch: int = DEFAULT_BATCH) -> None:
+    def __init__(
+        self, session_id: bytes, delta: np.ndarray, count: int, *, batch: int = DEFAULT_BATCH
+    ) -> None:
         super().__init__()
         self._session_id = check_session_id(session_id)
         self._delta = _check_delta(delta)
@@ -409,8 +415,8 @@ class CorrelatedOTSender(StateMachine):
 class CorrelatedOTReceiver(StateMachine):
     """The evaluator's side: one correlated OT per choice bit; ends with ``labels`` = K ⊕ choices·Δ.
 
-    The evaluator is the base-OT sender (128 random key pairs) and the OT-extension receiver. ``window`` batches
-    of columns may be in flight before the corrections of the first come back.
+    The evaluator is the base-OT sender (128 random key pairs) and the OT-extension receiver. ``window``
+    batches of columns may be in flight before the corrections of the first come back.
     """
 
     ROLE = "correlated OT receiver (evaluator)"

@@ -1,12 +1,13 @@
 """A small table-driven state machine shared by the sans-I/O OT parties.
 
 Theory of operation: each party class declares one table ``TABLE`` mapping ``(state, event)`` to
-``(handler name, allowed next states)``, where an event is a message kind or ``START`` for the ``start()`` call.
-``start()`` and ``receive()`` look the pair up; a missing pair raises ``OTError`` naming the state, the event and
-what the state would have accepted. The handler checks the message (size, points) before it changes anything,
-does the work, and returns the next state and the messages to send; the machine checks that the next state is one
-the table allows. Any error inside a handler leaves the party in ``FAILED``, which refuses everything: one bad
-message aborts the OT for good, and no partial output is ever released (outputs are read only in ``DONE``).
+``(handler name, allowed next states)``, where an event is a message kind or ``START`` for the ``start()``
+call. ``start()`` and ``receive()`` look the pair up; a missing pair raises ``OTError`` naming the state,
+the event and what the state would have accepted. The handler checks the message (size, points) before it
+changes anything, does the work, and returns the next state and the messages to send; the machine checks
+that the next state is one the table allows. Any error inside a handler leaves the party in ``FAILED``,
+which refuses everything: one bad message aborts the OT for good, and no partial output is ever released
+(outputs are read only in ``DONE``).
 """
 
 from __future__ import annotations
@@ -60,7 +61,9 @@ class StateMachine:
     def _dispatch(self, event: str, message: OTMessage | None) -> list[OTMessage]:
         state = self._state
         if state == FAILED:
-            raise OTError(f"{self.role} in state 'failed': refusing {event!r}, an earlier error aborted this OT")
+            raise OTError(
+                f"{self.role} in state 'failed': refusing {event!r}, an earlier error aborted this OT"
+            )
         transition = self.TABLE.get((state, event))
         if transition is None:
             accepted = sorted(ev for (st, ev) in self.TABLE if st == state) or ["nothing"]

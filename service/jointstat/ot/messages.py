@@ -33,8 +33,9 @@ KINDS = frozenset({BASE_OT_SENDER_POINT, BASE_OT_RECEIVER_POINTS, EXTENSION_COLU
 class OTError(ValueError):
     """A message did not fit the protocol state (wrong kind, wrong size, bad point), or the OT was misused.
 
-    The text names the state, the message kind and what is wrong; it never contains keys, choice bits or Δ.
-    After an ``OTError`` from ``receive`` the object is failed and refuses further messages: the session aborts.
+    The text names the state, the message kind and what is wrong; it never contains keys, choice bits or
+    Δ. After an ``OTError`` from ``receive`` the object is failed and refuses further messages: the
+    session aborts.
     """
 
 

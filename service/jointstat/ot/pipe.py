@@ -1,10 +1,11 @@
 """An in-memory pipe that runs two sans-I/O OT parties against each other in one process.
 
-Theory of operation: both parties' ``start()`` messages go into one first-in-first-out queue, each tagged with
-its destination; the pipe delivers the oldest message, queues the replies for the other side, and repeats until
-the queue is empty. Each direction stays in order, as on a gRPC stream. The queue never holds more than what the
-parties themselves have in flight (the receiver's window of column batches and their corrections), so memory
-stays bounded for any count. Used by the tests and the benchmark; the session layer does the same over gRPC.
+Theory of operation: both parties' ``start()`` messages go into one first-in-first-out queue, each tagged
+with its destination; the pipe delivers the oldest message, queues the replies for the other side, and
+repeats until the queue is empty. Each direction stays in order, as on a gRPC stream. The queue never
+holds more than what the parties themselves have in flight (the receiver's window of column batches and
+their corrections), so memory stays bounded for any count. Used by the tests and the benchmark; the
+session layer does the same over gRPC.
 """
 
 from __future__ import annotations
@@ -47,8 +48,8 @@ Observer = Callable[[str, OTMessage], None]
 def run_pipe(first: OTParty, second: OTParty, *, observe: Observer | None = None) -> PipeStats:
     """Run ``first`` and ``second`` to completion; ``observe(to, message)`` sees every message in order.
 
-    ``to`` is ``"first"`` or ``"second"``. Raises ``OTError`` if the pipe runs dry before both are done; any error
-    raised by a party propagates unchanged.
+    ``to`` is ``"first"`` or ``"second"``. Raises ``OTError`` if the pipe runs dry before both are done;
+    any error raised by a party propagates unchanged.
     """
     stats = PipeStats()
     parties = {"first": first, "second": second}

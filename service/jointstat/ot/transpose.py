@@ -2,21 +2,21 @@
 
 Theory of operation
 -------------------
-IKNP OT extension (Ishai–Kilian–Nissim–Petrank, Crypto 2003) builds a 128 × m bit matrix column by column (one
-PRG stream per base OT) and then needs its m rows of 128 bits (one block per OT). Bits are numbered little-endian
-throughout: bit j of a column is bit j mod 8 of byte j // 8, and bit i of a row block is bit i mod 64 of 64-bit
-word i // 64 — the ``(n, 2) '<u8'`` block convention of ``primitives.blocks``.
+IKNP OT extension (Ishai–Kilian–Nissim–Petrank, Crypto 2003) builds a 128 × m bit matrix column by column
+(one PRG stream per base OT) and then needs its m rows of 128 bits (one block per OT). Bits are numbered
+little-endian throughout: bit j of a column is bit j mod 8 of byte j // 8, and bit i of a row block is bit
+i mod 64 of 64-bit word i // 64 — the ``(n, 2) '<u8'`` block convention of ``primitives.blocks``.
 
-The matrix is cut into 64 × 64 tiles, each tile being 64 words (one per matrix row, word t of that row). A tile is
-transposed in place by the classic recursive block swap (Hacker's Delight, section 7-3): for j = 32, 16, 8, 4, 2,
-1, every word pair (k, k + j) with k & j = 0 exchanges the bits at positions c + j of word k with positions c of
-word k + j (c & j = 0):
+The matrix is cut into 64 × 64 tiles, each tile being 64 words (one per matrix row, word t of that row). A
+tile is transposed in place by the classic recursive block swap (H. S. Warren, Hacker's Delight, section 7-3): for j =
+32, 16, 8, 4, 2, 1, every word pair (k, k + j) with k & j = 0 exchanges the bits at positions c + j of
+word k with positions c of word k + j (c & j = 0):
 
     t = ((w[k] >> j) ^ w[k + j]) & mask_j;   w[k + j] ^= t;   w[k] ^= t << j
 
-Each stage is six whole-array numpy operations over all tiles at once (about 2·m/64 · 64 words per stage), so the
-cost is ~36 word operations per 64 bits rather than one Python or numpy step per bit; a last gather puts the two
-64-bit halves of each row side by side.
+Each stage is six whole-array numpy operations over the m word pairs of the 2m-word matrix (all tiles at
+once), so the whole transposition costs about 36 word operations per 64 matrix bits instead of one step
+per bit; a last gather puts the two 64-bit halves of each row side by side.
 """
 
 from __future__ import annotations
@@ -39,8 +39,9 @@ _STAGES: tuple[tuple[int, np.uint64], ...] = (
 def transpose_bits(matrix: np.ndarray) -> np.ndarray:
     """Transpose an (R, nbytes) uint8 bit matrix (R a multiple of 64, nbytes a multiple of 8).
 
-    Returns an ``(8 · nbytes, R // 64)`` array of ``'<u8'`` words: row j holds the R bits of column j, bit i in
-    word i // 64 at position i mod 64. For R = 128 this is an ``(m, 2)`` block array. The input is not modified.
+    Returns an ``(8 · nbytes, R // 64)`` array of ``'<u8'`` words: row j holds the R bits of column j, bit
+    i in word i // 64 at position i mod 64. For R = 128 this is an ``(m, 2)`` block array. The input is
+    not modified.
     """
     if matrix.ndim != 2 or matrix.dtype != np.uint8:
         raise ValueError("transpose_bits needs a two-dimensional uint8 array")

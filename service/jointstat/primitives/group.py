@@ -25,13 +25,15 @@ Every point that arrives from the peer goes through ``check_point`` before any u
 4. not of small order (in particular not the identity);
 5. in the prime-order subgroup: [L]P is the identity.
 
-What ``crypto_core_ed25519_is_valid_point`` (libsodium 1.0.18+) does and does not do: it checks 2 (the y < p part),
-3, 4 (against a list of the small-order encodings, ignoring the sign bit, which also covers the x = 0 sign-bit
-encodings of 2) and 5 (multiplication by L). Its argument must be 32 bytes long — PyNaCl raises its own
-TypeError otherwise, so length (1) is checked here first. It answers only yes or no, so when it says no we work
-out which rule failed, to give a clear reason (``PointError.reason``). It says nothing about points that come
-out of our own arithmetic: libsodium's scalar multiplications refuse (and we raise ``PointError``) when the
-result would be the identity; ``add``/``sub`` may legitimately return the identity.
+What ``crypto_core_ed25519_is_valid_point`` (libsodium 1.0.18 and later) does and does not do: it checks
+rule 2 for y (y < p), rule 3, rule 4 (against the list of small-order encodings, ignoring the sign bit,
+which also rejects the sign-bit-set encodings with x = 0 of rule 2) and rule 5 (multiplication by L).
+``tests/test_group.py`` checks this behaviour against an independent pure-Python reference. Its argument
+must be 32 bytes long (PyNaCl raises its own TypeError otherwise), so rule 1 is checked here first. It
+answers only yes or no, so when it says no we work out which rule failed, to give a clear reason
+(``PointError.reason``). It says nothing about points that come out of our own arithmetic: libsodium's
+scalar multiplications refuse (and we raise ``PointError``) when the result would be the identity, while
+``add``/``sub`` may legitimately return the identity.
 
 Nothing here is secret except scalars; error messages name the rule that failed, never scalar values.
 """
