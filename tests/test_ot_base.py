@@ -14,6 +14,7 @@ from jointstat.ot import (
     BaseOTSender,
     OTError,
     OTMessage,
+    PipeStats,
     run_pipe,
 )
 from jointstat.ot import base as base_module
@@ -52,7 +53,9 @@ BAD_POINTS = {
 }
 
 
-def run_base(choices: np.ndarray, sid_sender: bytes = SID, sid_receiver: bytes = SID):
+def run_base(
+    choices: np.ndarray, sid_sender: bytes = SID, sid_receiver: bytes = SID
+) -> tuple[BaseOTSender, BaseOTReceiver, PipeStats]:
     sender = BaseOTSender(sid_sender, len(choices))
     receiver = BaseOTReceiver(sid_receiver, choices)
     stats = run_pipe(sender, receiver)

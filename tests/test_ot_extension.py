@@ -21,6 +21,7 @@ from jointstat.ot import (
     ExtensionSender,
     OTError,
     OTMessage,
+    PipeStats,
     run_pipe,
 )
 from jointstat.ot.base import random_choice_bits
@@ -38,7 +39,14 @@ def fresh_delta() -> np.ndarray:
     return delta
 
 
-def run_cot(count: int, *, batch: int = 1 << 16, window: int = 4, choices: np.ndarray | None = None):
+CotRun = tuple[
+    CorrelatedOTSender, CorrelatedOTReceiver, np.ndarray, np.ndarray, PipeStats, list[tuple[str, OTMessage]]
+]
+
+
+def run_cot(
+    count: int, *, batch: int = 1 << 16, window: int = 4, choices: np.ndarray | None = None
+) -> CotRun:
     delta = fresh_delta()
     if choices is None:
         choices = random_choice_bits(count)
@@ -49,7 +57,12 @@ def run_cot(count: int, *, batch: int = 1 << 16, window: int = 4, choices: np.nd
     return sender, receiver, delta, choices, stats, seen
 
 
-def assert_correlated(sender, receiver, delta: np.ndarray, choices: np.ndarray) -> None:
+def assert_correlated(
+    sender: CorrelatedOTSender | ExtensionSender,
+    receiver: CorrelatedOTReceiver | ExtensionReceiver,
+    delta: np.ndarray,
+    choices: np.ndarray,
+) -> None:
     zero = sender.zero_labels
     labels = receiver.labels
     assert zero.shape == labels.shape == (len(choices), 2)
@@ -195,7 +208,9 @@ def test_seed_streams_match_prg_expand() -> None:
 # ---- states, sizes and malformed messages -------------------------------------------------------------------
 
 
-def started_pair(count: int = 1000, batch: int = 256):
+def started_pair(
+    count: int = 1000, batch: int = 256
+) -> tuple[CorrelatedOTSender, CorrelatedOTReceiver, list[OTMessage]]:
     sender = CorrelatedOTSender(SID, fresh_delta(), count, batch=batch)
     receiver = CorrelatedOTReceiver(SID, random_choice_bits(count), batch=batch, window=2)
     assert sender.start() == []

@@ -175,7 +175,7 @@ def _check_window(window: int) -> int:
 def _as_choices(choices: np.ndarray) -> np.ndarray:
     bits = np.asarray(choices)
     check_choice_bits(bits, what="choices")
-    return np.ascontiguousarray(bits, dtype=np.uint8)
+    return np.array(bits, dtype=np.uint8, copy=True)  # a private copy: the caller may reuse its array
 
 
 class ExtensionSender(StateMachine):
