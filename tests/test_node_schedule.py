@@ -1,0 +1,116 @@
+"""Job timing: cron in a time zone, run windows, one catch-up run after downtime, retries with backoff; and the
+job store that remembers runs. Times are given explicitly: no test reads the clock."""
+
+from __future__ import annotations
+
+import stat
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+
+import pytest
+from jointstat.node.schedule import DueRun, JobTiming, Planner, ScheduleError
+from jointstat.node.store import JobStore, StoreError
+
+
+def utc(*args: int) -> datetime:
+    return datetime(*args, tzinfo=UTC)
+
+
+NIGHTLY = JobTiming(job="nightly", cron="30 1 * * *", timezone="Europe/Berlin", window=timedelta(hours=2))
+
+
+def test_cron_times_are_read_in_the_jobs_time_zone() -> None:
+    # 01:30 in Berlin is 23:30 UTC the day before in winter (UTC+1) and 23:30 → 22:30 UTC in summer (UTC+2).
+    winter = NIGHTLY.fire_times(utc(2026, 12, 1, 12), utc(2026, 12, 3, 12))
+    assert winter == [utc(2026, 12, 2, 0, 30), utc(2026, 12, 3, 0, 30)]
+    summer = NIGHTLY.fire_times(utc(2026, 7, 1, 12), utc(2026, 7, 2, 12))
+    assert summer == [utc(2026, 7, 1, 23, 30)]
+
+
+def test_a_run_is_due_once_when_its_time_passes_and_only_inside_its_window() -> None:
+    planner = Planner([NIGHTLY], started_at=utc(2026, 12, 1, 12))
+    assert planner.due(utc(2026, 12, 2, 0, 29)) == []
+    assert planner.due(utc(2026, 12, 2, 0, 31)) == [DueRun("nightly", utc(2026, 12, 2, 0, 30))]
+    assert planner.due(utc(2026, 12, 2, 0, 45)) == []  # not twice
+    # A look that comes after the window closed starts nothing.
+    assert planner.due(utc(2026, 12, 3, 2, 31)) == []
+
+
+def test_a_run_missed_while_the_node_was_down_runs_once_at_start_up_if_its_window_is_open() -> None:
+    planner = Planner([NIGHTLY], started_at=utc(2026, 12, 2, 1, 0))
+    assert planner.missed(utc(2026, 12, 2, 1, 0), done=set()) == [DueRun("nightly", utc(2026, 12, 2, 0, 30))]
+    done = {("nightly", utc(2026, 12, 2, 0, 30))}
+    assert planner.missed(utc(2026, 12, 2, 1, 0), done=done) == []
+    assert planner.missed(utc(2026, 12, 2, 3, 0), done=set()) == []  # window (2 h) closed at 02:30
+
+
+def test_retries_back_off_and_stop_at_the_attempt_limit_or_the_window() -> None:
+    timing = JobTiming(
+        job="j", cron="0 2 * * *", window=timedelta(minutes=30), attempts=3, backoff=timedelta(minutes=4)
+    )
+    planner = Planner([timing], started_at=utc(2026, 12, 1))
+    t0 = utc(2026, 12, 2, 2, 0)
+    assert planner.retry_at("j", t0, 1, failed_at=t0 + timedelta(minutes=1)) == t0 + timedelta(minutes=5)
+    assert planner.retry_at("j", t0, 2, failed_at=t0 + timedelta(minutes=6)) == t0 + timedelta(minutes=14)
+    assert planner.retry_at("j", t0, 3, failed_at=t0 + timedelta(minutes=15)) is None
+    assert (
+        planner.retry_at("j", t0, 2, failed_at=t0 + timedelta(minutes=25)) is None
+    )  # would leave the window
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "message"),
+    [
+        ({"cron": "61 * * * *"}, "not a five-field cron expression"),
+        ({"cron": "* * * *"}, "not a five-field cron expression"),
+        ({"cron": "0 1 * * *", "timezone": "Mars/Olympus"}, "unknown time zone"),
+        ({"cron": "0 1 * * *", "window": timedelta(0)}, "window must be positive"),
+        ({"cron": "0 1 * * *", "attempts": 0}, "attempts must be at least 1"),
+    ],
+)
+def test_bad_schedules_are_refused_naming_the_job(kwargs: dict, message: str) -> None:
+    with pytest.raises(ScheduleError, match=f"job 'x': .*{message}"):
+        JobTiming(job="x", **kwargs)
+
+
+def test_times_without_a_zone_are_refused() -> None:
+    with pytest.raises(ScheduleError, match="must carry a time zone"):
+        NIGHTLY.fire_times(datetime(2026, 1, 1), utc(2026, 1, 2))
+
+
+def test_the_store_records_runs_and_their_outcomes(tmp_path: Path) -> None:
+    store = JobStore(tmp_path / "state" / "jobs.sqlite3")
+    assert stat.S_IMODE((tmp_path / "state" / "jobs.sqlite3").stat().st_mode) == 0o600
+    t = utc(2026, 12, 2, 0, 30)
+    run = store.start("nightly", t, 1, started_at=t, session_id="s-1")
+    assert store.runs()[0].status == "running"
+    store.finish(run, "aborted", finished_at=t + timedelta(minutes=1), reason="peer vanished")
+    again = store.start("nightly", t, 2, started_at=t + timedelta(minutes=2))
+    store.finish(again, "completed", finished_at=t + timedelta(minutes=3), result_path="/r/1.json")
+    history = store.runs("nightly")
+    assert [(r.attempt, r.status, r.reason) for r in history] == [
+        (2, "completed", None),
+        (1, "aborted", "peer vanished"),
+    ]
+    assert store.last_success("nightly").attempt == 2  # type: ignore[union-attr]
+    assert store.scheduled_done() == {("nightly", t)}
+    with pytest.raises(StoreError, match="run status must be one of"):
+        store.finish(run, "great", finished_at=t)
+
+
+def test_runs_left_running_by_a_stopped_node_are_closed_as_aborted(tmp_path: Path) -> None:
+    path = tmp_path / "jobs.sqlite3"
+    t = utc(2026, 12, 2, 0, 30)
+    JobStore(path).start("nightly", t, 1, started_at=t)
+    reopened = JobStore(path)
+    assert reopened.close_interrupted(t + timedelta(hours=1)) == 1
+    assert reopened.runs()[0].status == "aborted"
+    assert reopened.runs()[0].reason == "node stopped during the run"
+
+
+def test_a_store_file_others_can_read_is_refused(tmp_path: Path) -> None:
+    path = tmp_path / "jobs.sqlite3"
+    path.write_bytes(b"")
+    path.chmod(0o644)
+    with pytest.raises(StoreError, match="lets others read it"):
+        JobStore(path)
