@@ -16,9 +16,9 @@ LSB-first; leading axes are lanes, so ``aes128_encrypt`` also encrypts many bloc
   non-linear middle that inverts in the tower field (14 AND, 30 XOR), 18 AND gates of output products and a
   linear bottom layer (26 XOR, 4 XNOR) — 115 gates, 32 of them AND. The netlist below was written down from
   memory; the tests verify it on all 256 inputs against the S-box computed from the GF(2^8) inverse and the
-  affine map of FIPS 197 §5.1.1. The netlist runs once per round over all the bytes
-  that need an S-box in that round at once: the 16 state bytes and the 4 bytes of the rotated key word, 20
-  lanes, so each of its 115 gates is one builder call emitting 20 gates.
+  affine map of FIPS 197 §5.1.1. The netlist runs once per round over all the bytes that need an S-box in that
+  round at once: the 16 state bytes and the 4 bytes of the rotated key word, 20 lanes, so each of its 115 gates
+  is one builder call emitting 20 gates.
 - ShiftRows is a permutation of the byte axis (free); MixColumns and AddRoundKey are XOR only: per column,
   s'_r = a_r ⊕ (a_0 ⊕ a_1 ⊕ a_2 ⊕ a_3) ⊕ xtime(a_r ⊕ a_{r+1}) (FIPS 197 §5.1.3 rearranged), and xtime (§4.2.1)
   is a rewiring plus three XORs.
