@@ -15,15 +15,72 @@ NOT, and ``xor(a, a)`` is 0. Adding a public constant therefore costs fewer AND 
 The AND counts of the word operations are the minimal ones for garbling with free XOR (Kolesnikov–Sadeghi–
 Schneider, CANS 2009): an n-bit adder with carry-out, a subtractor, a comparator and a multiplexer cost n AND gates
 each; addition modulo 2^n costs n − 1; equality costs n − 1.
+
+Storage: gate inputs go into two int32 columns in anonymous memory mappings that grow by doubling (``mremap``
+moves pages without copying), gate kinds are kept as runs (one per emission), and output wires are not stored at
+all — every emission takes the next consecutive wire numbers, so the output column is the complement of the input
+ranges and is rebuilt by ``build``. The finished circuit's in0/in1 arrays are the columns themselves, so a gate
+costs 13 bytes at the peak, as in the finished circuit. Every gate reads wires below the next free wire number
+(checked as it is emitted), so the builder's circuits are valid by construction; circuits of at most
+``VALIDATE_LIMIT`` gates are checked once more by ``Circuit.create``, larger ones (whose full check needs several
+times the circuit's memory) are assembled directly.
 """
 
 from __future__ import annotations
+
+import mmap
 
 import numpy as np
 
 from jointstat.circuit.model import ONE_WIRE, WIRE_LIMIT, ZERO_WIRE, Circuit, CircuitError, GateKind, Party
 
 Wires = np.ndarray
+
+INITIAL_GATES = 1 << 12  # initial capacity of the gate-input columns; they double as needed
+VALIDATE_LIMIT = 1 << 24  # circuits up to this many gates are re-validated by Circuit.create in build()
+
+
+class _Column:
+    """A growable int32 array in its own private anonymous memory mapping (a shared one cannot grow).
+
+    Growing doubles the mapping with ``mremap`` (``mmap.resize``), which moves pages without copying them, and
+    ``finish`` shrinks it to size and returns a view of it: the circuit's array *is* the storage the builder wrote,
+    so no memory is copied or touched twice (first touches of fresh pages dominate the cost of large arrays).
+    """
+
+    def __init__(self) -> None:
+        self._map = mmap.mmap(-1, INITIAL_GATES * 4, flags=mmap.MAP_PRIVATE | mmap.MAP_ANONYMOUS)
+        self.view = np.frombuffer(self._map, dtype=np.int32)
+        self.size = 0
+
+    def reserve(self, extra: int) -> None:
+        need = self.size + extra
+        capacity = self.view.shape[0]
+        if need <= capacity:
+            return
+        while capacity < need:
+            capacity *= 2
+        old = self.view
+        del self.view  # the mapping cannot move while a view of it exists
+        try:
+            del old
+            self._map.resize(capacity * 4)
+        except (OSError, SystemError, ValueError, BufferError):  # no mremap here: copy into a new mapping
+            fresh = mmap.mmap(-1, capacity * 4, flags=mmap.MAP_PRIVATE | mmap.MAP_ANONYMOUS)
+            np.frombuffer(fresh, dtype=np.int32)[: self.size] = np.frombuffer(self._map, dtype=np.int32)[
+                : self.size
+            ]
+            self._map = fresh
+        self.view = np.frombuffer(self._map, dtype=np.int32)
+
+    def finish(self) -> np.ndarray:
+        if self.size == 0:
+            return np.zeros(0, dtype=np.int32)
+        del self.view
+        self._map.resize(self.size * 4)
+        arr = np.frombuffer(self._map, dtype=np.int32)
+        self._map = None  # type: ignore[assignment]  # the array keeps the mapping alive
+        return arr
 
 
 def _wires(x: object) -> np.ndarray:
@@ -38,15 +95,21 @@ class Builder:
 
     def __init__(self) -> None:
         self._next = 2  # wires 0 and 1 are the constants
-        self._kinds: list[np.ndarray] = []
-        self._in0: list[np.ndarray] = []
-        self._in1: list[np.ndarray] = []
-        self._out: list[np.ndarray] = []
+        self._kinds: list[tuple[int, int]] = []  # (gate kind, count) per emission
+        self._in0 = _Column()
+        self._in1 = _Column()
+        self._gates = 0
+        self._input_ranges: list[tuple[int, int]] = []  # (first wire, count) of each input() call
         self._inputs: dict[Party, list[np.ndarray]] = {p: [] for p in Party}
         self._outputs: dict[Party, list[np.ndarray]] = {p: [] for p in Party}
         self._output_count = {p: 0 for p in Party}
         self.and_gates = 0
         self._built = False
+
+    @property
+    def gate_count(self) -> int:
+        """Gates emitted so far."""
+        return self._gates
 
     # -- wires --------------------------------------------------------------------------------------------------
     def _fresh(self, n: int) -> np.ndarray:
@@ -58,7 +121,11 @@ class Builder:
         """New input wires of ``party`` in the given shape; their order (C order) is the party's input bit order."""
         shape = (shape,) if isinstance(shape, int) else tuple(shape)
         n = int(np.prod(shape, dtype=np.int64))
+        if self._built:
+            raise CircuitError("builder: the circuit has been built already; start a new Builder")
         wires = self._fresh(n)
+        if n:
+            self._input_ranges.append((int(wires[0]), n))
         self._inputs[Party(party)].append(wires)
         return wires.reshape(shape)
 
@@ -89,24 +156,51 @@ class Builder:
 
     # -- gates --------------------------------------------------------------------------------------------------
     def _emit(self, kind: GateKind, a: np.ndarray, b: np.ndarray | None) -> np.ndarray:
+        """Append gates reading ``a`` (and ``b``) — flat arrays of non-constant wires — and return their outputs."""
         if self._built:
             raise CircuitError("builder: the circuit has been built already; start a new Builder")
         n = a.shape[0]
+        if not n:
+            return np.zeros(0, dtype=np.int64)
+        top = int(a.max()) if b is None else max(int(a.max()), int(b.max()))
+        if top >= self._next:
+            raise CircuitError(
+                f"builder: gate input wire {top} is not defined yet (wires are 0..{self._next - 1})"
+            )
+        if self._next + n >= WIRE_LIMIT:
+            raise CircuitError(f"builder: more than {WIRE_LIMIT} wires")
         out = self._fresh(n)
-        if n:
-            if self._next >= WIRE_LIMIT:
-                raise CircuitError(f"builder: more than {WIRE_LIMIT} wires")
-            self._kinds.append(np.full(n, int(kind), dtype=np.uint8))
-            self._in0.append(a.astype(np.int32))
-            self._in1.append(b.astype(np.int32) if b is not None else np.full(n, -1, dtype=np.int32))
-            self._out.append(out.astype(np.int32))
-            if kind == GateKind.AND:
-                self.and_gates += n
+        self._kinds.append((int(kind), n))
+        at = self._gates
+        for column, src in ((self._in0, a), (self._in1, b)):
+            column.reserve(n)
+            if src is None:
+                column.view[at : at + n] = -1
+            else:
+                column.view[at : at + n] = src
+            column.size = at + n
+        self._gates += n
+        if kind == GateKind.AND:
+            self.and_gates += n
         return out
+
+    @staticmethod
+    def _flat_pair(a: object, b: object) -> tuple[np.ndarray, np.ndarray, tuple[int, ...]]:
+        a_arr, b_arr = _wires(a), _wires(b)
+        if a_arr.shape != b_arr.shape:
+            a_arr, b_arr = np.broadcast_arrays(a_arr, b_arr)
+        return a_arr.reshape(-1), b_arr.reshape(-1), a_arr.shape
+
+    @staticmethod
+    def _no_folding(fa: np.ndarray, fb: np.ndarray) -> bool:
+        """True when no operand is a constant and no lane has equal operands: every lane becomes a gate."""
+        return bool(fa.size) and min(int(fa.min()), int(fb.min())) >= 2 and not np.any(fa == fb)
 
     def not_(self, a: object) -> Wires:
         a_arr = _wires(a)
         flat = a_arr.reshape(-1)
+        if flat.size and int(flat.min()) >= 2:
+            return self._emit(GateKind.NOT, flat, None).reshape(a_arr.shape)
         res = np.empty_like(flat)
         const = flat < 2
         res[const] = 1 - flat[const]
@@ -114,9 +208,9 @@ class Builder:
         return res.reshape(a_arr.shape)
 
     def xor(self, a: object, b: object) -> Wires:
-        a_arr, b_arr = np.broadcast_arrays(_wires(a), _wires(b))
-        shape = a_arr.shape
-        fa, fb = a_arr.reshape(-1), b_arr.reshape(-1)
+        fa, fb, shape = self._flat_pair(a, b)
+        if self._no_folding(fa, fb):
+            return self._emit(GateKind.XOR, fa, fb).reshape(shape)
         res = np.empty(fa.shape, dtype=np.int64)
         ca, cb = fa < 2, fb < 2
         both = ca & cb
@@ -137,9 +231,9 @@ class Builder:
         return res.reshape(shape)
 
     def and_(self, a: object, b: object) -> Wires:
-        a_arr, b_arr = np.broadcast_arrays(_wires(a), _wires(b))
-        shape = a_arr.shape
-        fa, fb = a_arr.reshape(-1), b_arr.reshape(-1)
+        fa, fb, shape = self._flat_pair(a, b)
+        if self._no_folding(fa, fb):
+            return self._emit(GateKind.AND, fa, fb).reshape(shape)
         res = np.empty(fa.shape, dtype=np.int64)
         ca, cb = fa < 2, fb < 2
         both = ca & cb
@@ -339,24 +433,50 @@ class Builder:
 
     # -- result -------------------------------------------------------------------------------------------------
     def build(self) -> Circuit:
-        """The validated circuit of everything emitted; the builder's buffers are released as they are joined."""
+        """The circuit of everything emitted (its gate-input arrays are the builder's own columns)."""
+        if self._built:
+            raise CircuitError("builder: the circuit has been built already; start a new Builder")
         self._built = True
+        g = self._gates
+        kinds = np.empty(g, dtype=np.uint8)
+        pos = 0
+        for kind, n in self._kinds:
+            kinds[pos : pos + n] = kind
+            pos += n
+        self._kinds.clear()
+        out = self._output_wires(g)
 
-        def join(parts: list[np.ndarray], dtype: np.dtype | type) -> np.ndarray:
-            arr = np.concatenate(parts).astype(dtype, copy=False) if parts else np.zeros(0, dtype=dtype)
+        in0 = self._in0.finish()
+        in1 = self._in1.finish()
+
+        def wires(parts: list[np.ndarray]) -> np.ndarray:
+            arr = np.concatenate(parts).astype(np.int64, copy=False) if parts else np.zeros(0, dtype=np.int64)
             parts.clear()
             return arr
 
-        kinds = join(self._kinds, np.uint8)
-        in0 = join(self._in0, np.int32)
-        in1 = join(self._in1, np.int32)
-        out = join(self._out, np.int32)
-        return Circuit.create(
-            n_wires=self._next,
-            kinds=kinds,
-            in0=in0,
-            in1=in1,
-            out=out,
-            inputs={p: join(self._inputs[p], np.int64) for p in Party},
-            outputs={p: join(self._outputs[p], np.int64) for p in Party},
+        inputs = {p: wires(self._inputs[p]) for p in Party}
+        outputs = {p: wires(self._outputs[p]) for p in Party}
+        if g <= VALIDATE_LIMIT:
+            return Circuit.create(
+                n_wires=self._next, kinds=kinds, in0=in0, in1=in1, out=out, inputs=inputs, outputs=outputs
+            )
+        # Valid by construction (see the module docstring); the full check would need several times the memory.
+        return Circuit(
+            n_wires=self._next, kinds=kinds, in0=in0, in1=in1, out=out, inputs=inputs, outputs=outputs
         )
+
+    def _output_wires(self, g: int) -> np.ndarray:
+        """Gate output wires in emission order: every wire from 2 up that no input() call took."""
+        out = np.empty(g, dtype=np.int32)
+        at, wire = 0, 2
+        step = 1 << 22
+        for first, n in [*self._input_ranges, (self._next, 0)]:
+            while wire < first:
+                take = min(step, first - wire)
+                out[at : at + take] = np.arange(wire, wire + take, dtype=np.int32)
+                at += take
+                wire += take
+            wire = first + n
+        if at != g:
+            raise CircuitError(f"builder: internal inconsistency: {at} gate outputs for {g} gates")
+        return out
