@@ -1,0 +1,261 @@
+"""Frames of the session stream: encoding, decoding, size limits, abort reasons and the transcript digest.
+
+Theory of operation
+-------------------
+A frame is one ``jointstat.v1.Frame`` protobuf message (``proto/jointstat/v1/session.proto``) whose ``body`` oneof
+names its type. Sessions exchange frames as their serialised bytes: the transcript is computed over exactly the
+bytes that cross the wire, so both sides hash the same thing whatever protobuf library either one runs. No frame
+is larger than ``MAX_FRAME_BYTES`` (4 MiB); a payload larger than ``MAX_PAYLOAD_BYTES`` is split over consecutive
+frames of one type, each carrying the next bytes.
+
+Transcript: each side keeps two running SHA-256 hashes (FIPS 180-4), one per direction, over every frame except
+``finish`` and ``abort``, each frame hashed as its 8-byte little-endian length followed by its bytes. A gRPC stream
+keeps each direction in order but the interleaving of the two directions is seen differently at the two ends, so
+the digest is taken per direction and combined as
+SHA-256("jointstat transcript v1" ‖ len(sid) ‖ sid ‖ H(garbler → evaluator) ‖ H(evaluator → garbler)). Both sides
+therefore compute the same 32 bytes exactly when they sent and received the same frames in the same order.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass
+from enum import IntEnum
+
+from google.protobuf.message import DecodeError
+
+from jointstat.circuit.model import Party
+from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
+
+PROTOCOL_VERSION = 1
+MAX_FRAME_BYTES = 4 * 1024 * 1024
+MAX_PAYLOAD_BYTES = MAX_FRAME_BYTES - 64  # room for the frame's field tags and length prefixes
+MAX_SESSION_ID_BYTES = 64
+DIGEST_BYTES = 32
+MAX_MESSAGE_CHARS = 1000  # abort messages are cut to this length
+
+HELLO = "hello"
+BASE_OT = "base_ot"
+OT_EXTENSION = "ot_extension"
+GARBLER_INPUT_LABELS = "garbler_input_labels"
+GARBLED_TABLES = "garbled_tables"
+GARBLER_OUTPUT_LABELS = "garbler_output_labels"
+EVALUATOR_OUTPUT_DECODING = "evaluator_output_decoding"
+FINISH = "finish"
+ABORT = "abort"
+
+FRAME_TYPES = (
+    HELLO,
+    BASE_OT,
+    OT_EXTENSION,
+    GARBLER_INPUT_LABELS,
+    GARBLED_TABLES,
+    GARBLER_OUTPUT_LABELS,
+    EVALUATOR_OUTPUT_DECODING,
+    FINISH,
+    ABORT,
+)
+# The bytes field of each payload-carrying frame type.
+PAYLOAD_FIELD = {
+    BASE_OT: "payload",
+    OT_EXTENSION: "payload",
+    GARBLER_INPUT_LABELS: "labels",
+    GARBLED_TABLES: "tables",
+    GARBLER_OUTPUT_LABELS: "labels",
+    EVALUATOR_OUTPUT_DECODING: "decoding",
+}
+_UNHASHED = frozenset({FINISH, ABORT})
+_TRANSCRIPT_LABEL = b"jointstat transcript v1"
+
+
+class AbortReason(IntEnum):
+    """Why a session ended without output; the values are those of ``jointstat.v1.AbortReason``."""
+
+    UNSPECIFIED = pb.ABORT_REASON_UNSPECIFIED
+    PROTOCOL_VERSION = pb.ABORT_REASON_PROTOCOL_VERSION
+    MANIFEST_MISMATCH = pb.ABORT_REASON_MANIFEST_MISMATCH
+    SESSION_MISMATCH = pb.ABORT_REASON_SESSION_MISMATCH
+    SESSION_REFUSED = pb.ABORT_REASON_SESSION_REFUSED
+    UNEXPECTED_FRAME = pb.ABORT_REASON_UNEXPECTED_FRAME
+    MALFORMED_FRAME = pb.ABORT_REASON_MALFORMED_FRAME
+    OT_FAILURE = pb.ABORT_REASON_OT_FAILURE
+    INVALID_OUTPUT = pb.ABORT_REASON_INVALID_OUTPUT
+    TRANSCRIPT_MISMATCH = pb.ABORT_REASON_TRANSCRIPT_MISMATCH
+    BAD_SIGNATURE = pb.ABORT_REASON_BAD_SIGNATURE
+    DEADLINE = pb.ABORT_REASON_DEADLINE
+    CANCELLED = pb.ABORT_REASON_CANCELLED
+    CONNECTION_LOST = pb.ABORT_REASON_CONNECTION_LOST
+    INTERNAL = pb.ABORT_REASON_INTERNAL
+
+
+def role_to_wire(party: Party) -> int:
+    return pb.ROLE_GARBLER if Party(party) == Party.GARBLER else pb.ROLE_EVALUATOR
+
+
+def role_name(party: Party) -> str:
+    return Party(party).name.lower()
+
+
+class ProtocolError(ValueError):
+    """The session cannot go on: ``reason`` says why, the text says where (state, frame) and what.
+
+    ``frame`` is the abort frame to send to the peer (None when the peer aborted or the session had already
+    ended). The text never contains labels, Δ, keys or input values.
+    """
+
+    def __init__(self, reason: AbortReason, message: str, frame: bytes | None = None) -> None:
+        super().__init__(message)
+        self.reason = AbortReason(reason)
+        self.frame = frame
+
+
+@dataclass(frozen=True)
+class AbortInfo:
+    """How a session ended without output: the reason, the message, and whether the peer sent the abort."""
+
+    reason: AbortReason
+    message: str
+    by_peer: bool
+
+
+def encode(frame: pb.Frame) -> bytes:
+    """The wire bytes of ``frame``; raises ``ProtocolError`` if they exceed ``MAX_FRAME_BYTES``."""
+    data = frame.SerializeToString()
+    if len(data) > MAX_FRAME_BYTES:
+        raise ProtocolError(
+            AbortReason.INTERNAL,
+            f"outgoing {frame.WhichOneof('body')} frame of {len(data)} bytes exceeds {MAX_FRAME_BYTES}",
+        )
+    return data
+
+
+def decode(data: bytes | bytearray | memoryview) -> tuple[str, pb.Frame]:
+    """Parse one frame: ``(type, frame)``; raises ``ProtocolError`` (malformed frame) naming the problem."""
+    if not isinstance(data, bytes | bytearray | memoryview):
+        raise ProtocolError(AbortReason.MALFORMED_FRAME, f"a frame must be bytes, got {type(data).__name__}")
+    if len(data) > MAX_FRAME_BYTES:
+        raise ProtocolError(
+            AbortReason.MALFORMED_FRAME,
+            f"frame of {len(data)} bytes exceeds the limit of {MAX_FRAME_BYTES} bytes",
+        )
+    frame = pb.Frame()
+    try:
+        frame.ParseFromString(bytes(data))
+    except DecodeError as exc:
+        raise ProtocolError(
+            AbortReason.MALFORMED_FRAME, f"frame of {len(data)} bytes is not a jointstat.v1.Frame ({exc})"
+        ) from None
+    kind = frame.WhichOneof("body")
+    if kind is None:
+        raise ProtocolError(
+            AbortReason.MALFORMED_FRAME,
+            f"frame of {len(data)} bytes has no body of a known type (unknown frame type)",
+        )
+    return kind, frame
+
+
+def payload_frame(kind: str, payload: bytes) -> bytes:
+    """The wire bytes of a payload-carrying frame of type ``kind``."""
+    frame = pb.Frame()
+    setattr(getattr(frame, kind), PAYLOAD_FIELD[kind], payload)
+    return encode(frame)
+
+
+def payload_of(kind: str, frame: pb.Frame) -> bytes:
+    return getattr(getattr(frame, kind), PAYLOAD_FIELD[kind])
+
+
+def chunked_frames(kind: str, payload: bytes, chunk: int = MAX_PAYLOAD_BYTES) -> list[bytes]:
+    """``payload`` split into frames of type ``kind`` of at most ``chunk`` payload bytes (none if it is empty)."""
+    return [payload_frame(kind, payload[i : i + chunk]) for i in range(0, len(payload), chunk)]
+
+
+def hello_frame(
+    *,
+    party: Party,
+    session_id: bytes,
+    manifest_digest: bytes,
+    circuit_digest: bytes,
+    version: int = PROTOCOL_VERSION,
+) -> bytes:
+    frame = pb.Frame()
+    frame.hello.protocol_version = version
+    frame.hello.manifest_digest = manifest_digest
+    frame.hello.session_id = session_id
+    frame.hello.role = role_to_wire(party)
+    frame.hello.circuit_digest = circuit_digest
+    return encode(frame)
+
+
+def finish_frame(transcript_digest: bytes, signature: bytes) -> bytes:
+    frame = pb.Frame()
+    frame.finish.transcript_digest = transcript_digest
+    frame.finish.signature = signature
+    return encode(frame)
+
+
+def abort_frame(reason: AbortReason, message: str) -> bytes:
+    frame = pb.Frame()
+    frame.abort.reason = int(reason)
+    frame.abort.message = message[:MAX_MESSAGE_CHARS]
+    return encode(frame)
+
+
+def abort_of(frame: pb.Frame) -> AbortInfo:
+    """The peer's abort as ``AbortInfo`` (an unknown reason code becomes ``UNSPECIFIED``)."""
+    code = frame.abort.reason
+    reason = AbortReason(code) if code in AbortReason._value2member_map_ else AbortReason.UNSPECIFIED
+    return AbortInfo(reason=reason, message=frame.abort.message[:MAX_MESSAGE_CHARS], by_peer=True)
+
+
+def check_session_id(session_id: object) -> bytes:
+    if not isinstance(session_id, bytes | bytearray):
+        raise ValueError(f"session id must be bytes, got {type(session_id).__name__}")
+    if not 1 <= len(session_id) <= MAX_SESSION_ID_BYTES:
+        raise ValueError(f"session id must be 1 to {MAX_SESSION_ID_BYTES} bytes, got {len(session_id)}")
+    return bytes(session_id)
+
+
+def check_digest(digest: object, what: str) -> bytes:
+    if not isinstance(digest, bytes | bytearray) or len(digest) != DIGEST_BYTES:
+        raise ValueError(f"{what} must be {DIGEST_BYTES} bytes (a SHA-256 digest)")
+    return bytes(digest)
+
+
+class Transcript:
+    """The running transcript of one session as seen by ``party`` (see the module docstring)."""
+
+    def __init__(self, party: Party, session_id: bytes) -> None:
+        self._party = Party(party)
+        self._session_id = session_id
+        self._sent = hashlib.sha256()
+        self._received = hashlib.sha256()
+        self.frames_sent = 0
+        self.frames_received = 0
+
+    @staticmethod
+    def _add(h: hashlib._Hash, data: bytes) -> None:
+        h.update(len(data).to_bytes(8, "little"))
+        h.update(data)
+
+    def sent(self, kind: str, data: bytes) -> None:
+        self.frames_sent += 1
+        if kind not in _UNHASHED:
+            self._add(self._sent, data)
+
+    def received(self, kind: str, data: bytes) -> None:
+        self.frames_received += 1
+        if kind not in _UNHASHED:
+            self._add(self._received, data)
+
+    def digest(self) -> bytes:
+        if self._party == Party.GARBLER:
+            g2e, e2g = self._sent.digest(), self._received.digest()
+        else:
+            g2e, e2g = self._received.digest(), self._sent.digest()
+        h = hashlib.sha256(_TRANSCRIPT_LABEL)
+        h.update(len(self._session_id).to_bytes(2, "big"))
+        h.update(self._session_id)
+        h.update(g2e)
+        h.update(e2g)
+        return h.digest()

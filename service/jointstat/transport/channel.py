@@ -1,0 +1,141 @@
+"""What the gRPC client and server share: the method path, channel options, stream adapters, used session ids.
+
+Theory of operation: the ``jointstat.v1.Session/Exchange`` method is registered and called with no serialiser, so
+gRPC moves the frames' bytes untouched (the session layer encodes and decodes them and hashes exactly those bytes
+into the transcript); its path is read from the descriptor generated from ``proto/``. Both ends limit messages to
+``MAX_FRAME_BYTES`` in both directions, so a larger frame fails the stream at the transport. ``SessionIds`` holds
+the ids a node has used; a second use of an id is refused, whichever side asks.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import threading
+
+import grpc
+
+from jointstat.protocol.frames import MAX_FRAME_BYTES
+from jointstat.transport.driver import StreamLost
+from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
+
+_SERVICE = pb.DESCRIPTOR.services_by_name["Session"]
+SERVICE_NAME = _SERVICE.full_name
+METHOD_NAME = _SERVICE.methods_by_name["Exchange"].name
+METHOD_PATH = f"/{SERVICE_NAME}/{METHOD_NAME}"
+
+MESSAGE_OPTIONS: list[tuple[str, int]] = [
+    ("grpc.max_send_message_length", MAX_FRAME_BYTES),
+    ("grpc.max_receive_message_length", MAX_FRAME_BYTES),
+]
+
+
+class SessionRefused(Exception):
+    """A session id that this node has already used (or expects already) was offered again."""
+
+
+class SessionIds:
+    """The session ids this node has used; each may be claimed once (thread-safe)."""
+
+    def __init__(self) -> None:
+        self._used: set[bytes] = set()
+        self._lock = threading.Lock()
+
+    def __contains__(self, session_id: object) -> bool:
+        with self._lock:
+            return session_id in self._used
+
+    def claim(self, session_id: bytes) -> None:
+        with self._lock:
+            if session_id in self._used:
+                raise SessionRefused(f"session id {session_id.hex()[:32]} has been used before; refused")
+            self._used.add(bytes(session_id))
+
+
+def describe_rpc_error(exc: grpc.aio.AioRpcError) -> str:
+    code = exc.code()
+    name = code.name if code is not None else "UNKNOWN"
+    return f"{name}: {exc.details() or 'no details'}"
+
+
+class ClientStream:
+    """``FrameStream`` over a client-side stream-stream call."""
+
+    def __init__(self, call: grpc.aio.StreamStreamCall, grace_s: float) -> None:
+        self._call = call
+        self._grace_s = grace_s
+        self._closed = False
+
+    async def read(self) -> bytes | None:
+        try:
+            data = await self._call.read()
+        except grpc.aio.AioRpcError as exc:
+            raise StreamLost(describe_rpc_error(exc)) from None
+        if data is grpc.aio.EOF:
+            code = await self._call.code()
+            if code != grpc.StatusCode.OK:
+                raise StreamLost(f"{code.name}: {await self._call.details() or 'no details'}")
+            return None
+        return bytes(data)
+
+    async def write(self, data: bytes) -> None:
+        try:
+            await self._call.write(data)
+        except grpc.aio.AioRpcError as exc:
+            raise StreamLost(describe_rpc_error(exc)) from None
+        except (asyncio.InvalidStateError, grpc.aio.UsageError) as exc:
+            raise StreamLost(f"the stream has closed ({type(exc).__name__})") from None
+
+    async def close(self, completed: bool) -> None:
+        if self._closed:
+            return
+        self._closed = True
+        try:
+            await self._call.done_writing()
+        except (grpc.aio.AioRpcError, asyncio.InvalidStateError, grpc.aio.UsageError):
+            return
+        if completed:
+            # Wait for the server to end the call, so the last frames are through before the channel closes.
+            await asyncio.wait_for(self._call.code(), timeout=self._grace_s)
+
+    def cancel(self) -> None:
+        self._call.cancel()
+
+    def peer_gone(self) -> bool:
+        return False
+
+
+class ServerStream:
+    """``FrameStream`` over the server-side context of a stream-stream call."""
+
+    def __init__(self, context: grpc.aio.ServicerContext) -> None:
+        self._context = context
+
+    async def read(self) -> bytes | None:
+        try:
+            data = await self._context.read()
+        except asyncio.CancelledError:
+            raise
+        except Exception as exc:
+            raise StreamLost(f"reading the stream failed ({type(exc).__name__}: {exc})") from None
+        if data is grpc.aio.EOF:
+            return None
+        return bytes(data)
+
+    async def write(self, data: bytes) -> None:
+        if self._context.done():
+            raise StreamLost("the stream has ended")
+        try:
+            await self._context.write(data)
+        except asyncio.CancelledError:
+            raise
+        except Exception as exc:
+            raise StreamLost(f"writing to the stream failed ({type(exc).__name__})") from None
+
+    async def close(self, completed: bool) -> None:
+        """Nothing to do: the call ends when the handler returns."""
+
+    def cancel(self) -> None:
+        """Nothing to do: the call ends when the handler returns."""
+
+    def peer_gone(self) -> bool:
+        return self._context.cancelled()

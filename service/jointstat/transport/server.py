@@ -1,0 +1,187 @@
+"""The session server: accepts a peer's stream over mutual TLS and runs the session it was told to expect.
+
+Theory of operation: the node registers each session it will serve with ``expect(session)`` and gets a future
+for its result. When a peer opens ``jointstat.v1.Session/Exchange`` — which it can only do with a pinned
+certificate, since the pinned certificates are the TLS trust anchors — the handler first checks the connection once
+more (TLS 1.3, pinned fingerprint; ``tls.check_peer``) and refuses the call with PERMISSION_DENIED before reading
+anything. It then reads the first frame, which must be a hello, and looks up its session id: an id used before, or
+one nobody expects, is refused with an abort frame; a session expected from another peer certificate likewise.
+Otherwise the id is claimed (it can never run again) and the driver runs the session to its end; the future gets
+the result, including when the stream is cancelled under it.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+from dataclasses import dataclass
+
+import grpc
+
+from jointstat.protocol import frames as fr
+from jointstat.protocol.frames import AbortReason, ProtocolError
+from jointstat.protocol.session import Session
+from jointstat.transport.channel import (
+    MESSAGE_OPTIONS,
+    METHOD_NAME,
+    SERVICE_NAME,
+    ServerStream,
+    SessionIds,
+    SessionRefused,
+)
+from jointstat.transport.driver import Limits, SessionResult, StreamLost, WireCounters, drive, result_of
+from jointstat.transport.tls import NodeTLS, PeerRefused, check_peer
+
+
+@dataclass
+class _Expected:
+    session: Session
+    limits: Limits
+    peer: bytes | None
+    future: asyncio.Future[SessionResult]
+
+
+class SessionServer:
+    """A grpc.aio server for sessions; bind to ``address`` (port 0 picks a free port), then ``start()``."""
+
+    def __init__(
+        self,
+        tls: NodeTLS,
+        *,
+        address: str = "127.0.0.1:0",
+        limits: Limits | None = None,
+        session_ids: SessionIds | None = None,
+    ) -> None:
+        self._tls = tls
+        self._address = address
+        self._limits = limits or Limits()
+        self._ids = session_ids if session_ids is not None else SessionIds()
+        self._expected: dict[bytes, _Expected] = {}
+        self._server: grpc.aio.Server | None = None
+        self._port: int | None = None
+        self.refused: list[str] = []  # why streams were refused, for the node's log (no secrets)
+
+    @property
+    def port(self) -> int:
+        if self._port is None:
+            raise RuntimeError("the server has not been started")
+        return self._port
+
+    async def start(self) -> int:
+        """Bind and start serving; returns the bound port."""
+        if self._server is not None:
+            raise RuntimeError("the server has already been started")
+        server = grpc.aio.server(options=[*MESSAGE_OPTIONS, ("grpc.so_reuseport", 0)])
+        handler = grpc.stream_stream_rpc_method_handler(self._exchange)
+        server.add_generic_rpc_handlers(
+            [grpc.method_handlers_generic_handler(SERVICE_NAME, {METHOD_NAME: handler})]
+        )
+        port = server.add_secure_port(self._address, self._tls.server_credentials())
+        if port == 0:
+            raise OSError(f"could not bind the session server to {self._address}")
+        await server.start()
+        self._server = server
+        self._port = port
+        return port
+
+    async def stop(self, grace: float | None = None) -> None:
+        """Stop serving; running sessions get ``grace`` seconds, then their streams are cancelled."""
+        if self._server is not None:
+            await self._server.stop(grace)
+            self._server = None
+        for entry in self._expected.values():
+            if not entry.future.done():
+                entry.future.cancel()
+        self._expected.clear()
+
+    async def __aenter__(self) -> SessionServer:
+        await self.start()
+        return self
+
+    async def __aexit__(self, *_exc: object) -> None:
+        await self.stop(None)
+
+    def expect(
+        self, session: Session, *, peer_fingerprint: bytes | None = None, limits: Limits | None = None
+    ) -> asyncio.Future[SessionResult]:
+        """Serve ``session`` to the peer that opens it; ``peer_fingerprint`` restricts which pinned peer may."""
+        sid = session.session_id
+        if sid in self._ids or sid in self._expected:
+            raise SessionRefused(f"session id {sid.hex()[:32]} is already used or expected; refused")
+        if peer_fingerprint is not None and peer_fingerprint not in self._tls.pinned_fingerprints:
+            raise ValueError("peer_fingerprint is not one of this server's pinned certificates")
+        future: asyncio.Future[SessionResult] = asyncio.get_running_loop().create_future()
+        self._expected[sid] = _Expected(session, limits or self._limits, peer_fingerprint, future)
+        return future
+
+    def withdraw(self, session_id: bytes) -> bool:
+        """Stop expecting a session that has not started; True if it was waiting."""
+        entry = self._expected.pop(session_id, None)
+        if entry is None:
+            return False
+        entry.future.cancel()
+        return True
+
+    async def _refuse(self, stream: ServerStream, reason: AbortReason, message: str) -> None:
+        self.refused.append(message)
+        with contextlib.suppress(StreamLost):
+            await stream.write(fr.abort_frame(reason, message))
+
+    async def _exchange(self, _requests: object, context: grpc.aio.ServicerContext) -> None:
+        try:
+            peer = check_peer(context.auth_context(), self._tls.pinned_fingerprints)
+        except PeerRefused as exc:
+            self.refused.append(str(exc))
+            await context.abort(grpc.StatusCode.PERMISSION_DENIED, str(exc))
+            return
+        stream = ServerStream(context)
+        try:
+            first = await asyncio.wait_for(stream.read(), timeout=self._limits.idle_timeout_s)
+        except (TimeoutError, StreamLost):
+            return
+        if first is None:
+            return
+        try:
+            kind, frame = fr.decode(first)
+        except ProtocolError as exc:
+            await self._refuse(stream, exc.reason, f"first frame refused: {exc}")
+            return
+        if kind != fr.HELLO:
+            await self._refuse(
+                stream, AbortReason.UNEXPECTED_FRAME, f"the first frame must be hello, got {kind!r}"
+            )
+            return
+        sid = bytes(frame.hello.session_id)
+        if sid in self._ids:
+            await self._refuse(
+                stream, AbortReason.SESSION_REFUSED, "this session id has been used before; refused"
+            )
+            return
+        entry = self._expected.get(sid)
+        if entry is None:
+            await self._refuse(
+                stream, AbortReason.SESSION_REFUSED, "no session with this id is expected here"
+            )
+            return
+        if entry.peer is not None and entry.peer != peer:
+            await self._refuse(
+                stream, AbortReason.SESSION_REFUSED, "this session is expected from another pinned peer"
+            )
+            return
+        del self._expected[sid]
+        try:
+            self._ids.claim(sid)
+        except SessionRefused as exc:
+            await self._refuse(stream, AbortReason.SESSION_REFUSED, str(exc))
+            entry.future.cancel()
+            return
+        counters = WireCounters()
+        try:
+            result = await drive(entry.session, stream, entry.limits, counters=counters, first_frame=first)
+        except BaseException:  # cancelled (the driver has failed the session) or a transport failure
+            entry.session.fail(AbortReason.INTERNAL, "the session transport failed")
+            if not entry.future.done():
+                entry.future.set_result(result_of(entry.session, counters))
+            raise
+        if not entry.future.done():
+            entry.future.set_result(result)
