@@ -16,6 +16,8 @@ Handler = Callable[[argparse.Namespace], int]
 COMMAND_MODULES = [
     "jointstat.demo",
     "jointstat.bench.commands",
+    "jointstat.audit.commands",
+    "jointstat.node.keycommands",
 ]
 
 

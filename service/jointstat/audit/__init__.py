@@ -1,0 +1,25 @@
+"""Signed, hash-chained session logs (RFC 8785 canonical JSON, SHA-256 chain, Ed25519 signatures) and their checks.
+
+``SessionLog`` writes a node's log; ``verify_log`` checks one log and names the first bad record; ``compare_logs``
+checks that two nodes' logs attest to the same sessions. ``sign_transcript``/``transcript_signature_ok`` define
+the transcript statement both nodes sign in the finish frame.
+"""
+
+from jointstat.audit.log import Clock, SessionLog, system_clock
+from jointstat.audit.records import AuditError, sign_transcript, transcript_signature_ok
+from jointstat.audit.verify import CompareReport, LogVerifier, Problem, VerifyReport, compare_logs, verify_log
+
+__all__ = [
+    "AuditError",
+    "Clock",
+    "CompareReport",
+    "LogVerifier",
+    "Problem",
+    "SessionLog",
+    "VerifyReport",
+    "compare_logs",
+    "sign_transcript",
+    "system_clock",
+    "transcript_signature_ok",
+    "verify_log",
+]

@@ -1,0 +1,64 @@
+"""``jointstat keys init``: a node's signing key, or for a local trial a private CA and keys for several nodes."""
+
+from __future__ import annotations
+
+import argparse
+import json
+from datetime import UTC, datetime
+
+
+def _init(args: argparse.Namespace) -> int:
+    from jointstat.cli import UserError
+    from jointstat.node.keys import init_node_keys, init_trial
+    from jointstat.node.secrets import SecretFileError
+
+    try:
+        if args.trial_ca:
+            if args.node is not None:
+                raise UserError("--trial-ca takes --nodes NAME,NAME, not --node")
+            if not args.nodes:
+                raise UserError("--trial-ca needs --nodes NAME,NAME (e.g. --nodes alpha,beta)")
+            names = [n.strip() for n in args.nodes.split(",") if n.strip()]
+            keyset = init_trial(args.out, names, now=datetime.now(UTC), days=args.days, force=args.force)
+        else:
+            if args.nodes is not None:
+                raise UserError("--nodes is for --trial-ca; for one node use --node NAME")
+            keyset = init_node_keys(args.out, args.node or "node", force=args.force)
+    except SecretFileError as exc:
+        raise UserError(str(exc)) from None
+    if args.json:
+        out = {
+            "files": [str(p) for p in keyset.paths()],
+            "nodes": [
+                {"node": n.node, "public_key": n.public_key, "fingerprint": n.fingerprint}
+                for n in keyset.nodes
+            ],
+        }
+        print(json.dumps(out, indent=2))
+        return 0
+    for path in keyset.paths():
+        print(f"wrote {path} (owner-only)")
+    for n in keyset.nodes:
+        print(f"node {n.node}: signing public key {n.public_key}")
+        print(f"  fingerprint {n.fingerprint} — give {n.signing_public.name} to the peer organisation")
+    if keyset.ca_key is not None:
+        print(f"trial CA only: {keyset.ca_key.name} can issue certificates; do not use it in production")
+    return 0
+
+
+def add_commands(sub: argparse._SubParsersAction) -> None:
+    keys = sub.add_parser("keys", help="make a node's signing key (and trial TLS certificates)")
+    which = keys.add_subparsers(dest="what", required=True, metavar="WHAT")
+    init = which.add_parser(
+        "init", help="write a fresh Ed25519 signing key; --trial-ca adds a CA and TLS files"
+    )
+    init.add_argument("--out", required=True, metavar="DIR", help="directory for the key files (made 0700)")
+    init.add_argument("--node", metavar="NAME", help="this node's name (default: node)")
+    init.add_argument(
+        "--trial-ca", action="store_true", help="also make a private CA and TLS key+cert per node"
+    )
+    init.add_argument("--nodes", metavar="NAMES", help="comma-separated node names for --trial-ca")
+    init.add_argument("--days", type=int, default=365, help="certificate lifetime in days (default 365)")
+    init.add_argument("--force", action="store_true", help="replace existing files")
+    init.add_argument("--json", action="store_true", help="print one JSON object")
+    init.set_defaults(handler=_init)
