@@ -10,6 +10,8 @@ from typing import Any
 
 import pytest
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
+from hypothesis import given
+from hypothesis import strategies as st
 from jointstat.audit import LogVerifier, compare_logs, sign_transcript, verify_log
 from jointstat.audit.canonical import canonicalize, parse
 from jointstat.audit.records import encode_b64, signing_input
@@ -35,6 +37,12 @@ def rechain(lines: list[bytes], key: Ed25519PrivateKey, start: int = 0) -> list[
 
 def joined(lines: list[bytes]) -> bytes:
     return b"".join(line + b"\n" for line in lines)
+
+
+@pytest.fixture(scope="module")
+def first_line(tmp_path_factory: pytest.TempPathFactory) -> bytes:
+    pa, _ = write_pair(tmp_path_factory.mktemp("first"), [])
+    return pa.read_bytes().splitlines()[0]
 
 
 @pytest.fixture(scope="module")
@@ -296,3 +304,42 @@ def test_compare_with_a_pinned_key_that_is_not_theirs_fails(tmp_path: Path) -> N
     ka, _ = keys()
     report = compare_logs(pa, pb, theirs_key=ka.public_key())
     assert not report.ok and report.theirs.problem is not None and report.theirs.problem.check == "key"
+
+
+# -- robustness: whatever the bytes, the verifier reports, it does not crash ---------------------------------
+
+scalars = st.none() | st.booleans() | st.integers(-(2**53) + 1, 2**53 - 1) | st.text(max_size=70)
+values = st.recursive(
+    scalars,
+    lambda inner: st.lists(inner, max_size=3) | st.dictionaries(st.text(max_size=6), inner, max_size=3),
+    max_leaves=8,
+)
+
+
+@given(st.binary(max_size=400))
+def test_arbitrary_bytes_are_reported_not_crashed_on(data: bytes) -> None:
+    report = verify_log(data)
+    assert report.problem is not None and report.problem.line == 1
+
+
+@given(
+    st.fixed_dictionaries(
+        {
+            "seq": st.integers(0, 3) | values,
+            "time": st.just("2025-03-01T02:00:00.000000Z") | values,
+            "kind": st.sampled_from(["log_opened", "session_started", "transcript", "session_completed"])
+            | values,
+            "session": st.just("s-1") | values,
+            "body": st.dictionaries(st.sampled_from(["job", "digest", "signature", "phase", "node"]), values)
+            | values,
+            "prev": st.just("0" * 64) | values,
+            "sig": st.just("A" * 86 + "==") | values,
+        }
+    )
+)
+def test_well_formed_but_forged_records_after_a_good_first_record_are_named_at_line_2(
+    first_line: bytes, record: dict[str, Any]
+) -> None:
+    report = verify_log(first_line + b"\n" + canonicalize(record) + b"\n")
+    assert report.problem is not None and report.problem.line == 2
+    assert report.records == 1
