@@ -12,6 +12,7 @@ from jointstat.circuit.builder import Builder
 from jointstat.circuit.layers import LayeredCircuit, schedule
 from jointstat.circuit.model import Circuit, GateKind, Party
 from jointstat.garble import Evaluator, GarbleError, Garbler, OutputDecoding
+from jointstat.garble.local import run_locally
 from jointstat.primitives.blocks import BLOCK_DTYPE
 
 from tests.circuits import random_bits, random_circuits, reference_eval
@@ -20,24 +21,8 @@ from tests.circuits import random_bits, random_circuits, reference_eval
 def garble_and_evaluate(
     lc: LayeredCircuit, g_bits: np.ndarray, e_bits: np.ndarray, chunk_bytes: int = 1 << 20, split: int = 0
 ) -> tuple[Garbler, Evaluator, int]:
-    garbler = Garbler(lc)
-    evaluator = Evaluator(
-        lc,
-        constant_labels=garbler.constant_labels(),
-        garbler_labels=garbler.input_labels(Party.GARBLER, g_bits),
-        evaluator_labels=garbler.input_labels(Party.EVALUATOR, e_bits),
-    )
-    sent = 0
-    for chunk in garbler.tables(chunk_bytes=chunk_bytes):
-        assert len(chunk) <= max(chunk_bytes, 32)
-        sent += len(chunk)
-        if split:
-            for i in range(0, len(chunk), split):
-                evaluator.feed(chunk[i : i + split])
-        else:
-            evaluator.feed(chunk)
-    evaluator.finish()
-    return garbler, evaluator, sent
+    run = run_locally(lc, g_bits, e_bits, chunk_bytes=chunk_bytes, feed_bytes=split)
+    return run.garbler, run.evaluator, run.table_bytes
 
 
 def sample_circuit(lanes: int = 20, width: int = 12) -> Circuit:
@@ -200,3 +185,12 @@ def test_decoding_is_per_party() -> None:
     blob = garbler.output_decoding(Party.EVALUATOR).to_bytes()
     again = OutputDecoding.from_bytes(blob, c.n_outputs(Party.EVALUATOR))
     assert np.array_equal(again.tags, garbler.output_decoding(Party.EVALUATOR).tags)
+
+
+@pytest.mark.parametrize("chunk_bytes", [32, 100, 4096])
+def test_table_chunks_hold_whole_gates_and_never_exceed_the_bound(chunk_bytes: int) -> None:
+    c = sample_circuit(lanes=4)
+    garbler = Garbler(schedule(c))
+    sizes = [len(chunk) for chunk in garbler.tables(chunk_bytes=chunk_bytes)]
+    assert sum(sizes) == 32 * c.count(GateKind.AND)
+    assert all(size % 32 == 0 and size <= max(chunk_bytes, 32) for size in sizes)

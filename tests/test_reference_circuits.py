@@ -20,8 +20,8 @@ from jointstat.circuit.builder import Builder
 from jointstat.circuit.layers import LayeredCircuit, evaluate_plain, schedule
 from jointstat.circuit.model import Circuit, GateKind, Party
 from jointstat.circuit.reference import aes128, sha256
-from jointstat.circuit.reference.demo import run as run_demo
-from jointstat.garble import Evaluator, Garbler
+from jointstat.demo import run as run_demo
+from jointstat.garble.local import run_locally
 
 # FIPS 197 Appendix C.1 (AES-128), from memory; checked against `cryptography` below.
 FIPS197_C1_KEY = bytes.fromhex("000102030405060708090a0b0c0d0e0f")
@@ -85,19 +85,9 @@ def sha256_pad(message: bytes) -> bytes:
 
 # -- helpers -----------------------------------------------------------------------------------------------------
 def garble_and_evaluate(layered: LayeredCircuit, g_bits: np.ndarray, e_bits: np.ndarray) -> np.ndarray:
-    """Garble with fresh labels, stream the tables in small chunks split at odd places, evaluate, decode."""
-    garbler = Garbler(layered)
-    evaluator = Evaluator(
-        layered,
-        constant_labels=garbler.constant_labels(),
-        garbler_labels=garbler.input_labels(Party.GARBLER, g_bits),
-        evaluator_labels=garbler.input_labels(Party.EVALUATOR, e_bits),
-    )
-    for chunk in garbler.tables(chunk_bytes=4096):
-        evaluator.feed(chunk[:1000])  # not a whole number of tables: the evaluator must carry the remainder
-        evaluator.feed(chunk[1000:])
-    evaluator.finish()
-    return evaluator.decode(garbler.output_decoding(Party.EVALUATOR))
+    """Garble with fresh labels, stream the tables in 4 KiB chunks fed in pieces of 1000 bytes (not a whole number
+    of tables: the evaluator must carry the remainder), evaluate, decode."""
+    return run_locally(layered, g_bits, e_bits, chunk_bytes=4096, feed_bytes=1000).outputs[Party.EVALUATOR]
 
 
 @pytest.fixture(scope="module")

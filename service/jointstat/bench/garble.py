@@ -17,8 +17,8 @@ from jointstat.bench.report import emit, peak_rss_mib
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.layers import LayeredCircuit, evaluate_plain, schedule
 from jointstat.circuit.model import Circuit, Party
-from jointstat.garble import Evaluator, Garbler
 from jointstat.garble.halfgates import STEP
+from jointstat.garble.local import run_locally
 from jointstat.primitives.aes import aes_blocks_per_second
 
 
@@ -50,35 +50,16 @@ def measure(layered: LayeredCircuit, check: bool) -> dict[str, float]:
     rng = np.random.default_rng(11)
     g_bits = rng.integers(0, 2, c.n_inputs(Party.GARBLER), dtype=np.uint8)
     e_bits = rng.integers(0, 2, c.n_inputs(Party.EVALUATOR), dtype=np.uint8)
-    garbler = Garbler(layered)
-    evaluator = Evaluator(
-        layered,
-        constant_labels=garbler.constant_labels(),
-        garbler_labels=garbler.input_labels(Party.GARBLER, g_bits),
-        evaluator_labels=garbler.input_labels(Party.EVALUATOR, e_bits),
-    )
-    t_garble = t_eval = 0.0
-    table_bytes = 0
-    stream = garbler.tables()
-    while True:
-        t0 = time.perf_counter()
-        chunk = next(stream, None)
-        t1 = time.perf_counter()
-        t_garble += t1 - t0
-        if chunk is None:
-            break
-        table_bytes += len(chunk)
-        evaluator.feed(chunk)
-        t_eval += time.perf_counter() - t1
-        del chunk
-    evaluator.finish()
-    ev_out = evaluator.decode(garbler.output_decoding(Party.EVALUATOR))
-    g_out = garbler.decode_returned(Party.GARBLER, evaluator.output_labels(Party.GARBLER))
+    result = run_locally(layered, g_bits, e_bits)
     if check:
         ref = evaluate_plain(layered, {Party.GARBLER: g_bits, Party.EVALUATOR: e_bits})
-        if not (np.array_equal(ref[Party.EVALUATOR], ev_out) and np.array_equal(ref[Party.GARBLER], g_out)):
+        if not all(np.array_equal(ref[p], result.outputs[p]) for p in Party):
             raise RuntimeError("garbled evaluation disagrees with plain evaluation")
-    return {"garble_s": t_garble, "evaluate_s": t_eval, "table_bytes": float(table_bytes)}
+    return {
+        "garble_s": result.garble_seconds,
+        "evaluate_s": result.evaluate_seconds,
+        "table_bytes": float(result.table_bytes),
+    }
 
 
 def run(and_gates: int, width: int, as_json: bool) -> int:
