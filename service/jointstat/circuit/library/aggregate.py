@@ -1,0 +1,238 @@
+"""Count, sum, mean and variance of a column over both parties' rows.
+
+Theory of operation
+-------------------
+The column is read from both tables and brought to one scale (``blocks.align``: common fraction bits, signedness
+and width). Each row counts when its validity bit is set (and, with ``where``, when its boolean column is true);
+a row that does not count contributes zero, so padding never changes a result whatever its bits are.
+
+* count n — the tree sum of the counting bits: ⌈log2(N + 1)⌉ bits for N = capacity_g + capacity_e rows.
+* sum S — the tree sum of the masked values with growing width: w + ⌈log2 N⌉ bits, so it cannot overflow.
+* mean — S / n with ``precision_bits`` more fraction bits, rounded toward zero (restoring division). The mean of
+  w-bit values is a w-bit value, so the result has w + precision_bits bits.
+* variance — (n·Q − S²) / (n·(n − d)) with Q = Σ x² (d = 0 population, d = 1 sample), rounded toward zero with
+  2·F + precision_bits fraction bits (F: the column's fraction bits): exact integer arithmetic up to the one
+  division, so no cancellation error. n·Q ≥ S² (Cauchy–Schwarz), so the numerator is unsigned; a variance of
+  w-bit values is below 2^(2w−1), so the result has 2w + precision_bits bits. Squares cost about 2w² AND gates
+  per row (schoolbook), which dominates for wide columns.
+
+Release conditions (besides the manifest's disclosure rule, which compares n with ``min_count``): when a party
+receives the mean, n ≥ 1 is needed, when it receives a sample variance n ≥ 2; otherwise every result is withheld.
+"""
+
+from __future__ import annotations
+
+from typing import Annotated, Literal
+
+import numpy as np
+
+from jointstat.circuit.builder import Builder
+from jointstat.circuit.library import blocks
+from jointstat.circuit.library.blocks import Number
+from jointstat.circuit.library.registry import (
+    BuildContext,
+    OutputSpec,
+    Statistic,
+    StatisticResult,
+    TableNeeds,
+    register_statistic,
+)
+from jointstat.circuit.manifest import ColumnPair, Problem, StatisticParameters, _between
+from jointstat.circuit.model import ONE_WIRE, Party
+
+MEASURES = ("count", "sum", "mean", "variance")
+
+
+class _AggregateParameters(StatisticParameters):
+    column: ColumnPair | None = None
+    where: ColumnPair | None = None  # a boolean column: only rows where it is true count
+    precision_bits: Annotated[int, _between(0, 32)] = 8
+    sample: bool = False  # variance: divide by n − 1 instead of n
+
+
+class CountParameters(_AggregateParameters):
+    name: Literal["count"]
+
+
+class SumParameters(_AggregateParameters):
+    name: Literal["sum"]
+    column: ColumnPair
+
+
+class MeanParameters(_AggregateParameters):
+    name: Literal["mean"]
+    column: ColumnPair
+
+
+class VarianceParameters(_AggregateParameters):
+    name: Literal["variance"]
+    column: ColumnPair
+
+
+class _Aggregate(Statistic):
+    """Shared machinery; ``level`` is how far along count → sum → mean → variance the statistic goes."""
+
+    level: int = 0
+
+    @property
+    def p(self) -> _AggregateParameters:
+        return self.params  # type: ignore[return-value]
+
+    def problems(self) -> list[Problem]:
+        problems: list[Problem] = []
+        if self.p.column is not None:
+            problems += self.check_columns(self.p.column, "statistic.column")
+        elif self.level > 0:
+            problems.append(Problem("statistic.column", "required field is missing"))
+        if self.p.where is not None:
+            for party in Party:
+                col = self.manifest.table(party).column(self.column_names(self.p.where)[party])
+                if col is None or col.type != "boolean":  # type: ignore[attr-defined]
+                    problems.append(
+                        Problem(
+                            "statistic.where",
+                            f"tables.{party.name.lower()} needs a boolean column of that name",
+                        )
+                    )
+        if self.p.sample and self.level < 3:
+            problems.append(Problem("statistic.sample", "only the variance statistic takes 'sample'"))
+        return problems
+
+    def needs(self) -> dict[Party, TableNeeds]:
+        out = {}
+        for party in Party:
+            cols = []
+            if self.p.column is not None:
+                cols.append(self.column_names(self.p.column)[party])
+            if self.p.where is not None:
+                name = self.column_names(self.p.where)[party]
+                if name not in cols:
+                    cols.append(name)
+            out[party] = TableNeeds(tuple(cols))
+        return out
+
+    # -- widths (declared before building; the build fits its wires to them) ----------------------------------
+    def _rows(self) -> int:
+        return self.manifest.tables.garbler.capacity + self.manifest.tables.evaluator.capacity
+
+    def _value_format(self) -> tuple[int, bool, int]:
+        """(width, signed, fraction bits) of the column after aligning both parties' versions."""
+        assert self.p.column is not None
+        cols = [self.column(party, self.p.column) for party in Party]
+        frac = max(c.frac for c in cols)
+        signed = any(c.signed for c in cols)
+        width = max(c.bits + (frac - c.frac) + (1 if signed and not c.signed else 0) for c in cols)
+        return width, signed, frac
+
+    def outputs(self) -> list[OutputSpec]:
+        n = self._rows()
+        specs = [OutputSpec("count", n.bit_length(), description="rows that count")]
+        if self.level == 0:
+            return specs
+        w, signed, frac = self._value_format()
+        log_n = (n - 1).bit_length()
+        e = self.p.precision_bits
+        specs.append(OutputSpec("sum", w + log_n, signed, frac, description="sum of the column"))
+        if self.level >= 2:
+            specs.append(OutputSpec("mean", w + e, signed, frac + e, description="mean, rounded toward zero"))
+        if self.level >= 3:
+            specs.append(
+                OutputSpec(
+                    "variance", 2 * w + e, False, 2 * frac + e, description="variance, rounded toward zero"
+                )
+            )
+        return specs
+
+    # -- circuit ------------------------------------------------------------------------------------------------
+    def build(self, ctx: BuildContext) -> StatisticResult:
+        bld = ctx.builder
+        specs = {s.name: s for s in self.outputs()}
+        counts = []
+        for party in Party:
+            t = ctx.table(party)
+            flag = t.valid
+            if self.p.where is not None:
+                flag = bld.and_(flag, t.bits(self.column_names(self.p.where)[party])[:, 0])
+            counts.append(flag)
+        flags = np.concatenate(counts)
+        n = fit(blocks.count_bits(bld, flags), specs["count"].width)
+        values: dict[str, np.ndarray] = {"count": n}
+        ok = ONE_WIRE
+        if self.level == 0:
+            return StatisticResult(values, count=n)
+        assert self.p.column is not None
+        names = self.column_names(self.p.column)
+        nums = blocks.align(*[ctx.table(party).number(names[party]) for party in Party])
+        x = Number(np.concatenate([v.wires for v in nums], axis=0), nums[0].signed, nums[0].frac)
+        masked = bld.and_(x.wires, flags[:, None])
+        s = Number(
+            fit(blocks.tree_sum(bld, masked, signed=x.signed), specs["sum"].width, x.signed), x.signed, x.frac
+        )
+        values["sum"] = s.wires
+        e = self.p.precision_bits
+        wanted = ctx.wanted
+        if "mean" in wanted:
+            ok = blocks.at_least(bld, n, 1)
+            mean = blocks.divide_fixed(bld, s, n, e, result_bits=specs["mean"].width)
+            values["mean"] = fit(mean.wires, specs["mean"].width, x.signed)
+        if "variance" in wanted:
+            ok = blocks.at_least(bld, n, 2 if self.p.sample else 1)
+            values["variance"] = self._variance(bld, x, masked, s, n, specs["variance"].width)
+        return StatisticResult(values, count=n, ok=np.asarray(ok))
+
+    def _variance(
+        self, bld: Builder, x: Number, masked: np.ndarray, s: Number, n: np.ndarray, width: int
+    ) -> np.ndarray:
+        mag, _ = blocks.magnitude(bld, x.with_wires(masked))
+        squares = blocks.multiply_full(bld, mag, mag)
+        q = blocks.tree_sum(bld, squares)
+        nq = blocks.multiply_full(bld, q, n)
+        s_mag, _ = blocks.magnitude(bld, s)
+        s2 = blocks.multiply_full(bld, s_mag, s_mag)
+        wv = max(nq.shape[-1], s2.shape[-1])
+        numerator = bld.sub(Builder.extend(nq, wv), Builder.extend(s2, wv))
+        if self.p.sample:
+            den = blocks.multiply_full(bld, n, bld.sub(n, bld.constant_word(1, n.shape[-1])))
+        else:
+            den = blocks.multiply_full(bld, n, n)
+        var = blocks.divide_fixed(
+            bld, Number(numerator, False, 2 * x.frac), den, self.p.precision_bits, width
+        )
+        return fit(var.wires, width)
+
+
+def fit(wires: np.ndarray, width: int, signed: bool = False) -> np.ndarray:
+    """Pin a result to its declared width; the declared widths are bounds, so only known-zero bits are cut."""
+    return Builder.extend(np.asarray(wires, dtype=np.int64), width, signed=signed)
+
+
+@register_statistic
+class Count(_Aggregate):
+    name = "count"
+    Parameters = CountParameters
+    description = "how many rows both parties hold (optionally where a boolean column is true)"
+    level = 0
+
+
+@register_statistic
+class Sum(_Aggregate):
+    name = "sum"
+    Parameters = SumParameters
+    description = "count and sum of a column over both parties' rows"
+    level = 1
+
+
+@register_statistic
+class Mean(_Aggregate):
+    name = "mean"
+    Parameters = MeanParameters
+    description = "count, sum and mean of a column over both parties' rows"
+    level = 2
+
+
+@register_statistic
+class Variance(_Aggregate):
+    name = "variance"
+    Parameters = VarianceParameters
+    description = "count, sum, mean and variance of a column over both parties' rows"
+    level = 3

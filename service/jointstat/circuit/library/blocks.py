@@ -1,0 +1,408 @@
+"""Shared building blocks of the statistic library: merge networks, tree sums, division, selection, gating.
+
+Theory of operation
+-------------------
+Every block works on lanes at once (see ``jointstat.circuit.builder``) and uses the AND-count-minimal word
+operations of Kolesnikov–Sadeghi–Schneider (CANS 2009); with free XOR only AND gates cost ciphertexts.
+
+* ``greater_than`` — x > y on unsigned words, n AND gates and no NOT gates: the carry out of x + ¬y, with the
+  majority rewritten so the complement disappears, c' = c ⊕ ((x ⊕ y) ∧ (x ⊕ c)). The x ⊕ y it reads is the
+  same difference a compare-and-swap needs, so the two share it.
+* ``compare_swap`` — orders two elements by a key: a comparator (k AND gates for a k-bit key) and one shared
+  swap, δ = s ∧ (a ⊕ b), a' = a ⊕ δ, b' = b ⊕ δ (one AND gate per key or payload bit). Its swap bits are kept,
+  so a bit can later be carried back to where its element came from (``route_back``, one AND per comparator).
+* ``bitonic_merge`` — Batcher's bitonic merger (Batcher 1968): a bitonic sequence of M = 2^L elements becomes
+  sorted after L stages of M/2 comparators each, (M/2)·L in all. Two locally sorted lists become bitonic by
+  reversing the second (free rewiring); ``merge_sorted`` does that and pads the middle with the largest key up to
+  a power of two. This is the sort–merge structure of Huang–Evans–Katz (NDSS 2012).
+* ``tree_sum`` — the sum of many words by a balanced tree of adders whose width grows by one bit per level, so it
+  cannot overflow: n words of w bits give w + ⌈log2 n⌉ bits at about n·w AND gates.
+* ``divide`` — restoring division of unsigned words: one subtract-with-borrow and one multiplexer per quotient
+  bit; ``divide_fixed`` shifts the dividend first to get fraction bits and divides magnitudes, so a signed
+  quotient is rounded toward zero.
+* ``one_hot`` / ``select`` — oblivious selection of the element at a secret index: a decoder turns the index into
+  a one-hot vector (about one AND per position: the upper half of each split is v ∧ b, the lower is v ⊕ that),
+  then the chosen word is the XOR of the words masked by it (one AND per bit per position).
+* ``gate`` — disclosure gating: every result bit ANDed with the permission bit, so a refused result is all zero.
+
+Numbers (``Number``) carry their wires with their signedness and fraction bits (the value is the two's-complement
+integer over 2^fraction_bits); ``align`` brings two numbers to one scale and width by free rewiring.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from jointstat.circuit.builder import Builder, Wires
+from jointstat.circuit.model import ONE_WIRE, ZERO_WIRE
+
+# -- numbers ---------------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Number:
+    """Fixed-point words over lanes: ``wires`` has shape (..., width); value = integer / 2^frac."""
+
+    wires: np.ndarray
+    signed: bool
+    frac: int = 0
+
+    @property
+    def width(self) -> int:
+        return int(self.wires.shape[-1])
+
+    def with_wires(self, wires: np.ndarray) -> Number:
+        return Number(wires, self.signed, self.frac)
+
+
+def rescale(x: Number, frac: int) -> Number:
+    """The same values with ``frac`` ≥ x.frac fraction bits: zero bits below (free)."""
+    k = frac - x.frac
+    if k < 0:
+        raise ValueError(f"rescale: cannot drop fraction bits ({x.frac} → {frac})")
+    if k == 0:
+        return x
+    low = np.zeros((*x.wires.shape[:-1], k), dtype=np.int64)
+    return Number(np.concatenate([low, x.wires], axis=-1), x.signed, frac)
+
+
+def widen(x: Number, width: int, *, signed: bool | None = None) -> Number:
+    """Sign- or zero-extend to ``width`` bits; an unsigned number made signed gains a zero top bit first."""
+    sign = x.signed if signed is None else signed
+    wires = x.wires
+    if sign and not x.signed:
+        wires = Builder.extend(wires, wires.shape[-1] + 1)
+    if width < wires.shape[-1]:
+        raise ValueError(f"widen: {wires.shape[-1]} bits do not fit in {width}")
+    return Number(Builder.extend(wires, width, signed=x.signed), sign, x.frac)
+
+
+def align(*xs: Number) -> list[Number]:
+    """Bring numbers to common fraction bits, signedness and width (all free rewiring)."""
+    frac = max(x.frac for x in xs)
+    signed = any(x.signed for x in xs)
+    scaled = [rescale(x, frac) for x in xs]
+    width = max(x.width + (1 if signed and not x.signed else 0) for x in scaled)
+    return [widen(x, width, signed=signed) for x in scaled]
+
+
+def order_key(bld: Builder, x: Number) -> np.ndarray:
+    """Wires whose unsigned order is the numeric order of ``x``: a signed word gets its sign bit flipped.
+
+    Flipping costs one NOT gate per lane (free under free XOR) and turns two's-complement order into unsigned order.
+    """
+    if not x.signed:
+        return x.wires
+    return np.concatenate([x.wires[..., :-1], bld.not_(x.wires[..., -1:])], axis=-1)
+
+
+def from_order_key(bld: Builder, key: Wires, signed: bool) -> np.ndarray:
+    """The inverse of ``order_key``."""
+    k = np.asarray(key, dtype=np.int64)
+    if not signed:
+        return k
+    return np.concatenate([k[..., :-1], bld.not_(k[..., -1:])], axis=-1)
+
+
+# -- comparison and compare-and-swap --------------------------------------------------------------------------------
+
+
+def greater_than(bld: Builder, x: Wires, y: Wires, diff: Wires | None = None) -> Wires:
+    """x > y for unsigned words, one AND gate per bit: c' = c ⊕ ((x ⊕ y) ∧ (x ⊕ c)), c₀ = 0.
+
+    ``diff`` may pass a precomputed x ⊕ y (a compare-and-swap shares it with its swap).
+    """
+    xa = np.asarray(x, dtype=np.int64)
+    d = bld.xor(xa, y) if diff is None else np.asarray(diff)
+    carry = np.zeros(xa.shape[:-1], dtype=np.int64)
+    for i in range(xa.shape[-1]):
+        carry = bld.xor(carry, bld.and_(d[..., i], bld.xor(xa[..., i], carry)))
+    return carry
+
+
+@dataclass(frozen=True)
+class Swapped:
+    low: np.ndarray  # keys of the smaller element of each pair
+    high: np.ndarray
+    low_payload: np.ndarray | None
+    high_payload: np.ndarray | None
+    swap: np.ndarray  # 1 where the pair was exchanged
+
+
+def compare_swap(
+    bld: Builder, a: Wires, b: Wires, a_payload: Wires | None = None, b_payload: Wires | None = None
+) -> Swapped:
+    """Order each lane's pair by key (unsigned): k AND gates for the comparator plus one per key and payload bit."""
+    a, b = np.asarray(a, dtype=np.int64), np.asarray(b, dtype=np.int64)
+    kw = a.shape[-1]
+    if a_payload is not None and b_payload is not None:
+        a = np.concatenate([a, np.asarray(a_payload, dtype=np.int64)], axis=-1)
+        b = np.concatenate([b, np.asarray(b_payload, dtype=np.int64)], axis=-1)
+    diff = bld.xor(a, b)
+    swap = greater_than(bld, a[..., :kw], b[..., :kw], diff[..., :kw])
+    delta = bld.and_(swap[..., None], diff)
+    low, high = bld.xor(a, delta), bld.xor(b, delta)
+    if a_payload is None or b_payload is None:
+        return Swapped(low, high, None, None, swap)
+    return Swapped(low[..., :kw], high[..., :kw], low[..., kw:], high[..., kw:], swap)
+
+
+def and_per_compare_swap(key_width: int, payload_width: int = 0) -> int:
+    """AND gates of one compare-and-swap on secret operands (measured on a fresh builder, not assumed)."""
+    from jointstat.circuit.model import Party
+
+    bld = Builder()
+    a = bld.input(Party.GARBLER, (1, key_width + payload_width))
+    b = bld.input(Party.EVALUATOR, (1, key_width + payload_width))
+    pa = a[:, key_width:] if payload_width else None
+    pb = b[:, key_width:] if payload_width else None
+    compare_swap(bld, a[:, :key_width], b[:, :key_width], pa, pb)
+    return bld.and_gates
+
+
+# -- merge networks --------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Merged:
+    keys: np.ndarray  # (M, key width), sorted ascending
+    payload: np.ndarray | None  # (M, payload width), moved with the keys
+    swaps: list[np.ndarray]  # per stage, the (M/2,) swap bits, in network order
+    comparators: int
+
+
+def bitonic_merge(bld: Builder, keys: Wires, payload: Wires | None = None) -> Merged:
+    """Sort a bitonic sequence of M = 2^L keys (with optional payload) by Batcher's merger: (M/2)·L comparators."""
+    keys = np.asarray(keys, dtype=np.int64)
+    m, kw = keys.shape
+    if m & (m - 1):
+        raise ValueError(f"bitonic merge: {m} elements is not a power of two")
+    pw = 0 if payload is None else int(np.asarray(payload).shape[-1])
+    data = keys if payload is None else np.concatenate([keys, np.asarray(payload, dtype=np.int64)], axis=-1)
+    width = kw + pw
+    swaps: list[np.ndarray] = []
+    comparators = 0
+    half = m // 2
+    while half >= 1:
+        blocks = data.reshape(m // (2 * half), 2, half, width)
+        a = blocks[:, 0].reshape(-1, width)
+        b = blocks[:, 1].reshape(-1, width)
+        res = compare_swap(bld, a[:, :kw], b[:, :kw], a[:, kw:] if pw else None, b[:, kw:] if pw else None)
+        low = res.low if not pw else np.concatenate([res.low, res.low_payload], axis=-1)  # type: ignore[list-item]
+        high = res.high if not pw else np.concatenate([res.high, res.high_payload], axis=-1)  # type: ignore[list-item]
+        data = np.stack(
+            [low.reshape(m // (2 * half), half, width), high.reshape(m // (2 * half), half, width)], axis=1
+        ).reshape(m, width)
+        swaps.append(res.swap)
+        comparators += m // 2
+        half //= 2
+    return Merged(data[:, :kw], data[:, kw:] if pw else None, swaps, comparators)
+
+
+def route_back(bld: Builder, bits: Wires, merged: Merged) -> Wires:
+    """Carry one bit per merged position back to the element's input position: one AND per comparator.
+
+    A swap is its own inverse, so the stages are replayed in reverse order with the same swap bits.
+    """
+    vals = np.asarray(bits, dtype=np.int64)
+    m = vals.shape[0]
+    half = 1
+    for swap in reversed(merged.swaps):
+        blocks = vals.reshape(m // (2 * half), 2, half)
+        a = blocks[:, 0].reshape(-1)
+        b = blocks[:, 1].reshape(-1)
+        delta = bld.and_(swap, bld.xor(a, b))
+        vals = np.stack(
+            [bld.xor(a, delta).reshape(-1, half), bld.xor(b, delta).reshape(-1, half)], axis=1
+        ).reshape(m)
+        half *= 2
+    return vals
+
+
+def merge_size(n: int) -> int:
+    """The power of two a merge of n elements is padded to."""
+    return 1 if n <= 1 else 1 << (n - 1).bit_length()
+
+
+def bitonic_comparators(m: int) -> int:
+    """Comparators of a bitonic merger of m = 2^L elements: (m/2)·L."""
+    return (m // 2) * (m.bit_length() - 1) if m > 1 else 0
+
+
+@dataclass(frozen=True)
+class MergeLayout:
+    """Where the two inputs sit in the merged network's input: first at [0, n_a), second reversed at the end."""
+
+    size: int
+    first: slice
+    second: slice  # positions of the second list, in reverse order (position size-1 is its element 0)
+
+
+def arrange(first: Wires, second: Wires, pad: Wires) -> tuple[np.ndarray, MergeLayout]:
+    """The bitonic input: ``first`` (ascending) ++ copies of ``pad`` ++ ``second`` reversed (so descending)."""
+    first, second = np.asarray(first, dtype=np.int64), np.asarray(second, dtype=np.int64)
+    na, nb = first.shape[0], second.shape[0]
+    m = merge_size(na + nb)
+    fill = np.broadcast_to(np.asarray(pad, dtype=np.int64), (m - na - nb, first.shape[-1]))
+    seq = np.concatenate([first, fill, second[::-1]], axis=0)
+    return seq, MergeLayout(m, slice(0, na), slice(m - nb, m))
+
+
+# -- sums, products, division ------------------------------------------------------------------------------------------
+
+
+def tree_sum(bld: Builder, words: Wires, *, signed: bool = False) -> Wires:
+    """Σ over axis 0 of (n, w) words, widths growing one bit per tree level: the result has w + ⌈log2 n⌉ bits."""
+    arr = np.asarray(words, dtype=np.int64)
+    n = arr.shape[0]
+    if n == 0:
+        return np.zeros(arr.shape[1:], dtype=np.int64)
+    while arr.shape[0] > 1:
+        half = arr.shape[0] // 2
+        x, y = arr[:half], arr[half : 2 * half]
+        if signed:
+            w = x.shape[-1] + 1
+            paired = bld.add(Builder.extend(x, w, signed=True), Builder.extend(y, w, signed=True))
+        else:
+            total, carry = bld.add_carry(x, y)
+            paired = np.concatenate([total, carry[..., None]], axis=-1)
+        rest = Builder.extend(arr[2 * half :], paired.shape[-1], signed=signed)
+        arr = np.concatenate([paired, rest], axis=0)
+    return arr[0]
+
+
+def count_bits(bld: Builder, bits: Wires) -> Wires:
+    """How many of the bits (a flat array) are 1, as an unsigned word of ⌈log2(n+1)⌉ bits."""
+    flat = np.asarray(bits, dtype=np.int64).reshape(-1)
+    n = flat.shape[0]
+    width = max(1, n.bit_length())
+    if n == 0:
+        return np.zeros(1, dtype=np.int64)
+    return Builder.extend(tree_sum(bld, flat[:, None]), width)
+
+
+def multiply_full(bld: Builder, x: Wires, y: Wires) -> Wires:
+    """The full unsigned product of an a-bit and a b-bit word (a + b bits): a·b partial ANDs plus b − 1 adders."""
+    xa, ya = np.asarray(x, dtype=np.int64), np.asarray(y, dtype=np.int64)
+    a, b = xa.shape[-1], ya.shape[-1]
+    lanes = np.broadcast_shapes(xa.shape[:-1], ya.shape[:-1])
+    xa = np.broadcast_to(xa, (*lanes, a))
+    ya = np.broadcast_to(ya, (*lanes, b))
+    acc = bld.and_(xa, ya[..., 0:1])  # the running sum at weight j, here j = 0
+    low: list[np.ndarray] = []
+    for j in range(1, b):
+        low.append(acc[..., 0])  # bit j − 1 of the product is final
+        rest = Builder.extend(acc[..., 1:], a)
+        total, carry = bld.add_carry(rest, bld.and_(xa, ya[..., j : j + 1]))
+        acc = np.concatenate([total, carry[..., None]], axis=-1)
+    bits = np.concatenate([np.stack(low, axis=-1), acc], axis=-1) if low else acc
+    return Builder.extend(bits, a + b)
+
+
+def negate_if(bld: Builder, x: Wires, flag: Wires) -> Wires:
+    """x where ``flag`` is 0, −x (two's complement) where it is 1: (x ⊕ f) + f, n − 1 AND gates."""
+    xa = np.asarray(x, dtype=np.int64)
+    f = np.asarray(flag, dtype=np.int64)
+    flipped = bld.xor(xa, f[..., None])
+    return bld.add(flipped, np.zeros_like(flipped), f)
+
+
+def magnitude(bld: Builder, x: Number) -> tuple[np.ndarray, np.ndarray]:
+    """(|x| as an unsigned word of the same width, sign bit); for unsigned x the sign is the constant 0."""
+    if not x.signed:
+        return x.wires, np.full(x.wires.shape[:-1], ZERO_WIRE, dtype=np.int64)
+    sign = x.wires[..., -1]
+    return negate_if(bld, x.wires, sign), sign
+
+
+def divide(
+    bld: Builder, dividend: Wires, divisor: Wires, quotient_bits: int | None = None
+) -> tuple[Wires, Wires]:
+    """Unsigned restoring division: (⌊n / d⌋, n mod d with d's width).
+
+    Per quotient bit one subtract-with-borrow and one multiplexer on w_d + 1 bits. With ``quotient_bits`` = q
+    only the low q quotient bits are computed, starting from the remainder n >> q: correct whenever the true
+    quotient is below 2^q (callers state why it is). A zero divisor gives an all-ones quotient (callers withhold
+    such results).
+    """
+    n = np.asarray(dividend, dtype=np.int64)
+    d = np.asarray(divisor, dtype=np.int64)
+    wn, wd = n.shape[-1], d.shape[-1]
+    q_bits = wn if quotient_bits is None else min(wn, int(quotient_bits))
+    lanes = np.broadcast_shapes(n.shape[:-1], d.shape[:-1])
+    n = np.broadcast_to(n, (*lanes, wn))
+    dext = np.broadcast_to(Builder.extend(d, wd + 1), (*lanes, wd + 1))
+    top = n[..., q_bits:]
+    if top.shape[-1] > wd + 1:
+        raise ValueError(f"divide: {top.shape[-1]} leading bits cannot be below a {wd}-bit divisor")
+    rem = Builder.extend(top, wd + 1)
+    quotient = np.zeros((*lanes, q_bits), dtype=np.int64)
+    for i in range(q_bits - 1, -1, -1):
+        rem = np.concatenate([n[..., i : i + 1], rem[..., :-1]], axis=-1)
+        diff, ge = bld.sub_borrow(rem, dext)
+        quotient[..., i] = ge
+        rem = bld.select(ge, rem, diff)
+    return quotient, rem[..., :wd]
+
+
+def divide_fixed(
+    bld: Builder, numerator: Number, denominator: Wires, fraction_bits: int, result_bits: int | None = None
+) -> Number:
+    """numerator / denominator (unsigned, > 0) with ``fraction_bits`` more fraction bits, rounded toward zero.
+
+    ``result_bits`` bounds the result's width (two's complement when the numerator is signed); callers pass a
+    width the true quotient is known to fit, which also shortens the division (see ``divide``).
+    """
+    mag, sign = magnitude(bld, numerator)
+    shifted = np.concatenate([np.zeros((*mag.shape[:-1], fraction_bits), dtype=np.int64), mag], axis=-1)
+    q_bits = None if result_bits is None else result_bits
+    q, _ = divide(bld, shifted, denominator, q_bits)
+    frac = numerator.frac + fraction_bits
+    if not numerator.signed:
+        return Number(q, False, frac)
+    width = q.shape[-1] + 1 if result_bits is None else result_bits
+    q = Builder.extend(q, max(width, q.shape[-1]))
+    return Number(Builder.extend(negate_if(bld, q, sign), width), True, frac)
+
+
+# -- selection and gating ----------------------------------------------------------------------------------------------
+
+
+def one_hot(bld: Builder, index: Wires, size: int) -> Wires:
+    """(size,) bits, bit i = [index = i], for an unsigned index word (LSB first); about ``size`` AND gates."""
+    idx = np.asarray(index, dtype=np.int64).reshape(-1)
+    k = idx.shape[0]
+    vec = np.array([ONE_WIRE], dtype=np.int64)
+    for t in range(k - 1, -1, -1):  # most significant bit first
+        b = idx[t]
+        keep = -(-size // (1 << t))  # prefixes that can still reach an index below size
+        high = bld.and_(vec, b)
+        low = bld.xor(vec, high)
+        vec = np.stack([low, high], axis=-1).reshape(-1)[:keep]
+    out = np.full(size, ZERO_WIRE, dtype=np.int64)
+    out[: min(size, vec.shape[0])] = vec[:size]
+    return out
+
+
+def select(bld: Builder, onehot: Wires, words: Wires) -> Wires:
+    """The word at the one-hot position: XOR of the words masked by the one-hot bits (one AND per bit)."""
+    masked = bld.and_(np.asarray(onehot, dtype=np.int64)[:, None], words)
+    return bld.reduce_xor(masked, axis=0)
+
+
+def gate(bld: Builder, wires: Wires, allow: Wires) -> Wires:
+    """``wires`` where ``allow`` is 1 and all zeros where it is 0 (one AND per bit)."""
+    return bld.and_(np.asarray(wires, dtype=np.int64), allow)
+
+
+def at_least(bld: Builder, value: Wires, bound: int) -> Wires:
+    """value ≥ bound for an unsigned word and a public bound (constant-folded comparator)."""
+    v = np.asarray(value, dtype=np.int64)
+    w = v.shape[-1]
+    if bound <= 0:
+        return np.full(v.shape[:-1], ONE_WIRE, dtype=np.int64)
+    if bound >= 1 << w:
+        return np.full(v.shape[:-1], ZERO_WIRE, dtype=np.int64)
+    return bld.greater_equal(v, bld.constant_word(np.full(v.shape[:-1], bound), w))

@@ -1,0 +1,210 @@
+"""Keyed-join statistics over the keys both parties hold: how many, the sum and mean of a value, how many pass a
+threshold.
+
+Theory of operation
+-------------------
+Sort–compare in the manner of Huang–Evans–Katz (NDSS 2012). Each party sorts its rows by key (the encoder does
+it; keys are unique within a party). An element is the key with the row's invalid bit above it as the most
+significant bit, so padding sorts after every real key. The garbler's list, padding with the largest key up to a
+power of two M, and the evaluator's list reversed form a bitonic sequence, which Batcher's bitonic merger sorts
+((M/2)·log2 M compare-and-swaps on k + 1 key bits, 2(k + 1) AND gates each — the bulk of the circuit).
+
+Neighbours are then compared: a pair (i, i + 1) matches when its words are equal (which includes both invalid
+bits) and element i is valid; as keys are unique per party, a matching pair holds one row of each party, and no
+element can match both neighbours. ``matches`` is the count of matching pairs.
+
+For the value statistics, each merged position gets the bit "my element matched" (m_i = match_{i−1} ⊕ match_i)
+and that bit is carried back through the merger to the element's input position (``blocks.route_back``: the
+stages replayed in reverse with the same swap bits, one AND per comparator). The value party's rows then see
+whether they matched, without carrying their values through the network: ``sum`` = Σ m·v (one AND per value bit
+and a tree sum), ``mean`` = sum / matches (rounded toward zero, ``precision_bits`` more fraction bits) and
+``above`` = how many matched rows have v ≥ ``threshold``.
+
+Widths: matches ≤ min(capacities), so ⌈log2(min + 1)⌉ bits; the sum of at most c value-party rows of w bits has
+w + ⌈log2 c⌉ bits.
+"""
+
+from __future__ import annotations
+
+import math
+from decimal import Decimal
+from typing import Annotated, Literal
+
+import numpy as np
+
+from jointstat.circuit.builder import Builder
+from jointstat.circuit.library import blocks
+from jointstat.circuit.library.blocks import Number
+from jointstat.circuit.library.registry import (
+    ROLES,
+    BuildContext,
+    OutputSpec,
+    Statistic,
+    StatisticResult,
+    TableNeeds,
+    register_statistic,
+)
+from jointstat.circuit.manifest import (
+    ColumnPair,
+    Identifier,
+    Problem,
+    StatisticParameters,
+    StrictModel,
+    _between,
+)
+from jointstat.circuit.model import ONE_WIRE, ZERO_WIRE, Party
+
+
+class PartyColumn(StrictModel):
+    """A column of one party's table."""
+
+    party: Literal["garbler", "evaluator"]
+    column: Identifier
+
+
+class JoinParameters(StatisticParameters):
+    name: Literal["keyed_join"]
+    key: ColumnPair
+    value: PartyColumn | None = None
+    threshold: float | None = None  # ``above`` counts matched rows whose value is at least this
+    precision_bits: Annotated[int, _between(0, 32)] = 8
+
+
+def scaled_threshold(threshold: float, frac: int) -> int:
+    """The smallest encoded integer v with v / 2^frac ≥ threshold (the threshold read as the decimal written)."""
+    return math.ceil(Decimal(repr(float(threshold))) * (1 << frac))
+
+
+def const_at_least(bld: Builder, x: Number, bound: int) -> np.ndarray:
+    """x ≥ bound for a public integer bound on x's encoded scale; constant where the bound is out of range."""
+    w = x.width
+    lo, hi = (-(1 << (w - 1)), (1 << (w - 1)) - 1) if x.signed else (0, (1 << w) - 1)
+    lanes = x.wires.shape[:-1]
+    if bound <= lo:
+        return np.full(lanes, ONE_WIRE, dtype=np.int64)
+    if bound > hi:
+        return np.full(lanes, ZERO_WIRE, dtype=np.int64)
+    c = bld.constant_word(np.full(lanes, bound, dtype=object), w)
+    return bld.greater_equal(x.wires, c, signed=x.signed)
+
+
+@register_statistic
+class KeyedJoin(Statistic):
+    name = "keyed_join"
+    Parameters = JoinParameters
+    description = "matches, sum, mean and threshold count of a value over the keys both parties hold"
+
+    @property
+    def p(self) -> JoinParameters:
+        return self.params  # type: ignore[return-value]
+
+    def value_party(self) -> Party | None:
+        return None if self.p.value is None else Party[self.p.value.party.upper()]
+
+    def problems(self) -> list[Problem]:
+        problems = list(self.check_columns(self.p.key, "statistic.key", numeric=False))
+        if problems:
+            return problems
+        cols = [self.column(party, self.p.key) for party in Party]
+        for party, col in zip(Party, cols, strict=True):
+            if col.type != "key":  # type: ignore[attr-defined]
+                problems.append(
+                    Problem("statistic.key", f"tables.{ROLES[party]} column {col.name!r} is not a key")
+                )
+        if not problems and cols[0].bits != cols[1].bits:
+            problems.append(
+                Problem("statistic.key", f"the key columns differ in width ({cols[0].bits}, {cols[1].bits})")
+            )
+        if self.p.value is not None:
+            party = self.value_party()
+            assert party is not None
+            col = self.manifest.table(party).column(self.p.value.column)
+            if col is None:
+                problems.append(
+                    Problem("statistic.value.column", f"tables.{ROLES[party]} has no such column")
+                )
+            elif not col.numeric or col.type == "boolean":  # type: ignore[attr-defined]
+                problems.append(Problem("statistic.value.column", f"{col.name!r} is not a number column"))
+        if self.p.threshold is not None and self.p.value is None:
+            problems.append(Problem("statistic.threshold", "a threshold needs a value column"))
+        return problems
+
+    def needs(self) -> dict[Party, TableNeeds]:
+        out = {}
+        vp = self.value_party()
+        for party in Party:
+            key = self.column_names(self.p.key)[party]
+            cols = [key]
+            if party == vp and self.p.value is not None and self.p.value.column != key:
+                cols.append(self.p.value.column)
+            out[party] = TableNeeds(tuple(cols), sort_by=key, unique=key)
+        return out
+
+    def outputs(self) -> list[OutputSpec]:
+        caps = [self.manifest.table(p).capacity for p in Party]
+        specs = [OutputSpec("matches", min(caps).bit_length(), description="keys both parties hold")]
+        vp = self.value_party()
+        if vp is None or self.p.value is None:
+            return specs
+        col = self.manifest.table(vp).column(self.p.value.column)
+        assert col is not None
+        cap = self.manifest.table(vp).capacity
+        w, e = col.bits, self.p.precision_bits
+        specs.append(
+            OutputSpec(
+                "sum", w + (cap - 1).bit_length(), col.signed, col.frac, description="sum over matches"
+            )
+        )
+        specs.append(OutputSpec("mean", w + e, col.signed, col.frac + e, description="mean over matches"))
+        if self.p.threshold is not None:
+            specs.append(
+                OutputSpec("above", min(caps).bit_length(), description="matches with value ≥ threshold")
+            )
+        return specs
+
+    def build(self, ctx: BuildContext) -> StatisticResult:
+        bld = ctx.builder
+        specs = {s.name: s for s in self.outputs()}
+        names = self.column_names(self.p.key)
+        elements = []
+        for party in Party:
+            t = ctx.table(party)
+            elements.append(np.concatenate([t.bits(names[party]), bld.not_(t.valid)[:, None]], axis=1))
+        kw = elements[0].shape[1]
+        pad = np.array([ZERO_WIRE] * (kw - 1) + [ONE_WIRE], dtype=np.int64)
+        seq, layout = blocks.arrange(elements[0], elements[1], pad)
+        merged = blocks.bitonic_merge(bld, seq)
+        k = merged.keys
+        eq = bld.equal(k[:-1], k[1:])
+        # match = eq ∧ valid_i = eq ⊕ (eq ∧ invalid_i)
+        match = bld.xor(eq, bld.and_(eq, k[:-1, -1]))
+        matches = Builder.extend(blocks.count_bits(bld, match), specs["matches"].width)
+        values: dict[str, np.ndarray] = {"matches": matches}
+        extra = {"comparators": merged.comparators, "key_bits": kw, "merge_size": layout.size}
+        ok: np.ndarray | None = None
+        vp = self.value_party()
+        if vp is not None and self.p.value is not None and ctx.wanted & {"sum", "mean", "above"}:
+            flag = np.full(layout.size, ZERO_WIRE, dtype=np.int64)
+            flag[:-1] = match
+            flag[1:] = bld.xor(flag[1:], match)
+            back = blocks.route_back(bld, flag, merged)
+            mine = back[layout.first] if vp == Party.GARBLER else back[layout.second][::-1]
+            v = ctx.table(vp).number(self.p.value.column)
+            masked = bld.and_(v.wires, mine[:, None])
+            s = Number(
+                Builder.extend(
+                    blocks.tree_sum(bld, masked, signed=v.signed), specs["sum"].width, signed=v.signed
+                ),
+                v.signed,
+                v.frac,
+            )
+            values["sum"] = s.wires
+            if "mean" in ctx.wanted:
+                mean = blocks.divide_fixed(bld, s, matches, self.p.precision_bits, specs["mean"].width)
+                values["mean"] = mean.wires
+                ok = blocks.at_least(bld, matches, 1)
+            if "above" in ctx.wanted and self.p.threshold is not None:
+                ge = const_at_least(bld, v, scaled_threshold(self.p.threshold, v.frac))
+                above = blocks.count_bits(bld, bld.and_(ge, mine))
+                values["above"] = Builder.extend(above, specs["above"].width)
+        return StatisticResult(values, count=matches, ok=ok, extra=extra)

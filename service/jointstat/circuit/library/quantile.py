@@ -1,0 +1,197 @@
+"""Quantiles (median, any percentile) of the union of both parties' values.
+
+Theory of operation
+-------------------
+Each party sorts its own values ascending (the encoder does it); a value's sort key is its order key (sign bit
+flipped for signed values) with the row's invalid bit above it, so padding sorts last. The garbler's list, padding
+to a power of two M and the evaluator's list reversed are bitonic, and Batcher's bitonic merger sorts the union
+((M/2)·log2 M compare-and-swaps of w + 1 bits). The count n = Σ validity bits is secret, so the rank is computed
+in the circuit: for the percentile p = 100·a/b (a/b in lowest terms) the position is h = (n − 1)·a/b,
+j = ⌊h⌋ = ⌊(n − 1)·a / b⌋ and r = (n − 1)·a mod b (a multiplication by a public constant and a division by one;
+free shifts when b is a power of two). An oblivious selection (``blocks.one_hot`` and ``blocks.select``, about
+(w + 1)·M AND gates) reads x_j and, when the method needs it, x_{j+1} (the one-hot vector shifted by one place).
+
+Methods, as numpy.percentile names them (with x sorted, h as above):
+
+* ``lower`` — x_j; ``higher`` — x_j if r = 0 else x_{j+1};
+* ``midpoint`` — (lower + higher) / 2, exact with one more fraction bit (``statistics.median`` at p = 50);
+* ``linear`` (default, numpy's default) — x_j + (x_{j+1} − x_j)·r/b, rounded down to ``precision_bits`` more
+  fraction bits.
+
+Ties need no care: equal values are adjacent after the merge and the rank picks one of them. A result needs
+n ≥ 1; the disclosure count is n.
+"""
+
+from __future__ import annotations
+
+from fractions import Fraction
+from typing import Annotated, Literal
+
+import numpy as np
+from pydantic import Field, field_validator
+
+from jointstat.circuit.builder import Builder
+from jointstat.circuit.library import blocks
+from jointstat.circuit.library.registry import (
+    BuildContext,
+    OutputSpec,
+    Statistic,
+    StatisticResult,
+    TableNeeds,
+    register_statistic,
+)
+from jointstat.circuit.manifest import ColumnPair, Problem, StatisticParameters, _between
+from jointstat.circuit.model import ONE_WIRE, ZERO_WIRE, Party
+
+
+class QuantileParameters(StatisticParameters):
+    name: Literal["quantile"]
+    column: ColumnPair
+    percentiles: Annotated[list[float], Field(min_length=1, max_length=16)]
+    method: Literal["lower", "higher", "midpoint", "linear"] = "linear"
+    precision_bits: Annotated[int, _between(0, 32)] = 8
+
+    @field_validator("percentiles")
+    @classmethod
+    def _in_range(cls, v: list[float]) -> list[float]:
+        for i, p in enumerate(v):
+            if not 0 <= p <= 100:
+                raise ValueError(f"[{i}] must be between 0 and 100")
+            if p in v[:i]:
+                raise ValueError(f"[{i}] is listed twice")
+        return v
+
+
+def percentile_name(p: float) -> str:
+    """50 → 'p50', 99.5 → 'p99_5'."""
+    text = f"{p:.10f}".rstrip("0").rstrip(".")
+    return "p" + text.replace(".", "_")
+
+
+def rank_fraction(p: float) -> Fraction:
+    """p / 100 as an exact fraction of the decimal written in the manifest."""
+    return Fraction(repr(float(p))) / 100
+
+
+@register_statistic
+class Quantile(Statistic):
+    name = "quantile"
+    Parameters = QuantileParameters
+    description = "percentiles of the union of both parties' values (oblivious merge and selection)"
+
+    @property
+    def p(self) -> QuantileParameters:
+        return self.params  # type: ignore[return-value]
+
+    def problems(self) -> list[Problem]:
+        return list(self.check_columns(self.p.column, "statistic.column"))
+
+    def needs(self) -> dict[Party, TableNeeds]:
+        names = self.column_names(self.p.column)
+        return {party: TableNeeds((names[party],), sort_by=names[party]) for party in Party}
+
+    def _format(self) -> tuple[int, bool, int]:
+        cols = [self.column(party, self.p.column) for party in Party]
+        frac = max(c.frac for c in cols)
+        signed = any(c.signed for c in cols)
+        width = max(c.bits + (frac - c.frac) + (1 if signed and not c.signed else 0) for c in cols)
+        return width, signed, frac
+
+    def outputs(self) -> list[OutputSpec]:
+        n = sum(self.manifest.table(p).capacity for p in Party)
+        w, signed, frac = self._format()
+        if self.p.method == "midpoint":
+            w, frac = w + 1, frac + 1
+        elif self.p.method == "linear":
+            w, frac = w + self.p.precision_bits, frac + self.p.precision_bits
+        specs = [OutputSpec("count", n.bit_length(), description="values in the union")]
+        for q in self.p.percentiles:
+            specs.append(OutputSpec(percentile_name(q), w, signed, frac, description=f"percentile {q:g}"))
+        return specs
+
+    def build(self, ctx: BuildContext) -> StatisticResult:
+        bld = ctx.builder
+        specs = {s.name: s for s in self.outputs()}
+        names = self.column_names(self.p.column)
+        nums = blocks.align(*[ctx.table(party).number(names[party]) for party in Party])
+        signed, w = nums[0].signed, nums[0].width
+        elements = []
+        for party, x in zip(Party, nums, strict=True):
+            key = blocks.order_key(bld, x)
+            elements.append(np.concatenate([key, bld.not_(ctx.table(party).valid)[:, None]], axis=1))
+        pad = np.array([ZERO_WIRE] * w + [ONE_WIRE], dtype=np.int64)
+        seq, layout = blocks.arrange(elements[0], elements[1], pad)
+        merged = blocks.bitonic_merge(bld, seq)
+        sorted_vals = blocks.from_order_key(bld, merged.keys[:, :w], signed)
+        m = layout.size
+        valid = np.concatenate([ctx.table(p).valid for p in Party])
+        n = Builder.extend(blocks.count_bits(bld, valid), specs["count"].width)
+        values: dict[str, np.ndarray] = {"count": n}
+        n_minus_1 = bld.sub(n, bld.constant_word(1, n.shape[-1]))
+        idx_bits = max(1, (m - 1).bit_length())
+        for q in self.p.percentiles:
+            name = percentile_name(q)
+            if name not in ctx.wanted:
+                continue
+            j, r, denominator = self._rank(bld, n_minus_1, rank_fraction(q), idx_bits)
+            onehot = blocks.one_hot(bld, j, m)
+            x_j = blocks.select(bld, onehot, sorted_vals)
+            x_next = blocks.select(bld, onehot[:-1], sorted_vals[1:]) if m > 1 else x_j
+            r_nonzero = bld.reduce_or(r) if r.shape[-1] else np.asarray(ZERO_WIRE)
+            values[name] = self._combine(bld, x_j, x_next, r, r_nonzero, denominator, signed, specs[name])
+        extra = {"comparators": merged.comparators, "merge_size": m}
+        return StatisticResult(values, count=n, ok=np.asarray(blocks.at_least(bld, n, 1)), extra=extra)
+
+    @staticmethod
+    def _rank(
+        bld: Builder, n_minus_1: np.ndarray, frac: Fraction, idx_bits: int
+    ) -> tuple[np.ndarray, np.ndarray, int]:
+        """(j, r, b) with j = ⌊(n − 1)·a/b⌋ (``idx_bits`` bits) and r = (n − 1)·a mod b."""
+        a, b = frac.numerator, frac.denominator
+        if a == 0:
+            return np.zeros(idx_bits, dtype=np.int64), np.zeros(0, dtype=np.int64), 1
+        t = blocks.multiply_full(bld, n_minus_1, bld.constant_word(a, a.bit_length()))
+        if b == 1:
+            return Builder.extend(t, idx_bits), np.zeros(0, dtype=np.int64), 1
+        if b & (b - 1) == 0:
+            s = b.bit_length() - 1
+            return Builder.extend(t[s:], idx_bits), t[:s], b
+        # j < n ≤ 2^idx_bits, so the low idx_bits quotient bits are the whole quotient.
+        q, r = blocks.divide(bld, t, bld.constant_word(b, b.bit_length()), quotient_bits=idx_bits)
+        return q, r, b
+
+    def _combine(
+        self,
+        bld: Builder,
+        x_j: np.ndarray,
+        x_next: np.ndarray,
+        r: np.ndarray,
+        r_nonzero: np.ndarray,
+        b: int,
+        signed: bool,
+        spec: OutputSpec,
+    ) -> np.ndarray:
+        method = self.p.method
+        if method == "lower":
+            return x_j
+        higher = bld.select(r_nonzero, x_j, x_next)
+        if method == "higher":
+            return higher
+        w = x_j.shape[-1]
+        if method == "midpoint":
+            return bld.add(
+                Builder.extend(x_j, w + 1, signed=signed), Builder.extend(higher, w + 1, signed=signed)
+            )
+        e = self.p.precision_bits
+        if r.shape[-1] == 0:  # the rank is always whole
+            return Builder.extend(
+                np.concatenate([np.zeros(e, dtype=np.int64), x_j]), spec.width, signed=signed
+            )
+        # x_{j+1} ≥ x_j whenever r > 0, so the difference is unsigned; when r = 0 it is multiplied by zero.
+        d = bld.sub(x_next, x_j)
+        prod = blocks.multiply_full(bld, d, r)
+        shifted = np.concatenate([np.zeros(e, dtype=np.int64), prod])
+        part, _ = blocks.divide(bld, shifted, bld.constant_word(b, b.bit_length()), quotient_bits=w + e)
+        base = Builder.extend(np.concatenate([np.zeros(e, dtype=np.int64), x_j]), w + e + 1, signed=signed)
+        total = bld.add(base, Builder.extend(part, w + e + 1))
+        return Builder.extend(total, spec.width, signed=signed)

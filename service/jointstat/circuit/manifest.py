@@ -1,0 +1,545 @@
+"""The manifest: what two organisations agree to compute, on which columns, and who receives which result.
+
+Theory of operation
+-------------------
+A manifest is a YAML file validated by pydantic models (``Manifest``). It names the job and its version, the two
+parties and which one garbles, each party's input table (typed columns and a public row capacity), the statistic
+with its parameters, which outputs go to which party, and the disclosure rule. Column types:
+
+* ``unsigned`` / ``signed`` — integers of ``width`` bits (two's complement when signed);
+* ``fixed`` — fixed-point numbers: the integer value × 2^-``fraction_bits`` in ``width`` bits (signed by default);
+* ``boolean`` — one bit;
+* ``key`` — an identifier (e-mail address, account number…) turned into a ``width``-bit integer by HMAC-SHA-256
+  under a secret both organisations hold (``jointstat.circuit.inputs``); the secret is never in the manifest.
+
+The ``statistic`` section is one of the registered statistics (``library.registry``), told apart by its ``name``;
+``plugins`` lists Python files (relative to the manifest) that register custom statistics before the section is
+read. Errors name the field path and say what is wrong, e.g. ``tables.evaluator.columns[2].width: must be between
+1 and 64``; a YAML key given twice is an error too (a silently dropped key could hide a typo).
+
+Identity: ``canonical_json`` serialises the validated manifest (defaults filled in) in the style of RFC 8785 —
+object keys sorted, no whitespace, UTF-8, integers as digits and other numbers in the shortest round-trip form
+with ECMAScript exponent rules — so two files that differ only in layout, comments or key order have the same
+canonical form. The manifest digest (``jointstat.circuit.compile``) hashes this together with the circuit digest.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import json
+import math
+import re
+import sys
+from collections.abc import Iterable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Annotated, Any, ClassVar, Literal, Union
+
+import yaml
+from pydantic import (
+    AfterValidator,
+    BaseModel,
+    ConfigDict,
+    Field,
+    ValidationError,
+    create_model,
+    model_validator,
+)
+
+MAX_CAPACITY = 1 << 20  # rows per party table
+MAX_WIDTH = 64
+
+# -- errors ------------------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Problem:
+    """One thing wrong with a manifest: the dotted field path and what is wrong there."""
+
+    path: str
+    message: str
+
+    def __str__(self) -> str:
+        return f"{self.path}: {self.message}" if self.path else self.message
+
+
+class ManifestError(ValueError):
+    """A manifest that cannot be used; ``problems`` lists every field path found wrong."""
+
+    def __init__(self, source: str, problems: Iterable[Problem]) -> None:
+        self.source = source
+        self.problems = list(problems)
+        super().__init__("\n".join(f"{source}: {p}" for p in self.problems))
+
+
+# -- field validators ----------------------------------------------------------------------------------------------
+
+
+def _between(lo: int, hi: int) -> AfterValidator:
+    def check(v: int) -> int:
+        if not lo <= v <= hi:
+            raise ValueError(f"must be between {lo} and {hi}")
+        return v
+
+    return AfterValidator(check)
+
+
+def _matches(pattern: str, what: str) -> AfterValidator:
+    rx = re.compile(pattern)
+
+    def check(v: str) -> str:
+        if not rx.fullmatch(v):
+            raise ValueError(f"must be {what}")
+        return v
+
+    return AfterValidator(check)
+
+
+Identifier = Annotated[
+    str, _matches(r"[A-Za-z_][A-Za-z0-9_]{0,63}", "a name of letters, digits and _ (not a digit first)")
+]
+JobName = Annotated[
+    str, _matches(r"[a-z0-9][a-z0-9._-]{0,63}", "lower-case letters, digits, '.', '_' or '-'")
+]
+PartyName = Annotated[str, _matches(r"[^\x00-\x1f\x7f]{1,80}", "1 to 80 printable characters")]
+
+
+class StrictModel(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True, strict=True)
+
+
+# -- columns and tables --------------------------------------------------------------------------------------------
+
+
+class _Column(StrictModel):
+    name: Identifier
+
+    numeric: ClassVar[bool] = True
+
+    @property
+    def bits(self) -> int:
+        return int(getattr(self, "width", 1))
+
+    @property
+    def signed(self) -> bool:
+        return False
+
+    @property
+    def frac(self) -> int:
+        return 0
+
+    def range(self) -> tuple[int, int]:
+        """Smallest and largest encoded integer."""
+        if self.signed:
+            return -(1 << (self.bits - 1)), (1 << (self.bits - 1)) - 1
+        return 0, (1 << self.bits) - 1
+
+
+class UnsignedColumn(_Column):
+    type: Literal["unsigned"]
+    width: Annotated[int, _between(1, MAX_WIDTH)]
+
+
+class SignedColumn(_Column):
+    type: Literal["signed"]
+    width: Annotated[int, _between(2, MAX_WIDTH)]
+
+    @property
+    def signed(self) -> bool:
+        return True
+
+
+class FixedColumn(_Column):
+    """A fixed-point number: the stored integer is the value × 2^fraction_bits."""
+
+    type: Literal["fixed"]
+    width: Annotated[int, _between(2, MAX_WIDTH)]
+    fraction_bits: Annotated[int, _between(0, MAX_WIDTH - 1)]
+    signed_: bool = Field(True, alias="signed")
+
+    model_config = ConfigDict(populate_by_name=True, serialize_by_alias=True)
+
+    @model_validator(mode="after")
+    def _fraction_fits(self) -> FixedColumn:
+        if self.fraction_bits >= self.width:
+            raise ValueError(f"fraction_bits ({self.fraction_bits}) must be less than width ({self.width})")
+        return self
+
+    @property
+    def signed(self) -> bool:
+        return self.signed_
+
+    @property
+    def frac(self) -> int:
+        return self.fraction_bits
+
+
+class BooleanColumn(_Column):
+    type: Literal["boolean"]
+
+
+class KeyColumn(_Column):
+    """An identifier, hashed to ``width`` bits with HMAC-SHA-256 (see ``jointstat.circuit.inputs``)."""
+
+    type: Literal["key"]
+    width: Annotated[int, _between(16, MAX_WIDTH)] = 32
+    fold_case: bool = False
+
+    numeric: ClassVar[bool] = False
+
+
+Column = Annotated[
+    Union[UnsignedColumn, SignedColumn, FixedColumn, BooleanColumn, KeyColumn],  # noqa: UP007
+    Field(discriminator="type"),
+]
+
+
+class Table(StrictModel):
+    """One party's input: typed columns and a public row capacity (rows are padded to it)."""
+
+    capacity: Annotated[int, _between(1, MAX_CAPACITY)]
+    columns: Annotated[list[Column], Field(min_length=1)]
+
+    @model_validator(mode="after")
+    def _unique_names(self) -> Table:
+        seen: dict[str, int] = {}
+        for i, col in enumerate(self.columns):
+            if col.name in seen:
+                raise ValueError(f"columns[{i}].name: column {col.name!r} is also columns[{seen[col.name]}]")
+            seen[col.name] = i
+        return self
+
+    def column(self, name: str) -> _Column | None:
+        for col in self.columns:
+            if col.name == name:
+                return col
+        return None
+
+    def index(self, name: str) -> int:
+        return [c.name for c in self.columns].index(name)
+
+
+class PartyInfo(StrictModel):
+    name: PartyName
+
+
+class Parties(StrictModel):
+    """The two organisations; ``garbler`` garbles the circuit, ``evaluator`` evaluates it."""
+
+    garbler: PartyInfo
+    evaluator: PartyInfo
+
+    @model_validator(mode="after")
+    def _distinct(self) -> Parties:
+        if self.garbler.name == self.evaluator.name:
+            raise ValueError("the garbler and the evaluator must be different parties")
+        return self
+
+
+class Tables(StrictModel):
+    garbler: Table
+    evaluator: Table
+
+
+class Outputs(StrictModel):
+    """Which named outputs each party receives (the ``withheld`` flag goes to every receiving party)."""
+
+    garbler: list[str] = []
+    evaluator: list[str] = []
+
+
+class Disclosure(StrictModel):
+    """Withhold every result inside the circuit when fewer than ``min_count`` rows contribute (or keys match)."""
+
+    min_count: Annotated[int, _between(0, 2 * MAX_CAPACITY)] = 0
+
+
+class Job(StrictModel):
+    name: JobName
+    version: Annotated[int, _between(1, 2**31 - 1)]
+    description: str | None = None
+
+
+class StatisticParameters(StrictModel):
+    """Base of every statistic's parameter model; subclasses fix ``name`` to a ``Literal``."""
+
+    name: str
+
+
+class SideColumns(StrictModel):
+    """A column named per party, when the two tables call it differently."""
+
+    garbler: Identifier
+    evaluator: Identifier
+
+
+ColumnPair = Identifier | SideColumns
+
+
+class Manifest(StrictModel):
+    """A validated manifest (build through ``load_manifest`` / ``parse_manifest``)."""
+
+    job: Job
+    parties: Parties
+    tables: Tables
+    statistic: StatisticParameters
+    outputs: Outputs
+    disclosure: Disclosure = Disclosure()
+    plugins: list[str] = []
+
+    def table(self, party: Any) -> Table:
+        from jointstat.circuit.model import Party
+
+        return self.tables.garbler if Party(party) == Party.GARBLER else self.tables.evaluator
+
+    def canonical(self) -> bytes:
+        return canonical_json(self.model_dump(mode="json", by_alias=True))
+
+
+# -- the dynamic model with the registered statistics ----------------------------------------------------------------
+
+_model_cache: dict[tuple[type[StatisticParameters], ...], type[Manifest]] = {}
+
+
+def manifest_model() -> type[Manifest]:
+    """The Manifest model whose ``statistic`` is the union of every registered statistic's parameters."""
+    from jointstat.circuit.library.registry import parameter_models
+
+    models = tuple(parameter_models())
+    if models not in _model_cache:
+        union: Any = models[0] if len(models) == 1 else Annotated[Union[models], Field(discriminator="name")]  # noqa: UP007
+        _model_cache[models] = create_model("Manifest", __base__=Manifest, statistic=(union, ...))
+    return _model_cache[models]
+
+
+def schema() -> dict[str, Any]:
+    """The JSON Schema of manifests with the statistics registered now."""
+    return manifest_model().model_json_schema(by_alias=True)
+
+
+# -- loading ------------------------------------------------------------------------------------------------------
+
+
+class _UniqueKeyLoader(yaml.SafeLoader):
+    pass
+
+
+def _mapping(loader: yaml.SafeLoader, node: yaml.MappingNode, deep: bool = False) -> dict[Any, Any]:
+    seen: set[Any] = set()
+    for key_node, _ in node.value:
+        key = loader.construct_object(key_node, deep=deep)
+        if key in seen:
+            mark = key_node.start_mark
+            raise yaml.constructor.ConstructorError(
+                None, None, f"key {key!r} appears twice (line {mark.line + 1})", mark
+            )
+        seen.add(key)
+    return loader.construct_mapping(node, deep=deep)
+
+
+_UniqueKeyLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _mapping)
+
+
+def _format_loc(loc: tuple[Any, ...], data: Any) -> str:
+    """('tables', 'evaluator', 'columns', 2, 'unsigned', 'width') → 'tables.evaluator.columns[2].width'.
+
+    Discriminator tags that pydantic puts in the location (the column type, the statistic name) are dropped.
+    """
+    out = ""
+    node = data
+    for item in loc:
+        if isinstance(item, int):
+            out += f"[{item}]"
+            node = node[item] if isinstance(node, list) and 0 <= item < len(node) else None
+            continue
+        if isinstance(node, dict) and item not in node and item in (node.get("type"), node.get("name")):
+            continue
+        if "[" in str(item) or "," in str(item):  # a union member's description, not a field
+            continue
+        out += ("." if out else "") + str(item)
+        node = node.get(item) if isinstance(node, dict) else None
+    return out
+
+
+def _message(err: dict[str, Any]) -> str:
+    kind = err["type"]
+    ctx = err.get("ctx") or {}
+    if kind == "missing":
+        return "required field is missing"
+    if kind == "extra_forbidden":
+        return "unknown field"
+    if kind == "union_tag_invalid":
+        expected = ctx.get("expected_tags", "")
+        return f"unknown {ctx.get('discriminator', 'tag').strip(chr(39))} {ctx.get('tag')!r}; expected one of {expected}"
+    if kind == "union_tag_not_found":
+        return f"missing the field {ctx.get('discriminator', '')} that says which kind this is"
+    msg = str(err["msg"])
+    for prefix in ("Value error, ", "Assertion failed, "):
+        if msg.startswith(prefix):
+            msg = msg[len(prefix) :]
+    return msg[:1].lower() + msg[1:]
+
+
+def load_plugins(paths: Iterable[str], base: Path | None, where: str = "plugins") -> list[Problem]:
+    """Import plugin files (relative to ``base``) once each; returns problems instead of raising."""
+    problems = []
+    for i, name in enumerate(paths):
+        path = Path(name) if Path(name).is_absolute() or base is None else base / name
+        if not path.is_file():
+            problems.append(Problem(f"{where}[{i}]", f"no such file: {path}"))
+            continue
+        try:
+            load_plugin(path)
+        except Exception as exc:  # a plugin's own error, reported where it is named
+            problems.append(Problem(f"{where}[{i}]", f"{path} failed to load: {type(exc).__name__}: {exc}"))
+    return problems
+
+
+_loaded_plugins: dict[Path, object] = {}
+
+
+def load_plugin(path: Path) -> None:
+    """Import one plugin file (which registers statistics as it is imported); a file is imported once."""
+    real = path.resolve()
+    if real in _loaded_plugins:
+        return
+    module_name = "jointstat_plugin_" + re.sub(r"\W", "_", real.stem) + f"_{abs(hash(str(real))) % 10**8}"
+    spec = importlib.util.spec_from_file_location(module_name, real)
+    if spec is None or spec.loader is None:
+        raise ImportError(f"cannot import {real}")
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[module_name] = module
+    spec.loader.exec_module(module)
+    _loaded_plugins[real] = module
+
+
+def parse_manifest(text: str, source: str = "<manifest>", base: Path | None = None) -> Manifest:
+    """Validate manifest text; raises ``ManifestError`` listing every problem with its field path."""
+    try:
+        data = yaml.load(text, Loader=_UniqueKeyLoader)
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f"line {mark.line + 1}, column {mark.column + 1}: " if mark is not None else ""
+        raise ManifestError(
+            source, [Problem("", f"not valid YAML: {where}{getattr(exc, 'problem', exc)}")]
+        ) from None
+    if not isinstance(data, dict):
+        raise ManifestError(source, [Problem("", "a manifest is a YAML mapping (job, parties, tables, …)")])
+    plugins = data.get("plugins", [])
+    if isinstance(plugins, list) and all(isinstance(p, str) for p in plugins):
+        problems = load_plugins(plugins, base)
+        if problems:
+            raise ManifestError(source, problems)
+    try:
+        manifest = manifest_model().model_validate(data)
+    except ValidationError as exc:
+        problems = [Problem(_format_loc(e["loc"], data), _message(e)) for e in exc.errors()]
+        raise ManifestError(source, problems) from None
+    problems = cross_check(manifest)
+    if problems:
+        raise ManifestError(source, problems)
+    return manifest
+
+
+def load_manifest(path: str | Path) -> Manifest:
+    """Read and validate a manifest file (plugins are resolved relative to it)."""
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ManifestError(str(p), [Problem("", f"cannot read the file: {exc}")]) from None
+    return parse_manifest(text, str(p), p.parent)
+
+
+def cross_check(manifest: Manifest) -> list[Problem]:
+    """Rules that span sections: the statistic's own checks, then the outputs against what it produces."""
+    from jointstat.circuit.library.registry import statistic_for
+
+    stat = statistic_for(manifest)
+    problems = list(stat.problems())
+    if problems:
+        return problems
+    known = {spec.name for spec in stat.outputs()}
+    for role in ("garbler", "evaluator"):
+        names = getattr(manifest.outputs, role)
+        for i, name in enumerate(names):
+            if name == "withheld":
+                problems.append(
+                    Problem(f"outputs.{role}[{i}]", "'withheld' is always delivered; do not list it")
+                )
+            elif name not in known:
+                problems.append(
+                    Problem(
+                        f"outputs.{role}[{i}]",
+                        f"{stat.name} has no output {name!r}; it has {', '.join(sorted(known))}",
+                    )
+                )
+            elif names.index(name) != i:
+                problems.append(Problem(f"outputs.{role}[{i}]", f"{name!r} is listed twice"))
+    if not manifest.outputs.garbler and not manifest.outputs.evaluator:
+        problems.append(Problem("outputs", "no party receives any output"))
+    return problems
+
+
+# -- canonical JSON (RFC 8785 style) -------------------------------------------------------------------------------
+
+
+def _number(x: float) -> str:
+    """An ECMAScript Number-to-String rendering of a finite float (RFC 8785 §3.2.2.3)."""
+    if not math.isfinite(x):
+        raise ValueError("canonical JSON has no NaN or infinity")
+    if x == 0:
+        return "0"
+    digits, exp = _shortest(abs(x))
+    sign = "-" if x < 0 else ""
+    k = len(digits)
+    n = exp + k  # the value is 0.digits × 10^n
+    if k <= n <= 21:
+        return sign + digits + "0" * (n - k)
+    if 0 < n <= 21:
+        return sign + digits[:n] + "." + digits[n:]
+    if -6 < n <= 0:
+        return sign + "0." + "0" * (-n) + digits
+    e = n - 1
+    mant = digits[0] + ("." + digits[1:] if k > 1 else "")
+    return f"{sign}{mant}e{'+' if e > 0 else '-'}{abs(e)}"
+
+
+def _shortest(x: float) -> tuple[str, int]:
+    """(digits, exponent) with x = int(digits) × 10^exponent, digits the shortest round-trip form."""
+    mant, _, e = repr(x).partition("e")
+    exp = int(e) if e else 0
+    whole, _, fraction = mant.partition(".")
+    digits = (whole + fraction).lstrip("0")
+    exp -= len(fraction)
+    stripped = digits.rstrip("0")
+    exp += len(digits) - len(stripped)
+    return stripped or "0", exp
+
+
+def canonical_json(value: Any) -> bytes:
+    """RFC 8785 style: keys sorted (by UTF-16 code units), no whitespace, UTF-8, ECMAScript numbers."""
+
+    def enc(v: Any) -> str:
+        if v is None:
+            return "null"
+        if v is True:
+            return "true"
+        if v is False:
+            return "false"
+        if isinstance(v, int):
+            return str(v)
+        if isinstance(v, float):
+            return _number(v)
+        if isinstance(v, str):
+            return json.dumps(v, ensure_ascii=False)
+        if isinstance(v, list | tuple):
+            return "[" + ",".join(enc(x) for x in v) + "]"
+        if isinstance(v, dict):
+            items = sorted(v.items(), key=lambda kv: str(kv[0]).encode("utf-16-be"))
+            return (
+                "{" + ",".join(json.dumps(str(k), ensure_ascii=False) + ":" + enc(x) for k, x in items) + "}"
+            )
+        raise TypeError(f"canonical JSON: cannot encode {type(v).__name__}")
+
+    return enc(value).encode("utf-8")
