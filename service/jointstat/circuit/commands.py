@@ -1,0 +1,153 @@
+"""``jointstat manifest schema|check|digest`` and ``jointstat plan``."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+
+
+def _load(path: str, plugins: list[str] | None = None):  # type: ignore[no-untyped-def]
+    from jointstat.circuit.manifest import ManifestError, load_manifest, load_plugins
+    from jointstat.cli import UserError
+
+    if plugins:
+        problems = load_plugins(plugins, Path.cwd(), where="--plugin")
+        if problems:
+            raise UserError("\n".join(str(p) for p in problems))
+    try:
+        return load_manifest(path)
+    except ManifestError as exc:
+        raise UserError(str(exc)) from None
+
+
+def _compile(path: str):  # type: ignore[no-untyped-def]
+    from jointstat.circuit.compile import compile_manifest
+
+    return compile_manifest(_load(path))
+
+
+def _schema(args: argparse.Namespace) -> int:
+    from jointstat.circuit.manifest import load_plugins, schema
+    from jointstat.cli import UserError
+
+    problems = load_plugins(args.plugin or [], Path.cwd(), where="--plugin")
+    if problems:
+        raise UserError("\n".join(str(p) for p in problems))
+    json.dump(schema(), sys.stdout, indent=2, sort_keys=True)
+    sys.stdout.write("\n")
+    return 0
+
+
+def _check(args: argparse.Namespace) -> int:
+    from jointstat.circuit.inputs import expected_false_matches
+
+    compiled = _compile(args.file)
+    m = compiled.manifest
+    c = compiled.circuit
+    print(f"{args.file}: ok — job {m.job.name} version {m.job.version}, statistic {compiled.statistic.name}")
+    print(f"  circuit: {c.and_count:,} AND gates, {c.n_gates:,} gates")
+    for role in ("garbler", "evaluator"):
+        names = getattr(m.outputs, role)
+        print(
+            f"  {role} ({getattr(m.parties, role).name}) receives: {', '.join(['withheld', *names]) if names else '—'}"
+        )
+    if m.disclosure.min_count:
+        print(f"  disclosure: every result withheld below a count of {m.disclosure.min_count}")
+    keys = []
+    for party, layout in compiled.inputs.items():
+        table = m.table(party)
+        for name in layout.columns:
+            col = table.column(name)
+            if col is not None and col.type == "key":  # type: ignore[attr-defined]
+                keys.append((col.bits, table.capacity))
+    if len(keys) == 2:
+        fm = expected_false_matches(keys[0][1], keys[1][1], keys[0][0])
+        print(f"  key hashes: {keys[0][0]} bits; at full capacity about {fm:.2g} false matches expected")
+    return 0
+
+
+def _digest(args: argparse.Namespace) -> int:
+    print(_compile(args.file).digest)
+    return 0
+
+
+def _plan(args: argparse.Namespace) -> int:
+    from jointstat.circuit.plan import parse_rate, plan
+    from jointstat.cli import UserError
+
+    try:
+        rate = parse_rate(args.bandwidth)
+    except ValueError as exc:
+        raise UserError(str(exc)) from None
+    figures = plan(_compile(args.file), rate)
+    if args.json:
+        json.dump(figures, sys.stdout)
+        sys.stdout.write("\n")
+        return 0
+    print(
+        f"plan for {args.file} (job {figures['job']}, statistic {figures['statistic']}) at {args.bandwidth}"
+    )
+    rows = [
+        ("AND gates", f"{figures['and_gates']:,}"),
+        ("XOR/NOT gates (free)", f"{figures['xor_gates']:,}"),
+        ("layers", f"{figures['layers']:,}"),
+        ("oblivious transfers", f"{figures['ot_count']:,}"),
+        ("garbler → evaluator", _size(int(figures["bytes_garbler_to_evaluator"]))),  # type: ignore[arg-type]
+        ("evaluator → garbler", _size(int(figures["bytes_evaluator_to_garbler"]))),  # type: ignore[arg-type]
+        ("garbling speed here", f"{figures['garble_and_per_s']:,} AND/s"),
+        ("estimated time", f"{figures['est_seconds']:,} s"),
+    ]
+    width = max(len(k) for k, _ in rows)
+    for key, value in rows:
+        print(f"  {key:<{width}}  {value}")
+    print(f"  assumes: {figures['assumes']}")
+    return 0
+
+
+def _size(n: int) -> str:
+    for unit, scale in (("GiB", 2**30), ("MiB", 2**20), ("KiB", 2**10)):
+        if n >= scale:
+            return f"{n / scale:,.1f} {unit} ({n:,} B)"
+    return f"{n:,} B"
+
+
+def _bench_join(args: argparse.Namespace) -> int:
+    from jointstat.bench.join import run
+
+    return run(rows=args.rows, as_json=args.json)
+
+
+def add_commands(sub: argparse._SubParsersAction) -> None:
+    manifest = sub.add_parser("manifest", help="check, pin and describe job manifests")
+    which = manifest.add_subparsers(dest="manifest_command", required=True, metavar="ACTION")
+    schema = which.add_parser("schema", help="print the manifest JSON Schema")
+    schema.add_argument("--plugin", action="append", help="a Python file registering custom statistics")
+    schema.set_defaults(handler=_schema)
+    check = which.add_parser("check", help="validate a manifest and compile its circuit")
+    check.add_argument("file")
+    check.set_defaults(handler=_check)
+    digest = which.add_parser("digest", help="print the digest pinning the manifest and its compiled circuit")
+    digest.add_argument("file")
+    digest.set_defaults(handler=_digest)
+
+    plan = sub.add_parser("plan", help="gate counts, traffic and time estimate of a manifest's job")
+    plan.add_argument("file")
+    plan.add_argument("--bandwidth", default="100Mbit/s", help="link rate, e.g. 100Mbit/s, 1Gbit/s, 50MB/s")
+    plan.add_argument("--json", action="store_true", help="print one JSON object")
+    plan.set_defaults(handler=_plan)
+
+    # ``jointstat bench join``: added to the bench command's own subcommands when that module came first.
+    bench = sub.choices.get("bench")
+    if bench is not None:
+        for action in bench._actions:
+            if isinstance(action, argparse._SubParsersAction):
+                add_bench_command(action)
+
+
+def add_bench_command(which: argparse._SubParsersAction) -> None:
+    join = which.add_parser("join", help="build time, memory and AND count of a keyed-join sum circuit")
+    join.add_argument("--rows", type=int, default=1 << 16, help="rows per party (default 2^16)")
+    join.add_argument("--json", action="store_true", help="print one JSON object")
+    join.set_defaults(handler=_bench_join)
