@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import asyncio
 import threading
+from collections.abc import Callable
 
 import grpc
 
@@ -105,10 +106,15 @@ class ClientStream:
 
 
 class ServerStream:
-    """``FrameStream`` over the server-side context of a stream-stream call."""
+    """``FrameStream`` over the server-side context of a stream-stream call.
 
-    def __init__(self, context: grpc.aio.ServicerContext) -> None:
+    Only gRPC cancels a handler's task: when the peer cancels or drops the call, or when the server stops.
+    ``stopping`` tells the two apart.
+    """
+
+    def __init__(self, context: grpc.aio.ServicerContext, stopping: Callable[[], bool]) -> None:
         self._context = context
+        self._stopping = stopping
 
     async def read(self) -> bytes | None:
         try:
@@ -138,4 +144,4 @@ class ServerStream:
         """Nothing to do: the call ends when the handler returns."""
 
     def peer_gone(self) -> bool:
-        return self._context.cancelled()
+        return self._context.cancelled() or not self._stopping()

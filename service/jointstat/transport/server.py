@@ -59,6 +59,7 @@ class SessionServer:
         self._expected: dict[bytes, _Expected] = {}
         self._server: grpc.aio.Server | None = None
         self._port: int | None = None
+        self._stopping = False
         self.refused: list[str] = []  # why streams were refused, for the node's log (no secrets)
 
     @property
@@ -86,6 +87,7 @@ class SessionServer:
 
     async def stop(self, grace: float | None = None) -> None:
         """Stop serving; running sessions get ``grace`` seconds, then their streams are cancelled."""
+        self._stopping = True
         if self._server is not None:
             await self._server.stop(grace)
             self._server = None
@@ -134,7 +136,7 @@ class SessionServer:
             self.refused.append(str(exc))
             await context.abort(grpc.StatusCode.PERMISSION_DENIED, str(exc))
             return
-        stream = ServerStream(context)
+        stream = ServerStream(context, lambda: self._stopping)
         try:
             first = await asyncio.wait_for(stream.read(), timeout=self._limits.idle_timeout_s)
         except (TimeoutError, StreamLost):

@@ -1,0 +1,134 @@
+"""Frames and the transcript: encoding round trips, size limits, chunking, and the per-direction transcript digest."""
+
+from __future__ import annotations
+
+import hashlib
+
+import pytest
+from hypothesis import assume, given
+from hypothesis import strategies as st
+from jointstat.circuit.model import Party
+from jointstat.protocol import frames as fr
+from jointstat.protocol.frames import AbortReason, ProtocolError, Transcript
+
+SID = b"transcript-test"
+
+
+def test_a_hello_round_trips_with_every_field() -> None:
+    data = fr.hello_frame(
+        party=Party.EVALUATOR, session_id=SID, manifest_digest=bytes(range(32)), circuit_digest=bytes(32)
+    )
+    kind, frame = fr.decode(data)
+    assert kind == fr.HELLO
+    assert frame.hello.protocol_version == fr.PROTOCOL_VERSION == 1
+    assert frame.hello.session_id == SID and frame.hello.manifest_digest == bytes(range(32))
+    assert frame.hello.role == fr.role_to_wire(Party.EVALUATOR)
+
+
+@given(st.sampled_from(sorted(fr.PAYLOAD_FIELD)), st.binary(max_size=300))
+def test_payload_frames_round_trip(kind: str, payload: bytes) -> None:
+    got_kind, frame = fr.decode(fr.payload_frame(kind, payload))
+    assert got_kind == kind and fr.payload_of(kind, frame) == payload
+
+
+@given(st.integers(0, 5000), st.integers(1, 700))
+def test_chunking_splits_a_payload_in_order_into_bounded_frames(size: int, chunk: int) -> None:
+    payload = hashlib.shake_128(size.to_bytes(4, "big")).digest(size) if size else b""
+    frames = fr.chunked_frames(fr.GARBLER_OUTPUT_LABELS, payload, chunk)
+    assert len(frames) == -(-size // chunk)
+    parts = [fr.payload_of(fr.GARBLER_OUTPUT_LABELS, fr.decode(f)[1]) for f in frames]
+    assert all(0 < len(p) <= chunk for p in parts)
+    assert b"".join(parts) == payload
+
+
+def test_the_largest_payload_fits_in_a_four_mebibyte_frame() -> None:
+    assert (
+        len(fr.payload_frame(fr.GARBLED_TABLES, bytes(fr.MAX_PAYLOAD_BYTES))) <= fr.MAX_FRAME_BYTES == 4 << 20
+    )
+
+
+def test_an_outgoing_frame_over_the_limit_is_refused() -> None:
+    with pytest.raises(ProtocolError, match="exceeds"):
+        fr.payload_frame(fr.GARBLED_TABLES, bytes(fr.MAX_FRAME_BYTES))
+
+
+def test_an_abort_carries_its_reason_and_a_bounded_message() -> None:
+    info = fr.abort_of(fr.decode(fr.abort_frame(AbortReason.BAD_SIGNATURE, "x" * 5000))[1])
+    assert info.reason == AbortReason.BAD_SIGNATURE and info.by_peer
+    assert len(info.message) == fr.MAX_MESSAGE_CHARS
+
+
+def test_an_abort_with_a_reason_code_from_a_newer_version_reads_as_unspecified() -> None:
+    _, frame = fr.decode(fr.abort_frame(AbortReason.INTERNAL, "m"))
+    frame.abort.reason = 99
+    assert fr.abort_of(fr.decode(fr.encode(frame))[1]).reason == AbortReason.UNSPECIFIED
+
+
+frames_strategy = st.lists(
+    st.tuples(st.sampled_from([Party.GARBLER, Party.EVALUATOR]), st.binary(min_size=1, max_size=40)),
+    max_size=12,
+)
+
+
+def _transcripts(frames: list[tuple[Party, bytes]]) -> tuple[Transcript, Transcript]:
+    g, e = Transcript(Party.GARBLER, SID), Transcript(Party.EVALUATOR, SID)
+    for sender, data in frames:
+        if sender == Party.GARBLER:
+            g.sent(fr.BASE_OT, data)
+            e.received(fr.BASE_OT, data)
+        else:
+            e.sent(fr.BASE_OT, data)
+            g.received(fr.BASE_OT, data)
+    return g, e
+
+
+@given(frames_strategy, st.randoms())
+def test_both_sides_agree_whatever_the_interleaving_of_the_two_directions(frames, rnd) -> None:
+    g, e = _transcripts(frames)
+    # The evaluator sees the same per-direction orders, interleaved differently.
+    from_g = [f for f in frames if f[0] == Party.GARBLER]
+    from_e = [f for f in frames if f[0] == Party.EVALUATOR]
+    merged = []
+    while from_g or from_e:
+        source = from_g if from_g and (not from_e or rnd.random() < 0.5) else from_e
+        merged.append(source.pop(0))
+    _, e2 = _transcripts(merged)
+    assert g.digest() == e.digest() == e2.digest()
+
+
+@given(frames_strategy.filter(lambda f: len(f) >= 2))
+def test_reordering_frames_of_one_direction_changes_the_digest(frames) -> None:
+    sender = frames[0][0]
+    own = [i for i, f in enumerate(frames) if f[0] == sender]
+    assume(len(own) >= 2 and frames[own[0]][1] != frames[own[1]][1])
+    swapped = list(frames)
+    swapped[own[0]], swapped[own[1]] = swapped[own[1]], swapped[own[0]]
+    assert _transcripts(frames)[0].digest() != _transcripts(swapped)[0].digest()
+
+
+@given(frames_strategy.filter(bool), st.integers(0, 100))
+def test_changing_one_byte_of_one_frame_changes_the_digest(frames, where) -> None:
+    i = where % len(frames)
+    sender, data = frames[i]
+    changed = list(frames)
+    changed[i] = (sender, bytes([data[0] ^ 1]) + data[1:])
+    assert _transcripts(frames)[0].digest() != _transcripts(changed)[0].digest()
+
+
+def test_splitting_a_frame_differently_changes_the_digest() -> None:
+    whole = [(Party.GARBLER, b"abcd")]
+    split = [(Party.GARBLER, b"ab"), (Party.GARBLER, b"cd")]
+    assert _transcripts(whole)[0].digest() != _transcripts(split)[0].digest()  # lengths are hashed too
+
+
+def test_the_digest_binds_the_session_id() -> None:
+    a, b = Transcript(Party.GARBLER, b"one"), Transcript(Party.GARBLER, b"two")
+    assert a.digest() != b.digest()
+
+
+def test_finish_and_abort_frames_are_not_part_of_the_transcript() -> None:
+    t, u = Transcript(Party.GARBLER, SID), Transcript(Party.GARBLER, SID)
+    t.sent(fr.FINISH, b"finish bytes")
+    t.received(fr.ABORT, b"abort bytes")
+    assert t.digest() == u.digest()
+    assert (t.frames_sent, t.frames_received) == (1, 1)
