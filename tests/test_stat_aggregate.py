@@ -1,0 +1,133 @@
+"""Count, sum, mean and variance over both parties' rows, against the statistics module and numpy."""
+
+from __future__ import annotations
+
+import statistics
+from fractions import Fraction
+from functools import cache
+
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from jointstat.circuit.compile import CompiledStatistic, compile_manifest
+from jointstat.circuit.model import Party
+
+from tests.test_stat_support import manifest, records, run_garbled, run_plain, run_plain_raw, table
+
+CAP_G, CAP_E = 5, 4
+G_COL = {"name": "x", "type": "fixed", "width": 10, "fraction_bits": 2}  # signed, −128 … 127.75
+E_COL = {"name": "y", "type": "unsigned", "width": 7}
+
+
+@cache
+def variance_circuit(sample: bool = False, min_count: int = 0) -> CompiledStatistic:
+    return compile_manifest(
+        manifest(
+            {"garbler": table(CAP_G, G_COL), "evaluator": table(CAP_E, E_COL)},
+            {
+                "name": "variance",
+                "column": {"garbler": "x", "evaluator": "y"},
+                "precision_bits": 5,
+                "sample": sample,
+            },
+            {"garbler": ["mean"], "evaluator": ["count", "sum", "mean", "variance"]},
+            disclosure={"min_count": min_count},
+        )
+    )
+
+
+def truncate(value: Fraction, frac: int) -> int:
+    """value · 2^frac rounded toward zero."""
+    scaled = value * 2**frac
+    return int(scaled) if scaled >= 0 else -int(-scaled)
+
+
+g_vals = st.lists(st.integers(-512, 511), max_size=CAP_G)  # scaled by 4
+e_vals = st.lists(st.integers(0, 127), max_size=CAP_E)
+
+
+@settings(max_examples=30)
+@given(g_vals, e_vals, st.booleans())
+def test_aggregates_match_the_statistics_module(g: list[int], e: list[int], sample: bool) -> None:
+    c = variance_circuit(sample)
+    union = [Fraction(v, 4) for v in g] + [Fraction(v) for v in e]
+    raw = run_plain_raw(c, records("g", x=g), records("e", y=e))[Party.EVALUATOR]
+    if len(union) < (2 if sample else 1):
+        assert raw["withheld"] is True and raw["sum"] == 0  # gated to zero inside the circuit
+        return
+    assert raw["withheld"] is False and raw["count"] == len(union)
+    assert Fraction(raw["sum"], 4) == sum(union)
+    assert raw["mean"] == truncate(statistics.mean(union), 2 + 5)
+    var = statistics.variance(union) if sample else statistics.pvariance(union)
+    assert raw["variance"] == truncate(var, 4 + 5)
+
+
+def test_decoded_values_are_numbers_on_the_output_scale() -> None:
+    got = run_plain(variance_circuit(), records("g", x=[-512, 511]), records("e", y=[127, 0]))
+    assert got[Party.EVALUATOR] == {
+        "withheld": False,
+        "count": 4,
+        "sum": -128 + 127.75 + 127,
+        "mean": 31.6875,  # 126.75 / 4 = 31.6875 exactly
+        "variance": 11204.16796875,  # numpy.var([-128, 127.75, 127, 0]), exact in binary
+    }
+    assert got[Party.GARBLER] == {"withheld": False, "mean": 31.6875}
+
+
+def test_all_rows_padding_withholds_the_mean() -> None:
+    got = run_plain(variance_circuit(), records("g", x=[]), records("e", y=[]))
+    assert got[Party.EVALUATOR] == {
+        "withheld": True,
+        "count": None,
+        "sum": None,
+        "mean": None,
+        "variance": None,
+    }
+
+
+def test_the_disclosure_rule_counts_contributing_rows() -> None:
+    c = variance_circuit(min_count=3)
+    assert run_plain(c, records("g", x=[4]), records("e", y=[1]))[Party.EVALUATOR]["withheld"] is True
+    assert run_plain(c, records("g", x=[4]), records("e", y=[1, 2]))[Party.EVALUATOR]["count"] == 3
+
+
+def test_sum_and_count_of_extreme_values_do_not_overflow() -> None:
+    c = compile_manifest(
+        manifest(
+            {
+                "garbler": table(3, {"name": "v", "type": "signed", "width": 64}),
+                "evaluator": table(3, {"name": "v", "type": "unsigned", "width": 64}),
+            },
+            {"name": "sum", "column": "v"},
+            {"evaluator": ["count", "sum"]},
+        )
+    )
+    g = [-(2**63)] * 3
+    e = [2**64 - 1] * 3
+    got = run_plain(c, records("g", v=g), records("e", v=e))[Party.EVALUATOR]
+    assert got == {"withheld": False, "count": 6, "sum": sum(g) + sum(e)}
+
+
+def test_count_where_a_boolean_column_is_true() -> None:
+    c = compile_manifest(
+        manifest(
+            {
+                "garbler": table(4, {"name": "member", "type": "boolean"}),
+                "evaluator": table(
+                    4, {"name": "member", "type": "boolean"}, {"name": "n", "type": "unsigned", "width": 3}
+                ),
+            },
+            {"name": "count", "where": "member"},
+            {"garbler": ["count"]},
+        )
+    )
+    got = run_plain(c, records("g", member=[1, 0, 1]), records("e", member=[1, 1, 0, 1]))
+    assert got[Party.GARBLER] == {"withheld": False, "count": 5}
+    assert [f.name for f in c.inputs[Party.EVALUATOR].fields] == [
+        "valid",
+        "member",
+    ]  # unread columns are no input
+
+
+def test_a_garbled_run_gives_the_clear_result() -> None:
+    g, e = records("g", x=[-3, 17, 400]), records("e", y=[5, 99])
+    assert run_garbled(variance_circuit(), g, e) == run_plain(variance_circuit(), g, e)
