@@ -361,6 +361,14 @@ def _format_loc(loc: tuple[Any, ...], data: Any) -> str:
     return out
 
 
+def _error_path(err: dict[str, Any], data: Any) -> str:
+    path = _format_loc(err["loc"], data)
+    if err["type"] in ("union_tag_invalid", "union_tag_not_found"):  # the error is about the tag field itself
+        tag = str((err.get("ctx") or {}).get("discriminator", "")).strip("'")
+        path = f"{path}.{tag}" if path else tag
+    return path
+
+
 def _message(err: dict[str, Any]) -> str:
     kind = err["type"]
     ctx = err.get("ctx") or {}
@@ -433,7 +441,7 @@ def parse_manifest(text: str, source: str = "<manifest>", base: Path | None = No
     try:
         manifest = manifest_model().model_validate(data)
     except ValidationError as exc:
-        problems = [Problem(_format_loc(e["loc"], data), _message(e)) for e in exc.errors()]
+        problems = [Problem(_error_path(e, data), _message(e)) for e in exc.errors()]
         raise ManifestError(source, problems) from None
     problems = cross_check(manifest)
     if problems:

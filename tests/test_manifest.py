@@ -1,0 +1,172 @@
+"""The manifest: validation with field-path errors, the JSON Schema, canonical JSON and digest stability."""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+import yaml
+from jointstat.circuit.compile import compile_manifest
+from jointstat.circuit.manifest import ManifestError, canonical_json, load_manifest, parse_manifest, schema
+
+ROOT = Path(__file__).resolve().parents[1]
+CONFIGS = sorted((ROOT / "configs").glob("*/manifest.yaml"))
+JOIN = ROOT / "configs" / "shared-customers" / "manifest.yaml"
+
+
+def base() -> dict:
+    return yaml.safe_load(JOIN.read_text())
+
+
+def problems_of(data: dict) -> list[str]:
+    with pytest.raises(ManifestError) as info:
+        parse_manifest(yaml.safe_dump(data, sort_keys=False), "m.yaml")
+    return [str(p) for p in info.value.problems]
+
+
+def test_every_example_manifest_loads_and_names_its_statistic() -> None:
+    assert len(CONFIGS) >= 8
+    for path in CONFIGS:
+        assert "statistic:" in path.read_text()
+        m = load_manifest(path)
+        assert m.statistic.name
+
+
+def test_a_width_out_of_range_is_named_by_its_field_path() -> None:
+    data = base()
+    data["tables"]["evaluator"]["columns"][1]["width"] = 65
+    assert problems_of(data) == ["tables.evaluator.columns[1].width: must be between 2 and 64"]
+    data["tables"]["evaluator"]["columns"][1] = {"name": "n", "type": "unsigned", "width": 0}
+    assert problems_of(data) == ["tables.evaluator.columns[1].width: must be between 1 and 64"]
+
+
+@pytest.mark.parametrize(
+    ("change", "expected"),
+    [
+        (
+            lambda d: d["tables"]["garbler"].update(capacity=0),
+            "tables.garbler.capacity: must be between 1 and",
+        ),
+        (lambda d: d["tables"]["garbler"].update(colums=[]), "tables.garbler.colums: unknown field"),
+        (lambda d: d.pop("parties"), "parties: required field is missing"),
+        (
+            lambda d: d["statistic"].update(name="median_of_means"),
+            "statistic.name: unknown name 'median_of_means'",
+        ),
+        (lambda d: d["statistic"].update(key="phone"), "statistic.key: tables.garbler has no column 'phone'"),
+        (
+            lambda d: d["outputs"].update(garbler=["spend"]),
+            "outputs.garbler[0]: keyed_join has no output 'spend'",
+        ),
+        (
+            lambda d: d["outputs"].update(garbler=["withheld"]),
+            "outputs.garbler[0]: 'withheld' is always delivered",
+        ),
+        (
+            lambda d: d["tables"]["garbler"]["columns"][0].update(type="text"),
+            "tables.garbler.columns[0].type: unknown",
+        ),
+        (
+            lambda d: d["tables"]["evaluator"]["columns"][1].update(fraction_bits=24),
+            "tables.evaluator.columns[1]: fraction_bits (24) must be less than width (24)",
+        ),
+        (
+            lambda d: d["tables"]["evaluator"]["columns"].append({"name": "spend", "type": "boolean"}),
+            "tables.evaluator: columns[2].name: column 'spend' is also columns[1]",
+        ),
+        (lambda d: d["job"].update(version="1"), "job.version: input should be a valid integer"),
+        (lambda d: d["job"].update(name="Shared Customers"), "job.name: must be lower-case letters"),
+        (
+            lambda d: d["parties"]["evaluator"].update(name="Northfield Grocers"),
+            "parties: the garbler and the",
+        ),
+        (
+            lambda d: d["statistic"].update(threshold="high"),
+            "statistic.threshold: input should be a valid number",
+        ),
+        (
+            lambda d: d.update(outputs={"garbler": [], "evaluator": []}),
+            "outputs: no party receives any output",
+        ),
+    ],
+)
+def test_errors_name_the_field_and_say_what_is_wrong(change: object, expected: str) -> None:
+    data = base()
+    change(data)  # type: ignore[operator]
+    found = problems_of(data)
+    assert any(p.startswith(expected) for p in found), found
+
+
+def test_a_key_given_twice_is_an_error_not_silently_dropped() -> None:
+    text = JOIN.read_text().replace("  version: 1\n", "  version: 1\n  version: 2\n", 1)
+    with pytest.raises(ManifestError, match="key 'version' appears twice"):
+        parse_manifest(text, "m.yaml")
+    with pytest.raises(ManifestError, match="not valid YAML: line"):
+        parse_manifest("job: [unclosed", "m.yaml")
+
+
+def test_the_schema_is_json_schema_naming_every_statistic() -> None:
+    s = schema()
+    text = json.dumps(s)
+    for name in ("sum", "count", "mean", "variance", "quantile", "keyed_join", "compare", "histogram"):
+        assert f'"{name}"' in text
+    assert s["type"] == "object" and "statistic" in s["required"]
+
+
+def test_canonical_json_sorts_keys_without_whitespace_in_utf8() -> None:
+    assert canonical_json({"b": [1, True, None], "a": "é\n"}) == '{"a":"é\\n","b":[1,true,null]}'.encode()
+    # Number forms of RFC 8785 §3.2.2.3 (ECMAScript Number.prototype.toString), values from memory.
+    cases = {
+        0.0: "0",
+        -0.0: "0",
+        50.0: "50",
+        4.5: "4.5",
+        0.002: "0.002",
+        1e-7: "1e-7",
+        1e21: "1e+21",
+        1e20: "100000000000000000000",
+        333333333.3333333: "333333333.3333333",
+        -1.5e-10: "-1.5e-10",
+    }
+    for value, text in cases.items():
+        assert canonical_json(value) == text.encode(), value
+
+
+def test_layout_comments_and_key_order_do_not_change_the_digest(tmp_path: Path) -> None:
+    data = base()
+    reordered = dict(reversed(list(data.items())))
+    other = tmp_path / "m.yaml"
+    other.write_text(
+        "# the same job, written differently\n" + yaml.safe_dump(reordered, default_flow_style=True)
+    )
+    a, b = compile_manifest(load_manifest(JOIN)), compile_manifest(load_manifest(other))
+    assert a.digest == b.digest
+    data["tables"]["garbler"]["capacity"] = 17
+    changed = tmp_path / "c.yaml"
+    changed.write_text(yaml.safe_dump(data))
+    assert compile_manifest(load_manifest(changed)).digest != a.digest
+
+
+def test_the_digest_of_an_example_never_changes() -> None:
+    # Pinned value, computed by this project when manifest digests v1 were defined: a change to the canonical form,
+    # the statistic library or the builder's gate order changes every agreed digest, so it must be deliberate.
+    assert compile_manifest(load_manifest(JOIN)).digest == PINNED_JOIN_DIGEST
+
+
+PINNED_JOIN_DIGEST = "84ace8474d74a8d655815debad6ecd1a44dfceecca1308fb9bf11a8e0f9f8fa2"
+
+
+def test_the_digest_is_the_same_in_another_process_with_another_hash_seed() -> None:
+    env = {**os.environ, "PYTHONHASHSEED": "12345"}
+    out = subprocess.run(
+        [sys.executable, "-m", "jointstat.cli", "manifest", "digest", str(JOIN)],
+        capture_output=True,
+        text=True,
+        env=env,
+        check=True,
+    )
+    assert out.stdout.strip() == PINNED_JOIN_DIGEST
