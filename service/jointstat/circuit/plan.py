@@ -128,7 +128,7 @@ def plan(compiled: CompiledStatistic, bandwidth: float, speed: Speed | None = No
         "ot_count": ot_count,
         "bytes_garbler_to_evaluator": g_to_e,
         "bytes_evaluator_to_garbler": e_to_g,
-        "est_seconds": round(table_phase + rest + schedule_s, 3),
+        "est_seconds": round(table_phase + rest + schedule_s, 6),
         "bandwidth_bytes_per_s": bandwidth,
         "garble_and_per_s": round(sp.garble_and_per_s),
         "evaluate_and_per_s": round(sp.evaluate_and_per_s),

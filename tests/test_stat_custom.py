@@ -1,0 +1,200 @@
+"""Custom statistics registered from Python, and every example in configs/ run end to end on its CSV files."""
+
+from __future__ import annotations
+
+import json
+import statistics
+from pathlib import Path
+from typing import Literal
+
+import numpy as np
+import pytest
+from jointstat.circuit.builder import Builder
+from jointstat.circuit.compile import compile_manifest
+from jointstat.circuit.inputs import read_csv
+from jointstat.circuit.library import blocks
+from jointstat.circuit.library.registry import (
+    BuildContext,
+    OutputSpec,
+    Statistic,
+    StatisticResult,
+    TableNeeds,
+    register_statistic,
+    registered,
+)
+from jointstat.circuit.manifest import Problem, StatisticParameters, load_manifest
+from jointstat.circuit.model import Party
+from jointstat.cli import main
+
+from tests.test_stat_support import SECRET, manifest, records, run_garbled, run_plain, table
+
+ROOT = Path(__file__).resolve().parents[1]
+CONFIGS = ROOT / "configs"
+
+
+class WeightedParameters(StatisticParameters):
+    name: Literal["test_weighted_total"]
+    weight: int
+
+
+@register_statistic
+class WeightedTotal(Statistic):
+    """A public weight times the garbler's total plus the evaluator's total (test-only custom statistic)."""
+
+    name = "test_weighted_total"
+    Parameters = WeightedParameters
+
+    def problems(self) -> list[Problem]:
+        return [] if self.params.weight > 0 else [Problem("statistic.weight", "must be positive")]  # type: ignore[attr-defined]
+
+    def needs(self) -> dict[Party, TableNeeds]:
+        return {p: TableNeeds(("v",)) for p in Party}
+
+    def outputs(self) -> list[OutputSpec]:
+        return [OutputSpec("total", 16)]
+
+    def build(self, ctx: BuildContext) -> StatisticResult:
+        bld = ctx.builder
+        sums = []
+        for p in Party:
+            t = ctx.table(p)
+            sums.append(Builder.extend(blocks.tree_sum(bld, bld.and_(t.bits("v"), t.valid[:, None])), 16))
+        w = self.params.weight  # type: ignore[attr-defined]
+        weighted = blocks.multiply_full(bld, sums[0], bld.constant_word(w, w.bit_length()))[:16]
+        return StatisticResult({"total": bld.add(weighted, sums[1])})
+
+
+def test_a_custom_statistic_is_used_by_name_from_a_manifest() -> None:
+    assert "test_weighted_total" in registered()
+    col = {"name": "v", "type": "unsigned", "width": 6}
+    c = compile_manifest(
+        manifest(
+            {"garbler": table(3, col), "evaluator": table(3, col)},
+            {"name": "test_weighted_total", "weight": 3},
+            {"evaluator": ["total"]},
+        )
+    )
+    got = run_plain(c, records("g", v=[1, 2, 3]), records("e", v=[10, 20]))
+    assert got[Party.EVALUATOR] == {"withheld": False, "total": 3 * 6 + 30}
+    assert run_garbled(c, records("g", v=[63]), records("e", v=[])) == {
+        Party.GARBLER: {},
+        Party.EVALUATOR: {"withheld": False, "total": 189},
+    }
+
+
+def test_a_custom_statistics_own_checks_name_their_field() -> None:
+    col = {"name": "v", "type": "unsigned", "width": 6}
+    with pytest.raises(ValueError, match=r"statistic\.weight: must be positive"):
+        manifest(
+            {"garbler": table(3, col), "evaluator": table(3, col)},
+            {"name": "test_weighted_total", "weight": 0},
+            {"evaluator": ["total"]},
+        )
+
+
+def load_example(folder: str) -> tuple[object, dict[Party, object]]:
+    m = load_manifest(CONFIGS / folder / "manifest.yaml")
+    compiled = compile_manifest(m)
+    recs = {}
+    for party, name in ((Party.GARBLER, "garbler.csv"), (Party.EVALUATOR, "evaluator.csv")):
+        recs[party] = read_csv(
+            CONFIGS / folder / name, m.table(party), columns=compiled.inputs[party].columns, key_secret=SECRET
+        )
+    return compiled, recs
+
+
+def run_example(folder: str) -> dict[Party, dict[str, object]]:
+    compiled, recs = load_example(folder)
+    return run_plain(compiled, recs[Party.GARBLER], recs[Party.EVALUATOR])  # type: ignore[arg-type]
+
+
+def csv_column(folder: str, party: str, column: str) -> list[str]:
+    lines = (CONFIGS / folder / f"{party}.csv").read_text().splitlines()
+    idx = lines[0].split(",").index(column)
+    return [line.split(",")[idx] for line in lines[1:] if line]
+
+
+def test_the_custom_spread_example_runs_on_its_csv_files() -> None:
+    got = run_example("delivery-spread")
+    minutes = [
+        int(v)
+        for v in csv_column("delivery-spread", "garbler", "minutes")
+        + csv_column("delivery-spread", "evaluator", "minutes")
+    ]
+    assert got[Party.EVALUATOR] == {
+        "withheld": False,
+        "spread": max(minutes) - min(minutes),
+        "count": len(minutes),
+    }
+
+
+def test_the_examples_give_the_figures_computed_in_the_clear() -> None:
+    waits = [float(v) for v in csv_column("pooled-wait-times", "garbler", "wait_minutes")] + [
+        float(v) for v in csv_column("pooled-wait-times", "evaluator", "wait")
+    ]
+    got = run_example("pooled-wait-times")[Party.EVALUATOR]
+    assert got["count"] == len(waits) and got["sum"] == sum(waits)
+    assert abs(got["mean"] - statistics.mean(waits)) < 2**-8
+    assert abs(got["variance"] - statistics.pvariance(waits)) < 2**-6
+
+    rain = [
+        float(v)
+        for v in csv_column("rainfall-totals", "garbler", "rain_mm")
+        + csv_column("rainfall-totals", "evaluator", "rain_mm")
+    ]
+    assert run_example("rainfall-totals")[Party.GARBLER] == {
+        "withheld": False,
+        "count": len(rain),
+        "sum": sum(rain),
+    }
+
+    returning = [
+        v in ("yes", "true")
+        for v in csv_column("repair-cafe-visits", "garbler", "returning")
+        + csv_column("repair-cafe-visits", "evaluator", "returning")
+    ]
+    assert run_example("repair-cafe-visits")[Party.EVALUATOR] == {"withheld": False, "count": sum(returning)}
+
+    prices = [
+        float(v)
+        for v in csv_column("bike-prices-median", "garbler", "price")
+        + csv_column("bike-prices-median", "evaluator", "sale_price")
+    ]
+    got = run_example("bike-prices-median")[Party.GARBLER]
+    assert got["p50"] == statistics.median(prices)
+    assert got["p90"] == float(np.percentile(prices, 90, method="midpoint"))
+
+    g_mail = {v.lower() for v in csv_column("shared-customers", "garbler", "email")}
+    spend = dict(
+        zip(
+            csv_column("shared-customers", "evaluator", "email"),
+            csv_column("shared-customers", "evaluator", "spend"),
+            strict=True,
+        )
+    )
+    shared = [float(s) for k, s in spend.items() if k.lower() in g_mail]
+    got = run_example("shared-customers")[Party.EVALUATOR]
+    assert got["matches"] == len(shared) and abs(got["sum"] - sum(shared)) <= 0.25 * len(shared)
+    assert got["above"] == sum(s >= 200 for s in shared)
+
+    assert run_example("default-rate-compare")[Party.EVALUATOR] == {"withheld": False, "larger": "garbler"}
+
+    ages = [
+        int(v)
+        for v in csv_column("volunteer-ages", "garbler", "age")
+        + csv_column("volunteer-ages", "evaluator", "age_years")
+    ]
+    ref, _ = np.histogram(ages, bins=[16, 25, 40, 65, 100])
+    assert run_example("volunteer-ages")[Party.EVALUATOR]["counts"] == list(ref)
+
+
+def test_manifest_commands_work_on_every_example(capsys: pytest.CaptureFixture[str]) -> None:
+    for path in sorted(CONFIGS.glob("*/manifest.yaml")):
+        assert main(["manifest", "check", str(path)]) == 0
+        assert main(["manifest", "digest", str(path)]) == 0
+        out = capsys.readouterr().out.strip().splitlines()
+        assert out[0].startswith(f"{path}: ok") and len(out[-1]) == 64
+    assert main(["manifest", "schema"]) == 0
+    assert "keyed_join" in json.dumps(json.loads(capsys.readouterr().out))
+    assert main(["manifest", "schema", "--plugin", str(CONFIGS / "delivery-spread" / "spread.py")]) == 0
+    assert '"spread"' in capsys.readouterr().out
