@@ -17,6 +17,12 @@ def _ot(args: argparse.Namespace) -> int:
     return run(count=args.count, as_json=args.json)
 
 
+def _session(args: argparse.Namespace) -> int:
+    from jointstat.bench.session import run
+
+    return run(and_gates=args.and_gates, as_json=args.json)
+
+
 def add_commands(sub: argparse._SubParsersAction) -> None:
     bench = sub.add_parser("bench", help="measure this machine (prints JSON with --json)")
     which = bench.add_subparsers(dest="what", required=True, metavar="WHAT")
@@ -33,3 +39,10 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     ot.add_argument("--count", type=int, default=1 << 20, help="correlated OTs to extend (default 2^20)")
     ot.add_argument("--json", action="store_true", help="print one JSON object")
     ot.set_defaults(handler=_ot)
+
+    session = which.add_parser("session", help="a whole session between two node processes over loopback TLS")
+    session.add_argument(
+        "--and-gates", type=int, default=1 << 22, help="AND gates in the circuit (default 2^22)"
+    )
+    session.add_argument("--json", action="store_true", help="print one JSON object")
+    session.set_defaults(handler=_session)
