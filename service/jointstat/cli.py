@@ -18,6 +18,7 @@ COMMAND_MODULES = [
     "jointstat.bench.commands",
     "jointstat.audit.commands",
     "jointstat.node.keycommands",
+    "jointstat.node.commands",
     "jointstat.circuit.commands",
 ]
 
