@@ -185,7 +185,8 @@ def test_records_come_from_an_sql_query(tmp_path: Path) -> None:
     )
     assert rec.columns["spend"] == [49, 12] and rec.rows == [1, 2]
     with pytest.raises(
-        InputError, match=r"query 'select email from cards' on sqlite:///.*, column 'spend': the column is missing"
+        InputError,
+        match=r"query 'select email from cards' on sqlite:///.*, column 'spend': the column is missing",
     ):
         read_sql(url, "select email from cards", JOIN.tables.evaluator, key_secret=SECRET)
     with pytest.raises(InputError, match="the query failed: no such table"):

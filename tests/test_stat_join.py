@@ -6,14 +6,17 @@ the rounding the module documents (means rounded toward zero).
 
 from __future__ import annotations
 
+import json
 from functools import cache
 
 import numpy as np
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from jointstat.circuit.compile import CompiledStatistic, compile_manifest
 from jointstat.circuit.library.blocks import and_per_compare_swap, bitonic_comparators, merge_size
 from jointstat.circuit.model import Party
+from jointstat.cli import main
 
 from tests.test_stat_support import key_records, manifest, run_garbled, run_plain, table
 
@@ -179,3 +182,12 @@ def test_the_merge_sorts_every_key_once() -> None:
         )
     )
     assert run_plain(c, key_records("g", "k", g), key_records("e", "k", e))[Party.GARBLER]["matches"] == 15
+
+
+def test_the_join_benchmark_reports_its_figures(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["bench", "join", "--rows", "64", "--json"]) == 0
+    figures = json.loads(capsys.readouterr().out)
+    assert figures["rows"] == 64 and figures["comparators"] == bitonic_comparators(128)
+    assert figures["expected_and_gates"] == figures["comparators"] * 66
+    assert figures["ratio"] == round(figures["and_gates"] / figures["expected_and_gates"], 4)
+    assert main(["bench", "join", "--rows", "0"]) == 2
