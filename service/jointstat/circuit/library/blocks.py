@@ -36,7 +36,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from jointstat.circuit.builder import Builder, Wires
-from jointstat.circuit.model import ONE_WIRE, ZERO_WIRE
+from jointstat.circuit.model import ONE_WIRE, ZERO_WIRE, Party
 
 # -- numbers ---------------------------------------------------------------------------------------------------------
 
@@ -151,8 +151,6 @@ def compare_swap(
 
 def and_per_compare_swap(key_width: int, payload_width: int = 0) -> int:
     """AND gates of one compare-and-swap on secret operands (measured on a fresh builder, not assumed)."""
-    from jointstat.circuit.model import Party
-
     bld = Builder()
     a = bld.input(Party.GARBLER, (1, key_width + payload_width))
     b = bld.input(Party.EVALUATOR, (1, key_width + payload_width))
