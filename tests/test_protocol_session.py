@@ -524,3 +524,20 @@ def test_every_state_is_reachable_and_every_path_ends_done_or_failed(name: str, 
     assert {sm.DONE, sm.FAILED} <= reachable
     # Every live state accepts the peer's abort.
     assert all((state, fr.ABORT) in table for state in states)
+
+
+def test_new_session_builds_the_session_of_the_given_role(wide: LayeredCircuit) -> None:
+    from jointstat.protocol import new_session
+
+    g_bits, e_bits = random_inputs(wide.circuit, 26)
+    common = {"session_id": SID, "layered": wide, "manifest_digest": MANIFEST}
+    garbler = new_session(
+        Party.GARBLER, inputs=g_bits, sign=signer(G_KEY), verify=verifier(E_KEY.public_key()), **common
+    )
+    evaluator = new_session(
+        Party.EVALUATOR, inputs=e_bits, sign=signer(E_KEY), verify=verifier(G_KEY.public_key()), **common
+    )
+    assert isinstance(garbler, GarblerSession) and isinstance(evaluator, EvaluatorSession)
+    run_in_memory(garbler, evaluator)
+    expected = reference_eval(wide.circuit, g_bits, e_bits)
+    assert np.array_equal(evaluator.outputs, expected[Party.EVALUATOR])

@@ -266,6 +266,19 @@ async def test_a_peer_that_goes_silent_is_aborted_after_the_idle_timeout(
     assert frames[-1][0] == fr.ABORT and frames[-1][1].abort.reason == int(AbortReason.DEADLINE)
 
 
+async def test_a_session_that_overruns_its_deadline_is_aborted(nodes: Nodes, wide: LayeredCircuit) -> None:
+    garbler = nodes.garbler(wide, b"deadline", inputs_for(wide.circuit, 14)[0])
+    short = Limits(deadline_s=0.3, idle_timeout_s=30, abort_grace_s=0.5)
+    async with SessionServer(nodes.bakery_tls, limits=short) as server:
+        expected = server.expect(garbler)
+        channel, call = await open_raw(nodes.mill_tls, server.port)
+        await call.write(nodes.evaluator(wide, b"deadline", inputs_for(wide.circuit, 14)[1]).start()[0])
+        g = await asyncio.wait_for(expected, timeout=10)
+        await channel.close()
+    assert_nothing_released(g)
+    assert g.abort.reason == AbortReason.DEADLINE and "session deadline of 0.3 s passed" in g.abort.message
+
+
 async def test_cancelling_the_client_aborts_the_server_side_too(nodes: Nodes, wide: LayeredCircuit) -> None:
     g_bits, e_bits = inputs_for(wide.circuit, 6)
     garbler = nodes.garbler(wide, b"cancel", g_bits, chunk_bytes=1 << 12)

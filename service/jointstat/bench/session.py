@@ -232,6 +232,10 @@ def _round(value: float | None) -> float | None:
 
 
 def run(and_gates: int, as_json: bool) -> int:
+    from jointstat.cli import UserError
+
+    if and_gates < 1:
+        raise UserError(f"bench session: --and-gates must be at least 1, got {and_gates}")
     sides = measure(and_gates)
     g, e = sides["garbler"], sides["evaluator"]
     wall = max(g["end"], e["end"]) - e["start"]

@@ -785,14 +785,17 @@ def new_session(
     inputs: object,
     sign: Sign,
     verify: Verify,
+    chunk_bytes: int = DEFAULT_CHUNK_BYTES,
 ) -> Session:
-    """A session for ``party`` (the garbler or the evaluator) with the given circuit, digest and own inputs."""
-    cls = GarblerSession if Party(party) == Party.GARBLER else EvaluatorSession
-    return cls(
-        session_id=session_id,
-        layered=layered,
-        manifest_digest=manifest_digest,
-        inputs=inputs,
-        sign=sign,
-        verify=verify,
-    )
+    """A session for ``party`` with the given circuit, digest and own inputs (``chunk_bytes``: garbler only)."""
+    common = {
+        "session_id": session_id,
+        "layered": layered,
+        "manifest_digest": manifest_digest,
+        "inputs": inputs,
+        "sign": sign,
+        "verify": verify,
+    }
+    if Party(party) == Party.GARBLER:
+        return GarblerSession(chunk_bytes=chunk_bytes, **common)  # type: ignore[arg-type]
+    return EvaluatorSession(**common)  # type: ignore[arg-type]
