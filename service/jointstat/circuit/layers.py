@@ -25,17 +25,27 @@ from jointstat.circuit.model import ONE_WIRE, ZERO_WIRE, Circuit, GateKind, Part
 SLOT_DTYPE = np.dtype(np.int32)  # slots never outnumber wires, which are 32-bit
 
 
+CHUNK = 1 << 20  # gates per vectorised pass where a whole-array temporary would cost memory
+
+
 def gate_levels(circuit: Circuit) -> np.ndarray:
-    """Level of each gate (1 = reads only constants and inputs), computed one dependency-free segment at a time."""
+    """Level of each gate (1 = reads only constants and inputs), computed one dependency-free segment at a time.
+
+    Memory: 4 bytes per wire and 8 per gate besides the circuit. A NOT gate's missing second input (-1) reads the
+    sentinel entry appended at the end of each per-wire array.
+    """
     g = circuit.n_gates
     levels = np.zeros(g, dtype=np.int32)
     if g == 0:
         return levels
-    defined_by = np.full(circuit.n_wires, -1, dtype=np.int64)
-    defined_by[circuit.out] = np.arange(g, dtype=np.int64)
-    in1 = np.where(circuit.in1 < 0, ZERO_WIRE, circuit.in1)
-    dep = np.maximum(defined_by[circuit.in0], defined_by[in1])  # latest gate this gate depends on (-1: none)
-    wire_level = np.zeros(circuit.n_wires, dtype=np.int32)
+    defined_by = np.full(circuit.n_wires + 1, -1, dtype=np.int32)
+    defined_by[circuit.out] = np.arange(g, dtype=np.int32)
+    dep = np.empty(g, dtype=np.int32)  # latest gate this gate depends on (-1: none)
+    for c0 in range(0, g, CHUNK):
+        c1 = min(g, c0 + CHUNK)
+        np.maximum(defined_by[circuit.in0[c0:c1]], defined_by[circuit.in1[c0:c1]], out=dep[c0:c1])
+    del defined_by
+    wire_level = np.zeros(circuit.n_wires + 1, dtype=np.int32)
     start = 0
     while start < g:
         # The segment ends at the first gate that depends on a gate inside it.
@@ -50,7 +60,7 @@ def gate_levels(circuit: Circuit) -> np.ndarray:
             if end == g:
                 break
             window *= 4
-        seg_levels = np.maximum(wire_level[circuit.in0[start:stop]], wire_level[in1[start:stop]]) + 1
+        seg_levels = np.maximum(wire_level[circuit.in0[start:stop]], wire_level[circuit.in1[start:stop]]) + 1
         levels[start:stop] = seg_levels
         wire_level[circuit.out[start:stop]] = seg_levels
         start = stop
@@ -111,10 +121,21 @@ _KIND_RANK = np.array([1, 0, 2], dtype=np.int8)  # within a layer: AND first, th
 
 
 def schedule(circuit: Circuit) -> LayeredCircuit:
-    """Cut ``circuit`` into layers and renumber its wires into slots (see the module docstring)."""
+    """Cut ``circuit`` into layers and renumber its wires into slots (see the module docstring).
+
+    Memory: about 16 bytes per gate at the peak besides the circuit (the sort order), 12 per gate kept.
+    """
     g = circuit.n_gates
     levels = gate_levels(circuit)
-    order = np.lexsort((_KIND_RANK[circuit.kinds], levels)) if g else np.zeros(0, dtype=np.int64)
+    n_layers = int(levels.max()) if g else 0
+    # Sort gates by (level, kind rank): one int32 key, a stable sort, and the order kept as int32.
+    key_type = np.int32 if 3 * n_layers + 3 < 2**31 else np.int64
+    key = levels.astype(key_type) * key_type(3)
+    key += _KIND_RANK[circuit.kinds]
+    del levels
+    order = np.argsort(key, kind="stable").astype(np.int32) if g else np.zeros(0, dtype=np.int32)
+    key = key[order]  # sorted keys: level = key // 3, kind rank = key % 3
+
     slot_of = np.full(circuit.n_wires, -1, dtype=SLOT_DTYPE)
     slot_of[ZERO_WIRE] = 0
     slot_of[ONE_WIRE] = 1
@@ -127,21 +148,39 @@ def schedule(circuit: Circuit) -> LayeredCircuit:
         input_slots[party] = slots
         next_slot += wires.size
     first_gate_slot = next_slot
-    slot_of[circuit.out[order]] = np.arange(first_gate_slot, first_gate_slot + g, dtype=SLOT_DTYPE)
+    for c0 in range(0, g, CHUNK):
+        c1 = min(g, c0 + CHUNK)
+        slot_of[circuit.out[order[c0:c1]]] = np.arange(
+            first_gate_slot + c0, first_gate_slot + c1, dtype=SLOT_DTYPE
+        )
 
-    sorted_levels = levels[order]
-    sorted_kinds = circuit.kinds[order]
-    n_layers = int(sorted_levels[-1]) if g else 0
-    bounds = np.searchsorted(sorted_levels, np.arange(1, n_layers + 2), side="left")
-    layer_start = first_gate_slot + bounds.astype(SLOT_DTYPE)
+    # Layer k (1-based level k + 1) holds sorted keys 3(k+1) .. 3(k+1)+2; the rank boundaries split it by kind.
+    bounds = np.searchsorted(key, 3 * np.arange(1, n_layers + 2, dtype=np.int64), side="left")
+    layer_start = (first_gate_slot + bounds).astype(SLOT_DTYPE)
 
     def gather(kind: GateKind) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        mask = sorted_kinds == kind
-        gates = order[mask]
-        a = slot_of[circuit.in0[gates]]
-        b = slot_of[circuit.in1[gates]] if kind != GateKind.NOT else np.zeros(0, dtype=SLOT_DTYPE)
-        per_layer = np.bincount(sorted_levels[mask] - 1, minlength=n_layers) if n_layers else np.zeros(0, int)
+        rank = int(_KIND_RANK[kind])
+        levels_1 = np.arange(1, n_layers + 1, dtype=np.int64)
+        lo = np.searchsorted(key, 3 * levels_1 + rank, side="left")
+        hi = np.searchsorted(key, 3 * levels_1 + rank + 1, side="left")
+        per_layer = hi - lo
         starts = np.concatenate([[0], np.cumsum(per_layer)]).astype(np.int64)
+        total = int(starts[-1])
+        a = np.empty(total, dtype=SLOT_DTYPE)
+        b = np.empty(total if kind != GateKind.NOT else 0, dtype=SLOT_DTYPE)
+        pos = 0
+        # Walk the layers' runs of this kind in chunks of whole runs, gathering their input slots.
+        for k0 in range(0, n_layers, 4096):
+            k1 = min(n_layers, k0 + 4096)
+            runs = [order[lo[k] : hi[k]] for k in range(k0, k1) if hi[k] > lo[k]]
+            if not runs:
+                continue
+            gates = np.concatenate(runs)
+            m = gates.size
+            a[pos : pos + m] = slot_of[circuit.in0[gates]]
+            if kind != GateKind.NOT:
+                b[pos : pos + m] = slot_of[circuit.in1[gates]]
+            pos += m
         return a, b, starts
 
     and_a, and_b, and_start = gather(GateKind.AND)
