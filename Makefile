@@ -30,6 +30,8 @@ demo: $(STAMP)
 bench: $(STAMP)
 	$(BIN)/jointstat bench garble --json
 	$(BIN)/jointstat bench ot --json
+	$(BIN)/jointstat bench session --json
+	$(BIN)/jointstat bench join --rows 65536 --json
 
 lock:
 	rm -rf /tmp/jointstat-lock && $(PY) -m venv /tmp/jointstat-lock
