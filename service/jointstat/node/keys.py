@@ -22,26 +22,24 @@ from __future__ import annotations
 
 import base64
 import hashlib
-import ipaddress
 import os
 from collections.abc import Sequence
 from dataclasses import dataclass
-from datetime import datetime, timedelta
+from datetime import datetime
 from pathlib import Path
 
 from cryptography import x509
-from cryptography.hazmat.primitives import hashes, serialization
+from cryptography.hazmat.primitives import serialization
 from cryptography.hazmat.primitives.asymmetric import ec
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
-from cryptography.x509.oid import ExtendedKeyUsageOID, NameOID
 
 from jointstat.audit.records import node_name_ok, raw_public_key
 from jointstat.node.secrets import SecretFileError, ensure_private_dir, read_secret_file, write_private_file
+from jointstat.transport import pki
 
 CA_CERT = "ca.cert.pem"
 CA_KEY = "ca.key.pem"
 ORGANISATION = "jointstat trial"
-CLOCK_SKEW = timedelta(minutes=5)
 
 
 def signing_key_file(node: str) -> str:
@@ -139,13 +137,8 @@ def read_tls_key(path: str | os.PathLike[str]) -> bytes:
 # -- trial CA and TLS certificates ------------------------------------------------------------------------------
 
 
-def _name(common_name: str) -> x509.Name:
-    return x509.Name(
-        [
-            x509.NameAttribute(NameOID.ORGANIZATION_NAME, ORGANISATION),
-            x509.NameAttribute(NameOID.COMMON_NAME, common_name),
-        ]
-    )
+def _issued(key: ec.EllipticCurvePrivateKey, cert: x509.Certificate) -> pki.Issued:
+    return pki.Issued(cert.public_bytes(serialization.Encoding.PEM), _tls_key_pem(key))
 
 
 def _tls_key_pem(key: ec.EllipticCurvePrivateKey) -> bytes:
@@ -156,88 +149,26 @@ def _tls_key_pem(key: ec.EllipticCurvePrivateKey) -> bytes:
 
 def make_ca(now: datetime, days: int) -> tuple[ec.EllipticCurvePrivateKey, x509.Certificate]:
     """A self-signed P-256 CA certificate valid from ``now`` (less 5 minutes of skew) for ``days`` days."""
-    key = ec.generate_private_key(ec.SECP256R1())
-    name = _name("jointstat trial CA")
-    public = key.public_key()
-    cert = (
-        x509.CertificateBuilder()
-        .subject_name(name)
-        .issuer_name(name)
-        .public_key(public)
-        .serial_number(x509.random_serial_number())
-        .not_valid_before(now - CLOCK_SKEW)
-        .not_valid_after(now + timedelta(days=days))
-        .add_extension(x509.BasicConstraints(ca=True, path_length=0), critical=True)
-        .add_extension(
-            x509.KeyUsage(
-                digital_signature=True,
-                content_commitment=False,
-                key_encipherment=False,
-                data_encipherment=False,
-                key_agreement=False,
-                key_cert_sign=True,
-                crl_sign=True,
-                encipher_only=False,
-                decipher_only=False,
-            ),
-            critical=True,
-        )
-        .add_extension(x509.SubjectKeyIdentifier.from_public_key(public), critical=False)
-        .sign(key, hashes.SHA256())
-    )
-    return key, cert
+    ca = pki.new_ca("jointstat trial CA", days=days, now=now, organisation=ORGANISATION)
+    return ca.load_key(), ca.load_certificate()
 
 
 def issue_node_certificate(
     ca_key: ec.EllipticCurvePrivateKey, ca_cert: x509.Certificate, node: str, now: datetime, days: int
 ) -> tuple[ec.EllipticCurvePrivateKey, x509.Certificate]:
-    """A P-256 TLS key and a certificate for ``node`` (server and client auth), signed by the trial CA."""
+    """A P-256 TLS key and a certificate for ``node`` (and localhost, 127.0.0.1; server and client auth), signed by
+    the trial CA."""
     check_node_name(node)
-    key = ec.generate_private_key(ec.SECP256R1())
-    public = key.public_key()
-    san = x509.SubjectAlternativeName(
-        [
-            x509.DNSName(node),
-            x509.DNSName("localhost"),
-            x509.IPAddress(ipaddress.ip_address("127.0.0.1")),
-        ]
+    leaf = pki.issue(
+        _issued(ca_key, ca_cert),
+        node,
+        dns_names=("localhost",),
+        ip_addresses=("127.0.0.1",),
+        days=days,
+        now=now,
+        organisation=ORGANISATION,
     )
-    cert = (
-        x509.CertificateBuilder()
-        .subject_name(_name(node))
-        .issuer_name(ca_cert.subject)
-        .public_key(public)
-        .serial_number(x509.random_serial_number())
-        .not_valid_before(now - CLOCK_SKEW)
-        .not_valid_after(now + timedelta(days=days))
-        .add_extension(x509.BasicConstraints(ca=False, path_length=None), critical=True)
-        .add_extension(
-            x509.KeyUsage(
-                digital_signature=True,
-                content_commitment=False,
-                key_encipherment=False,
-                data_encipherment=False,
-                key_agreement=False,
-                key_cert_sign=False,
-                crl_sign=False,
-                encipher_only=False,
-                decipher_only=False,
-            ),
-            critical=True,
-        )
-        .add_extension(
-            x509.ExtendedKeyUsage([ExtendedKeyUsageOID.SERVER_AUTH, ExtendedKeyUsageOID.CLIENT_AUTH]),
-            critical=False,
-        )
-        .add_extension(san, critical=False)
-        .add_extension(x509.SubjectKeyIdentifier.from_public_key(public), critical=False)
-        .add_extension(
-            x509.AuthorityKeyIdentifier.from_issuer_public_key(ca_key.public_key()),
-            critical=False,
-        )
-        .sign(ca_key, hashes.SHA256())
-    )
-    return key, cert
+    return leaf.load_key(), leaf.load_certificate()
 
 
 # -- writing key sets ----------------------------------------------------------------------------------------------

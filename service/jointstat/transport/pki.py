@@ -43,16 +43,38 @@ def _pem_key(key: ec.EllipticCurvePrivateKey) -> bytes:
     )
 
 
-def _validity(days: int) -> tuple[datetime.datetime, datetime.datetime]:
-    now = datetime.datetime.now(datetime.UTC)
-    return now - datetime.timedelta(minutes=5), now + datetime.timedelta(days=days)
+def _validity(days: int, now: datetime.datetime | None) -> tuple[datetime.datetime, datetime.datetime]:
+    """From five minutes before ``now`` (clock skew between nodes) to ``days`` days after it."""
+    start = now or datetime.datetime.now(datetime.UTC)
+    return start - datetime.timedelta(minutes=5), start + datetime.timedelta(days=days)
 
 
-def new_ca(name: str, *, days: int = 365) -> Issued:
-    """A fresh self-signed CA named ``name``."""
+def _subject(common_name: str, organisation: str | None) -> x509.Name:
+    attrs = [x509.NameAttribute(NameOID.ORGANIZATION_NAME, organisation)] if organisation else []
+    return x509.Name([*attrs, x509.NameAttribute(NameOID.COMMON_NAME, common_name)])
+
+
+def _key_usage(*, ca: bool) -> x509.KeyUsage:
+    return x509.KeyUsage(
+        digital_signature=True,
+        content_commitment=False,
+        key_encipherment=False,
+        data_encipherment=False,
+        key_agreement=False,
+        key_cert_sign=ca,
+        crl_sign=ca,
+        encipher_only=False,
+        decipher_only=False,
+    )
+
+
+def new_ca(
+    name: str, *, days: int = 365, now: datetime.datetime | None = None, organisation: str | None = None
+) -> Issued:
+    """A fresh self-signed P-256 CA named ``name``, valid from ``now`` (default: the current time)."""
     key = ec.generate_private_key(ec.SECP256R1())
-    subject = x509.Name([x509.NameAttribute(NameOID.COMMON_NAME, name)])
-    start, end = _validity(days)
+    subject = _subject(name, organisation)
+    start, end = _validity(days, now)
     cert = (
         x509.CertificateBuilder()
         .subject_name(subject)
@@ -62,36 +84,33 @@ def new_ca(name: str, *, days: int = 365) -> Issued:
         .not_valid_before(start)
         .not_valid_after(end)
         .add_extension(x509.BasicConstraints(ca=True, path_length=0), critical=True)
-        .add_extension(
-            x509.KeyUsage(
-                digital_signature=True,
-                content_commitment=False,
-                key_encipherment=False,
-                data_encipherment=False,
-                key_agreement=False,
-                key_cert_sign=True,
-                crl_sign=True,
-                encipher_only=False,
-                decipher_only=False,
-            ),
-            critical=True,
-        )
+        .add_extension(_key_usage(ca=True), critical=True)
         .add_extension(x509.SubjectKeyIdentifier.from_public_key(key.public_key()), critical=False)
         .sign(key, hashes.SHA256())
     )
     return Issued(cert.public_bytes(serialization.Encoding.PEM), _pem_key(key))
 
 
-def issue(ca: Issued, name: str, *, ip_addresses: Sequence[str] = ("127.0.0.1",), days: int = 365) -> Issued:
-    """A node certificate for DNS name ``name`` (and ``ip_addresses``), signed by ``ca``."""
+def issue(
+    ca: Issued,
+    name: str,
+    *,
+    dns_names: Sequence[str] = (),
+    ip_addresses: Sequence[str] = ("127.0.0.1",),
+    days: int = 365,
+    now: datetime.datetime | None = None,
+    organisation: str | None = None,
+) -> Issued:
+    """A P-256 node certificate for DNS name ``name`` (plus ``dns_names`` and ``ip_addresses``), signed by ``ca``,
+    valid for TLS server and client authentication."""
     ca_cert, ca_key = ca.load_certificate(), ca.load_key()
     key = ec.generate_private_key(ec.SECP256R1())
-    start, end = _validity(days)
-    names: list[x509.GeneralName] = [x509.DNSName(name)]
+    start, end = _validity(days, now)
+    names: list[x509.GeneralName] = [x509.DNSName(n) for n in (name, *dns_names)]
     names += [x509.IPAddress(ipaddress.ip_address(ip)) for ip in ip_addresses]
     cert = (
         x509.CertificateBuilder()
-        .subject_name(x509.Name([x509.NameAttribute(NameOID.COMMON_NAME, name)]))
+        .subject_name(_subject(name, organisation))
         .issuer_name(ca_cert.subject)
         .public_key(key.public_key())
         .serial_number(x509.random_serial_number())
@@ -99,10 +118,12 @@ def issue(ca: Issued, name: str, *, ip_addresses: Sequence[str] = ("127.0.0.1",)
         .not_valid_after(end)
         .add_extension(x509.SubjectAlternativeName(names), critical=False)
         .add_extension(x509.BasicConstraints(ca=False, path_length=None), critical=True)
+        .add_extension(_key_usage(ca=False), critical=True)
         .add_extension(
             x509.ExtendedKeyUsage([ExtendedKeyUsageOID.SERVER_AUTH, ExtendedKeyUsageOID.CLIENT_AUTH]),
             critical=False,
         )
+        .add_extension(x509.SubjectKeyIdentifier.from_public_key(key.public_key()), critical=False)
         .add_extension(
             x509.AuthorityKeyIdentifier.from_issuer_public_key(ca_key.public_key()), critical=False
         )
