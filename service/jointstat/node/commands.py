@@ -35,7 +35,7 @@ def _check(args: argparse.Namespace) -> int:
 
 
 def add_commands(sub: argparse._SubParsersAction) -> None:
-    node = sub.add_parser("node", help="run a node and check its configuration")
+    node = sub.add_parser("node", help="check a node's configuration")
     which = node.add_subparsers(dest="what", required=True, metavar="WHAT")
     check = which.add_parser(
         "check",

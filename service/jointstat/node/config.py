@@ -338,7 +338,7 @@ Text = Annotated[str, AfterValidator(_non_empty)]
 
 
 class StrictModel(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True, strict=True, arbitrary_types_allowed=True)
+    model_config = ConfigDict(extra="forbid", frozen=True, strict=True)
 
 
 def _derived(data: dict[str, Any], key: str) -> str:
