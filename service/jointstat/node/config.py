@@ -422,9 +422,13 @@ class SqlInput(StrictModel):
             return self.url
         from sqlalchemy.engine import make_url
 
-        from jointstat.node.secrets import read_secret_file
+        from jointstat.node.secrets import SecretFileError, read_secret_file
 
-        password = read_secret_file(self.password_file, "database password").decode("utf-8").rstrip("\r\n")
+        data = read_secret_file(self.password_file, "database password")
+        try:
+            password = data.decode("utf-8").rstrip("\r\n")
+        except UnicodeDecodeError:
+            raise SecretFileError(f"database password {self.password_file}: not UTF-8 text") from None
         return make_url(self.url).set(password=password).render_as_string(hide_password=False)
 
 
