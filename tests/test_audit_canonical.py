@@ -8,7 +8,7 @@ from typing import Any
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
-from jointstat.audit.canonical import MAX_SAFE_INTEGER, CanonicalError, canonicalize, is_canonical, parse
+from jointstat.canonical import MAX_SAFE_INTEGER, CanonicalError, canonicalize, is_canonical, parse
 
 json_values = st.recursive(
     st.none()

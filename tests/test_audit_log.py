@@ -16,8 +16,8 @@ from pathlib import Path
 import pytest
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 from jointstat.audit import AuditError, SessionLog, sign_transcript, transcript_signature_ok, verify_log
-from jointstat.audit.canonical import parse
 from jointstat.audit.records import Kind, validate_body
+from jointstat.canonical import parse
 
 MANIFEST = hashlib.sha256(b"shared-donors manifest, version 3").digest()
 

@@ -13,8 +13,8 @@ from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 from hypothesis import given
 from hypothesis import strategies as st
 from jointstat.audit import LogVerifier, compare_logs, sign_transcript, verify_log
-from jointstat.audit.canonical import canonicalize, parse
 from jointstat.audit.records import encode_b64, signing_input
+from jointstat.canonical import canonicalize, parse
 
 from tests.test_audit_log import HUNDRED, hundred_record_log, keys, write_pair
 

@@ -34,7 +34,6 @@ from typing import Literal
 
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 
-from jointstat.audit.canonical import canonicalize
 from jointstat.audit.records import (
     FORMAT,
     AuditError,
@@ -52,6 +51,7 @@ from jointstat.audit.records import (
     validate_body,
 )
 from jointstat.audit.verify import LogVerifier
+from jointstat.canonical import canonicalize
 
 Clock = Callable[[], datetime]
 

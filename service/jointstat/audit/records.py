@@ -41,7 +41,7 @@ from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey,
 from cryptography.hazmat.primitives.serialization import Encoding, PublicFormat
 from pydantic import BaseModel, ConfigDict, Field, StringConstraints, ValidationError, field_validator
 
-from jointstat.audit.canonical import MAX_SAFE_INTEGER, canonicalize
+from jointstat.canonical import MAX_SAFE_INTEGER, canonicalize
 
 FORMAT = "jointstat-audit/1"
 GENESIS = "0" * 64

@@ -38,7 +38,6 @@ from typing import Any
 from cryptography.exceptions import InvalidSignature
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
 
-from jointstat.audit.canonical import CanonicalError, canonicalize, parse
 from jointstat.audit.records import (
     ENVELOPE_FIELDS,
     GENESIS,
@@ -56,6 +55,7 @@ from jointstat.audit.records import (
     transcript_signature_ok,
     validate_body,
 )
+from jointstat.canonical import CanonicalError, canonicalize, parse
 
 _HEX = frozenset("0123456789abcdef")
 

@@ -26,8 +26,6 @@ canonical form. The manifest digest (``jointstat.circuit.compile``) hashes this 
 from __future__ import annotations
 
 import importlib.util
-import json
-import math
 import re
 import sys
 from collections.abc import Iterable
@@ -45,6 +43,8 @@ from pydantic import (
     create_model,
     model_validator,
 )
+
+from jointstat.canonical import canonicalize
 
 MAX_CAPACITY = 1 << 20  # rows per party table
 MAX_WIDTH = 64
@@ -489,65 +489,9 @@ def cross_check(manifest: Manifest) -> list[Problem]:
     return problems
 
 
-# -- canonical JSON (RFC 8785 style) -------------------------------------------------------------------------------
-
-
-def _number(x: float) -> str:
-    """An ECMAScript Number-to-String rendering of a finite float (RFC 8785 §3.2.2.3)."""
-    if not math.isfinite(x):
-        raise ValueError("canonical JSON has no NaN or infinity")
-    if x == 0:
-        return "0"
-    digits, exp = _shortest(abs(x))
-    sign = "-" if x < 0 else ""
-    k = len(digits)
-    n = exp + k  # the value is 0.digits × 10^n
-    if k <= n <= 21:
-        return sign + digits + "0" * (n - k)
-    if 0 < n <= 21:
-        return sign + digits[:n] + "." + digits[n:]
-    if -6 < n <= 0:
-        return sign + "0." + "0" * (-n) + digits
-    e = n - 1
-    mant = digits[0] + ("." + digits[1:] if k > 1 else "")
-    return f"{sign}{mant}e{'+' if e > 0 else '-'}{abs(e)}"
-
-
-def _shortest(x: float) -> tuple[str, int]:
-    """(digits, exponent) with x = int(digits) × 10^exponent, digits the shortest round-trip form."""
-    mant, _, e = repr(x).partition("e")
-    exp = int(e) if e else 0
-    whole, _, fraction = mant.partition(".")
-    digits = (whole + fraction).lstrip("0")
-    exp -= len(fraction)
-    stripped = digits.rstrip("0")
-    exp += len(digits) - len(stripped)
-    return stripped or "0", exp
+# -- canonical JSON ----------------------------------------------------------------------------------------------
 
 
 def canonical_json(value: Any) -> bytes:
-    """RFC 8785 style: keys sorted (by UTF-16 code units), no whitespace, UTF-8, ECMAScript numbers."""
-
-    def enc(v: Any) -> str:
-        if v is None:
-            return "null"
-        if v is True:
-            return "true"
-        if v is False:
-            return "false"
-        if isinstance(v, int):
-            return str(v)
-        if isinstance(v, float):
-            return _number(v)
-        if isinstance(v, str):
-            return json.dumps(v, ensure_ascii=False)
-        if isinstance(v, list | tuple):
-            return "[" + ",".join(enc(x) for x in v) + "]"
-        if isinstance(v, dict):
-            items = sorted(v.items(), key=lambda kv: str(kv[0]).encode("utf-16-be"))
-            return (
-                "{" + ",".join(json.dumps(str(k), ensure_ascii=False) + ":" + enc(x) for k, x in items) + "}"
-            )
-        raise TypeError(f"canonical JSON: cannot encode {type(v).__name__}")
-
-    return enc(value).encode("utf-8")
+    """RFC 8785 canonical JSON of the manifest's values (decimal parameters allowed), see ``jointstat.canonical``."""
+    return canonicalize(value, allow_floats=True)
