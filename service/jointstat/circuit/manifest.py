@@ -29,11 +29,9 @@ import importlib.util
 import re
 import sys
 from collections.abc import Iterable
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Annotated, Any, ClassVar, Literal, Union
 
-import yaml
 from pydantic import (
     AfterValidator,
     BaseModel,
@@ -45,6 +43,7 @@ from pydantic import (
 )
 
 from jointstat.canonical import canonicalize
+from jointstat.problems import Problem, ProblemError, field_path, pydantic_message, read_yaml
 
 MAX_CAPACITY = 1 << 20  # rows per party table
 MAX_WIDTH = 64
@@ -52,24 +51,8 @@ MAX_WIDTH = 64
 # -- errors ------------------------------------------------------------------------------------------------------------
 
 
-@dataclass(frozen=True)
-class Problem:
-    """One thing wrong with a manifest: the dotted field path and what is wrong there."""
-
-    path: str
-    message: str
-
-    def __str__(self) -> str:
-        return f"{self.path}: {self.message}" if self.path else self.message
-
-
-class ManifestError(ValueError):
+class ManifestError(ProblemError):
     """A manifest that cannot be used; ``problems`` lists every field path found wrong."""
-
-    def __init__(self, source: str, problems: Iterable[Problem]) -> None:
-        self.source = source
-        self.problems = list(problems)
-        super().__init__("\n".join(f"{source}: {p}" for p in self.problems))
 
 
 # -- field validators ----------------------------------------------------------------------------------------------
@@ -320,72 +303,12 @@ def schema() -> dict[str, Any]:
 # -- loading ------------------------------------------------------------------------------------------------------
 
 
-class _UniqueKeyLoader(yaml.SafeLoader):
-    pass
-
-
-def _mapping(loader: yaml.SafeLoader, node: yaml.MappingNode, deep: bool = False) -> dict[Any, Any]:
-    seen: set[Any] = set()
-    for key_node, _ in node.value:
-        key = loader.construct_object(key_node, deep=deep)
-        if key in seen:
-            mark = key_node.start_mark
-            raise yaml.constructor.ConstructorError(
-                None, None, f"key {key!r} appears twice (line {mark.line + 1})", mark
-            )
-        seen.add(key)
-    return loader.construct_mapping(node, deep=deep)
-
-
-_UniqueKeyLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _mapping)
-
-
-def _format_loc(loc: tuple[Any, ...], data: Any) -> str:
-    """('tables', 'evaluator', 'columns', 2, 'unsigned', 'width') → 'tables.evaluator.columns[2].width'.
-
-    Discriminator tags that pydantic puts in the location (the column type, the statistic name) are dropped.
-    """
-    out = ""
-    node = data
-    for item in loc:
-        if isinstance(item, int):
-            out += f"[{item}]"
-            node = node[item] if isinstance(node, list) and 0 <= item < len(node) else None
-            continue
-        if isinstance(node, dict) and item not in node and item in (node.get("type"), node.get("name")):
-            continue
-        if "[" in str(item) or "," in str(item):  # a union member's description, not a field
-            continue
-        out += ("." if out else "") + str(item)
-        node = node.get(item) if isinstance(node, dict) else None
-    return out
-
-
 def _error_path(err: dict[str, Any], data: Any) -> str:
-    path = _format_loc(err["loc"], data)
+    path = field_path(err["loc"], data)
     if err["type"] in ("union_tag_invalid", "union_tag_not_found"):  # the error is about the tag field itself
         tag = str((err.get("ctx") or {}).get("discriminator", "")).strip("'")
         path = f"{path}.{tag}" if path else tag
     return path
-
-
-def _message(err: dict[str, Any]) -> str:
-    kind = err["type"]
-    ctx = err.get("ctx") or {}
-    if kind == "missing":
-        return "required field is missing"
-    if kind == "extra_forbidden":
-        return "unknown field"
-    if kind == "union_tag_invalid":
-        expected = ctx.get("expected_tags", "")
-        return f"unknown {ctx.get('discriminator', 'tag').strip(chr(39))} {ctx.get('tag')!r}; expected one of {expected}"
-    if kind == "union_tag_not_found":
-        return f"missing the field {ctx.get('discriminator', '')} that says which kind this is"
-    msg = str(err["msg"])
-    for prefix in ("Value error, ", "Assertion failed, "):
-        if msg.startswith(prefix):
-            msg = msg[len(prefix) :]
-    return msg[:1].lower() + msg[1:]
 
 
 def load_plugins(paths: Iterable[str], base: Path | None, where: str = "plugins") -> list[Problem]:
@@ -424,13 +347,9 @@ def load_plugin(path: Path) -> None:
 def parse_manifest(text: str, source: str = "<manifest>", base: Path | None = None) -> Manifest:
     """Validate manifest text; raises ``ManifestError`` listing every problem with its field path."""
     try:
-        data = yaml.load(text, Loader=_UniqueKeyLoader)
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        where = f"line {mark.line + 1}, column {mark.column + 1}: " if mark is not None else ""
-        raise ManifestError(
-            source, [Problem("", f"not valid YAML: {where}{getattr(exc, 'problem', exc)}")]
-        ) from None
+        data = read_yaml(text)
+    except ValueError as exc:
+        raise ManifestError(source, [Problem("", str(exc))]) from None
     if not isinstance(data, dict):
         raise ManifestError(source, [Problem("", "a manifest is a YAML mapping (job, parties, tables, …)")])
     plugins = data.get("plugins", [])
@@ -441,7 +360,7 @@ def parse_manifest(text: str, source: str = "<manifest>", base: Path | None = No
     try:
         manifest = manifest_model().model_validate(data)
     except ValidationError as exc:
-        problems = [Problem(_error_path(e, data), _message(e)) for e in exc.errors()]
+        problems = [Problem(_error_path(e, data), pydantic_message(e)) for e in exc.errors()]
         raise ManifestError(source, problems) from None
     problems = cross_check(manifest)
     if problems:

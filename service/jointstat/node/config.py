@@ -45,14 +45,12 @@ import ipaddress
 import os
 import posixpath
 import re
-from collections.abc import Iterable
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Annotated, Any
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
-import yaml
 from pydantic import (
     AfterValidator,
     BaseModel,
@@ -68,6 +66,7 @@ from pydantic_core import PydanticCustomError
 
 from jointstat.audit.records import node_name_ok
 from jointstat.node.schedule import JobTiming, ScheduleError
+from jointstat.problems import Problem, ProblemError, field_path, pydantic_message, read_yaml
 
 UNIX_PREFIX = "unix:"
 MAX_UNIX_PATH_BYTES = 107  # sun_path is 108 bytes on Linux, one of them the terminating NUL
@@ -80,24 +79,8 @@ _HOST_LABEL = re.compile(r"(?!-)[A-Za-z0-9-]{1,63}(?<!-)")
 # -- errors ------------------------------------------------------------------------------------------------------------
 
 
-@dataclass(frozen=True)
-class Problem:
-    """One thing wrong with a node config: the field path (``jobs[1].schedule.cron``) and what is wrong there."""
-
-    path: str
-    message: str
-
-    def __str__(self) -> str:
-        return f"{self.path}: {self.message}" if self.path else self.message
-
-
-class ConfigError(ValueError):
+class ConfigError(ProblemError):
     """A node config that cannot be used; ``problems`` lists every field path found wrong."""
-
-    def __init__(self, source: str, problems: Iterable[Problem]) -> None:
-        self.source = source
-        self.problems = list(problems)
-        super().__init__("\n".join(f"{source}: {p}" for p in self.problems))
 
 
 # -- addresses ---------------------------------------------------------------------------------------------------------
@@ -744,76 +727,25 @@ def _certificate_problem(path: Path, now: datetime) -> str | None:
 # -- loading -----------------------------------------------------------------------------------------------------------
 
 
-class _UniqueKeyLoader(yaml.SafeLoader):
-    pass
-
-
-def _mapping(loader: yaml.SafeLoader, node: yaml.MappingNode, deep: bool = False) -> dict[Any, Any]:
-    seen: set[Any] = set()
-    for key_node, _ in node.value:
-        key = loader.construct_object(key_node, deep=deep)
-        if key in seen:
-            mark = key_node.start_mark
-            raise yaml.constructor.ConstructorError(
-                None, None, f"key {key!r} appears twice (line {mark.line + 1})", mark
-            )
-        seen.add(key)
-    return loader.construct_mapping(node, deep=deep)
-
-
-_UniqueKeyLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _mapping)
-
-
-def _format_loc(loc: tuple[Any, ...]) -> str:
-    """('jobs', 1, 'schedule', 'cron') → 'jobs[1].schedule.cron'; pydantic's type tags in unions are dropped."""
-    out = ""
-    for item in loc:
-        if isinstance(item, int):
-            out += f"[{item}]"
-        elif "[" in str(item):
-            continue
-        else:
-            out += ("." if out else "") + str(item)
-    return out
-
-
-def _message(err: Any) -> str:
-    kind = err["type"]
-    if kind == "missing":
-        return "required field is missing"
-    if kind == "extra_forbidden":
-        return "unknown field"
-    if kind == "too_short" and isinstance(err.get("input"), list):
-        return "must list at least one entry"
-    msg = str(err["msg"])
-    for prefix in ("Value error, ", "Assertion failed, "):
-        if msg.startswith(prefix):
-            msg = msg[len(prefix) :]
-    return msg[:1].lower() + msg[1:]
-
-
 def _problems(exc: ValidationError) -> list[Problem]:
     problems: list[Problem] = []
     for err in exc.errors(include_url=False):
         ctx = err.get("ctx") or {}
         if err["type"] == "config_cross_check":
-            prefix = _format_loc(err["loc"])
+            prefix = field_path(err["loc"])
             for p in ctx["problems"]:
                 problems.append(Problem(f"{prefix}.{p.path}" if prefix else p.path, p.message))
             continue
-        problems.append(Problem(_format_loc(err["loc"]), _message(err)))
+        problems.append(Problem(field_path(err["loc"]), pydantic_message(err)))
     return problems
 
 
 def parse_node_config(text: str, source: str = "<node config>", base: Path | None = None) -> NodeConfig:
     """Validate node config text; relative paths resolve against ``base``. Raises ``ConfigError``."""
     try:
-        data = yaml.load(text, Loader=_UniqueKeyLoader)  # a SafeLoader subclass
-    except yaml.YAMLError as exc:
-        mark = getattr(exc, "problem_mark", None)
-        where = f"line {mark.line + 1}, column {mark.column + 1}: " if mark is not None else ""
-        problem = getattr(exc, "problem", None) or str(exc)
-        raise ConfigError(source, [Problem("", f"not valid YAML: {where}{problem}")]) from None
+        data = read_yaml(text)
+    except ValueError as exc:
+        raise ConfigError(source, [Problem("", str(exc))]) from None
     if not isinstance(data, dict):
         raise ConfigError(
             source, [Problem("", "a node config is a YAML mapping (node, tls, peers, jobs, …)")]
