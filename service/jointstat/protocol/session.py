@@ -28,6 +28,10 @@ Any error — an unexpected frame, a malformed one, an OT or output check that f
 ``fail()`` — moves the session to ``failed``, raises ``ProtocolError`` whose ``frame`` is the abort frame for the
 peer, and releases no output. A peer's ``abort`` moves the session to ``failed`` likewise.
 
+Progress: ``and_gates_total`` is the circuit's AND gate count and ``and_gates_done`` how many of them the garbler
+has garbled and handed out, or the evaluator has evaluated (tables of 32 bytes per AND gate; XOR and NOT gates cost
+nothing), for a node to show how far a session is.
+
 Threads: the transport may run ``GarblerSession.produce()`` (the garbling) in a worker thread while it passes
 incoming frames to ``receive`` from another; a lock makes each step atomic, and the state moves past
 ``streaming`` before the last streamed frame is handed out, so the evaluator's reply can never find the garbler
@@ -301,6 +305,16 @@ class _Session:
         return self._transcript.frames_sent
 
     @property
+    def and_gates_total(self) -> int:
+        """AND gates in the circuit (each costs one 32-byte garbled table)."""
+        return int(self.layered.n_and)
+
+    @property
+    def and_gates_done(self) -> int:
+        """AND gates garbled and handed out (garbler) or evaluated (evaluator) so far."""
+        return 0
+
+    @property
     def frames_received(self) -> int:
         return self._transcript.frames_received
 
@@ -509,9 +523,14 @@ class GarblerSession(_Session):
         self._ot: CorrelatedOTSender | None = None
         self._engine: Garbler | None = None
         self._producing = False
+        self._tables_out = 0
         self._returned = _Accumulator(
             fr.GARBLER_OUTPUT_LABELS, BLOCK_BYTES * self._n_out[Party.GARBLER], "16 bytes per garbler output"
         )
+
+    @property
+    def and_gates_done(self) -> int:
+        return self._tables_out
 
     @property
     def ready_to_stream(self) -> bool:
@@ -590,6 +609,8 @@ class GarblerSession(_Session):
                     return
                 kind, payload = current
                 data = self._emit(kind, fr.payload_frame(kind, payload))
+                if kind == fr.GARBLED_TABLES:
+                    self._tables_out += len(payload) // TABLE_BYTES
                 extra = self._dispatch(TABLES_SENT, None) if upcoming is None else []
             yield data
             yield from extra
@@ -671,6 +692,10 @@ class EvaluatorSession(_Session):
             (n + 7) // 8 + 16 * n,
             "packed decoding bits and two 8-byte tags per output",
         )
+
+    @property
+    def and_gates_done(self) -> int:
+        return (TABLE_BYTES * self.layered.n_and - self._table_bytes_left) // TABLE_BYTES
 
     def _release_engines(self) -> None:
         self._ot = None

@@ -9,6 +9,8 @@ a stream lost before the first frame: the result has no output and its abort say
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import grpc
 
 from jointstat.protocol.session import Session
@@ -26,11 +28,13 @@ async def run_client(
     server_name: str | None = None,
     session_ids: SessionIds | None = None,
     counters: WireCounters | None = None,
+    on_progress: Callable[[], None] | None = None,
 ) -> SessionResult:
     """Run ``session`` against the server at ``target`` (``host:port``); returns this side's result.
 
     ``server_name`` is the name expected in the server's certificate (default: the DNS name of the single pinned
-    peer certificate). Raises ``SessionRefused`` if the session id was used before by this node.
+    peer certificate). Raises ``SessionRefused`` if the session id was used before by this node. ``counters`` and
+    ``on_progress`` let the caller follow the session (``driver.drive``).
     """
     limits = limits or Limits()
     ids = session_ids if session_ids is not None else SessionIds()
@@ -41,4 +45,4 @@ async def run_client(
         method = channel.stream_stream(METHOD_PATH, request_serializer=None, response_deserializer=None)
         call = method(timeout=limits.deadline_s + 2 * limits.abort_grace_s)
         stream = ClientStream(call, grace_s=limits.abort_grace_s)
-        return await drive(session, stream, limits, counters=counters)
+        return await drive(session, stream, limits, counters=counters, on_progress=on_progress)

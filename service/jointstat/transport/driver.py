@@ -22,7 +22,10 @@ Cancelling the task that runs ``drive`` fails the session with ``cancelled``, se
 cancels the stream, so the peer ends too. The result carries this side's own outputs only when it completed.
 
 Bytes on the wire are counted here, in both directions: each frame's length plus the 5-byte gRPC message prefix
-(HTTP/2 frame headers and TLS record overhead below gRPC are not visible to it).
+(HTTP/2 frame headers and TLS record overhead below gRPC are not visible to it). An optional ``on_progress``
+callback is called on the event loop after every frame received (once the session has taken it) and every frame
+written, so a node can follow the session's state, its counters and its AND gates done; an exception in the
+callback is swallowed, since watching a session must never break it.
 """
 
 from __future__ import annotations
@@ -135,11 +138,19 @@ _Item = tuple[bytes, bool] | None  # (frame, took a send slot); None ends the wr
 
 
 class _Driver:
-    def __init__(self, session: Session, stream: FrameStream, limits: Limits, counters: WireCounters) -> None:
+    def __init__(
+        self,
+        session: Session,
+        stream: FrameStream,
+        limits: Limits,
+        counters: WireCounters,
+        on_progress: Callable[[], None] | None = None,
+    ) -> None:
         self.session = session
         self.stream = stream
         self.limits = limits
         self.counters = counters
+        self._on_progress = on_progress
         self._loop = asyncio.get_running_loop()
         self._outbox: asyncio.Queue[_Item] = asyncio.Queue()
         self._slots = threading.Semaphore(limits.send_window)
@@ -151,6 +162,11 @@ class _Driver:
     # -- helpers ----------------------------------------------------------------------------------------------------
     def _progress(self) -> None:
         self._last_progress = self._loop.time()
+
+    def _notify(self) -> None:
+        if self._on_progress is not None:
+            with contextlib.suppress(Exception):
+                self._on_progress()
 
     def _enqueue(self, frames: list[bytes]) -> None:
         for data in frames:
@@ -197,6 +213,7 @@ class _Driver:
             self._producer = threading.Thread(target=self._produce, name="jointstat-garbler", daemon=True)
             self._producer.start()
         self._check_ended()
+        self._notify()
 
     async def _read_loop(self, first_frame: bytes | None) -> None:
         try:
@@ -231,6 +248,7 @@ class _Driver:
             self.counters.bytes_sent += len(data) + GRPC_MESSAGE_PREFIX
             self.counters.frames_sent += 1
             self._progress()
+            self._notify()
 
     def _produce(self) -> None:
         """Producer thread: garble and hand frames to the loop, one send slot each."""
@@ -304,6 +322,7 @@ class _Driver:
             if self._producer is not None:
                 await asyncio.to_thread(self._producer.join)
         result = result_of(self.session, self.counters)
+        self._notify()
         if cancelled:
             raise asyncio.CancelledError
         return result
@@ -316,15 +335,18 @@ async def drive(
     *,
     counters: WireCounters | None = None,
     first_frame: bytes | None = None,
+    on_progress: Callable[[], None] | None = None,
 ) -> SessionResult:
     """Run ``session`` over ``stream`` until it completes or fails; ``first_frame`` is a frame already read.
 
     Returns the result in both cases; raises ``asyncio.CancelledError`` if the calling task was cancelled (after
-    failing the session, telling the peer when possible and cancelling the stream).
+    failing the session, telling the peer when possible and cancelling the stream). ``on_progress`` is called
+    after each frame in or out and once at the end (see the module docstring).
     """
     if session.state != "new":
         raise ValueError(f"drive() needs a new session, got one in state {session.state!r}")
-    return await _Driver(session, stream, limits, counters or WireCounters()).run(first_frame)
+    driver = _Driver(session, stream, limits, counters or WireCounters(), on_progress)
+    return await driver.run(first_frame)
 
 
 __all__ = [

@@ -8,13 +8,18 @@ anything. It then reads the first frame, which must be a hello, and looks up its
 one nobody expects, is refused with an abort frame; a session expected from another peer certificate likewise.
 Otherwise the id is claimed (it can never run again) and the driver runs the session to its end; the future gets
 the result, including when the stream is cancelled under it.
+
+``services`` lets the node register more services on the same port before it starts (its run proposals and the
+standard health service): each is called with the ``grpc.aio.Server``. ``expect`` takes the ``counters`` and the
+``on_progress`` callback of ``driver.drive``, so the node can follow a session it serves.
 """
 
 from __future__ import annotations
 
 import asyncio
 import contextlib
-from dataclasses import dataclass
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
 
 import grpc
 
@@ -39,6 +44,8 @@ class _Expected:
     limits: Limits
     peer: bytes | None
     future: asyncio.Future[SessionResult]
+    counters: WireCounters = field(default_factory=WireCounters)
+    on_progress: Callable[[], None] | None = None
 
 
 class SessionServer:
@@ -51,8 +58,10 @@ class SessionServer:
         address: str = "127.0.0.1:0",
         limits: Limits | None = None,
         session_ids: SessionIds | None = None,
+        services: Sequence[Callable[[grpc.aio.Server], None]] = (),
     ) -> None:
         self._tls = tls
+        self._services = tuple(services)
         self._address = address
         self._limits = limits or Limits()
         self._ids = session_ids if session_ids is not None else SessionIds()
@@ -77,6 +86,8 @@ class SessionServer:
         server.add_generic_rpc_handlers(
             [grpc.method_handlers_generic_handler(SERVICE_NAME, {METHOD_NAME: handler})]
         )
+        for add_service in self._services:
+            add_service(server)
         port = server.add_secure_port(self._address, self._tls.server_credentials())
         if port == 0:
             raise OSError(f"could not bind the session server to {self._address}")
@@ -104,7 +115,13 @@ class SessionServer:
         await self.stop(None)
 
     def expect(
-        self, session: Session, *, peer_fingerprint: bytes | None = None, limits: Limits | None = None
+        self,
+        session: Session,
+        *,
+        peer_fingerprint: bytes | None = None,
+        limits: Limits | None = None,
+        counters: WireCounters | None = None,
+        on_progress: Callable[[], None] | None = None,
     ) -> asyncio.Future[SessionResult]:
         """Serve ``session`` to the peer that opens it; ``peer_fingerprint`` restricts which pinned peer may."""
         sid = session.session_id
@@ -113,7 +130,14 @@ class SessionServer:
         if peer_fingerprint is not None and peer_fingerprint not in self._tls.pinned_fingerprints:
             raise ValueError("peer_fingerprint is not one of this server's pinned certificates")
         future: asyncio.Future[SessionResult] = asyncio.get_running_loop().create_future()
-        self._expected[sid] = _Expected(session, limits or self._limits, peer_fingerprint, future)
+        self._expected[sid] = _Expected(
+            session,
+            limits or self._limits,
+            peer_fingerprint,
+            future,
+            counters if counters is not None else WireCounters(),
+            on_progress,
+        )
         return future
 
     def withdraw(self, session_id: bytes) -> bool:
@@ -177,9 +201,16 @@ class SessionServer:
             await self._refuse(stream, AbortReason.SESSION_REFUSED, str(exc))
             entry.future.cancel()
             return
-        counters = WireCounters()
+        counters = entry.counters
         try:
-            result = await drive(entry.session, stream, entry.limits, counters=counters, first_frame=first)
+            result = await drive(
+                entry.session,
+                stream,
+                entry.limits,
+                counters=counters,
+                first_frame=first,
+                on_progress=entry.on_progress,
+            )
         except BaseException:  # cancelled (the driver has failed the session) or a transport failure
             entry.session.fail(AbortReason.INTERNAL, "the session transport failed")
             if not entry.future.done():

@@ -29,6 +29,19 @@ class AbortReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     ABORT_REASON_CANCELLED: _ClassVar[AbortReason]
     ABORT_REASON_CONNECTION_LOST: _ClassVar[AbortReason]
     ABORT_REASON_INTERNAL: _ClassVar[AbortReason]
+
+class RefusalReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
+    __slots__ = ()
+    REFUSAL_REASON_UNSPECIFIED: _ClassVar[RefusalReason]
+    REFUSAL_REASON_JOB_NOT_CONFIGURED: _ClassVar[RefusalReason]
+    REFUSAL_REASON_DIGEST_MISMATCH: _ClassVar[RefusalReason]
+    REFUSAL_REASON_OUTSIDE_WINDOW: _ClassVar[RefusalReason]
+    REFUSAL_REASON_BUSY: _ClassVar[RefusalReason]
+    REFUSAL_REASON_ROLE_MISMATCH: _ClassVar[RefusalReason]
+    REFUSAL_REASON_MALFORMED: _ClassVar[RefusalReason]
+    REFUSAL_REASON_INPUT_UNAVAILABLE: _ClassVar[RefusalReason]
+    REFUSAL_REASON_SHUTTING_DOWN: _ClassVar[RefusalReason]
+    REFUSAL_REASON_PROTOCOL_VERSION: _ClassVar[RefusalReason]
 ROLE_UNSPECIFIED: Role
 ROLE_GARBLER: Role
 ROLE_EVALUATOR: Role
@@ -47,6 +60,16 @@ ABORT_REASON_DEADLINE: AbortReason
 ABORT_REASON_CANCELLED: AbortReason
 ABORT_REASON_CONNECTION_LOST: AbortReason
 ABORT_REASON_INTERNAL: AbortReason
+REFUSAL_REASON_UNSPECIFIED: RefusalReason
+REFUSAL_REASON_JOB_NOT_CONFIGURED: RefusalReason
+REFUSAL_REASON_DIGEST_MISMATCH: RefusalReason
+REFUSAL_REASON_OUTSIDE_WINDOW: RefusalReason
+REFUSAL_REASON_BUSY: RefusalReason
+REFUSAL_REASON_ROLE_MISMATCH: RefusalReason
+REFUSAL_REASON_MALFORMED: RefusalReason
+REFUSAL_REASON_INPUT_UNAVAILABLE: RefusalReason
+REFUSAL_REASON_SHUTTING_DOWN: RefusalReason
+REFUSAL_REASON_PROTOCOL_VERSION: RefusalReason
 
 class Hello(_message.Message):
     __slots__ = ("protocol_version", "manifest_digest", "session_id", "role", "circuit_digest")
@@ -135,3 +158,33 @@ class Frame(_message.Message):
     finish: Finish
     abort: Abort
     def __init__(self, hello: _Optional[_Union[Hello, _Mapping]] = ..., base_ot: _Optional[_Union[BaseOT, _Mapping]] = ..., ot_extension: _Optional[_Union[OTExtension, _Mapping]] = ..., garbler_input_labels: _Optional[_Union[GarblerInputLabels, _Mapping]] = ..., garbled_tables: _Optional[_Union[GarbledTables, _Mapping]] = ..., garbler_output_labels: _Optional[_Union[GarblerOutputLabels, _Mapping]] = ..., evaluator_output_decoding: _Optional[_Union[EvaluatorOutputDecoding, _Mapping]] = ..., finish: _Optional[_Union[Finish, _Mapping]] = ..., abort: _Optional[_Union[Abort, _Mapping]] = ...) -> None: ...
+
+class RunProposal(_message.Message):
+    __slots__ = ("protocol_version", "job", "manifest_digest", "session_id", "scheduled_for_us", "role", "attempt", "trigger")
+    PROTOCOL_VERSION_FIELD_NUMBER: _ClassVar[int]
+    JOB_FIELD_NUMBER: _ClassVar[int]
+    MANIFEST_DIGEST_FIELD_NUMBER: _ClassVar[int]
+    SESSION_ID_FIELD_NUMBER: _ClassVar[int]
+    SCHEDULED_FOR_US_FIELD_NUMBER: _ClassVar[int]
+    ROLE_FIELD_NUMBER: _ClassVar[int]
+    ATTEMPT_FIELD_NUMBER: _ClassVar[int]
+    TRIGGER_FIELD_NUMBER: _ClassVar[int]
+    protocol_version: int
+    job: str
+    manifest_digest: bytes
+    session_id: bytes
+    scheduled_for_us: int
+    role: Role
+    attempt: int
+    trigger: str
+    def __init__(self, protocol_version: _Optional[int] = ..., job: _Optional[str] = ..., manifest_digest: _Optional[bytes] = ..., session_id: _Optional[bytes] = ..., scheduled_for_us: _Optional[int] = ..., role: _Optional[_Union[Role, str]] = ..., attempt: _Optional[int] = ..., trigger: _Optional[str] = ...) -> None: ...
+
+class RunAnswer(_message.Message):
+    __slots__ = ("accepted", "reason", "message")
+    ACCEPTED_FIELD_NUMBER: _ClassVar[int]
+    REASON_FIELD_NUMBER: _ClassVar[int]
+    MESSAGE_FIELD_NUMBER: _ClassVar[int]
+    accepted: bool
+    reason: RefusalReason
+    message: str
+    def __init__(self, accepted: _Optional[bool] = ..., reason: _Optional[_Union[RefusalReason, str]] = ..., message: _Optional[str] = ...) -> None: ...
