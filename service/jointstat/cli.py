@@ -19,6 +19,7 @@ COMMAND_MODULES = [
     "jointstat.audit.commands",
     "jointstat.node.keycommands",
     "jointstat.node.commands",
+    "jointstat.node.opscommands",
     "jointstat.circuit.commands",
 ]
 

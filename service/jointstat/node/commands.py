@@ -1,4 +1,8 @@
-"""``jointstat node check``: validate a node config and the files it names, before the node is started with it."""
+"""``jointstat node check`` validates a node config and the files it names; ``jointstat node run`` runs the node.
+
+``node run`` performs the same checks first and refuses to start on any problem (exit code 1); it then runs the
+daemon (``jointstat.node.daemon``) until SIGTERM or SIGINT, aborts and logs running sessions, and exits 0.
+"""
 
 from __future__ import annotations
 
@@ -34,8 +38,20 @@ def _check(args: argparse.Namespace) -> int:
     return 0
 
 
+def _run(args: argparse.Namespace) -> int:
+    from jointstat.node.config import ConfigError, load_node_config
+    from jointstat.node.daemon import run_node
+
+    try:
+        config = load_node_config(args.config)
+    except ConfigError as exc:
+        print(exc, file=sys.stderr)
+        return 1
+    return run_node(config)
+
+
 def add_commands(sub: argparse._SubParsersAction) -> None:
-    node = sub.add_parser("node", help="check a node's configuration")
+    node = sub.add_parser("node", help="check a node's configuration, or run the node")
     which = node.add_subparsers(dest="what", required=True, metavar="WHAT")
     check = which.add_parser(
         "check",
@@ -43,3 +59,9 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     )
     check.add_argument("--config", required=True, metavar="FILE", help="the node config (YAML)")
     check.set_defaults(handler=_check)
+    run = which.add_parser(
+        "run",
+        help="run the node: peer service (mutual TLS), health, metrics, admin API and the job scheduler",
+    )
+    run.add_argument("--config", required=True, metavar="FILE", help="the node config (YAML)")
+    run.set_defaults(handler=_run)

@@ -1,0 +1,532 @@
+"""The node daemon (``jointstat node run``): peer service, health, metrics, admin API and the job scheduler.
+
+Theory of operation
+-------------------
+``Node.start()`` checks the config's files and secrets (every problem named by field path; group- or
+world-readable keys refused), reads the keys, opens the job store and the session log (an exclusive lock: one
+process per log), closes what a previous process left open — runs still ``running`` become ``aborted``, sessions
+the log shows started but never ended get ``session_aborted`` (reason ``node_restarted``) — and then serves, all on
+one asyncio event loop:
+
+- the peer-facing gRPC server on ``node.listen`` (``transport.SessionServer``, mutual TLS with the pinned peer
+  certificates), carrying ``Session/Exchange``, ``Session/Propose`` (``node.jobs``) and the standard gRPC health
+  service ``grpc.health.v1.Health``; the health service also on ``node.health`` in plain text when configured, for
+  probes that hold no client certificate;
+- the Prometheus endpoint on ``node.metrics`` (``node.metrics``);
+- the admin API on ``node.admin`` (``node.admin``);
+- the scheduler: once at start-up, each initiated job's latest scheduled time whose window is still open and which
+  the store has no run for — if it fell after this node's first start (``<data_dir>/first-start``), since a node
+  that did not exist missed nothing — is run (catch-up); then it sleeps on the injected clock (``node.clock``)
+  until the next scheduled time of any initiated job and starts the runs that are due (``schedule.Planner``).
+
+``Node.stop()`` (SIGTERM or SIGINT in ``run_node``): health turns NOT_SERVING, new proposals are refused, the
+scheduler and the sessions this node initiated are cancelled, the peer server stops at once (so sessions it serves
+are cancelled too); the transport sends each peer an abort frame, and every session is logged ``session_aborted``
+and stored ``aborted`` before the log and the store are closed. A result file is only ever written whole
+(atomically), so a stop leaves either a complete result or none.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import logging
+import os
+import signal
+import stat
+import sys
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import grpc
+from croniter import croniter
+from grpc_health.v1 import health, health_pb2, health_pb2_grpc
+
+from jointstat.audit.log import SessionLog
+from jointstat.audit.records import AuditError
+from jointstat.node.admin import RequestError, admin_handler, limit_field, text_field
+from jointstat.node.clock import Clock, SystemClock
+from jointstat.node.config import ConfigError, JobConfig, NodeConfig, UnixSocket
+from jointstat.node.jobs import (
+    JobRunner,
+    NodeState,
+    load_node_keys,
+    new_session_id,
+    proposal_service,
+    role_name,
+    role_of,
+)
+from jointstat.node.metrics import NodeMetrics
+from jointstat.node.progress import SessionTracker
+from jointstat.node.secrets import SecretFileError
+from jointstat.node.store import JobStore, RunRecord, StoreError
+from jointstat.transport.driver import Limits
+from jointstat.transport.server import SessionServer
+
+log = logging.getLogger("jointstat.node")
+
+FIRST_START_FILE = "first-start"
+STOP_TIMEOUT_S = 30.0
+KEEP_ENDED_SESSIONS = 200
+
+
+def _run_dict(r: RunRecord) -> dict[str, Any]:
+    return {
+        "id": r.id,
+        "job": r.job,
+        "scheduled_for": r.scheduled_for.isoformat(),
+        "attempt": r.attempt,
+        "trigger": r.trigger,
+        "session": r.session_id,
+        "status": r.status,
+        "started_at": r.started_at.isoformat(),
+        "finished_at": None if r.finished_at is None else r.finished_at.isoformat(),
+        "reason": r.reason,
+        "result_path": r.result_path,
+    }
+
+
+def next_fire(job: JobConfig, now: datetime) -> datetime:
+    """The job's first scheduled time strictly after ``now`` (UTC)."""
+    timing = job.timing()
+    nxt = croniter(timing.cron, now.astimezone(timing.zone)).get_next(datetime)
+    return nxt.astimezone(UTC)
+
+
+class Node:
+    """One running node; see the module docstring. Not started until ``await start()``."""
+
+    def __init__(self, config: NodeConfig, *, clock: Clock | None = None) -> None:
+        self.config = config
+        self.clock: Clock = clock or SystemClock()
+        self.metrics = NodeMetrics()
+        self.state: NodeState | None = None
+        self.runner: JobRunner | None = None
+        self.health = health.aio.HealthServicer()
+        self.peer_port: int | None = None
+        self.health_port: int | None = None
+        self.metrics_port: int | None = None
+        self.started_at: datetime | None = None
+        self._server: SessionServer | None = None
+        self._health_server: grpc.aio.Server | None = None
+        self._admin_server: grpc.aio.Server | None = None
+        self._scheduler: asyncio.Task[None] | None = None
+        self._jobs: set[asyncio.Task[Any]] = set()
+        self._stop_requested = asyncio.Event()
+        self._stopped = False
+        self._first_start: datetime | None = None
+
+    # -- start ---------------------------------------------------------------------------------------------------
+
+    async def start(self) -> None:
+        config, node = self.config, self.config.node
+        problems = config.file_problems() + config.secret_problems()
+        if problems:
+            raise ConfigError(config.source, problems)
+        keys = await asyncio.to_thread(load_node_keys, config)
+        from jointstat.node.secrets import ensure_private_dir
+
+        ensure_private_dir(node.data_dir)
+        self.started_at = self.clock.now()
+        self._first_start = self._read_first_start(node.data_dir, self.started_at)
+        store = JobStore(node.job_store)
+        try:
+            session_log = SessionLog(node.session_log, keys.signing_key, node.name, clock=self.clock.now)
+        except BaseException:
+            store.close()
+            raise
+        self.state = NodeState(
+            config=config,
+            keys=keys,
+            store=store,
+            session_log=session_log,
+            clock=self.clock,
+            metrics=self.metrics,
+            limits=Limits(deadline_s=float(node.session_deadline_seconds)),
+        )
+        try:
+            await self._recover()
+            self.runner = JobRunner(self.state)
+            await self._serve(keys)
+        except BaseException:
+            await self._close_everything()
+            raise
+        self._scheduler = asyncio.create_task(self._schedule(), name="jointstat-scheduler")
+        log.info("node %s: started", node.name)
+
+    @staticmethod
+    def _read_first_start(data_dir: Path, now: datetime) -> datetime:
+        from jointstat.node.secrets import write_private_file
+
+        path = data_dir / FIRST_START_FILE
+        try:
+            return datetime.fromisoformat(path.read_text(encoding="ascii").strip())
+        except FileNotFoundError:
+            write_private_file(path, (now.isoformat() + "\n").encode("ascii"))
+            return now
+        except (OSError, ValueError, UnicodeDecodeError):
+            raise ConfigError(
+                str(path), _problem("not the node's first start time (ISO 8601); remove the file to reset it")
+            ) from None
+
+    async def _recover(self) -> None:
+        assert self.state is not None
+        now = self.clock.now()
+        closed = await asyncio.to_thread(self.state.store.close_interrupted, now)
+        if closed:
+            log.warning("job store: %d run(s) left running by the previous process marked aborted", closed)
+        for sid in await asyncio.to_thread(self.state.session_log.open_sessions):
+            await asyncio.to_thread(
+                self.state.session_log.session_aborted,
+                sid,
+                reason="node_restarted",
+                by="self",
+                phase=None,
+                detail="the node stopped before this session ended",
+            )
+            log.warning("session log: session %s left open by the previous process logged aborted", sid)
+        for job in self.config.jobs:
+            last = await asyncio.to_thread(self.state.store.last_success, job.name)
+            if last is not None and last.finished_at is not None:
+                self.metrics.last_success.labels(job.name).set(last.finished_at.timestamp())
+
+    async def _serve(self, keys: Any) -> None:
+        assert self.state is not None and self.runner is not None
+        node = self.config.node
+        runner = self.runner
+
+        def add_health(server: grpc.aio.Server) -> None:
+            health_pb2_grpc.add_HealthServicer_to_server(self.health, server)
+
+        self._server = SessionServer(
+            keys.server_tls,
+            address=str(node.listen),
+            limits=self.state.limits,
+            session_ids=self.state.session_ids,
+            services=[proposal_service(lambda: runner, keys), add_health],
+        )
+        self.state.server = self._server
+        self.peer_port = await self._server.start()
+        if node.health is not None:
+            server = grpc.aio.server()
+            health_pb2_grpc.add_HealthServicer_to_server(self.health, server)
+            port = server.add_insecure_port(str(node.health))
+            if port == 0:
+                raise OSError(f"node.health: cannot listen on {node.health}")
+            await server.start()
+            self._health_server, self.health_port = server, port
+        self.metrics_port = await asyncio.to_thread(self.metrics.serve, node.metrics.host, node.metrics.port)
+        admin = grpc.aio.server()
+        admin.add_generic_rpc_handlers([admin_handler(self)])
+        if isinstance(node.admin, UnixSocket):
+            _clear_stale_socket(node.admin.path)
+        if admin.add_insecure_port(str(node.admin)) == 0:
+            raise OSError(f"node.admin: cannot listen on {node.admin}")
+        await admin.start()
+        if isinstance(node.admin, UnixSocket):
+            os.chmod(node.admin.path, 0o600)
+        self._admin_server = admin
+        await self.health.set("", health_pb2.HealthCheckResponse.SERVING)
+
+    # -- scheduling ----------------------------------------------------------------------------------------------
+
+    def _spawn(self, job: JobConfig, scheduled_for: datetime, trigger: str, sid: bytes | None = None) -> None:
+        assert self.runner is not None
+        task = asyncio.create_task(
+            self.runner.run_job(job, scheduled_for, trigger, sid), name=f"job-{job.name}"
+        )
+        self._jobs.add(task)
+        task.add_done_callback(self._job_done)
+        self._prune_sessions()
+
+    def _job_done(self, task: asyncio.Task[Any]) -> None:
+        self._jobs.discard(task)
+        if not task.cancelled() and task.exception() is not None:
+            exc = task.exception()
+            log.error("a job run failed unexpectedly: %s: %s", type(exc).__name__, exc)
+
+    def _prune_sessions(self) -> None:
+        assert self.state is not None
+        sessions = self.state.sessions
+        ended = [sid for sid, t in sessions.items() if t.ended]
+        for sid in ended[: max(0, len(ended) - KEEP_ENDED_SESSIONS)]:
+            del sessions[sid]
+
+    async def _schedule(self) -> None:
+        assert self.state is not None and self.runner is not None and self._first_start is not None
+        planner = self.runner.planner
+        initiated = {j.name: j for j in self.config.jobs if j.initiate}
+        now = self.clock.now()
+        done = await asyncio.to_thread(self.state.store.scheduled_done)
+        for run in planner.missed(now, done):
+            if run.scheduled_for >= self._first_start:
+                log.info(
+                    "job %s: run of %s missed while the node was down; running it now",
+                    run.job,
+                    run.scheduled_for,
+                )
+                self._spawn(initiated[run.job], run.scheduled_for, "schedule")
+        while not self.state.stopping:
+            for run in planner.due(self.clock.now()):
+                log.info("job %s: scheduled run of %s is due", run.job, run.scheduled_for.isoformat())
+                self._spawn(initiated[run.job], run.scheduled_for, "schedule")
+            if not initiated:
+                await self._stop_requested.wait()
+                return
+            now = self.clock.now()
+            wake = min(next_fire(job, now) for job in initiated.values())
+            sleeper = asyncio.ensure_future(self.clock.sleep_until(wake))
+            stopper = asyncio.ensure_future(self._stop_requested.wait())
+            try:
+                await asyncio.wait({sleeper, stopper}, return_when=asyncio.FIRST_COMPLETED)
+            finally:
+                sleeper.cancel()
+                stopper.cancel()
+
+    # -- stop ----------------------------------------------------------------------------------------------------
+
+    def request_stop(self) -> None:
+        """Ask the node to stop (what SIGTERM and SIGINT do); ``wait_for_stop`` returns."""
+        self._stop_requested.set()
+
+    async def wait_for_stop(self) -> None:
+        await self._stop_requested.wait()
+
+    async def stop(self) -> None:
+        """Stop serving, abort and log running sessions, close the log and the store (see the module docstring)."""
+        if self._stopped:
+            return
+        self._stopped = True
+        self._stop_requested.set()
+        state = self.state
+        running = state.running_sessions() if state is not None else 0
+        if state is not None:
+            state.stopping = True
+        with contextlib.suppress(Exception):
+            await self.health.enter_graceful_shutdown()
+        if self._scheduler is not None:
+            self._scheduler.cancel()
+            with contextlib.suppress(asyncio.CancelledError, Exception):
+                await self._scheduler
+        for task in list(self._jobs):
+            task.cancel()
+        if self._server is not None:
+            await self._server.stop(None)
+        pending = set(self._jobs) | (set(self.runner.served) if self.runner is not None else set())
+        if pending:
+            _, left = await asyncio.wait(pending, timeout=STOP_TIMEOUT_S)
+            for task in left:
+                log.error("a session did not finish its records within %g s of the stop", STOP_TIMEOUT_S)
+                task.cancel()
+        await self._close_everything()
+        log.info(
+            "node %s: stopped (%d session(s) were running and have been aborted)",
+            self.config.node.name,
+            running,
+        )
+
+    async def _close_everything(self) -> None:
+        if self._server is not None:
+            with contextlib.suppress(Exception):
+                await self._server.stop(None)
+        for server in (self._health_server, self._admin_server):
+            if server is not None:
+                with contextlib.suppress(Exception):
+                    await server.stop(None)
+        self._health_server = self._admin_server = None
+        await asyncio.to_thread(self.metrics.stop)
+        if self.state is not None:
+            self.state.session_log.close()
+            self.state.store.close()
+        admin = self.config.node.admin
+        if isinstance(admin, UnixSocket):
+            with contextlib.suppress(OSError):
+                if stat.S_ISSOCK(admin.path.lstat().st_mode):
+                    admin.path.unlink()
+
+    # -- admin API -----------------------------------------------------------------------------------------------
+
+    def _job(self, name: str) -> JobConfig:
+        try:
+            return self.config.job(name)
+        except KeyError:
+            known = ", ".join(j.name for j in self.config.jobs) or "none"
+            raise RequestError(grpc.StatusCode.NOT_FOUND, f"no job named {name!r} (jobs: {known})") from None
+
+    async def admin_status(self, request: dict[str, Any]) -> dict[str, Any]:
+        assert self.state is not None
+        node = self.config.node
+        return {
+            "node": node.name,
+            "started_at": None if self.started_at is None else self.started_at.isoformat(),
+            "now": self.clock.now().isoformat(),
+            "listen": str(node.listen),
+            "peer_port": self.peer_port,
+            "metrics_port": self.metrics_port,
+            "health_port": self.health_port,
+            "admin": str(node.admin),
+            "sessions_running": self.state.running_sessions(),
+            "max_sessions": node.max_sessions,
+            "jobs": len(self.config.jobs),
+            "stopping": self.state.stopping,
+        }
+
+    async def admin_list_jobs(self, request: dict[str, Any]) -> dict[str, Any]:
+        assert self.state is not None
+        now = self.clock.now()
+        jobs = []
+        for job in self.config.jobs:
+            timing = job.timing()
+            latest = timing.latest_fire(now)
+            runs = await asyncio.to_thread(self.state.store.runs, job.name, 1)
+            success = await asyncio.to_thread(self.state.store.last_success, job.name)
+            jobs.append(
+                {
+                    "name": job.name,
+                    "peer": job.peer,
+                    "initiate": job.initiate,
+                    "role": role_name(role_of(job)),
+                    "manifest": str(job.manifest),
+                    "cron": job.schedule.cron,
+                    "timezone": job.schedule.timezone,
+                    "window_minutes": job.schedule.window_minutes,
+                    "window_open": timing.in_window(latest, now),
+                    "next_run": next_fire(job, now).isoformat() if job.initiate else None,
+                    "last_run": _run_dict(runs[0]) if runs else None,
+                    "last_success": None
+                    if success is None or success.finished_at is None
+                    else success.finished_at.isoformat(),
+                    "results": str(job.results),
+                }
+            )
+        return {"jobs": jobs}
+
+    async def admin_run_job(self, request: dict[str, Any]) -> dict[str, Any]:
+        assert self.state is not None
+        name = text_field(request, "job")
+        assert name is not None
+        job = self._job(name)
+        if not job.initiate:
+            raise RequestError(
+                grpc.StatusCode.FAILED_PRECONDITION,
+                f"this node does not initiate job {name!r}; it runs when node {job.peer} starts it",
+            )
+        if self.state.stopping:
+            raise RequestError(grpc.StatusCode.FAILED_PRECONDITION, "the node is stopping")
+        now = self.clock.now()
+        sid = new_session_id()
+        self._spawn(job, now, "operator", sid)
+        log.info("job %s: run requested by the operator (session %s)", name, sid.hex())
+        return {"job": name, "session": sid.hex(), "scheduled_for": now.isoformat()}
+
+    async def admin_history(self, request: dict[str, Any]) -> dict[str, Any]:
+        assert self.state is not None
+        job = text_field(request, "job", required=False)
+        runs = await asyncio.to_thread(self.state.store.runs, job, limit_field(request))
+        return {"runs": [_run_dict(r) for r in runs]}
+
+    async def admin_list_sessions(self, request: dict[str, Any]) -> dict[str, Any]:
+        assert self.state is not None
+        limit = limit_field(request)
+        live = list(self.state.sessions.values())[::-1]
+        out: list[dict[str, Any]] = [_brief(t) for t in live]
+        seen = {t.session_id for t in live}
+        for r in await asyncio.to_thread(self.state.store.runs, None, limit):
+            if r.session_id and r.session_id not in seen:
+                seen.add(r.session_id)
+                out.append(
+                    {
+                        "session": r.session_id,
+                        "job": r.job,
+                        "status": r.status,
+                        "started_at": r.started_at.isoformat(),
+                        "reason": r.reason,
+                        "live": False,
+                    }
+                )
+        out.sort(key=lambda s: s["started_at"], reverse=True)
+        return {"sessions": out[:limit]}
+
+    async def admin_show_session(self, request: dict[str, Any]) -> dict[str, Any]:
+        assert self.state is not None
+        sid = text_field(request, "session")
+        assert sid is not None
+        tracker = self.state.sessions.get(sid)
+        rows = [
+            r for r in await asyncio.to_thread(self.state.store.runs, None, 10_000) if r.session_id == sid
+        ]
+        if tracker is None and not rows:
+            raise RequestError(grpc.StatusCode.NOT_FOUND, f"no session {sid} on node {self.config.node.name}")
+        out: dict[str, Any] = {"session": sid, "live": tracker is not None}
+        if tracker is not None:
+            out.update(tracker.snapshot())
+        if rows:
+            out["run"] = _run_dict(rows[0])
+            out.setdefault("job", rows[0].job)
+            if tracker is None:
+                out["status"] = rows[0].status
+                out["reason"] = rows[0].reason
+                out["result_path"] = rows[0].result_path
+            elif rows[0].status != "running":
+                out["result_path"] = rows[0].result_path
+        return {"session": out}
+
+
+def _brief(t: SessionTracker) -> dict[str, Any]:
+    snap = t.snapshot()
+    keys = ("session", "job", "role", "peer", "trigger", "status", "reason", "phase", "started_at")
+    return {**{k: snap[k] for k in keys}, "live": True}
+
+
+def _clear_stale_socket(path: Path) -> None:
+    """Remove a socket file left by a previous process (this process holds the session log's lock)."""
+    try:
+        info = path.lstat()
+    except FileNotFoundError:
+        return
+    if not stat.S_ISSOCK(info.st_mode):
+        raise OSError(f"node.admin: {path} exists and is not a socket")
+    path.unlink()
+
+
+def _problem(message: str) -> list[Any]:
+    from jointstat.problems import Problem
+
+    return [Problem("", message)]
+
+
+async def _run(config: NodeConfig) -> int:
+    node = Node(config)
+    loop = asyncio.get_running_loop()
+    try:
+        await node.start()
+    except ConfigError as exc:
+        print(exc, file=sys.stderr)
+        return 1
+    except (OSError, AuditError, StoreError, SecretFileError, RuntimeError) as exc:
+        print(f"node {config.node.name}: cannot start: {exc}", file=sys.stderr)
+        return 1
+    for sig in (signal.SIGTERM, signal.SIGINT):
+        loop.add_signal_handler(sig, node.request_stop)
+    n = config.node
+    extra = f", health {n.health.host}:{node.health_port}" if n.health is not None else ""
+    print(
+        f"node {n.name}: serving peers on {n.listen.host}:{node.peer_port}, admin {n.admin}, "
+        f"metrics {n.metrics.host}:{node.metrics_port}{extra}; {len(config.jobs)} job(s)",
+        flush=True,
+    )
+    try:
+        await node.wait_for_stop()
+        log.info("node %s: stop requested", n.name)
+    finally:
+        await node.stop()
+    return 0
+
+
+def run_node(config: NodeConfig) -> int:
+    """Run the node until SIGTERM or SIGINT; returns the process exit code."""
+    logging.basicConfig(
+        level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s: %(message)s", stream=sys.stderr
+    )
+    return asyncio.run(_run(config))

@@ -1,0 +1,325 @@
+"""``jointstat jobs …`` and ``jointstat sessions …``: the operator's commands, talking to a running node's admin API.
+
+Each command reads the node config given by ``--config`` (default ``$JOINTSTAT_CONFIG``, else
+``/etc/jointstat/node.yaml``, the path of the container image and the systemd unit) only to find the node's admin
+address, and calls the admin API there (``node.admin``). ``jobs run NAME`` asks the node to run an initiated job
+now and follows its session; ``sessions show ID`` shows one session and, for a running session on a terminal,
+follows it with a progress bar (AND gates done of total, bytes, rate, time left); when the output is not a
+terminal it prints plain lines instead. ``--json`` prints the admin API's answer as it is.
+
+Exit codes: 0 done (for ``jobs run``: the session completed); 1 the run or session did not complete; 2 a usage,
+config or connection problem.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import time
+from typing import Any
+
+DEFAULT_CONFIG = "/etc/jointstat/node.yaml"
+POLL_S = 0.25
+ENDED = ("completed", "aborted", "refused", "failed")
+
+
+def _client(args: argparse.Namespace) -> Any:
+    from jointstat.cli import UserError
+    from jointstat.node.admin import AdminClient
+    from jointstat.node.config import ConfigError, load_node_config
+
+    path = args.config or os.environ.get("JOINTSTAT_CONFIG") or DEFAULT_CONFIG
+    try:
+        config = load_node_config(path)
+    except ConfigError as exc:
+        raise UserError(str(exc)) from None
+    return AdminClient(str(config.node.admin))
+
+
+def _call(fn: Any, *args: Any) -> Any:
+    from jointstat.cli import UserError
+    from jointstat.node.admin import AdminError
+
+    try:
+        return fn(*args)
+    except AdminError as exc:
+        raise UserError(str(exc)) from None
+
+
+def _short(text: str | None, width: int) -> str:
+    if text is None:
+        return "-"
+    return text if len(text) <= width else text[: width - 1] + "…"
+
+
+def _when(text: str | None) -> str:
+    """An ISO time as YYYY-MM-DD HH:MM:SS (UTC as the node reports it)."""
+    if not text:
+        return "-"
+    return text.replace("T", " ")[:19]
+
+
+def human_bytes(n: int | None) -> str:
+    if n is None:
+        return "-"
+    value = float(n)
+    for unit in ("B", "KiB", "MiB", "GiB"):
+        if value < 1024 or unit == "GiB":
+            return f"{value:.0f} {unit}" if unit == "B" else f"{value:.1f} {unit}"
+        value /= 1024
+    raise AssertionError("unreachable")
+
+
+def _table(rows: list[list[str]], header: list[str]) -> None:
+    widths = [max(len(str(r[i])) for r in [header, *rows]) for i in range(len(header))]
+    for row in [header, *rows]:
+        print("  ".join(str(cell).ljust(w) for cell, w in zip(row, widths, strict=True)).rstrip())
+
+
+def progress_line(s: dict[str, Any]) -> str:
+    """One plain line: status, phase, AND gates done of total, bytes each way, rate, time left."""
+    total = s.get("and_gates_total")
+    done = s.get("and_gates_done") or 0
+    gates = f"{done:,}/{total:,} AND gates ({100 * done / total:.0f}%)" if total else "AND gates -"
+    rate = s.get("and_gates_per_s")
+    eta = s.get("eta_s")
+    parts = [
+        f"{s.get('status', '?')}",
+        f"phase {s.get('phase') or '-'}",
+        gates,
+        f"sent {human_bytes(s.get('bytes_sent'))}",
+        f"received {human_bytes(s.get('bytes_received'))}",
+        f"{rate:,.0f} AND/s" if rate else "rate -",
+        f"{eta:.1f} s left" if eta is not None else "",
+    ]
+    return ", ".join(p for p in parts if p)
+
+
+def follow(client: Any, session_id: str, *, tty: bool, prefix: str = "") -> dict[str, Any]:
+    """Show a session until it ends: a rich progress bar on a terminal, plain lines otherwise."""
+    snap = _call(client.session, session_id)
+    if tty:
+        from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+        columns = (
+            TextColumn("{task.description}"),
+            BarColumn(),
+            TextColumn("{task.completed:,.0f}/{task.total:,.0f} AND"),
+            TextColumn("{task.fields[traffic]}"),
+            TextColumn("{task.fields[rate]}"),
+            TimeRemainingColumn(),
+        )
+        with Progress(*columns, transient=False) as bar:
+            task = bar.add_task(session_id[:12], total=None, traffic="", rate="")
+            while True:
+                total = snap.get("and_gates_total")
+                rate = snap.get("and_gates_per_s")
+                bar.update(
+                    task,
+                    description=f"{session_id[:12]} {snap.get('phase') or snap.get('status')}",
+                    total=total,
+                    completed=snap.get("and_gates_done") or 0,
+                    traffic=f"↑{human_bytes(snap.get('bytes_sent'))} ↓{human_bytes(snap.get('bytes_received'))}",
+                    rate=f"{rate:,.0f} AND/s" if rate else "",
+                )
+                if snap.get("status") in ENDED:
+                    break
+                time.sleep(POLL_S)
+                snap = _call(client.session, session_id)
+        return snap
+    last = ""
+    while True:
+        line = f"{prefix}{session_id[:12]}: {progress_line(snap)}"
+        key = f"{snap.get('status')}/{snap.get('phase')}"
+        if key != last:
+            print(line, flush=True)
+            last = key
+        if snap.get("status") in ENDED:
+            return snap
+        time.sleep(POLL_S)
+        snap = _call(client.session, session_id)
+
+
+def _print_session(s: dict[str, Any]) -> None:
+    print(f"session {s.get('session')}")
+    for key in ("job", "role", "peer", "trigger", "status", "reason", "started_at", "result_path"):
+        if s.get(key) is not None:
+            value = _when(s[key]) if key == "started_at" else s[key]
+            print(f"  {key.replace('_', ' '):<12} {value}")
+    if s.get("and_gates_total") is not None:
+        print(f"  {'progress':<12} {progress_line(s)}")
+    phases = s.get("phases") or []
+    if phases:
+        print("  phases")
+        for p in phases:
+            print(
+                f"    {p['phase']:<20} {p['duration_us'] / 1e6:>9.3f} s  sent {human_bytes(p['bytes_sent']):>10}"
+                f"  received {human_bytes(p['bytes_received']):>10}"
+            )
+    if not s.get("live", True):
+        print("  (from the job store; the node has no live record of this session since it restarted)")
+
+
+# -- handlers ----------------------------------------------------------------------------------------------------------
+
+
+def _jobs_list(args: argparse.Namespace) -> int:
+    with _client(args) as client:
+        jobs = _call(client.jobs)
+    if args.json:
+        print(json.dumps(jobs, indent=2))
+        return 0
+    if not jobs:
+        print("no jobs configured")
+        return 0
+    rows = []
+    for j in jobs:
+        last = j.get("last_run") or {}
+        rows.append(
+            [
+                j["name"],
+                j["peer"],
+                j["role"] + (" (initiates)" if j["initiate"] else ""),
+                f"{j['cron']} {j['timezone']} +{j['window_minutes']}m",
+                "open" if j["window_open"] else "closed",
+                _when(j.get("next_run")),
+                f"{last.get('status', '-')} {_when(last.get('finished_at') or last.get('started_at'))}"
+                if last
+                else "-",
+                _when(j.get("last_success")),
+            ]
+        )
+    _table(rows, ["JOB", "PEER", "ROLE", "SCHEDULE", "WINDOW", "NEXT RUN", "LAST RUN", "LAST SUCCESS"])
+    return 0
+
+
+def _jobs_run(args: argparse.Namespace) -> int:
+    with _client(args) as client:
+        started = _call(client.run_job, args.name)
+        sid = started["session"]
+        if args.json and args.detach:
+            print(json.dumps(started, indent=2))
+            return 0
+        if not args.json:
+            print(f"job {args.name}: run requested; first session {sid}")
+        if args.detach:
+            return 0
+        snap = follow(client, sid, tty=sys.stdout.isatty() and not args.json)
+    if args.json:
+        print(json.dumps(snap, indent=2))
+    elif snap.get("status") == "completed":
+        print(f"job {args.name}: completed; this node's result is in {snap.get('result_path')}")
+    else:
+        print(f"job {args.name}: {snap.get('status')} ({snap.get('reason') or 'no reason given'})")
+        print(f"  later attempts, if the job's retries allow: jointstat jobs history {args.name}")
+    return 0 if snap.get("status") == "completed" else 1
+
+
+def _jobs_history(args: argparse.Namespace) -> int:
+    with _client(args) as client:
+        runs = _call(client.history, args.name, args.limit)
+    if args.json:
+        print(json.dumps(runs, indent=2))
+        return 0
+    if not runs:
+        print("no runs recorded")
+        return 0
+    rows = [
+        [
+            str(r["id"]),
+            r["job"],
+            _when(r["scheduled_for"]),
+            str(r["attempt"]),
+            r["trigger"],
+            r["status"],
+            _when(r["finished_at"]),
+            _short(r["session"], 12),
+            _short(r["reason"], 60),
+        ]
+        for r in runs
+    ]
+    _table(rows, ["RUN", "JOB", "SCHEDULED", "TRY", "TRIGGER", "STATUS", "FINISHED", "SESSION", "REASON"])
+    return 0
+
+
+def _sessions_list(args: argparse.Namespace) -> int:
+    with _client(args) as client:
+        sessions = _call(client.sessions, args.limit)
+    if args.json:
+        print(json.dumps(sessions, indent=2))
+        return 0
+    if not sessions:
+        print("no sessions")
+        return 0
+    rows = [
+        [
+            s["session"],
+            s["job"],
+            s.get("role") or "-",
+            s.get("peer") or "-",
+            s["status"],
+            s.get("phase") or "-",
+            _when(s["started_at"]),
+            _short(s.get("reason"), 50),
+        ]
+        for s in sessions
+    ]
+    _table(rows, ["SESSION", "JOB", "ROLE", "PEER", "STATUS", "PHASE", "STARTED", "REASON"])
+    return 0
+
+
+def _sessions_show(args: argparse.Namespace) -> int:
+    with _client(args) as client:
+        snap = _call(client.session, args.id)
+        running = snap.get("status") not in ENDED
+        tty = sys.stdout.isatty()
+        if running and not args.json and (tty or args.follow):
+            snap = follow(client, args.id, tty=tty)
+    if args.json:
+        print(json.dumps(snap, indent=2))
+    else:
+        _print_session(snap)
+    return 0
+
+
+def _config_option(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--config",
+        metavar="FILE",
+        help=f"the node's config, for its admin address (default $JOINTSTAT_CONFIG, else {DEFAULT_CONFIG})",
+    )
+    parser.add_argument("--json", action="store_true", help="print the admin API's answer as JSON")
+
+
+def add_commands(sub: argparse._SubParsersAction) -> None:
+    jobs = sub.add_parser("jobs", help="list, run and review a running node's jobs")
+    which = jobs.add_subparsers(dest="what", required=True, metavar="WHAT")
+    p = which.add_parser("list", help="the node's jobs: role, schedule, window, next and last runs")
+    _config_option(p)
+    p.set_defaults(handler=_jobs_list)
+    p = which.add_parser("run", help="run an initiated job now (inside the peer's window) and follow it")
+    p.add_argument("name", metavar="NAME", help="the job's name")
+    p.add_argument("--detach", action="store_true", help="return once the run is requested")
+    _config_option(p)
+    p.set_defaults(handler=_jobs_run)
+    p = which.add_parser("history", help="recorded runs, most recent first")
+    p.add_argument("name", metavar="NAME", nargs="?", help="only this job")
+    p.add_argument("--limit", type=int, default=20, help="how many runs (default 20)")
+    _config_option(p)
+    p.set_defaults(handler=_jobs_history)
+
+    sessions = sub.add_parser("sessions", help="list and show a running node's sessions")
+    which = sessions.add_subparsers(dest="what", required=True, metavar="WHAT")
+    p = which.add_parser("list", help="live and recent sessions")
+    p.add_argument("--limit", type=int, default=20, help="how many sessions (default 20)")
+    _config_option(p)
+    p.set_defaults(handler=_sessions_list)
+    p = which.add_parser("show", help="one session; follows a running one with a progress bar on a terminal")
+    p.add_argument("id", metavar="ID", help="the session id")
+    p.add_argument(
+        "--follow", action="store_true", help="follow a running session also when not on a terminal"
+    )
+    _config_option(p)
+    p.set_defaults(handler=_sessions_show)

@@ -1,0 +1,142 @@
+"""Two nodes on one machine for a trial: fresh keys and certificates, a shared key-hashing secret, two node configs.
+
+Theory of operation: ``make_trial_keys`` runs the same key set-up as ``jointstat keys init --trial-ca`` (a private
+CA, per node an Ed25519 signing key and a TLS key and certificate, all owner-only) and adds one key-hashing
+secret, copied owner-only for each node as the two organisations would each hold it. ``node_config`` builds one
+node's config as a mapping with absolute paths (every key as ``configs/nodes/README.md`` documents it), and
+``write_config`` writes it as YAML. ``free_port`` asks the system for an unused loopback port, so the demo and
+the tests never collide with other listeners (the port could in principle be taken again before the node binds
+it; on a quiet machine it is not). The demo (``jointstat demo``) and the node tests build their nodes this way.
+"""
+
+from __future__ import annotations
+
+import os
+import secrets
+import socket
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from jointstat.node.keys import (
+    init_trial,
+    signing_key_file,
+    signing_public_file,
+    tls_cert_file,
+    tls_key_file,
+)
+from jointstat.node.secrets import ensure_private_dir, write_private_file
+
+KEY_SECRET_BYTES = 32
+
+
+def free_port(host: str = "127.0.0.1") -> int:
+    """A TCP port on ``host`` that nothing listens on at this moment."""
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind((host, 0))
+        return int(s.getsockname()[1])
+
+
+@dataclass(frozen=True)
+class TrialKeys:
+    directory: Path
+    nodes: tuple[str, ...]
+
+    def key_secret(self, node: str) -> Path:
+        return self.directory / f"{node}.key-hashing.secret"
+
+
+def make_trial_keys(directory: str | os.PathLike[str], nodes: tuple[str, ...]) -> TrialKeys:
+    """Trial CA, node keys and certificates, and one key-hashing secret copied for each node."""
+    out = ensure_private_dir(directory)
+    init_trial(out, list(nodes), now=datetime.now(UTC), days=30)
+    secret = secrets.token_bytes(KEY_SECRET_BYTES)
+    keys = TrialKeys(out, tuple(nodes))
+    for node in nodes:
+        write_private_file(keys.key_secret(node), secret)
+    return keys
+
+
+def job_entry(
+    *,
+    name: str,
+    manifest: Path,
+    peer: str,
+    csv: Path,
+    initiate: bool,
+    cron: str = "0 0 * * 1",
+    timezone: str = "UTC",
+    window_minutes: int = 7 * 24 * 60,
+    attempts: int = 1,
+    backoff_seconds: float = 5.0,
+    results: Path | None = None,
+) -> dict[str, Any]:
+    """One entry of a node config's ``jobs`` list."""
+    entry: dict[str, Any] = {
+        "name": name,
+        "manifest": str(manifest),
+        "peer": peer,
+        "initiate": initiate,
+        "input": {"csv": {"path": str(csv)}},
+        "schedule": {"cron": cron, "timezone": timezone, "window_minutes": window_minutes},
+        "retries": {"attempts": attempts, "backoff_seconds": backoff_seconds, "backoff_factor": 2.0},
+    }
+    if results is not None:
+        entry["results"] = str(results)
+    return entry
+
+
+def node_config(
+    *,
+    name: str,
+    peer: str,
+    keys: TrialKeys,
+    data_dir: Path,
+    listen_port: int,
+    peer_port: int,
+    metrics_port: int,
+    jobs: list[dict[str, Any]],
+    health_port: int | None = None,
+    admin: str | None = None,
+    max_sessions: int = 2,
+    session_deadline_seconds: int = 600,
+) -> dict[str, Any]:
+    """A node config mapping for one trial node on loopback (absolute paths)."""
+    d = keys.directory
+    node: dict[str, Any] = {
+        "name": name,
+        "listen": f"127.0.0.1:{listen_port}",
+        "metrics": f"127.0.0.1:{metrics_port}",
+        "data_dir": str(data_dir),
+        "max_sessions": max_sessions,
+        "session_deadline_seconds": session_deadline_seconds,
+    }
+    if health_port is not None:
+        node["health"] = f"127.0.0.1:{health_port}"
+    if admin is not None:
+        node["admin"] = admin
+    return {
+        "node": node,
+        "tls": {"certificate": str(d / tls_cert_file(name)), "private_key": str(d / tls_key_file(name))},
+        "signing_key": str(d / signing_key_file(name)),
+        "key_hashing_secret": str(keys.key_secret(name)),
+        "peers": [
+            {
+                "name": peer,
+                "address": f"127.0.0.1:{peer_port}",
+                "certificate": str(d / tls_cert_file(peer)),
+                "signing_public_key": str(d / signing_public_file(peer)),
+            }
+        ],
+        "jobs": jobs,
+    }
+
+
+def write_config(path: str | os.PathLike[str], config: dict[str, Any], comment: str = "") -> Path:
+    """Write a node config as YAML (mode 0600: it names where the node's secrets are)."""
+    header = "".join(f"# {line}\n" for line in comment.splitlines())
+    text = header + yaml.safe_dump(config, sort_keys=False, default_flow_style=False)
+    return write_private_file(path, text.encode("utf-8"), overwrite=True)
