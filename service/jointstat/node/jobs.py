@@ -612,6 +612,9 @@ class JobRunner:
             reason = abort_code(abort.reason) if abort is not None else "internal"
             by = "peer" if abort is not None and abort.by_peer else "self"
             detail = abort.message if abort is not None else "the session ended without a result"
+            if self.state.stopping and by == "self":
+                # The transport may see this node's own stop as a lost stream; the log says what happened.
+                reason, detail = "cancelled", "the node was stopped during the session"
             log.warning("job %s: session %s aborted: %s", a.job_name, a.sid, reason)
             await self._close(a, run_id, tracker, reason, by, detail)
             return ABORTED, reason

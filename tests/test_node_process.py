@@ -1,0 +1,140 @@
+"""Nodes as separate processes (``jointstat node run``): the demo end to end, and SIGTERM in the middle of a session.
+
+Specification: ``jointstat demo`` starts two node processes, runs the keyed-join job, prints both parties' results,
+verifies and cross-checks both logs, stops both nodes and exits 0. A node that receives SIGTERM while it serves a
+session aborts that session, logs it (``session_aborted``, reason ``cancelled``) and stores the run as ``aborted``,
+writes no result file and exits 0; the initiating node sees the abort and records it too; both logs still verify.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+from jointstat.audit.verify import verify_log
+from jointstat.node.admin import AdminClient, AdminError
+from jointstat.node.config import load_node_config
+
+from tests.test_node_daemon import BATHS, DEMO, JOB, LIBRARY, Pair, make_pair, session_records
+
+WAIT_S = 120.0  # liveness bound for process start-up and a session; not a speed claim
+
+
+def start_node(config: Path, log: Path) -> subprocess.Popen[bytes]:
+    with open(log, "wb") as out:
+        return subprocess.Popen(
+            [sys.executable, "-m", "jointstat.cli", "node", "run", "--config", str(config)],
+            stdout=out,
+            stderr=subprocess.STDOUT,
+            stdin=subprocess.DEVNULL,
+        )
+
+
+def wait_until(predicate: Any, what: str, poll: float = 0.02) -> Any:
+    deadline = time.monotonic() + WAIT_S
+    while True:
+        value = predicate()
+        if value:
+            return value
+        if time.monotonic() > deadline:
+            raise AssertionError(f"gave up waiting for {what}")
+        time.sleep(poll)
+
+
+def answering(client: AdminClient) -> bool:
+    try:
+        client.status()
+    except AdminError:
+        return False
+    return True
+
+
+def snapshot(client: AdminClient, sid: str) -> dict[str, Any] | None:
+    try:
+        return client.session(sid)
+    except AdminError:
+        return None
+
+
+def test_the_demo_runs_two_node_processes_prints_both_results_and_checks_the_logs(tmp_path: Path) -> None:
+    done = subprocess.run(
+        [sys.executable, "-m", "jointstat.cli", "demo", "--dir", str(tmp_path / "demo")],
+        capture_output=True,
+        text=True,
+        timeout=WAIT_S,
+        stdin=subprocess.DEVNULL,
+    )
+    out = done.stdout
+    assert done.returncode == 0, out + done.stderr
+    assert f"{LIBRARY}  (garbler) matches 6" in out
+    assert f"{BATHS}    (evaluator) matches 6, sum 53, mean 8.832, above 3" in out
+    assert "both agree with the plain answer" in out
+    assert "exit code 0" in out and "both attest to the same transcript" in out
+    assert out.count("chain and signatures verify") == 2
+    assert "all checks passed" in out
+
+
+def big_pair(root: Path) -> Pair:
+    """The demo job with 2,048-row tables, so that a session lasts long enough to be interrupted."""
+    manifest = root / "shared-members-2048.yaml"
+    manifest.write_text(
+        (DEMO / "manifest.yaml").read_text(encoding="utf-8").replace("capacity: 32", "capacity: 2048"),
+        encoding="utf-8",
+    )
+    job = {"attempts": 1}
+    pair = make_pair(root, library_job=job, baths_job=job)
+    for name in (LIBRARY, BATHS):
+        path = pair.configs[name]
+        path.write_text(path.read_text(encoding="utf-8").replace(str(DEMO / "manifest.yaml"), str(manifest)))
+    return pair
+
+
+def test_sigterm_during_a_session_aborts_and_logs_it_on_both_nodes_and_leaves_no_result(
+    tmp_path: Path,
+) -> None:
+    pair = big_pair(tmp_path)
+    procs = {name: start_node(pair.configs[name], tmp_path / f"{name}.log") for name in (BATHS, LIBRARY)}
+    clients = {name: AdminClient(str(load_node_config(pair.configs[name]).node.admin)) for name in procs}
+    try:
+        for name in procs:
+            wait_until(lambda n=name: answering(clients[n]), f"node {name} to start")
+        sid = clients[LIBRARY].run_job(JOB)["session"]
+        wait_until(
+            lambda: (s := snapshot(clients[BATHS], sid)) is not None and (s["and_gates_done"] or 0) > 0,
+            "the garbled tables to flow",
+        )
+        procs[BATHS].send_signal(signal.SIGTERM)
+        assert procs[BATHS].wait(timeout=WAIT_S) == 0
+        mine = wait_until(
+            lambda: (s := snapshot(clients[LIBRARY], sid)) is not None and s["status"] != "running" and s,
+            "the initiating node to end the session",
+        )
+    finally:
+        for proc in procs.values():
+            if proc.poll() is None:
+                proc.send_signal(signal.SIGTERM)
+        codes = {name: proc.wait(timeout=WAIT_S) for name, proc in procs.items()}
+        for client in clients.values():
+            client.close()
+    assert codes == {BATHS: 0, LIBRARY: 0}
+    assert mine["status"] == "aborted"
+    for name, by in ((BATHS, "self"), (LIBRARY, "peer")):
+        assert verify_log(pair.log(name).read_bytes()).ok
+        records = session_records(pair.log(name), sid)
+        assert records[-1]["kind"] == "session_aborted", name
+        if name == BATHS:
+            assert (records[-1]["body"]["reason"], records[-1]["body"]["by"]) == ("cancelled", by)
+        assert not any(r["kind"] == "session_completed" for r in records)
+        (row,) = [r for r in pair.store_rows(name) if r.session_id == sid]
+        assert row.status == "aborted" and row.result_path is None, name
+        results = pair.data(name) / "results"
+        assert not results.exists() or not any(results.rglob("*")), name
+    assert (
+        "stopped (1 session(s) were running and have been aborted)" in (tmp_path / f"{BATHS}.log").read_text()
+    )
+    assert os.path.exists(pair.log(LIBRARY))
