@@ -164,3 +164,10 @@ async def test_the_system_clock_gives_aware_utc_times_and_returns_for_past_times
     now = clock.now()
     assert now.tzinfo is not None and now.utcoffset() == timedelta(0)
     await clock.sleep_until(now - timedelta(seconds=1))
+
+
+def test_node_run_takes_the_config_option_the_image_and_the_unit_pass() -> None:
+    from jointstat.cli import build_parser
+
+    args = build_parser().parse_args(["node", "run", "--config", "/etc/jointstat/node.yaml"])
+    assert args.config == "/etc/jointstat/node.yaml" and args.handler.__module__ == "jointstat.node.commands"

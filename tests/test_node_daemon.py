@@ -269,12 +269,22 @@ async def test_metrics_count_the_session_and_health_reports_serving(tmp_path: Pa
             reply = await health_pb2_grpc.HealthStub(channel).Check(
                 health_pb2.HealthCheckRequest(), timeout=10
             )
+        assert nodes[LIBRARY].state is not None
+        tls = (
+            nodes[LIBRARY].state.keys.peers[BATHS].tls
+        )  # the peer port: mutual TLS with the pinned certificate
+        options = [("grpc.ssl_target_name_override", tls.server_name())]
+        target = f"127.0.0.1:{nodes[BATHS].peer_port}"
+        async with grpc.aio.secure_channel(target, tls.channel_credentials(), options=options) as channel:
+            peer_reply = await health_pb2_grpc.HealthStub(channel).Check(
+                health_pb2.HealthCheckRequest(), timeout=10
+            )
     assert f'jointstat_sessions_started_total{{job="{JOB}",role="evaluator"}} 1.0' in text
     assert f'jointstat_sessions_completed_total{{job="{JOB}",role="evaluator"}} 1.0' in text
     assert f'jointstat_last_success_timestamp_seconds{{job="{JOB}"}}' in text
     assert f'jointstat_session_bytes_received_total{{job="{JOB}"}}' in text
     assert "jointstat_sessions_running 0.0" in text
-    assert reply.status == health_pb2.HealthCheckResponse.SERVING
+    assert reply.status == peer_reply.status == health_pb2.HealthCheckResponse.SERVING
 
 
 async def test_the_admin_api_lists_jobs_and_refuses_unknown_or_accept_only_jobs(tmp_path: Path) -> None:

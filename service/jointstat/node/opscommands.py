@@ -106,13 +106,13 @@ def follow(client: Any, session_id: str, *, tty: bool, prefix: str = "") -> dict
         columns = (
             TextColumn("{task.description}"),
             BarColumn(),
-            TextColumn("{task.completed:,.0f}/{task.total:,.0f} AND"),
+            TextColumn("{task.fields[gates]}"),
             TextColumn("{task.fields[traffic]}"),
             TextColumn("{task.fields[rate]}"),
             TimeRemainingColumn(),
         )
         with Progress(*columns, transient=False) as bar:
-            task = bar.add_task(session_id[:12], total=None, traffic="", rate="")
+            task = bar.add_task(session_id[:12], total=None, gates="", traffic="", rate="")
             while True:
                 total = snap.get("and_gates_total")
                 rate = snap.get("and_gates_per_s")
@@ -121,6 +121,7 @@ def follow(client: Any, session_id: str, *, tty: bool, prefix: str = "") -> dict
                     description=f"{session_id[:12]} {snap.get('phase') or snap.get('status')}",
                     total=total,
                     completed=snap.get("and_gates_done") or 0,
+                    gates=f"{snap.get('and_gates_done') or 0:,}/{total:,} AND" if total else "",
                     traffic=f"↑{human_bytes(snap.get('bytes_sent'))} ↓{human_bytes(snap.get('bytes_received'))}",
                     rate=f"{rate:,.0f} AND/s" if rate else "",
                 )
