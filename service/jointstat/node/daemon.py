@@ -112,6 +112,7 @@ class Node:
         self._health_server: grpc.aio.Server | None = None
         self._admin_server: grpc.aio.Server | None = None
         self._scheduler: asyncio.Task[None] | None = None
+        self._warm: asyncio.Task[None] | None = None
         self._jobs: set[asyncio.Task[Any]] = set()
         self._stop_requested = asyncio.Event()
         self._stopped = False
@@ -153,7 +154,17 @@ class Node:
             await self._close_everything()
             raise
         self._scheduler = asyncio.create_task(self._schedule(), name="jointstat-scheduler")
+        self._warm = asyncio.create_task(self._compile_manifests(), name="jointstat-compile")
         log.info("node %s: started", node.name)
+
+    async def _compile_manifests(self) -> None:
+        """Compile every job's manifest once in the background, so the first proposal is answered quickly."""
+        assert self.runner is not None
+        for job in self.config.jobs:
+            try:
+                await asyncio.to_thread(self.runner.preparer.compiled, job)
+            except Exception as exc:
+                log.warning("job %s: its manifest cannot be compiled: %s", job.name, str(exc).splitlines()[0])
 
     @staticmethod
     def _read_first_start(data_dir: Path, now: datetime) -> datetime:
@@ -305,10 +316,11 @@ class Node:
             state.stopping = True
         with contextlib.suppress(Exception):
             await self.health.enter_graceful_shutdown()
-        if self._scheduler is not None:
-            self._scheduler.cancel()
-            with contextlib.suppress(asyncio.CancelledError, Exception):
-                await self._scheduler
+        for background in (self._scheduler, self._warm):
+            if background is not None:
+                background.cancel()
+                with contextlib.suppress(asyncio.CancelledError, Exception):
+                    await background
         for task in list(self._jobs):
             task.cancel()
         if self._server is not None:

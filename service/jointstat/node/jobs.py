@@ -43,10 +43,12 @@ task, so a cancellation never leaves a session half-recorded.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import json
 import logging
 import re
 import secrets
+import threading
 import time
 from collections.abc import Callable, Coroutine
 from dataclasses import dataclass, field
@@ -83,7 +85,7 @@ log = logging.getLogger("jointstat.node")
 PROTOCOL_VERSION = 1
 PROPOSE_METHOD = pb.DESCRIPTOR.services_by_name["Session"].methods_by_name["Propose"].name
 PROPOSE_PATH = f"/{SERVICE_NAME}/{PROPOSE_METHOD}"
-PROPOSAL_TIMEOUT_S = 60.0
+PROPOSAL_TIMEOUT_S = 300.0  # the peer may compile the manifest before it answers
 CONNECT_TIMEOUT_S = 60.0
 SESSION_ID_BYTES = 16
 RESULT_FORMAT = "jointstat-result/1"
@@ -216,6 +218,9 @@ class Preparer:
     def __init__(self, key_secret: bytes | None) -> None:
         self._key_secret = key_secret
         self._cache: dict[Path, tuple[tuple[int, int], CompiledStatistic]] = {}
+        self._lock = (
+            threading.Lock()
+        )  # one compilation at a time: a second caller waits for the first's result
 
     def compiled(self, job: JobConfig) -> CompiledStatistic:
         """The compiled manifest of ``job`` (blocking: call from a worker thread)."""
@@ -223,15 +228,16 @@ class Preparer:
         from jointstat.circuit.manifest import load_manifest
 
         path = job.manifest
-        info = path.stat()
-        stamp = (info.st_size, info.st_mtime_ns)
-        hit = self._cache.get(path)
-        if hit is not None and hit[0] == stamp:
-            return hit[1]
-        compiled = compile_manifest(load_manifest(path))
-        _ = compiled.layered  # schedule now, off the event loop
-        self._cache[path] = (stamp, compiled)
-        return compiled
+        with self._lock:
+            info = path.stat()
+            stamp = (info.st_size, info.st_mtime_ns)
+            hit = self._cache.get(path)
+            if hit is not None and hit[0] == stamp:
+                return hit[1]
+            compiled = compile_manifest(load_manifest(path))
+            _ = compiled.layered  # schedule now, off the event loop
+            self._cache[path] = (stamp, compiled)
+            return compiled
 
     def inputs(self, job: JobConfig, compiled: CompiledStatistic) -> np.ndarray:
         """This node's input bits for ``job`` (blocking)."""
@@ -509,7 +515,19 @@ class JobRunner:
             await self._store_finish(run_id, FAILED, reason)
             return FAILED, "input_unavailable"
         tracker.add_phase("prepare", prepared.seconds)
-        return await self._propose_and_run(a, run_id, tracker, peer, prepared)
+        try:
+            return await self._propose_and_run(a, run_id, tracker, peer, prepared)
+        except (asyncio.CancelledError, KeyboardInterrupt):
+            raise
+        except Exception as exc:  # a failure of this node's own machinery (the log, the store, the disk)
+            log.exception("job %s: attempt %d failed inside the node", job.name, a.attempt)
+            if not tracker.ended:
+                self._ended(tracker, FAILED, "internal")
+            with contextlib.suppress(Exception):
+                await self._store_finish(
+                    run_id, FAILED, f"internal: {type(exc).__name__}: {describe_failure(exc)}"
+                )
+            return FAILED, "internal"
 
     async def _propose_and_run(
         self, a: Attempt, run_id: int, tracker: SessionTracker, peer: PeerIdentity, prepared: Prepared
