@@ -23,6 +23,12 @@ def _session(args: argparse.Namespace) -> int:
     return run(and_gates=args.and_gates, as_json=args.json)
 
 
+def _faults(args: argparse.Namespace) -> int:
+    from jointstat.bench.faults import run
+
+    return run(sessions=args.sessions, frames=args.frames, as_json=args.json)
+
+
 def add_commands(sub: argparse._SubParsersAction) -> None:
     bench = sub.add_parser("bench", help="measure this machine (prints JSON with --json)")
     which = bench.add_subparsers(dest="what", required=True, metavar="WHAT")
@@ -46,3 +52,13 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     )
     session.add_argument("--json", action="store_true", help="print one JSON object")
     session.set_defaults(handler=_session)
+
+    faults = which.add_parser(
+        "faults", help="sessions under injected faults, and mutated frames sent to a node"
+    )
+    faults.add_argument(
+        "--sessions", type=int, default=300, help="faulted sessions and their retries (default 300)"
+    )
+    faults.add_argument("--frames", type=int, default=10_000, help="mutated frames to send (default 10,000)")
+    faults.add_argument("--json", action="store_true", help="print one JSON object")
+    faults.set_defaults(handler=_faults)
