@@ -438,3 +438,35 @@ async def test_a_restarted_node_closes_sessions_and_runs_a_previous_process_left
     assert report.sessions["left-open-1"].reason == "node_restarted"
     (row,) = pair.store_rows(BATHS)
     assert (row.status, row.reason) == ("aborted", "node stopped during the run")
+
+
+async def test_a_job_reads_its_input_from_a_sql_query_as_well_as_from_csv(tmp_path: Path) -> None:
+    import csv
+    import sqlite3
+
+    database = tmp_path / "baths.sqlite3"
+    with sqlite3.connect(database) as db, open(DEMO / "evaluator.csv", newline="", encoding="utf-8") as fh:
+        db.execute("CREATE TABLE passes (email TEXT, visits INTEGER, branch TEXT)")
+        db.executemany(
+            "INSERT INTO passes VALUES (?, ?, 'riverside')",
+            [(r["email"], int(r["visits"])) for r in csv.DictReader(fh)],
+        )
+    sql = {
+        "url": f"sqlite:///{database}",
+        "query": "SELECT email, visits FROM passes WHERE branch = 'riverside'",
+    }
+    job = job_entry(
+        name=JOB, manifest=DEMO / "manifest.yaml", peer=LIBRARY, csv=DEMO / "evaluator.csv", initiate=False
+    )
+    job["input"] = {"sql": sql}
+    pair = make_pair(tmp_path, baths_jobs=[job])
+    async with running(pair) as nodes:
+        sid = await operator_run(nodes)
+        snap = (await nodes[BATHS].admin_show_session({"session": sid}))["session"]
+    plain = plain_answer(DEMO / "manifest.yaml", DEMO / "garbler.csv", DEMO / "evaluator.csv")
+    outputs = json.loads(Path(snap["result_path"]).read_text(encoding="utf-8"))["outputs"]
+    assert (outputs["matches"], outputs["sum"], outputs["above"]) == (
+        plain["matches"],
+        plain["sum"],
+        plain["above"],
+    )

@@ -324,11 +324,11 @@ def run_nodes(work: Path | None = None) -> int:
         for name in (BATHS, LIBRARY):
             procs[name] = _start(name, configs[name], work)
             clients[name] = AdminClient(str(load_node_config(configs[name]).node.admin))
-        for name in (BATHS, LIBRARY):
+        for i, name in enumerate((BATHS, LIBRARY)):
             status = _wait_ready(name, procs[name], clients[name])
             _say(
-                f"  2. node {name:<18} pid {procs[name].pid}, peers on {status['listen'].rsplit(':', 1)[0]}:"
-                f"{status['peer_port']}, metrics on port {status['metrics_port']}"
+                f"  {'2. nodes' if i == 0 else '':<21} {name} (pid {procs[name].pid}): peers on "
+                f"{status['listen'].rsplit(':', 1)[0]}:{status['peer_port']}, metrics on port {status['metrics_port']}"
             )
         _say(
             f"                        both nodes up ({time.monotonic() - t0:.1f} s); logs in {work}/<node>.log"
@@ -375,18 +375,18 @@ def run_nodes(work: Path | None = None) -> int:
         _say(f"  5. stop               SIGTERM to both nodes: {shown}")
     logs = {name: work / name / "sessions.jsonl" for name in (LIBRARY, BATHS)}
     if all(p.is_file() for p in logs.values()):
-        for path in logs.values():
+        for i, path in enumerate(logs.values()):
             report = verify_log(path.read_bytes())
             ok = ok and report.ok
             state = "verify" if report.ok else f"DO NOT verify: {report.problem}"
             _say(
-                f"  6. audit verify       {path.relative_to(work)}: {report.records} records, "
+                f"  {'6. audit verify' if i == 0 else '':<21} {path.relative_to(work)}: {report.records} records, "
                 f"chain and signatures {state}"
             )
         comparison = compare_logs(logs[LIBRARY].read_bytes(), logs[BATHS].read_bytes())
         ok = ok and comparison.ok and bool(comparison.matched)
         verdict = "both attest to the same transcript" if comparison.ok else "; ".join(comparison.problems)
-        _say(f"     audit compare      {len(comparison.matched)} session(s) in both logs; {verdict}")
+        _say(f"  {'7. audit compare':<21} {len(comparison.matched)} session(s) in both logs; {verdict}")
     if not ok:
         for name in procs:
             log = work / f"{name}.log"

@@ -187,7 +187,8 @@ class SessionTracker:
         now = self._ended_at if self._ended_at is not None else self._mono()
         done = self.session.and_gates_done if self.session is not None else 0
         total = self.session.and_gates_total if self.session is not None else None
-        rate = self._final_rate if self._ended_at is not None else self._rate(now)
+        tables_over = self._final_rate is not None and self._phase not in TABLE_PHASES
+        rate = self._final_rate if self._ended_at is not None or tables_over else self._rate(now)
         eta = None
         if not self.ended and rate and total is not None:
             eta = max(0.0, (total - done) / rate)
