@@ -1,54 +1,59 @@
-"""``jointstat bench faults``: sessions under injected faults, fuzzed frames, and the figures that show both.
+"""``jointstat bench faults``: a real node under injected faults and fuzzed frames, and the figures that show it.
 
 Theory of operation
 -------------------
-*Fault injection.* A node under test serves sessions on 127.0.0.1 over mutual TLS; a peer node connects to it. A
-fault plan names a kind, a phase and a frame: the *phases* are those of the session protocol (hello, base OT,
-OT extension, tables — the garbler's input labels and the garbled tables —, output labels — the returned labels
-and the decoding —, finish), and the frame is the k-th frame of that phase to cross the peer's stream, in either
-direction, in the order it crosses. The peer's stream (:class:`FaultyStream`) fires the fault when that frame
-reaches it, before the frame crosses:
+*The node under test* is a ``jointstat.node.daemon.Node`` (the daemon of ``jointstat node run``, in this process,
+with its job store, signed session log, result files and ``max_sessions``), configured with two jobs on one small
+invented manifest (two bicycle-share schemes add up the metres their bikes rode): one its peer proposes (the node
+evaluates and serves, as an accepting node does) and one it initiates itself (it garbles, connects, and retries a
+failed attempt after a backoff with a new session — hence a fresh Δ and fresh labels). *The peer* is this harness
+playing the other node: it proposes runs over ``Session/Propose`` or accepts the node's proposals, and plays its
+side of each session with its own signed session log.
 
-- ``cut``: the loopback TCP proxy between the two nodes (:class:`FaultProxy`) closes both TCP connections (with a
-  reset or an orderly close), so both gRPC ends see the connection drop; the peer sees nothing after it;
-- ``kill``: the peer is a process of its own and sends itself SIGKILL — no abort frame, no TLS close, the kernel
-  closes the socket; when the peer node "restarts" (the harness reopens its log) the sessions the log left open
-  are recorded as aborted (``node_stopped``), as a node does when it starts;
-- ``stall``: the proxy stops forwarding in both directions and the peer holds the frame: nothing more crosses,
-  the connection stays open, and both sides must give up by their own idle timeout.
+*Faults.* A plan names a kind, a phase and a frame: the phases are those of the protocol (hello, base OT, OT
+extension, tables — the garbler's input labels and the garbled tables —, output labels — the returned labels and
+the decoding —, finish), the frame is the k-th frame of that phase to cross the peer's stream, in either direction,
+in the order it crosses. The peer's stream (:class:`FaultPoint` on a client stream or a server context) fires the
+fault when that frame reaches it, before it crosses, and from then on nothing more crosses:
+
+- ``cut``: the loopback TCP proxy between the two nodes (:class:`FaultProxy`) closes both TCP connections (a reset
+  or an orderly close), so both gRPC ends see the connection drop;
+- ``kill``: the peer runs as a process of its own and sends itself SIGKILL — no abort frame, no TLS close; when the
+  peer node comes back (the harness reopens its log, as ``Node.start`` does), the session its log left open is
+  recorded as aborted (``node_restarted``);
+- ``stall``: the proxy stops forwarding in both directions and the peer holds the frame; the connection stays open
+  and both sides must give up by their own limits.
 
 In the finish phase the fault fires at the first finish frame to reach the peer's stream: once a finish frame has
-crossed, one side may rightly complete (it holds the other's signed transcript), which is the fair-exchange limit
-of any two-party protocol, not a fault to inject. Each faulted session is followed by the retry of its job: a new
-session id, new session objects, hence a fresh Δ and fresh labels, on the same node. Every session of both
-nodes goes through a signed session log (``audit.SessionLog``), the way a node uses it: ``session_started`` at
-the start, the transcript signed through the log, ``peer_attestation`` and ``session_completed`` or
-``session_aborted`` at the end.
+crossed, one side may rightly complete (it holds the other's signed transcript) — the fair-exchange limit of any
+two-party protocol, not a fault to inject. Every faulted attempt is followed by its job's retry: proposed again by
+the peer (the node accepts a new session), or retried by the node itself.
 
-A faulted session *aborted cleanly* when both sides ended without output, each with a reason and a message,
-within the session deadline (plus the abort grace and a scheduling allowance), the abort is the session's last
-record in both verified logs (and the two logs agree), and the retry then completed with correct outputs, a Δ
-and labels that differ from the faulted attempt's, and ``session_completed`` in both logs. ``hung`` counts
-sessions in which a side had not ended by that bound; ``outputs_released_wrongly`` counts sides that released an
-output from a faulted session, or a wrong output from a retry; ``crashes`` counts exceptions that escaped a
-handler, an event loop or a thread, peers that died unplanned, and aborts for ``internal`` reasons.
+*Verdicts.* A faulted session *aborted cleanly* when both sides ended without output, each with a reason, within
+the session deadline (plus the abort grace and an allowance for a loaded machine), the node's job store has the
+attempt ``aborted`` and no result file, the abort is the session's last record in both verified logs, and the
+logs agree. A retry *completed* when both sides completed with the correct sum and count (the node's result file,
+the peer's decoded outputs), both logs say so with the same transcript, and the garbler's Δ and every label
+differ from the faulted attempt's. ``hung`` counts sessions a side had not ended by the bound;
+``outputs_released_wrongly`` sides that released an output (a result file, decoded bits) from a faulted session,
+or a wrong one from a retry; ``crashes`` exceptions that escaped a handler, the event loop or a thread, errors
+logged by the node or gRPC, peer processes that died unplanned, and ``internal`` aborts.
 
-*Frame fuzzing* (:func:`fuzz`). An honest peer session plays a session with the node, and one of its frames is
-mutated — bits flipped, truncated, a length prefix made oversized (or the whole frame over the 4 MiB limit), the
-frame type made unknown (or its wire type wrong), or a valid frame sent out of order (a frame of another type or
-of another session, or a duplicate) — and the peer then plays on. Most cases run through the server's own
-frame-handling path (``SessionServer``'s stream handler, with its first-frame checks and the driver) on an
-in-process stream; a sample goes over the real wire. Each case must end with the node's session aborted with a
-clear reason (or the stream refused with an abort frame), no output, within a per-case bound; memory is measured
-before and after (resident set size).
+*Frame fuzzing* (:class:`Fuzzer`): an honest peer session plays a session with a node's session server and one of
+its frames is mutated — bits flipped, truncated, a length prefix made oversized (or the whole frame over the
+4 MiB limit), the type made unknown (or its wire type wrong), or a valid frame sent out of order (one of another
+type or of another session, or the previous frame again) — and the peer plays on. Most cases go through the
+server's own stream handler on an in-process stream, a sample over the real wire. Each must end with the node's
+session aborted with a clear reason (or the stream refused with an abort frame), no output, within a bound.
 
-*Secrets in logs* (:func:`scan_for_secrets`). Every Δ, wire label and input value of the run is recorded by the
-harness (:class:`Secrets`) and every log line written is searched for them in hex, base64, decimal, bit-string
-and Python-bytes forms.
+*Secrets in logs* (:func:`scan_for_secrets`): every Δ, wire label and input value of the run is recorded by the
+harness (:class:`Secrets`; the node's own sessions through a recording ``new_session`` patched into
+``node.jobs``) and every line of both session logs, the node's Python log and the abort messages is searched for
+them in hex, base64, decimal, bit-string and Python-bytes forms.
 
-Figures: ``sessions`` (faulted sessions and their retries), ``completed`` (retries that completed correctly),
-``aborted_cleanly``, ``hung``, ``outputs_released_wrongly``, ``frames_fuzzed``, ``crashes``; targets: ``hung`` =
-``outputs_released_wrongly`` = ``crashes`` = 0 and ``completed + aborted_cleanly = sessions``.
+Two settings of the node under test are lowered for the run: its session deadline (``session_deadline_seconds``,
+a config key) and ``node.jobs.CONNECT_TIMEOUT_S`` (a module constant, 60 s, the wait for a peer that never opens
+an accepted session), both to the fault deadline, so an unopened session also ends within the deadline.
 """
 
 from __future__ import annotations
@@ -57,6 +62,7 @@ import asyncio
 import base64
 import contextlib
 import hashlib
+import json
 import logging
 import multiprocessing as mp
 import os
@@ -64,11 +70,10 @@ import signal
 import socket
 import struct
 import sys
-import tempfile
 import threading
 import time
 from collections import Counter
-from collections.abc import Callable, Iterable
+from collections.abc import Awaitable, Callable, Iterable, Iterator
 from dataclasses import dataclass, field
 from multiprocessing.connection import Connection
 from pathlib import Path
@@ -76,23 +81,25 @@ from typing import Any, Literal
 
 import grpc
 import numpy as np
-from cryptography.hazmat.primitives import serialization
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 
 from jointstat.audit import SessionLog, compare_logs, transcript_signature_ok, verify_log
 from jointstat.bench.report import emit
 from jointstat.circuit.builder import Builder
+from jointstat.circuit.compile import CompiledStatistic
 from jointstat.circuit.encode import int_to_bits
 from jointstat.circuit.layers import LayeredCircuit, schedule
 from jointstat.circuit.model import Party
+from jointstat.garble.halfgates import DEFAULT_CHUNK_BYTES
 from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import AbortReason
 from jointstat.protocol.session import EvaluatorSession, GarblerSession, NoOutputError, Session
-from jointstat.transport.channel import MESSAGE_OPTIONS, METHOD_PATH, ClientStream, SessionIds
+from jointstat.transport.channel import MESSAGE_OPTIONS, METHOD_PATH, SERVICE_NAME, ClientStream, SessionIds
 from jointstat.transport.driver import Limits, SessionResult, StreamLost, drive
 from jointstat.transport.pki import Issued, issue, new_ca, node_tls
 from jointstat.transport.server import SessionServer
 from jointstat.transport.tls import NodeTLS
+from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
 
 # -- phases and fault kinds --------------------------------------------------------------------------------------------
 
@@ -119,11 +126,12 @@ CUT, KILL, STALL = "cut", "kill", "stall"
 FAULT_KINDS = (CUT, KILL, STALL)
 FaultKind = Literal["cut", "kill", "stall"]
 
-# Limits of the fault sessions: a stalled link is given up after one idle second; the whole session has four.
+# The peer's limits: a stalled link is given up after one idle second; a whole session has four.
 FAULT_LIMITS = Limits(deadline_s=4.0, idle_timeout_s=1.0, abort_grace_s=0.5)
+NODE_DEADLINE_S = 4  # the node's session_deadline_seconds for the run (its idle timeout stays the default)
 SCHEDULING_ALLOWANCE_S = 3.0  # beyond deadline + grace, for a loaded two-core machine
-CHUNK_BYTES = 1024  # 32 garbled AND gates per table frame, so the tables phase has several frames
-VALUE_BITS = 64
+CHUNK_BYTES = 1024  # the peer garbles 32 AND gates per table frame, so the tables phase has many frames
+RETRY_BACKOFF_S = 1.0
 DEFAULT_FUZZ_FRAMES = 10_000
 
 
@@ -132,41 +140,105 @@ def phase_of(kind: str) -> str | None:
     return PHASE_OF_FRAME.get(kind)
 
 
-# -- the job: an invented comparison between two bicycle-sharing schemes -----------------------------------------------
+# -- the job: an invented scenario of two bicycle-share schemes ----------------------------------------------------------
+
+NODE_NAME, PEER_NAME = "riverside-bikes", "hillside-bikes"
+JOB_ACCEPTED = "fleet-metres-offered"  # the peer proposes it; the node evaluates and serves
+JOB_INITIATED = "fleet-metres-started"  # the node proposes it, garbles, connects and retries
+METRE_BITS = 40
+MANIFEST_YAML = """\
+# Invented: two bicycle-share schemes add up the metres their bikes rode in March, without showing per-bike figures.
+job:
+  name: fleet-metres
+  version: 1
+parties:
+  garbler: {name: Riverside Bike Share}
+  evaluator: {name: Hillside Bike Share}
+tables:
+  garbler:
+    capacity: 4
+    columns:
+      - {name: metres, type: unsigned, width: 40}
+  evaluator:
+    capacity: 4
+    columns:
+      - {name: metres, type: unsigned, width: 40}
+statistic:
+  name: sum
+  column: metres
+outputs:
+  garbler: [count, sum]
+  evaluator: [count, sum]
+"""
+# Invented figures, 12 digits each (so a log scan cannot mistake them for a count or a duration).
+NODE_METRES = (128_734_509_117, 119_604_822_391, 131_277_046_853)
+PEER_METRES = (124_418_995_072, 117_062_340_589, 129_953_781_206)
 
 
-def fault_circuit() -> LayeredCircuit:
-    """The fault sessions' job: two 64-bit fleet-kilometre totals, one per scheme.
-
-    The evaluator (hillside) learns the sum; the garbler (riverside) learns whether its total is the smaller one
-    and whether the two are equal. 191 AND gates: six table frames of ``CHUNK_BYTES``.
-    """
-    bld = Builder()
-    a = bld.input(Party.GARBLER, VALUE_BITS)
-    b = bld.input(Party.EVALUATOR, VALUE_BITS)
-    bld.output(Party.EVALUATOR, bld.add(a, b))
-    bld.output(Party.GARBLER, np.stack([bld.less_than(a, b), bld.equal(a, b)]))
-    return schedule(bld.build())
+def expected_result() -> dict[str, int]:
+    """The job's answer for both sides, computed in plain Python."""
+    return {"count": len(NODE_METRES) + len(PEER_METRES), "sum": sum(NODE_METRES) + sum(PEER_METRES)}
 
 
-def expected_outputs(a: int, b: int) -> dict[Party, np.ndarray]:
-    """The job's outputs computed in plain Python integers (independent of the circuit)."""
-    mask = (1 << VALUE_BITS) - 1
+@dataclass(frozen=True)
+class JobFiles:
+    manifest: Path
+    node_csv: Path
+    peer_csv: Path
+
+
+def write_job_files(directory: Path) -> JobFiles:
+    """The manifest and the two schemes' CSV files (either table fits either role: same columns)."""
+    directory.mkdir(parents=True, exist_ok=True)
+    files = JobFiles(directory / "manifest.yaml", directory / "riverside.csv", directory / "hillside.csv")
+    files.manifest.write_text(MANIFEST_YAML, encoding="utf-8")
+    for path, rows in ((files.node_csv, NODE_METRES), (files.peer_csv, PEER_METRES)):
+        path.write_text("metres\n" + "".join(f"{v}\n" for v in rows), encoding="utf-8")
+    return files
+
+
+@dataclass(frozen=True)
+class PeerJob:
+    """The peer's compiled job and its input bits in either role."""
+
+    compiled: CompiledStatistic
+    digest: bytes
+    bits: dict[Party, np.ndarray]
+
+    @property
+    def layered(self) -> LayeredCircuit:
+        return self.compiled.layered
+
+
+def peer_job(files: JobFiles) -> PeerJob:
+    from jointstat.circuit.compile import compile_manifest
+    from jointstat.circuit.inputs import encode_inputs, read_csv
+    from jointstat.circuit.manifest import load_manifest
+
+    compiled = compile_manifest(load_manifest(files.manifest))
+    bits = {}
+    for party in Party:
+        table = compiled.manifest.table(party)
+        records = read_csv(files.peer_csv, table, columns=compiled.inputs[party].columns)
+        bits[party] = encode_inputs(compiled, party, records)
+    return PeerJob(compiled, bytes.fromhex(compiled.digest), bits)
+
+
+def frames_per_phase(layered: LayeredCircuit, chunk_bytes: int) -> dict[str, int]:
+    """How many frames of each phase cross a session's stream (both directions) for this circuit."""
+    c = layered.circuit
+    n_in_e = c.n_inputs(Party.EVALUATOR)
+    chunk = chunk_bytes - chunk_bytes % 32
+    labels = 16 * (2 + c.n_inputs(Party.GARBLER))
     return {
-        Party.EVALUATOR: int_to_bits((a + b) & mask, VALUE_BITS),
-        Party.GARBLER: np.array([int(a < b), int(a == b)], dtype=np.uint8),
+        HELLO: 2,
+        BASE_OT: 2 if n_in_e else 0,
+        EXTENSION: 2 if n_in_e else 0,  # one batch each way for up to 2^16 evaluator inputs
+        TABLES: -(-labels // fr.MAX_PAYLOAD_BYTES) + -(-32 * layered.n_and // chunk),
+        OUTPUT_LABELS: int(layered.output_slots[Party.GARBLER].size > 0)
+        + int(layered.output_slots[Party.EVALUATOR].size > 0),
+        FINISH: 2,
     }
-
-
-def invented_value(rng: np.random.Generator) -> int:
-    """A fleet total for one run: 19 decimal digits (from 2^62), so a log scan cannot mistake it for a count."""
-    return int(rng.integers(1 << 62, (1 << 63) - 1, dtype=np.int64))
-
-
-MANIFEST_DIGEST = hashlib.sha256(
-    b"invented manifest: riverside and hillside bicycle schemes, fleet km"
-).digest()
-JOB = "fleet-kilometres"
 
 
 # -- secrets the harness knows, and the log scan -----------------------------------------------------------------------
@@ -264,7 +336,7 @@ def secret_forms(secrets: Secrets) -> dict[str, str]:
             forms[raw.hex()] = f"{what} as {order}-endian bytes in hex"
             for text in _b64_inner(raw):
                 forms[text] = f"{what} as base64 of {order}-endian bytes"
-        bits = int_to_bits(value, VALUE_BITS)
+        bits = int_to_bits(value, METRE_BITS)
         lsb_first = "".join(str(int(b)) for b in bits)
         forms[lsb_first] = f"{what} as a bit string, least significant first"
         forms[lsb_first[::-1]] = f"{what} as a bit string, most significant first"
@@ -353,87 +425,120 @@ class RecordingEvaluator(EvaluatorSession):
         return super()._after_tables()
 
 
-# -- node identities and the logged session glue ---------------------------------------------------------------------------
+def recording_session(secrets: Secrets, chunk_bytes: int | None = None) -> Callable[..., Session]:
+    """A stand-in for ``protocol.session.new_session`` making sessions that record their secrets into ``secrets``."""
+
+    def make(party: Party, **kwargs: Any) -> Session:
+        session: RecordingGarbler | RecordingEvaluator
+        if Party(party) == Party.GARBLER:
+            if chunk_bytes is not None:
+                kwargs["chunk_bytes"] = chunk_bytes
+            session = RecordingGarbler(**kwargs)
+        else:
+            kwargs.pop("chunk_bytes", None)
+            session = RecordingEvaluator(**kwargs)
+        session.secrets = secrets
+        return session
+
+    return make
+
+
+@contextlib.contextmanager
+def node_under_test_settings(secrets: Secrets, connect_timeout_s: float) -> Iterator[None]:
+    """While the node runs in this process: its sessions record their secrets, and it waits ``connect_timeout_s``
+    for a peer to open an accepted session (see the module docstring). Restores both afterwards."""
+    from jointstat.node import jobs
+
+    saved = (jobs.new_session, jobs.CONNECT_TIMEOUT_S)
+    jobs.new_session = recording_session(secrets)  # type: ignore[assignment]
+    jobs.CONNECT_TIMEOUT_S = connect_timeout_s
+    try:
+        yield
+    finally:
+        jobs.new_session, jobs.CONNECT_TIMEOUT_S = saved  # type: ignore[assignment]
+
+
+# -- the peer's keys (from the trial key set both nodes were made from) ---------------------------------------------------
 
 
 @dataclass(frozen=True)
-class Identity:
-    """One node's name, TLS certificate and key, and Ed25519 log-signing key."""
+class PeerKeys:
+    """What the peer node holds: its TLS certificate and key, its signing key, and the node's public material."""
 
-    name: str
-    issued: Issued
+    directory: Path
+    certificate: bytes
+    private_key: bytes
     signing_key: Ed25519PrivateKey
-
-    @property
-    def public_key(self) -> Ed25519PublicKey:
-        return self.signing_key.public_key()
-
-    def raw_signing_key(self) -> bytes:
-        return self.signing_key.private_bytes(
-            serialization.Encoding.Raw, serialization.PrivateFormat.Raw, serialization.NoEncryption()
-        )
-
-
-@dataclass(frozen=True)
-class Pair:
-    """The node under test and its peer (each pins the other's certificate)."""
-
-    node: Identity
-    peer: Identity
+    node_certificate: bytes
+    node_key: Ed25519PublicKey
 
     @classmethod
-    def fresh(cls, node: str = "riverside-bikes", peer: str = "hillside-bikes") -> Pair:
-        ca = new_ca("bicycle schemes trial CA")
-        return cls(
-            Identity(node, issue(ca, f"{node}.test"), Ed25519PrivateKey.generate()),
-            Identity(peer, issue(ca, f"{peer}.test"), Ed25519PrivateKey.generate()),
+    def load(cls, directory: Path) -> PeerKeys:
+        from jointstat.node.keys import (
+            load_public_key,
+            load_signing_key,
+            signing_key_file,
+            signing_public_file,
+            tls_cert_file,
+            tls_key_file,
         )
 
-    def node_tls(self) -> NodeTLS:
-        return node_tls(self.node.issued, self.peer.issued)
+        return cls(
+            directory=directory,
+            certificate=(directory / tls_cert_file(PEER_NAME)).read_bytes(),
+            private_key=(directory / tls_key_file(PEER_NAME)).read_bytes(),
+            signing_key=load_signing_key(directory / signing_key_file(PEER_NAME)),
+            node_certificate=(directory / tls_cert_file(NODE_NAME)).read_bytes(),
+            node_key=load_public_key(directory / signing_public_file(NODE_NAME)),
+        )
 
-    def peer_tls(self) -> NodeTLS:
-        return node_tls(self.peer.issued, self.node.issued)
+    def tls(self) -> NodeTLS:
+        return NodeTLS(self.certificate, self.private_key, (self.node_certificate,))
 
+    def node_identity(self, port: int) -> Any:
+        """The node as the peer's proposals address it (``node.jobs.PeerIdentity``)."""
+        from cryptography import x509
+        from cryptography.hazmat.primitives import serialization
 
-def safe_detail(message: str) -> str:
-    """An abort message fit for the log's ``detail``: long hex or base64-like tokens dropped, cut to 300 chars."""
-    words = []
-    for word in message.replace("\n", " ").split(" "):
-        core = word.strip(".,;:()'\"")
-        if len(core) >= 16 and core.replace("-", "").replace("_", "").isalnum():
-            word = "…"
-        words.append(word)
-    return " ".join(words)[:300]
+        from jointstat.node.jobs import PeerIdentity
+        from jointstat.transport.tls import fingerprint
+
+        cert = x509.load_pem_x509_certificate(self.node_certificate)
+        return PeerIdentity(
+            name=NODE_NAME,
+            address=f"127.0.0.1:{port}",
+            tls=self.tls(),
+            fingerprint=fingerprint(cert),
+            certificate_der=cert.public_bytes(serialization.Encoding.DER),
+            signing_key=self.node_key,
+        )
 
 
 class LoggedNode:
-    """A node's side of sessions: sessions whose transcript is signed through the node's signed session log.
+    """The peer node's side of sessions, signed through its own session log the way a node does it.
 
-    This is the glue a node puts around the sans-I/O session: ``session_started`` before the session runs, the
-    transcript digest signed (and recorded) by the log, the peer's signature checked against the peer's log key,
-    then ``peer_attestation`` and ``session_completed``, or ``session_aborted`` with the reason.
+    ``session_started`` before the session runs; the transcript digest signed (and recorded) by the log; the
+    node's signature checked against the node's log key; then ``peer_attestation`` and ``session_completed``, or
+    ``session_aborted`` with the reason. Session ids are logged in hex, as the node logs them.
     """
 
-    def __init__(
-        self, me: Identity, peer_name: str, peer_key: Ed25519PublicKey, log_path: Path, secrets: Secrets
-    ) -> None:
-        self.me = me
-        self.peer_name = peer_name
-        self.peer_key = peer_key
+    def __init__(self, keys: PeerKeys, log_path: Path, secrets: Secrets) -> None:
+        self.keys = keys
         self.log_path = Path(log_path)
         self.secrets = secrets
-        self.log: SessionLog | None = SessionLog(self.log_path, me.signing_key, me.name)
+        self.log: SessionLog | None = None
         self.ids = SessionIds()
+        self.reopen()
 
     def reopen(self) -> list[str]:
         """Open the log as a restarted node does; sessions left open are recorded as aborted. Returns their ids."""
-        if self.log is not None:
-            self.log.close()
-        self.log = SessionLog(self.log_path, self.me.signing_key, self.me.name)
+        self.close()
+        self.log = SessionLog(self.log_path, self.keys.signing_key, PEER_NAME)
         left = self.log.open_sessions()
         for sid in left:
-            self.log.session_aborted(sid, reason="node_stopped", detail="the node stopped during the session")
+            self.log.session_aborted(
+                sid, reason="node_restarted", detail="the node stopped before this session ended"
+            )
         return left
 
     def close(self) -> None:
@@ -441,64 +546,70 @@ class LoggedNode:
             self.log.close()
             self.log = None
 
-    def session(self, party: Party, sid: str, layered: LayeredCircuit, value: int) -> Session:
+    def session(self, party: Party, sid: bytes, job: PeerJob) -> Session:
         assert self.log is not None
-        log = self.log
-        peer_key = self.peer_key
-        self.secrets.add_value(value)
-        bits = int_to_bits(value, VALUE_BITS)
+        log, text, node_key = self.log, sid.hex(), self.keys.node_key
 
         def sign(digest: bytes) -> bytes:
-            return log.transcript(sid, digest)
+            return log.transcript(text, digest)
 
         def verify(signature: bytes, digest: bytes) -> bool:
-            return transcript_signature_ok(peer_key, sid, digest, signature)
+            return transcript_signature_ok(node_key, text, digest, signature)
 
-        common: dict[str, Any] = {
-            "session_id": sid.encode(),
-            "layered": layered,
-            "manifest_digest": MANIFEST_DIGEST,
-            "inputs": bits,
-            "sign": sign,
-            "verify": verify,
-        }
-        session: RecordingGarbler | RecordingEvaluator
-        if party == Party.GARBLER:
-            session = RecordingGarbler(chunk_bytes=CHUNK_BYTES, **common)
-        else:
-            session = RecordingEvaluator(**common)
-        session.secrets = self.secrets
+        make = recording_session(self.secrets, CHUNK_BYTES)
+        session = make(
+            party,
+            session_id=sid,
+            layered=job.layered,
+            manifest_digest=job.digest,
+            inputs=job.bits[party],
+            sign=sign,
+            verify=verify,
+        )
         log.session_started(
-            sid,
-            job=JOB,
-            manifest_digest=MANIFEST_DIGEST,
+            text,
+            job=JOB_ACCEPTED if party == Party.GARBLER else JOB_INITIATED,
+            manifest_digest=job.digest,
             role=fr.role_name(party),  # type: ignore[arg-type]
-            peer=self.peer_name,
-            peer_key=peer_key,
+            peer=NODE_NAME,
+            peer_key=node_key,
         )
         return session
 
-    def ended(self, sid: str, result: SessionResult | None, *, duration_s: float, phase: str | None) -> None:
-        """Record how the session ended (``result`` None: it never started on the wire)."""
+    def ended(
+        self, sid: bytes, result: SessionResult | None, *, duration_s: float, phase: str | None
+    ) -> None:
+        """Record how the session ended (``result`` None: it never opened on the wire)."""
         assert self.log is not None
+        text = sid.hex()
         if result is not None and result.completed:
             assert result.peer_signature is not None
-            self.log.peer_attestation(sid, result.peer_signature)
-            self.log.session_completed(sid, duration_us=int(duration_s * 1e6))
+            self.log.peer_attestation(text, result.peer_signature)
+            self.log.session_completed(text, duration_us=int(duration_s * 1e6))
             return
         if result is None or result.abort is None:
             self.log.session_aborted(
-                sid, reason="not_opened", phase=phase, detail="the peer did not open the session in time"
+                text, reason="not_opened", phase=phase, detail="the node did not open the session in time"
             )
             return
         abort = result.abort
         self.log.session_aborted(
-            sid,
+            text,
             reason=abort.reason.name.lower(),
             by="peer" if abort.by_peer else "self",
             phase=phase,
             detail=safe_detail(abort.message),
         )
+
+
+def safe_detail(message: str) -> str:
+    """An abort message fit for a log's ``detail``: long hex or base64-like tokens dropped, cut to 300 chars."""
+    import re
+
+    line = " ".join(message.split())
+    line = re.sub(r"[0-9A-Fa-f]{32,}", "…", line)
+    line = re.sub(r"[A-Za-z0-9+/_=-]{20,}", "…", line)
+    return line[:300]
 
 
 # -- injecting faults ------------------------------------------------------------------------------------------------------
@@ -511,47 +622,38 @@ class FaultPlan:
     kind: FaultKind
     phase: str
     index: int
-    node_role: Party  # the role of the node under test; the peer plays the other
+    node_role: Party  # garbler: the node initiates (and retries); evaluator: the peer proposes
     reset: bool = True  # cut: a TCP reset (True) or an orderly close
 
     def describe(self) -> str:
         how = f"{self.kind} ({'reset' if self.reset else 'close'})" if self.kind == CUT else self.kind
-        return f"{how} at frame {self.index} of {self.phase}, node is the {fr.role_name(self.node_role)}"
-
-
-def frames_per_phase(layered: LayeredCircuit, chunk_bytes: int = CHUNK_BYTES) -> dict[str, int]:
-    """How many frames of each phase cross a session's stream (both directions) for this circuit."""
-    c = layered.circuit
-    n_in_e = c.n_inputs(Party.EVALUATOR)
-    table_bytes = 32 * layered.n_and
-    chunk = chunk_bytes - chunk_bytes % 32
-    labels = 16 * (2 + c.n_inputs(Party.GARBLER))
-    return {
-        HELLO: 2,
-        BASE_OT: 2 if n_in_e else 0,
-        EXTENSION: 2 if n_in_e else 0,  # one batch each way for up to 2^16 evaluator inputs
-        TABLES: -(-labels // fr.MAX_PAYLOAD_BYTES) + -(-table_bytes // chunk),
-        OUTPUT_LABELS: int(layered.output_slots[Party.GARBLER].size > 0)
-        + int(layered.output_slots[Party.EVALUATOR].size > 0),
-        FINISH: 2,
-    }
+        side = "initiates" if self.node_role == Party.GARBLER else "accepts"
+        return (
+            f"{how} at frame {self.index} of {self.phase}; the node {side} ({fr.role_name(self.node_role)})"
+        )
 
 
 def make_plans(count: int, seed: int, layered: LayeredCircuit) -> list[FaultPlan]:
-    """``count`` fault plans: every (kind, phase) pair once in a shuffled round before any repeats."""
+    """``count`` fault plans: every (kind, phase) in each shuffled round, the node's role flipping from round to round."""
     rng = np.random.default_rng(seed)
-    per_phase = frames_per_phase(layered)
-    pairs = [(k, p) for k in FAULT_KINDS for p in PHASES if per_phase[p]]
+    frames = {
+        Party.GARBLER: frames_per_phase(layered, DEFAULT_CHUNK_BYTES),  # the node garbles
+        Party.EVALUATOR: frames_per_phase(layered, CHUNK_BYTES),  # the peer garbles
+    }
+    pairs = [(k, p) for k in FAULT_KINDS for p in PHASES]
+    first_role = rng.integers(2, size=len(pairs))
     plans: list[FaultPlan] = []
+    round_no = 0
     while len(plans) < count:
         for i in rng.permutation(len(pairs)):
             kind, phase = pairs[int(i)]
+            role = (Party.GARBLER, Party.EVALUATOR)[(int(first_role[int(i)]) + round_no) % 2]
             # In the finish phase only the first finish frame: once one has crossed, one side may rightly complete.
-            index = 0 if phase == FINISH else int(rng.integers(per_phase[phase]))
-            role = Party.GARBLER if rng.integers(2) else Party.EVALUATOR
+            index = 0 if phase == FINISH else int(rng.integers(frames[role][phase]))
             plans.append(FaultPlan(kind, phase, index, role, reset=bool(rng.integers(2))))  # type: ignore[arg-type]
             if len(plans) == count:
                 break
+        round_no += 1
     return plans
 
 
@@ -559,7 +661,7 @@ class FaultProxy:
     """A loopback TCP proxy between the peer and the node that can cut or stall every connection through it."""
 
     def __init__(self, target_port: int) -> None:
-        self._target = target_port
+        self.target = target_port  # where new connections go (may be changed between sessions)
         self._server: asyncio.base_events.Server | None = None
         self._links: list[tuple[asyncio.StreamWriter, asyncio.StreamWriter]] = []
         self._tasks: set[asyncio.Task[None]] = set()
@@ -574,7 +676,7 @@ class FaultProxy:
 
     async def _accept(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
         try:
-            up_reader, up_writer = await asyncio.open_connection("127.0.0.1", self._target)
+            up_reader, up_writer = await asyncio.open_connection("127.0.0.1", self.target)
         except OSError:
             writer.transport.abort()
             return
@@ -602,6 +704,8 @@ class FaultProxy:
         if not self._stalled:  # one end closed: close the other too, as a plain TCP path would
             for w in (a, b):
                 w.transport.abort()
+            with contextlib.suppress(ValueError):
+                self._links.remove((a, b))
 
     def cut(self, reset: bool) -> None:
         """Close every connection now: with a TCP reset (``reset``) or an orderly close; buffered bytes are lost."""
@@ -618,6 +722,14 @@ class FaultProxy:
         """Stop forwarding in both directions; the connections stay open."""
         self._stalled = True
 
+    def clear(self) -> None:
+        """Drop every connection and forward again (between sessions)."""
+        self.cut(reset=True)
+        self._links.clear()
+        for task in list(self._tasks):
+            task.cancel()
+        self._stalled = False
+
     async def close(self) -> None:
         self.cut(reset=False)
         for task in list(self._tasks):
@@ -633,34 +745,29 @@ class FaultProxy:
 Fire = Callable[[FaultPlan, str, str], None]  # (plan, frame type, direction) -> performs the fault
 
 
-class FaultyStream(ClientStream):
-    """The peer's client stream: counts frames per phase and fires the planned fault at the planned frame.
+Fire = Callable[["FaultPlan", str, str], None]  # (plan, frame type, direction): performs the fault
 
-    After the fault nothing crosses: a cut stream raises ``StreamLost`` on every read and write, a stalled one
-    holds every read and write until it is cancelled, and a killed process does not come back. It also hands the
-    harness the labels that cross it (to scan the logs for).
+
+class FaultPoint:
+    """Counts a session's frames per phase at the peer's stream and fires the planned fault at the planned frame.
+
+    After the fault nothing crosses: a cut stream raises ``StreamLost`` (a client stream) or ``OSError`` (a server
+    context) on every read and write, a stalled one holds every read and write until cancelled, and a killed
+    process does not come back. It also hands the harness the labels that cross it (to scan the logs for).
     """
 
     def __init__(
-        self,
-        call: grpc.aio.StreamStreamCall,
-        grace_s: float,
-        plan: FaultPlan | None,
-        fire: Fire | None,
-        secrets: Secrets,
-        session_id: str,
+        self, plan: FaultPlan | None, fire: Fire | None, secrets: Secrets, session_id: bytes
     ) -> None:
-        super().__init__(call, grace_s)
         self.plan = plan
         self._fire = fire
         self._secrets = secrets
-        self._sid = session_id
+        self._sid = sid_text(session_id)
         self._seen: Counter[str] = Counter()
         self.fired: str | None = None  # "frame type, direction" once fired
-        self.fired_at: float | None = None
         self._held = asyncio.Event()  # never set
 
-    def _look(self, data: bytes, direction: str) -> bool:
+    def look(self, data: bytes, direction: str) -> bool:
         """Count the frame; True if the fault fires on it."""
         try:
             kind, frame = fr.decode(data)
@@ -675,31 +782,93 @@ class FaultyStream(ClientStream):
         self._seen[phase] += 1
         if phase == self.plan.phase and index == self.plan.index:
             self.fired = f"{kind}, {direction}"
-            self.fired_at = time.monotonic()
             assert self._fire is not None
             self._fire(self.plan, kind, direction)
             return True
         return False
 
-    async def _after_fault(self) -> None:
+    async def after_fault(self, lost: type[Exception]) -> None:
         assert self.plan is not None
         if self.plan.kind == CUT:
-            raise StreamLost("the connection was cut under the session (injected fault)")
-        await self._held.wait()  # stalled (or killed: the process is gone before this runs)
+            raise lost("the connection was cut under the session (injected fault)")
+        await self._held.wait()  # stalled (killed: the process is gone before this runs)
+
+    async def read(self, read: Callable[[], Awaitable[Any]], lost: type[Exception]) -> Any:
+        if self.fired is not None:
+            await self.after_fault(lost)
+        data = await read()
+        # A read already waiting when the fault fired (on a write) must not deliver what arrives after it.
+        if self.fired is not None or (
+            isinstance(data, bytes | bytearray) and self.look(bytes(data), "received")
+        ):
+            await self.after_fault(lost)
+        return data
+
+    async def write(
+        self, data: bytes, write: Callable[[bytes], Awaitable[None]], lost: type[Exception]
+    ) -> None:
+        if self.fired is not None or self.look(data, "sent"):
+            await self.after_fault(lost)
+        await write(data)
+
+
+class FaultyStream(ClientStream):
+    """The peer's client stream with a :class:`FaultPoint`."""
+
+    def __init__(self, call: grpc.aio.StreamStreamCall, grace_s: float, point: FaultPoint) -> None:
+        super().__init__(call, grace_s)
+        self.point = point
 
     async def read(self) -> bytes | None:
-        if self.fired is not None:
-            await self._after_fault()
-        data = await super().read()
-        # A read already waiting when the fault fired (on a write) must not deliver what arrives after it.
-        if self.fired is not None or (data is not None and self._look(data, "received")):
-            await self._after_fault()
+        data: bytes | None = await self.point.read(super().read, StreamLost)
         return data
 
     async def write(self, data: bytes) -> None:
-        if self.fired is not None or self._look(data, "sent"):
-            await self._after_fault()
-        await super().write(data)
+        await self.point.write(data, super().write, StreamLost)
+
+
+class FaultyContext:
+    """A gRPC server context whose reads and writes pass a :class:`FaultPoint`, chosen by the first frame's id."""
+
+    def __init__(self, context: grpc.aio.ServicerContext, points: dict[bytes, FaultPoint]) -> None:
+        self._context = context
+        self._points = points
+        self.point: FaultPoint | None = None
+
+    def auth_context(self) -> Any:
+        return self._context.auth_context()
+
+    def done(self) -> bool:
+        return self._context.done()
+
+    def cancelled(self) -> bool:
+        return self._context.cancelled()
+
+    async def abort(self, code: grpc.StatusCode, details: str) -> None:
+        await self._context.abort(code, details)
+
+    async def read(self) -> Any:
+        if self.point is None:
+            data = await self._context.read()
+            if isinstance(data, bytes | bytearray):
+                with contextlib.suppress(fr.ProtocolError):
+                    kind, frame = fr.decode(bytes(data))
+                    if kind == fr.HELLO:
+                        self.point = self._points.get(bytes(frame.hello.session_id))
+            if (
+                self.point is not None
+                and isinstance(data, bytes | bytearray)
+                and self.point.look(bytes(data), "received")
+            ):
+                await self.point.after_fault(OSError)
+            return data
+        return await self.point.read(self._context.read, OSError)
+
+    async def write(self, data: bytes) -> None:
+        if self.point is None:
+            await self._context.write(data)
+            return
+        await self.point.write(data, self._context.write, OSError)
 
 
 async def connect(
@@ -707,17 +876,17 @@ async def connect(
     target: str,
     tls: NodeTLS,
     limits: Limits,
-    stream_factory: Callable[[grpc.aio.StreamStreamCall], ClientStream],
+    point: FaultPoint,
     session_ids: SessionIds | None = None,
 ) -> SessionResult:
-    """``transport.run_client`` with the stream made by ``stream_factory`` (the peer's faulty stream)."""
+    """``transport.run_client`` with the peer's faulty stream."""
     if session_ids is not None:
         session_ids.claim(session.session_id)
     options = [*MESSAGE_OPTIONS, ("grpc.ssl_target_name_override", tls.server_name())]
     async with grpc.aio.secure_channel(target, tls.channel_credentials(), options=options) as channel:
         method = channel.stream_stream(METHOD_PATH, request_serializer=None, response_deserializer=None)
         call = method(timeout=limits.deadline_s + 2 * limits.abort_grace_s)
-        return await drive(session, stream_factory(call), limits)
+        return await drive(session, FaultyStream(call, limits.abort_grace_s, point), limits)
 
 
 def end_bound(limits: Limits) -> float:
@@ -736,8 +905,9 @@ class Side:
     opened: bool = True  # False: the node never saw the session's stream (withdrawn after its deadline)
     hung: bool = False
     killed: bool = False
-    released: bool = False  # an output was available from the session or its result
-    outputs: np.ndarray | None = None
+    released: bool = False  # an output was available: from the session, its result, or a result file
+    outputs: Any = None  # the peer's output bits; the node's result file outputs
+    store_status: str | None = None  # the node's job-store status of the attempt
     reason: str | None = None  # abort reason (snake case), "not_opened", or "node_stopped" for a killed peer
     message: str = ""
     by_peer: bool = False
@@ -824,13 +994,173 @@ class _ListHandler(logging.Handler):
             self._watch.crashes.append(f"logged by {record.name}: {text[:200]}")
 
 
-# -- the peer as a process of its own (the kill fault) -----------------------------------------------------------------
+# -- the peer: accepting the node's proposals, or proposing runs to the node -----------------------------------------------
 
 
-def killed_peer_main(spec: dict[str, Any], conn: Connection) -> None:
-    """Entry point of a peer process: play one side of a session, SIGKILL itself at the planned frame."""
+@dataclass
+class Accepted:
+    """A session the peer accepted from the node's proposal."""
+
+    session_id: bytes
+    session: Session
+    future: asyncio.Future[SessionResult]
+    started: float
+
+
+class HarnessAcceptor(SessionServer):
+    """The peer as the accepting node of ``JOB_INITIATED``: answers the node's proposals and serves its sessions.
+
+    ``plans[attempt]`` breaks the session of that attempt (its stream passes a :class:`FaultPoint`); ``ready``
+    holds proposals back while the peer's log is away (a peer process has it).
+    """
+
+    def __init__(
+        self, keys: PeerKeys, job: PeerJob, logged: LoggedNode, secrets: Secrets, fire: Fire, limits: Limits
+    ) -> None:
+        super().__init__(keys.tls(), limits=limits, services=[self._add_propose])
+        self.job, self.logged, self.secrets, self.fire = job, logged, secrets, fire
+        self.plans: dict[int, FaultPlan] = {}
+        self.points: dict[bytes, FaultPoint] = {}
+        self.accepted: dict[int, Accepted] = {}  # by attempt number (the latest run's)
+        self.ready = asyncio.Event()
+        self.ready.set()
+
+    def _add_propose(self, server: grpc.aio.Server) -> None:
+        from jointstat.node.jobs import PROPOSE_METHOD
+
+        handler = grpc.unary_unary_rpc_method_handler(
+            self._propose,
+            request_deserializer=pb.RunProposal.FromString,
+            response_serializer=pb.RunAnswer.SerializeToString,
+        )
+        server.add_generic_rpc_handlers(
+            [grpc.method_handlers_generic_handler(SERVICE_NAME, {"Propose": handler})]
+        )
+        assert PROPOSE_METHOD == "Propose"
+
+    async def _propose(self, request: pb.RunProposal, _context: grpc.aio.ServicerContext) -> pb.RunAnswer:
+        await self.ready.wait()
+        if request.job != JOB_INITIATED or bytes(request.manifest_digest) != self.job.digest:
+            return pb.RunAnswer(
+                accepted=False, reason=pb.REFUSAL_REASON_JOB_NOT_CONFIGURED, message="not this job"
+            )
+        sid = bytes(request.session_id)
+        session = await asyncio.to_thread(self.logged.session, Party.EVALUATOR, sid, self.job)
+        future = self.expect(session)
+        self.points[sid] = FaultPoint(self.plans.pop(request.attempt, None), self.fire, self.secrets, sid)
+        self.accepted[request.attempt] = Accepted(sid, session, future, time.monotonic())
+        return pb.RunAnswer(accepted=True)
+
+    async def _exchange(self, requests: object, context: grpc.aio.ServicerContext) -> None:
+        await super()._exchange(requests, FaultyContext(context, self.points))  # type: ignore[arg-type]
+
+    async def wait_for_attempt(self, attempt: int, timeout: float) -> Accepted | None:
+        loop = asyncio.get_running_loop()
+        end = loop.time() + timeout
+        while attempt not in self.accepted:
+            if loop.time() > end:
+                return None
+            await asyncio.sleep(0.02)
+        return self.accepted.pop(attempt)
+
+    async def outcome(self, acc: Accepted, phase: str | None) -> Side:
+        """Wait for an accepted session: withdrawn if the node never opened it by the deadline; hung past the bound."""
+        result: SessionResult | None = None
+        limits = self._limits
+        try:
+            result = await asyncio.wait_for(asyncio.shield(acc.future), timeout=limits.deadline_s)
+        except TimeoutError:
+            if self.withdraw(acc.session_id):
+                await asyncio.to_thread(
+                    self.logged.ended, acc.session_id, None, duration_s=limits.deadline_s, phase=phase
+                )
+                side = side_of(acc.session, None, time.monotonic() - acc.started)
+                side.opened, side.reason = False, "not_opened"
+                side.message = "the node did not open the session in time"
+                return side
+            try:
+                left = end_bound(limits) - (time.monotonic() - acc.started)
+                result = await asyncio.wait_for(asyncio.shield(acc.future), timeout=max(left, 0.01))
+            except TimeoutError:
+                side = side_of(acc.session, None, None)
+                side.hung = True
+                return side
+        elapsed = time.monotonic() - acc.started
+        await asyncio.to_thread(self.logged.ended, acc.session_id, result, duration_s=elapsed, phase=phase)
+        return side_of(acc.session, result, elapsed)
+
+
+async def run_initiator(
+    keys: PeerKeys,
+    job: PeerJob,
+    logged: LoggedNode,
+    secrets: Secrets,
+    *,
+    node_port: int,
+    target_port: int,
+    session_id: bytes,
+    attempt: int,
+    plan: FaultPlan | None,
+    fire: Fire | None,
+    limits: Limits,
+) -> tuple[Side, str | None]:
+    """The peer as the initiating node of ``JOB_ACCEPTED``: propose the run, then play the garbler's session.
+
+    The proposal goes straight to the node; the session to ``target_port`` (the node, or a proxy in front of it).
+    """
+    from jointstat.node.jobs import REFUSAL_CODES, propose
+
+    session = await asyncio.to_thread(logged.session, Party.GARBLER, session_id, job)
+    proposal = pb.RunProposal(
+        protocol_version=1,
+        job=JOB_ACCEPTED,
+        manifest_digest=job.digest,
+        session_id=session_id,
+        scheduled_for_us=round(time.time() * 1e6),
+        role=pb.ROLE_GARBLER,
+        attempt=attempt,
+        trigger="operator",
+    )
+    t0 = time.monotonic()
+    answer = await propose(keys.node_identity(node_port), proposal)
+    if not answer.accepted:
+        code = REFUSAL_CODES.get(answer.reason, "refused")
+        session.fail(AbortReason.SESSION_REFUSED, f"the node refused the run: {code}")
+        await asyncio.to_thread(
+            logged.ended, session_id, result_of_refusal(session), duration_s=0.0, phase="proposal"
+        )
+        side = side_of(session, None, time.monotonic() - t0)
+        side.opened, side.reason, side.message = False, code, answer.message
+        return side, None
+    point = FaultPoint(plan, fire, secrets, session_id)
+    target = f"127.0.0.1:{target_port}"
     try:
-        asyncio.run(_killed_peer(spec, conn))
+        result = await asyncio.wait_for(
+            connect(session, target, keys.tls(), limits, point, logged.ids), timeout=end_bound(limits)
+        )
+    except TimeoutError:
+        side = side_of(session, None, None)
+        side.hung = True
+        return side, point.fired
+    elapsed = time.monotonic() - t0
+    phase = None if plan is None else plan.phase
+    await asyncio.to_thread(logged.ended, session_id, result, duration_s=elapsed, phase=phase)
+    return side_of(session, result, elapsed), point.fired
+
+
+def result_of_refusal(session: Session) -> SessionResult:
+    from jointstat.transport.driver import WireCounters, result_of
+
+    return result_of(session, WireCounters())
+
+
+# -- the peer as a process of its own (the kill fault) -------------------------------------------------------------------
+
+
+def peer_process_main(spec: dict[str, Any], conn: Connection) -> None:
+    """Entry point of a peer process: play the peer's side of one session, SIGKILL itself at the planned frame."""
+    try:
+        asyncio.run(_peer_process(spec, conn))
     except BaseException as exc:
         with contextlib.suppress(Exception):
             conn.send({"error": f"{type(exc).__name__}: {exc}"})
@@ -838,53 +1168,45 @@ def killed_peer_main(spec: dict[str, Any], conn: Connection) -> None:
         conn.close()
 
 
-async def _killed_peer(spec: dict[str, Any], conn: Connection) -> None:
-    me = Identity(
-        spec["name"],
-        Issued(spec["certificate"], spec["private_key"]),
-        Ed25519PrivateKey.from_private_bytes(spec["signing_key"]),
-    )
+async def _peer_process(spec: dict[str, Any], conn: Connection) -> None:
+    keys = PeerKeys.load(Path(spec["keys"]))
+    job = peer_job(JobFiles(*(Path(p) for p in spec["files"])))
     secrets = Secrets()
-    logged = LoggedNode(
-        me,
-        spec["peer_name"],
-        Ed25519PublicKey.from_public_bytes(spec["peer_key"]),
-        Path(spec["log"]),
-        secrets,
-    )
-    layered = fault_circuit()
+    logged = LoggedNode(keys, Path(spec["log"]), secrets)
     plan: FaultPlan = spec["plan"]
-    party = Party.EVALUATOR if plan.node_role == Party.GARBLER else Party.GARBLER
-    sid = spec["session_id"]
-    session = logged.session(party, sid, layered, spec["value"])
-    conn.send({"ready": True})
-    await asyncio.to_thread(conn.recv)  # go
+    limits: Limits = spec["limits"]
 
     def fire(_plan: FaultPlan, kind: str, direction: str) -> None:
         conn.send({"fired": f"{kind}, {direction}", "secrets": secrets.to_wire()})
         os.kill(os.getpid(), signal.SIGKILL)
 
-    tls = node_tls(me.issued, spec["peer_certificate"])
-    limits: Limits = spec["limits"]
-    t0 = time.monotonic()
-    result = await connect(
-        session,
-        f"127.0.0.1:{spec['port']}",
-        tls,
-        limits,
-        lambda call: FaultyStream(call, limits.abort_grace_s, plan, fire, secrets, sid),
-    )
-    await asyncio.to_thread(logged.ended, sid, result, duration_s=time.monotonic() - t0, phase=plan.phase)
+    if spec["mode"] == "initiate":
+        conn.send({"ready": True})
+        await asyncio.to_thread(conn.recv)  # go
+        side, _fired = await run_initiator(
+            keys,
+            job,
+            logged,
+            secrets,
+            node_port=spec["node_port"],
+            target_port=spec["node_port"],
+            session_id=spec["session_id"],
+            attempt=spec["attempt"],
+            plan=plan,
+            fire=fire,
+            limits=limits,
+        )
+        conn.send(
+            {"result": {"released": side.released, "reason": side.reason}, "secrets": secrets.to_wire()}
+        )
+    else:
+        acceptor = HarnessAcceptor(keys, job, logged, secrets, fire, limits)
+        acceptor.plans[1] = plan
+        port = await acceptor.start()
+        conn.send({"ready": True, "port": port})
+        await asyncio.to_thread(conn.recv)  # stop (unless the planned fault killed this process first)
+        await acceptor.stop(None)
     logged.close()
-    conn.send(
-        {
-            "result": {
-                "completed": result.completed,
-                "reason": None if result.abort is None else result.abort.reason.name,
-            },
-            "secrets": secrets.to_wire(),
-        }
-    )
 
 
 # -- the campaign --------------------------------------------------------------------------------------------------------
@@ -894,184 +1216,293 @@ async def _killed_peer(spec: dict[str, Any], conn: Connection) -> None:
 class SessionRecord:
     """One session of a campaign: what was planned, what each side did, and the verdict."""
 
-    session_id: str
+    session_id: str  # hex, as both logs name it
     attempt: Literal["fault", "retry"]
     plan: FaultPlan | None
     node: Side
     peer: Side
-    values: tuple[int, int]  # (garbler's, evaluator's)
     fired: str | None = None
     retry_of: str | None = None
     problems: list[str] = field(default_factory=list)
     verdict: str = "unjudged"
 
 
-VERDICTS = ("completed", "aborted_cleanly", "hung", "released_wrongly", "unclean")
-ALLOWED_REASONS = {
-    # What each side may give as its reason, per fault kind (the peer's own view and the node's view).
-    CUT: {"connection_lost", "deadline", "not_opened"},
-    KILL: {"connection_lost", "deadline", "not_opened", "node_stopped"},
-    STALL: {"deadline", "connection_lost", "not_opened"},
-}
-
-
-class FaultCampaign:
-    """A node under test (``SessionServer`` with its signed log) and a peer, running faulted sessions and retries."""
+class NodeCampaign:
+    """A running node under test and the harness peer; faulted sessions, each followed by its job's retry."""
 
     def __init__(self, workdir: Path, *, seed: int = 2027, limits: Limits = FAULT_LIMITS) -> None:
         self.workdir = Path(workdir)
         self.seed = seed
         self.limits = limits
-        self.rng = np.random.default_rng(seed)
-        self.layered = fault_circuit()
-        self.pair = Pair.fresh()
         self.secrets = Secrets()
-        self.node_log = self.workdir / "riverside-sessions.jsonl"
-        self.peer_log = self.workdir / "hillside-sessions.jsonl"
         self.records: list[SessionRecord] = []
         self.watch = CrashWatch()
-        self.server: SessionServer | None = None
-        self.node: LoggedNode | None = None
-        self.peer: LoggedNode | None = None
+        self.node: Any = None
+        self._settings: contextlib.AbstractContextManager[None] | None = None
+        self._store: Any = None
 
-    async def __aenter__(self) -> FaultCampaign:
+    # -- set-up ----------------------------------------------------------------------------------------------------------
+
+    async def __aenter__(self) -> NodeCampaign:
+        import sqlite3
+
+        from jointstat.node.config import load_node_config
+        from jointstat.node.daemon import Node
+        from jointstat.node.trial import free_port, job_entry, make_trial_keys, node_config, write_config
+
         self.workdir.mkdir(parents=True, exist_ok=True)
         self.watch.__enter__()
-        p = self.pair
-        self.node = LoggedNode(p.node, p.peer.name, p.peer.public_key, self.node_log, self.secrets)
-        self.peer = LoggedNode(p.peer, p.node.name, p.node.public_key, self.peer_log, self.secrets)
-        self.server = SessionServer(p.node_tls(), limits=self.limits)
-        await self.server.start()
+        self.files = write_job_files(self.workdir / "job")
+        trial = make_trial_keys(self.workdir / "keys", (NODE_NAME, PEER_NAME))
+        self.keys = PeerKeys.load(trial.directory)
+        self.job = peer_job(self.files)
+        (self.workdir / PEER_NAME).mkdir(mode=0o700, exist_ok=True)
+        self.peer_log = self.workdir / PEER_NAME / "sessions.jsonl"
+        self.logged = LoggedNode(self.keys, self.peer_log, self.secrets)
+        self.outbound = FaultProxy(0)  # the node's peer address: the node's sessions to the peer pass it
+        await self.outbound.start()
+        self.acceptor = HarnessAcceptor(
+            self.keys, self.job, self.logged, self.secrets, self._fire_outbound, self.limits
+        )
+        self.outbound.target = await self.acceptor.start()
+        entry = {"manifest": self.files.manifest, "peer": PEER_NAME, "csv": self.files.node_csv}
+        config = node_config(
+            name=NODE_NAME,
+            peer=PEER_NAME,
+            keys=trial,
+            data_dir=self.workdir / NODE_NAME,
+            listen_port=free_port(),
+            peer_port=self.outbound.port,
+            metrics_port=0,
+            admin=f"127.0.0.1:{free_port()}",
+            jobs=[
+                job_entry(name=JOB_ACCEPTED, initiate=False, **entry),  # type: ignore[arg-type]
+                job_entry(
+                    name=JOB_INITIATED, initiate=True, attempts=3, backoff_seconds=RETRY_BACKOFF_S, **entry
+                ),  # type: ignore[arg-type]
+            ],
+            max_sessions=4,
+            session_deadline_seconds=NODE_DEADLINE_S,
+        )
+        path = write_config(self.workdir / f"{NODE_NAME}.yaml", config)
+        self._settings = node_under_test_settings(self.secrets, float(NODE_DEADLINE_S))
+        self._settings.__enter__()
+        self.node = Node(load_node_config(path))
+        await self.node.start()
+        self.node_port = int(self.node.peer_port)
+        self.node_log = Path(self.node.config.node.session_log)
+        store = Path(self.node.config.node.job_store)
+        self._store = sqlite3.connect(f"file:{store}?mode=ro", uri=True, check_same_thread=False)
         return self
 
     async def __aexit__(self, *_exc: object) -> None:
-        if self.server is not None:
-            await self.server.stop(None)
-        for side in (self.node, self.peer):
-            if side is not None:
-                side.close()
+        if self.node is not None:
+            await self.node.stop()
+        if self._store is not None:
+            self._store.close()
+        if self._settings is not None:
+            self._settings.__exit__(None, None, None)
+        await self.acceptor.stop(None)
+        await self.outbound.close()
+        self.logged.close()
         self.watch.__exit__()
 
-    # -- the node under test ------------------------------------------------------------------------------------------
+    def _fire_outbound(self, plan: FaultPlan, _kind: str, _direction: str) -> None:
+        if plan.kind == CUT:
+            self.outbound.cut(plan.reset)
+        elif plan.kind == STALL:
+            self.outbound.stall()
 
-    def _node_expects(
-        self, party: Party, sid: str, value: int
-    ) -> tuple[Session, asyncio.Future[SessionResult], float]:
-        assert self.node is not None and self.server is not None
-        session = self.node.session(party, sid, self.layered, value)
-        return session, self.server.expect(session), time.monotonic()
+    @property
+    def node_bound(self) -> float:
+        limits = self.node.state.limits
+        return end_bound(limits)
 
-    async def _node_outcome(self, session: Session, future: asyncio.Future[SessionResult], t0: float) -> Side:
-        """Wait for the node's session: withdrawn if the peer never opened it by the deadline; hung past the bound."""
-        assert self.node is not None and self.server is not None
-        sid = session.session_id.decode()
-        result: SessionResult | None = None
-        try:
-            result = await asyncio.wait_for(asyncio.shield(future), timeout=self.limits.deadline_s)
-        except TimeoutError:
-            if self.server.withdraw(session.session_id):
-                await asyncio.to_thread(
-                    self.node.ended, sid, None, duration_s=time.monotonic() - t0, phase=None
-                )
-                side = side_of(session, None, time.monotonic() - t0)
-                side.opened, side.reason = False, "not_opened"
-                side.message = "the peer did not open the session in time"
+    # -- the node's side, read from the node itself ------------------------------------------------------------------
+
+    def _row(self, sid: str) -> tuple[str, str | None, str | None] | None:
+        row = self._store.execute(
+            "SELECT status, reason, result_path FROM runs WHERE session_id = ? ORDER BY id DESC LIMIT 1",
+            (sid,),
+        ).fetchone()
+        return None if row is None else (str(row[0]), row[1], row[2])
+
+    async def node_side(self, sid: str, party: Party, t0: float) -> Side:
+        """The node's account of session ``sid``: its tracker, its job-store row and its result file."""
+        state = self.node.state
+        bound = self.node_bound
+        while True:
+            tracker = state.sessions.get(sid)
+            row = self._row(sid)
+            if tracker is not None and tracker.ended and row is not None and row[0] != "running":
+                break
+            if time.monotonic() - t0 > bound:
+                side = Side(party=party, hung=True)
+                side.message = f"tracker {'missing' if tracker is None else tracker.status}, store {row}"
                 return side
-            try:
-                left = end_bound(self.limits) - (time.monotonic() - t0)
-                result = await asyncio.wait_for(asyncio.shield(future), timeout=max(left, 0.01))
-            except TimeoutError:
-                side = side_of(session, None, None)
-                side.hung = True
-                return side
-        elapsed = time.monotonic() - t0
-        await asyncio.to_thread(self.node.ended, sid, result, duration_s=elapsed, phase=None)
-        return side_of(session, result, elapsed)
+            await asyncio.sleep(0.02)
+        side = Side(party=party, ended_after_s=time.monotonic() - t0)
+        status, reason, result_path = row
+        side.store_status = status
+        if status != "completed":
+            side.reason = tracker.reason or status
+            side.message = reason or ""
+        results = list(Path(self.node.config.job(tracker.job).results).glob(f"*-{sid}.json"))
+        side.released = result_path is not None or bool(results)
+        if result_path is not None:
+            side.outputs = json.loads(Path(result_path).read_text(encoding="utf-8"))["outputs"]
+        return side
 
-    # -- the peer ------------------------------------------------------------------------------------------------------
+    # -- one faulted session and its retry, the node accepting ---------------------------------------------------------
 
-    async def _peer_in_process(
-        self, party: Party, sid: str, value: int, plan: FaultPlan | None, port: int, proxy: FaultProxy | None
+    async def _peer_initiates(
+        self, plan: FaultPlan | None, attempt: int, sid: bytes
     ) -> tuple[Side, str | None]:
-        assert self.peer is not None
-        session = self.peer.session(party, sid, self.layered, value)
-        streams: list[FaultyStream] = []
+        if plan is not None and plan.kind == KILL:
+            self.logged.close()  # the peer process takes the log (one writer at a time)
+            proc, conn, _ = await self._spawn("initiate", plan, sid, attempt)
+            conn.send({"go": True})
+            return await self._process_outcome(proc, conn, sid, Party.GARBLER)
+        proxy = None
+        if plan is not None:
+            proxy = FaultProxy(self.node_port)
+            await proxy.start()
 
         def fire(plan: FaultPlan, _kind: str, _direction: str) -> None:
             assert proxy is not None
-            if plan.kind == CUT:
-                proxy.cut(plan.reset)
-            else:
-                proxy.stall()
+            proxy.cut(plan.reset) if plan.kind == CUT else proxy.stall()
 
-        def factory(call: grpc.aio.StreamStreamCall) -> ClientStream:
-            streams.append(FaultyStream(call, self.limits.abort_grace_s, plan, fire, self.secrets, sid))
-            return streams[-1]
-
-        t0 = time.monotonic()
         try:
-            result = await asyncio.wait_for(
-                connect(
-                    session, f"127.0.0.1:{port}", self.pair.peer_tls(), self.limits, factory, self.peer.ids
-                ),
-                timeout=end_bound(self.limits),
+            return await run_initiator(
+                self.keys,
+                self.job,
+                self.logged,
+                self.secrets,
+                node_port=self.node_port,
+                target_port=self.node_port if proxy is None else proxy.port,
+                session_id=sid,
+                attempt=attempt,
+                plan=plan,
+                fire=fire if plan is not None else None,
+                limits=self.limits,
             )
-        except TimeoutError:
-            side = side_of(session, None, None)
-            side.hung = True
-            return side, streams[0].fired if streams else None
-        elapsed = time.monotonic() - t0
-        await asyncio.to_thread(
-            self.peer.ended, sid, result, duration_s=elapsed, phase=None if plan is None else plan.phase
-        )
-        return side_of(session, result, elapsed), streams[0].fired if streams else None
+        finally:
+            if proxy is not None:
+                self._proxies.append(proxy)
 
-    async def _spawn_peer(self, sid: str, value: int, plan: FaultPlan) -> tuple[Any, Connection]:
-        assert self.peer is not None and self.server is not None
-        self.peer.close()  # the peer process takes over its log (one writer at a time)
-        p = self.pair
+    async def node_accepts(self, plan: FaultPlan) -> None:
+        self._proxies: list[FaultProxy] = []
+        attempts = []
+        for attempt, this_plan in ((1, plan), (2, None)):
+            sid = os.urandom(16)
+            t0 = time.monotonic()
+            peer, fired = await self._peer_initiates(this_plan, attempt, sid)
+            node = await self.node_side(sid.hex(), Party.EVALUATOR, t0)
+            for proxy in self._proxies:
+                await proxy.close()
+            self._proxies.clear()
+            attempts.append((sid.hex(), this_plan, node, peer, fired))
+        self._add(attempts)
+
+    # -- one faulted run with the node's own retry, the node initiating ------------------------------------------------
+
+    async def node_initiates(self, plan: FaultPlan) -> None:
+        proc = conn = None
+        if plan.kind == KILL:
+            self.logged.close()
+            self.acceptor.ready.clear()
+            proc, conn, port = await self._spawn("accept", plan, b"", 1)
+            self.outbound.target = port
+        else:
+            self.acceptor.plans[1] = plan
+        t0 = time.monotonic()
+        started = await self.node.admin_run_job({"job": JOB_INITIATED})
+        sid = str(started["session"])
+        if proc is not None and conn is not None:
+
+            def back_in_process() -> None:  # the peer node is back: its in-process acceptor takes the retry
+                self.outbound.target = self.acceptor.port
+                self.acceptor.ready.set()
+
+            peer, fired = await self._process_outcome(
+                proc, conn, bytes.fromhex(sid), Party.EVALUATOR, back_in_process
+            )
+        else:
+            acc = await self.acceptor.wait_for_attempt(1, self.node_bound)
+            if acc is None:
+                peer, fired = Side(party=Party.EVALUATOR, hung=True, message="no proposal came"), None
+            else:
+                peer = await self.acceptor.outcome(acc, plan.phase)
+                fired = self.acceptor.points.pop(acc.session_id).fired
+        node = await self.node_side(sid, Party.GARBLER, t0)
+        self.outbound.clear()
+        self.acceptor.plans.clear()
+        attempts = [(sid, plan, node, peer, fired)]
+        acc = await self.acceptor.wait_for_attempt(2, RETRY_BACKOFF_S * 2 + self.node_bound)
+        if acc is None:
+            missing = Side(party=Party.GARBLER, hung=True, message="the node did not retry the job")
+            attempts.append((f"{sid}-retry", None, missing, Side(party=Party.EVALUATOR), None))
+        else:
+            t1 = time.monotonic()
+            peer = await self.acceptor.outcome(acc, None)
+            self.acceptor.points.pop(acc.session_id, None)
+            node = await self.node_side(acc.session_id.hex(), Party.GARBLER, t1)
+            attempts.append((acc.session_id.hex(), None, node, peer, None))
+        self._add(attempts)
+
+    def _add(self, attempts: list[tuple[str, FaultPlan | None, Side, Side, str | None]]) -> None:
+        first = attempts[0][0]
+        for i, (sid, plan, node, peer, fired) in enumerate(attempts):
+            kind: Literal["fault", "retry"] = "fault" if i == 0 else "retry"
+            self.records.append(SessionRecord(sid, kind, plan, node, peer, fired, None if i == 0 else first))
+
+    # -- the peer process ----------------------------------------------------------------------------------------------
+
+    async def _spawn(
+        self, mode: str, plan: FaultPlan, sid: bytes, attempt: int
+    ) -> tuple[Any, Connection, int]:
         spec = {
-            "name": p.peer.name,
-            "certificate": p.peer.issued.certificate,
-            "private_key": p.peer.issued.private_key,
-            "signing_key": p.peer.raw_signing_key(),
-            "peer_name": p.node.name,
-            "peer_key": p.node.public_key.public_bytes(
-                serialization.Encoding.Raw, serialization.PublicFormat.Raw
-            ),
-            "peer_certificate": p.node.issued.certificate,
+            "mode": mode,
+            "keys": str(self.keys.directory),
+            "files": [str(self.files.manifest), str(self.files.node_csv), str(self.files.peer_csv)],
             "log": str(self.peer_log),
             "plan": plan,
             "session_id": sid,
-            "value": value,
-            "port": self.server.port,
+            "attempt": attempt,
+            "node_port": self.node_port,
             "limits": self.limits,
         }
         ctx = mp.get_context("spawn")
         parent, child = ctx.Pipe()
         proc = ctx.Process(
-            target=killed_peer_main, args=(spec, child), name="jointstat-fault-peer", daemon=True
+            target=peer_process_main, args=(spec, child), name="jointstat-fault-peer", daemon=True
         )
         proc.start()
         child.close()
         if not await asyncio.to_thread(parent.poll, 120):
             proc.kill()
             raise RuntimeError("the peer process did not start within 120 s")
-        message = parent.recv()
+        try:
+            message = parent.recv()
+        except EOFError:
+            message = {"error": f"it exited with code {proc.exitcode} before it was ready"}
         if "ready" not in message:
             proc.kill()
             raise RuntimeError(f"the peer process failed to start: {message.get('error')}")
-        return proc, parent
+        return proc, parent, int(message.get("port", 0))
 
-    async def _peer_process_outcome(
-        self, proc: Any, conn: Connection, sid: str, party: Party
+    async def _process_outcome(
+        self,
+        proc: Any,
+        conn: Connection,
+        sid: bytes,
+        party: Party,
+        on_death: Callable[[], None] | None = None,
     ) -> tuple[Side, str | None]:
-        assert self.peer is not None
         t0 = time.monotonic()
-        conn.send({"go": True})
         fired: str | None = None
         side = Side(party=party)
-        deadline = t0 + end_bound(self.limits)
+        deadline = t0 + end_bound(self.limits) + self.node_bound
         while True:
             left = deadline - time.monotonic()
             if left <= 0 or not await asyncio.to_thread(conn.poll, left):
@@ -1086,8 +1517,10 @@ class FaultCampaign:
             if "fired" in message:
                 fired = message["fired"]
             if "result" in message:
-                side.released = bool(message["result"]["completed"])
-                side.reason = (message["result"]["reason"] or "").lower() or None
+                side.released = bool(message["result"]["released"])
+                side.reason = message["result"]["reason"]
+                with contextlib.suppress(OSError):
+                    conn.send({"stop": True})
             if "error" in message:
                 self.watch.crashes.append(f"peer process: {message['error']}")
         await asyncio.to_thread(proc.join, 10)
@@ -1098,150 +1531,117 @@ class FaultCampaign:
         side.killed = proc.exitcode == -signal.SIGKILL
         if fired is not None and not side.killed:
             self.watch.crashes.append(
-                f"peer process fired its fault but ended with exit code {proc.exitcode}"
+                f"the peer process fired its fault but ended with exit code {proc.exitcode}"
             )
         side.ended_after_s = None if side.hung else time.monotonic() - t0
-        left_open = await asyncio.to_thread(self.peer.reopen)  # the peer node "restarts"
+        left_open = await asyncio.to_thread(self.logged.reopen)  # the peer node comes back
+        if on_death is not None:
+            on_death()
         if side.killed:
-            side.reason = "node_stopped" if sid in left_open else side.reason
-            side.message = "the peer process was killed; its log closed the session on restart"
+            side.reason = "node_restarted" if sid.hex() in left_open else side.reason
+            side.message = "the peer process was killed; its log closed the session when it came back"
         return side, fired
 
-    # -- sessions ---------------------------------------------------------------------------------------------------------
-
-    def _values(self) -> tuple[int, int]:
-        return invented_value(self.rng), invented_value(self.rng)
-
-    async def fault_session(self, plan: FaultPlan, sid: str, values: tuple[int, int]) -> SessionRecord:
-        assert self.server is not None
-        node_party = plan.node_role
-        peer_party = Party.EVALUATOR if node_party == Party.GARBLER else Party.GARBLER
-        own = {Party.GARBLER: values[0], Party.EVALUATOR: values[1]}
-        if plan.kind == KILL:
-            proc, conn = await self._spawn_peer(sid, own[peer_party], plan)
-            session, future, t0 = self._node_expects(node_party, sid, own[node_party])
-            node_task = asyncio.create_task(self._node_outcome(session, future, t0))
-            peer, fired = await self._peer_process_outcome(proc, conn, sid, peer_party)
-        else:
-            proxy = FaultProxy(self.server.port)
-            await proxy.start()
-            session, future, t0 = self._node_expects(node_party, sid, own[node_party])
-            node_task = asyncio.create_task(self._node_outcome(session, future, t0))
-            try:  # the proxy stays (stalled or cut) until both sides have given up
-                peer, fired = await self._peer_in_process(
-                    peer_party, sid, own[peer_party], plan, proxy.port, proxy
-                )
-                node = await node_task
-            finally:
-                await proxy.close()
-        if plan.kind == KILL:
-            node = await node_task
-        record = SessionRecord(sid, "fault", plan, node, peer, values, fired=fired)
-        self.records.append(record)
-        return record
-
-    async def retry_session(
-        self, node_party: Party, sid: str, values: tuple[int, int], retry_of: str
-    ) -> SessionRecord:
-        assert self.server is not None
-        peer_party = Party.EVALUATOR if node_party == Party.GARBLER else Party.GARBLER
-        own = {Party.GARBLER: values[0], Party.EVALUATOR: values[1]}
-        session, future, t0 = self._node_expects(node_party, sid, own[node_party])
-        node_task = asyncio.create_task(self._node_outcome(session, future, t0))
-        peer, _ = await self._peer_in_process(peer_party, sid, own[peer_party], None, self.server.port, None)
-        node = await node_task
-        record = SessionRecord(sid, "retry", None, node, peer, values, retry_of=retry_of)
-        self.records.append(record)
-        return record
+    # -- the whole ------------------------------------------------------------------------------------------------------
 
     async def run(self, sessions: int) -> list[SessionRecord]:
         """``sessions`` sessions: faulted ones, each followed by its job's retry (the last may have none)."""
         if sessions < 1:
             raise ValueError(f"sessions must be at least 1, got {sessions}")
-        faults = -(-sessions // 2)
-        plans = make_plans(faults, self.seed, self.layered)
-        done = 0
-        for i, plan in enumerate(plans):
-            values = self._values()
-            first = f"{JOB}-{i:04d}-attempt-1"
-            await self.fault_session(plan, first, values)
-            done += 1
-            if done < sessions:
-                await self.retry_session(plan.node_role, f"{JOB}-{i:04d}-attempt-2", values, first)
-                done += 1
+        plans = make_plans(-(-sessions // 2), self.seed, self.job.layered)
+        for plan in plans:
+            if plan.node_role == Party.GARBLER:
+                await self.node_initiates(plan)
+            else:
+                await self.node_accepts(plan)
+        del self.records[sessions:]
         return self.records
 
 
 # -- judging a campaign ------------------------------------------------------------------------------------------------------
 
+NODE_REASONS = {
+    CUT: {"connection_lost", "deadline", "peer_never_connected"},
+    KILL: {"connection_lost", "deadline", "peer_never_connected"},
+    STALL: {"deadline", "connection_lost", "peer_never_connected"},
+}
+PEER_REASONS = {
+    CUT: {"connection_lost", "deadline", "not_opened"},
+    KILL: {"node_restarted"},
+    STALL: {"deadline", "connection_lost", "not_opened"},
+}
 
-def judge(
-    records: list[SessionRecord],
-    secrets: Secrets,
-    node_log: Path,
-    peer_log: Path,
-    pair: Pair,
-    limits: Limits,
-) -> list[str]:
-    """Give every record its verdict and problems, from the sides' outcomes and both verified logs.
+
+def judge(campaign: NodeCampaign) -> list[str]:
+    """Give every record its verdict and problems, from both sides' outcomes and both verified logs.
 
     Returns the problems that belong to no single session (a log that does not verify, say).
     """
-    node_report = verify_log(node_log, pair.node.public_key)
-    peer_report = verify_log(peer_log, pair.peer.public_key)
-    general = [
-        f"{name} log does not verify: {r.problem}"
-        for name, r in (("node", node_report), ("peer", peer_report))
-        if not r.ok
-    ]
-    compared = compare_logs(
-        node_log, peer_log, mine_key=pair.node.public_key, theirs_key=pair.peer.public_key
-    )
-    by_id = {r.session_id: r for r in records}
-    bound = end_bound(limits)
-    for record in records:
-        sid = record.session_id
-        problems = record.problems
+    node_key = campaign.keys.node_key
+    peer_key = campaign.keys.signing_key.public_key()
+    reports = {
+        "node": verify_log(campaign.node_log, node_key),
+        "peer": verify_log(campaign.peer_log, peer_key),
+    }
+    general = [f"{name} log does not verify: {r.problem}" for name, r in reports.items() if not r.ok]
+    compared = compare_logs(campaign.node_log, campaign.peer_log, mine_key=node_key, theirs_key=peer_key)
+    by_id = {r.session_id: r for r in campaign.records}
+    expected = expected_result()
+    for record in campaign.records:
+        sid, problems = record.session_id, record.problems
         problems += [p for p in compared.problems if f"session {sid}:" in p]
-        sides = (("node", record.node, node_report), ("peer", record.peer, peer_report))
+        sides = {"node": record.node, "peer": record.peer}
+        states = {name: reports[name].sessions.get(sid) for name in sides}
+        bounds = {"node": campaign.node_bound, "peer": end_bound(campaign.limits) + campaign.node_bound}
         if record.node.hung or record.peer.hung:
             record.verdict = "hung"
+            problems += [f"{n} did not end ({s.message})" for n, s in sides.items() if s.hung]
             continue
         if record.attempt == "fault":
-            assert record.plan is not None
+            plan = record.plan
+            assert plan is not None
             if record.node.released or record.peer.released:
                 record.verdict = "released_wrongly"
                 continue
             if record.fired is None:
                 problems.append("the planned fault never fired")
-            for name, side, report in sides:
-                state = report.sessions.get(sid)
-                if side.reason is None or not side.message:
-                    problems.append(f"{name} ended without an abort reason and message")
-                elif side.reason not in ALLOWED_REASONS[record.plan.kind]:
+            allowed = {"node": NODE_REASONS[plan.kind], "peer": PEER_REASONS[plan.kind]}
+            for name, side in sides.items():
+                state = states[name]
+                if side.reason is None:
+                    problems.append(f"{name} ended without an abort reason")
+                elif side.reason not in allowed[name]:
                     problems.append(
-                        f"{name} aborted for {side.reason!r}, not a reason a {record.plan.kind} explains"
+                        f"{name} aborted for {side.reason!r}, which a {plan.kind} does not explain"
                     )
-                if side.ended_after_s is None or side.ended_after_s > bound:
-                    problems.append(f"{name} ended after {side.ended_after_s} s, beyond {bound:g} s")
+                if side.ended_after_s is None or side.ended_after_s > bounds[name]:
+                    problems.append(f"{name} ended after {side.ended_after_s} s, beyond {bounds[name]:g} s")
                 if state is None or state.outcome != "aborted":
                     problems.append(f"{name} log: {'no such session' if state is None else state.outcome}")
+            if record.node.store_status != "aborted":
+                problems.append(f"node job store: {record.node.store_status}, not aborted")
             record.verdict = "unclean" if problems else "aborted_cleanly"
             continue
-        expected = expected_outputs(*record.values)
         wrong = False
-        for name, side, report in sides:
-            state = report.sessions.get(sid)
-            if side.outputs is None:
-                problems.append(f"{name} did not complete ({side.reason}: {side.message[:160]})")
-            elif not np.array_equal(side.outputs, expected[side.party]):
+        node_out = record.node.outputs
+        if node_out is None:
+            problems.append(f"node did not complete ({record.node.reason}: {record.node.message[:160]})")
+        elif node_out != expected:
+            wrong = True
+            problems.append("node released a wrong result")
+        if record.peer.outputs is None:
+            problems.append(f"peer did not complete ({record.peer.reason}: {record.peer.message[:160]})")
+        else:
+            decoded = campaign.job.compiled.decode(record.peer.party, record.peer.outputs)
+            if {k: decoded.get(k) for k in expected} != expected:
                 wrong = True
-                problems.append(f"{name} released a wrong output")
+                problems.append("peer released a wrong result")
+        for name, state in states.items():
             if state is None or state.outcome != "completed":
                 problems.append(f"{name} log: {'no such session' if state is None else state.outcome}")
-        if record.node.transcript != record.peer.transcript:
-            problems.append("the two sides' transcript digests differ")
-        problems += freshness_problems(secrets, by_id.get(record.retry_of or ""), record)
+        if all(s is not None for s in states.values()) and states["node"].digest != states["peer"].digest:  # type: ignore[union-attr]
+            problems.append("the two logs hold different transcript digests")
+        problems += freshness_problems(campaign.secrets, by_id.get(record.retry_of or ""), record)
         record.verdict = "released_wrongly" if wrong else ("unclean" if problems else "completed")
     return general
 
@@ -1252,6 +1652,8 @@ def freshness_problems(secrets: Secrets, before: SessionRecord | None, retry: Se
     delta = secrets.deltas.get(retry.session_id)
     if delta is None:
         problems.append("no Δ was recorded for the retry")
+    if not secrets.labels.get(retry.session_id):
+        problems.append("no labels were recorded for the retry")
     if before is None:
         return problems
     if delta is not None and delta == secrets.deltas.get(before.session_id):
@@ -1259,9 +1661,45 @@ def freshness_problems(secrets: Secrets, before: SessionRecord | None, retry: Se
     shared = secrets.labels.get(retry.session_id, set()) & secrets.labels.get(before.session_id, set())
     if shared:
         problems.append(f"the retry used {len(shared)} labels of the faulted attempt")
-    if not secrets.labels.get(retry.session_id):
-        problems.append("no labels were recorded for the retry")
     return problems
+
+
+# -- throw-away identities for the fuzzer ---------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Identity:
+    """One node's name, TLS certificate and key, and Ed25519 log-signing key."""
+
+    name: str
+    issued: Issued
+    signing_key: Ed25519PrivateKey
+
+    @property
+    def public_key(self) -> Ed25519PublicKey:
+        return self.signing_key.public_key()
+
+
+@dataclass(frozen=True)
+class Pair:
+    """Two nodes' identities for fuzzing a session server (each pins the other's certificate)."""
+
+    node: Identity
+    peer: Identity
+
+    @classmethod
+    def fresh(cls, node: str = "riverside-bikes", peer: str = "hillside-bikes") -> Pair:
+        ca = new_ca("bicycle schemes trial CA")
+        return cls(
+            Identity(node, issue(ca, f"{node}.test"), Ed25519PrivateKey.generate()),
+            Identity(peer, issue(ca, f"{peer}.test"), Ed25519PrivateKey.generate()),
+        )
+
+    def node_tls(self) -> NodeTLS:
+        return node_tls(self.node.issued, self.peer.issued)
+
+    def peer_tls(self) -> NodeTLS:
+        return node_tls(self.peer.issued, self.node.issued)
 
 
 # -- frame fuzzing ------------------------------------------------------------------------------------------------------------
@@ -1281,6 +1719,7 @@ WIRE_SAMPLE = 200  # fuzz cases sent over real TLS
 SECRET_SAMPLE = 25  # one case in this many records its Δ and labels, to scan the abort messages for
 TRACED_CASES = 500  # the last in-process cases, run under tracemalloc
 HUGE_LENGTHS = (2**31 - 1, 2**32 + 5, 2**63 - 1, 2**64 - 1)
+FUZZ_MANIFEST_DIGEST = hashlib.sha256(b"invented manifest: fuzzing a bicycle-share node").digest()
 
 
 def plain_circuit() -> LayeredCircuit:
@@ -1475,7 +1914,7 @@ class Fuzzer:
             common: dict[str, Any] = {
                 "session_id": sid,
                 "layered": layered,
-                "manifest_digest": MANIFEST_DIGEST,
+                "manifest_digest": FUZZ_MANIFEST_DIGEST,
                 "inputs": rng.integers(0, 2, layered.circuit.n_inputs(party), dtype=np.uint8),
                 "sign": signer(keys[party]),
                 "verify": verifier(keys[other].public_key()),
@@ -1833,36 +2272,44 @@ class FaultsReport:
     problems: list[str]
 
 
+def _store_text(path: Path) -> str:
+    import sqlite3
+
+    db = sqlite3.connect(f"file:{path}?mode=ro", uri=True)
+    try:
+        return "\n".join(" ".join(str(v) for v in row) for row in db.execute("SELECT * FROM runs"))
+    finally:
+        db.close()
+
+
 async def measure_async(sessions: int, frames: int, workdir: Path, *, seed: int = 2027) -> FaultsReport:
     """Run the fault campaign (``sessions`` sessions) and the fuzzer (``frames`` mutated frames) in ``workdir``."""
     start = time.monotonic()
-    async with FaultCampaign(workdir, seed=seed) as campaign:
+    async with NodeCampaign(workdir, seed=seed) as campaign:
         await campaign.run(sessions)
-    problems = judge(
-        campaign.records,
-        campaign.secrets,
-        campaign.node_log,
-        campaign.peer_log,
-        campaign.pair,
-        campaign.limits,
-    )
+    problems = judge(campaign)
     fuzzer = Fuzzer(seed=seed + 1)
     fuzz_figures = await fuzzer.run(frames) if frames else {}
     secrets = Secrets()
     secrets.merge(campaign.secrets)
     secrets.merge(fuzzer.secrets)
-    texts = [("python log (fault sessions)", "\n".join(campaign.watch.lines))]
-    texts.append(("python log (fuzzing)", "\n".join(fuzzer.log_lines)))
-    texts.append(
+    for value in NODE_METRES + PEER_METRES:
+        secrets.add_value(value)
+    store = Path(campaign.node.config.node.job_store)
+    texts = [
+        ("python log (fault sessions)", "\n".join(campaign.watch.lines)),
+        ("python log (fuzzing)", "\n".join(fuzzer.log_lines)),
+        ("node job store", _store_text(store)),
         (
             "abort messages (fault sessions)",
-            "\n".join(r.node.message + "\n" + r.peer.message for r in campaign.records),
-        )
-    )
-    texts.append(("abort messages (fuzzing)", "\n".join(o.message for o in fuzzer.outcomes)))
-    findings = scan_for_secrets(secrets, [campaign.node_log, campaign.peer_log], texts)
+            "\n".join(f"{r.node.message}\n{r.peer.message}" for r in campaign.records),
+        ),
+        ("abort messages (fuzzing)", "\n".join(o.message for o in fuzzer.outcomes)),
+    ]
+    logs = [campaign.node_log, campaign.peer_log]
+    findings = scan_for_secrets(secrets, logs, texts)
     verdicts = Counter(r.verdict for r in campaign.records)
-    internal = [r for r in campaign.records for side in (r.node, r.peer) if side.reason == "internal"]
+    internal = [r for r in campaign.records for s in (r.node, r.peer) if s.reason == "internal"]
     crashes = (
         campaign.watch.crashes
         + fuzzer.crashes
@@ -1879,11 +2326,12 @@ async def measure_async(sessions: int, frames: int, workdir: Path, *, seed: int 
         "unclean": verdicts["unclean"],
         "faults": dict(sorted(Counter(r.plan.kind for r in campaign.records if r.plan).items())),
         "phases": dict(sorted(Counter(r.plan.phase for r in campaign.records if r.plan).items())),
+        "node_initiated_faults": sum(
+            1 for r in campaign.records if r.plan and r.plan.node_role == Party.GARBLER
+        ),
         **{k: v for k, v in fuzz_figures.items() if k not in ("frames_fuzzed", "fuzz_crashes")},
         "secrets_found_in_logs": len(findings),
-        "log_lines_scanned": sum(
-            len(Path(p).read_text().splitlines()) for p in (campaign.node_log, campaign.peer_log)
-        )
+        "log_lines_scanned": sum(len(p.read_text(encoding="utf-8").splitlines()) for p in logs)
         + sum(len(t.splitlines()) for _, t in texts),
         "wall_s": round(time.monotonic() - start, 1),
     }
@@ -1894,13 +2342,14 @@ async def measure_async(sessions: int, frames: int, workdir: Path, *, seed: int 
 
 
 def measure(sessions: int, frames: int = DEFAULT_FUZZ_FRAMES, *, seed: int = 2027) -> FaultsReport:
+    import tempfile
 
     with tempfile.TemporaryDirectory(prefix="jointstat-faults-") as tmp:
         return asyncio.run(measure_async(sessions, frames, Path(tmp), seed=seed))
 
 
 def targets_met(figures: dict[str, Any]) -> bool:
-    """The issue's targets: nothing hung, no output released wrongly, no crash, every session completed or aborted
+    """The issue's targets — nothing hung, no output released wrongly, no crash, every session completed or aborted
     cleanly — and no secret in any log."""
     return (
         figures["hung"] == 0
@@ -1920,9 +2369,7 @@ def run(sessions: int, frames: int, as_json: bool) -> int:
         raise UserError(f"bench faults: --frames must be 0 or more, got {frames}")
     report = measure(sessions, frames)
     emit(
-        "fault injection and frame fuzzing (one node under test, loopback mutual TLS)",
-        report.figures,
-        as_json,
+        "fault injection and frame fuzzing (a node under test, loopback mutual TLS)", report.figures, as_json
     )
     for problem in (
         report.problems + report.crashes + [f"{f.source}:{f.line}: {f.what}" for f in report.findings]
