@@ -229,6 +229,27 @@ def test_compose_peers_reach_each_other_by_service_name_on_the_listening_port() 
     assert len(initiators) == 1
 
 
+def test_the_compose_nodes_are_one_of_each_manifest_party_with_the_input_of_that_party() -> None:
+    from jointstat.circuit.inputs import read_csv
+    from jointstat.circuit.manifest import load_manifest
+    from jointstat.circuit.model import Party
+
+    roles = {}
+    for name in NODES:
+        mounts = compose_mounts(compose()["services"][name])
+        (job,) = compose_config(name).jobs
+        assert job.input.csv is not None
+        manifest = load_manifest(DEPLOY / covering(job.manifest, mounts)["source"])
+        table = manifest.table(Party.GARBLER if job.role == "garbler" else Party.EVALUATOR)
+        records = read_csv(DEPLOY / covering(job.input.csv.path, mounts)["source"], table)
+        assert set(records.columns) == {c.name for c in table.columns} and len(records) > 0, name
+        roles[name] = job.role
+    assert sorted(roles.values()) == ["evaluator", "garbler"]
+    for name, role in roles.items():  # the same organisation is the same party as in configs/nodes/
+        (example,) = load_node_config(REPO / "configs" / "nodes" / f"{name}.yaml").jobs
+        assert example.role == role, name
+
+
 def test_the_compose_health_check_and_published_metrics_use_the_configs_ports() -> None:
     services = compose()["services"]
     for name in NODES:
@@ -397,6 +418,13 @@ def test_the_node_container_is_unprivileged() -> None:
     assert context["readOnlyRootFilesystem"] is True and context["allowPrivilegeEscalation"] is False
     assert context["capabilities"] == {"drop": ["ALL"]}
     assert pod()["automountServiceAccountToken"] is False
+
+
+def test_the_kubernetes_node_plays_the_same_manifest_party_as_the_same_organisations_compose_node() -> None:
+    config = kube_config()
+    (job,) = config.jobs
+    (compose_job,) = compose_config(config.node.name).jobs
+    assert (job.role, job.initiate) == (compose_job.role, compose_job.initiate) == ("garbler", True)
 
 
 def test_the_job_manifest_is_mounted_where_the_config_expects_and_equals_the_example() -> None:

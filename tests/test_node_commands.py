@@ -35,13 +35,14 @@ async def test_jobs_run_follows_the_session_and_names_the_result_file(
         code = await cli("jobs", "run", JOB, "--config", str(pair.configs[LIBRARY]))
         out = capsys.readouterr().out
         assert code == 0, out
-        assert f"job {JOB}: run requested; first session" in out
+        assert f"job {JOB}: run requested, this node the garbler; first session" in out
         assert "completed, phase -, 23,293/23,293 AND gates (100%)" in out
         assert f"this node's result is in {pair.data(LIBRARY) / 'results' / JOB}" in out
 
         assert await cli("jobs", "history", "--config", str(pair.configs[BATHS])) == 0
         history = capsys.readouterr().out
         assert "completed" in history and "peer" in history and JOB in history
+        assert "ROLE" in history.splitlines()[0] and "evaluator" in history
 
         assert await cli("jobs", "list", "--config", str(pair.configs[LIBRARY])) == 0
         listing = capsys.readouterr().out
@@ -82,6 +83,29 @@ def test_node_run_refuses_a_config_with_problems_naming_the_field(
     path.write_text(path.read_text(encoding="utf-8").replace("max_sessions: 2", "max_sessions: 0"))
     assert main(["node", "run", "--config", str(path)]) == 1
     assert "node.max_sessions: must be between 1 and 64" in capsys.readouterr().err
+
+
+def test_node_run_and_node_check_refuse_a_config_whose_job_has_no_role(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    pair = make_pair(tmp_path)
+    path = pair.configs[BATHS]
+    text = path.read_text(encoding="utf-8")
+    assert text.count("  role: evaluator\n") == 1
+    path.write_text(text.replace("  role: evaluator\n", ""), encoding="utf-8")
+    for command in ("run", "check"):
+        assert main(["node", command, "--config", str(path)]) == 1
+        assert f"{path}: jobs[0].role: required field is missing" in capsys.readouterr().err
+
+
+def test_node_check_names_each_jobs_role_and_whether_it_initiates(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    pair = make_pair(tmp_path, library_initiates=False, baths_initiates=True)
+    assert main(["node", "check", "--config", str(pair.configs[BATHS])]) == 0
+    assert f"1 job ({JOB} as evaluator, initiates)" in capsys.readouterr().out
+    assert main(["node", "check", "--config", str(pair.configs[LIBRARY])]) == 0
+    assert f"1 job ({JOB} as garbler);" in capsys.readouterr().out
 
 
 async def test_progress_phases_add_up_to_the_sessions_traffic(tmp_path: Path) -> None:

@@ -53,6 +53,7 @@ def base_config() -> dict[str, Any]:
                 "peer": "beta",
                 "input": {"csv": {"path": "inputs/totals.csv"}},
                 "schedule": {"cron": "15 2 * * 1", "timezone": "Europe/Paris"},
+                "role": "garbler",
                 "initiate": True,
             }
         ],
@@ -116,8 +117,51 @@ def test_example_configs_describe_the_same_job_from_both_sides(example_tree: Pat
     assert job_a.name == job_b.name and job_a.manifest == job_b.manifest
     assert (job_a.schedule.cron, job_a.schedule.timezone) == (job_b.schedule.cron, job_b.schedule.timezone)
     assert job_a.initiate != job_b.initiate
+    assert {job_a.role, job_b.role} == {"garbler", "evaluator"}  # one of each of the manifest's parties
     assert job_a.input.csv is not None and job_a.input.csv.path.is_file()
     assert job_b.input.csv is not None and job_b.input.csv.path.is_file()
+
+
+def test_each_example_nodes_input_reads_against_the_manifest_table_of_its_role(example_tree: Path) -> None:
+    from jointstat.circuit.inputs import read_csv
+    from jointstat.circuit.manifest import load_manifest
+    from jointstat.circuit.model import Party
+
+    for name in EXAMPLES:
+        (job,) = load_node_config(example_tree / "configs" / "nodes" / f"{name}.yaml").jobs
+        manifest = load_manifest(job.manifest)
+        assert job.input.csv is not None
+        party = Party.GARBLER if job.role == "garbler" else Party.EVALUATOR
+        records = read_csv(job.input.csv.path, manifest.table(party))
+        data_rows = job.input.csv.path.read_text(encoding="utf-8").strip().count("\n")
+        assert len(records) == data_rows > 0, name
+        assert set(records.columns) == {c.name for c in manifest.table(party).columns}, name
+        assert job.input.csv.path.name == f"{job.role}.csv"  # the scenario's file of that party
+
+
+def test_a_job_without_a_role_is_refused_naming_its_field_path_and_the_choices() -> None:
+    data = base_config()
+    data["jobs"].append({**data["jobs"][0], "name": "second", "results": "second"})
+    del data["jobs"][1]["role"]
+    (problem,) = problems_of(data)
+    assert problem.startswith("jobs[1].role: required field is missing (garbler or evaluator: ")
+    assert "does not follow from initiate" in problem
+
+
+@pytest.mark.parametrize("role", ["Garbler", "initiator", "", True, 1])
+def test_a_role_other_than_garbler_or_evaluator_is_refused(role: object) -> None:
+    data = base_config()
+    data["jobs"][0]["role"] = role
+    assert problems_of(data) == ["jobs[0].role: input should be 'garbler' or 'evaluator'"]
+
+
+@pytest.mark.parametrize("initiate", [True, False])
+@pytest.mark.parametrize("role", ["garbler", "evaluator"])
+def test_role_and_initiate_are_independent_settings(role: str, initiate: bool) -> None:
+    data = base_config()
+    data["jobs"][0].update(role=role, initiate=initiate)
+    (job,) = parse_node_config(yaml.safe_dump(data), "node.yaml").jobs
+    assert (job.role, job.initiate) == (role, initiate)
 
 
 def test_example_configs_are_checked_ok_by_the_node_check_command(

@@ -1,6 +1,8 @@
 """Two nodes in one process (asyncio, loopback, trial keys made in the test) running the demo's keyed-join job.
 
 Specification: an operator's run completes on both nodes, each with its own result only, in an owner-only file;
+each node plays the manifest party its config's ``role`` names, whichever node initiates (the evaluator's node
+may initiate: it connects, the garbler's node serves, and each still receives exactly its manifest outputs);
 both session logs verify and cross-check and hold no input value; the job store, the metrics endpoint and the
 health service report the run. A scheduled job fires when the (manual) clock reaches its cron time and is recorded
 on both nodes; a run missed while the initiating node was down is run once at start-up, and a node that did not
@@ -70,10 +72,15 @@ def make_pair(
     baths_job: dict[str, Any] | None = None,
     baths_jobs: list[dict[str, Any]] | None = None,
     baths_node: dict[str, Any] | None = None,
+    library_initiates: bool = True,
     baths_initiates: bool = False,
     health: bool = False,
 ) -> Pair:
-    """Trial keys and the two demo node configs on free loopback ports (admin on loopback TCP)."""
+    """Trial keys and the two demo node configs on free loopback ports (admin on loopback TCP).
+
+    The library is the manifest's garbler and the baths its evaluator (``role`` and ``csv`` of each job;
+    ``library_job`` or ``baths_job`` may override them); by default the library's node initiates.
+    """
     keys = make_trial_keys(root / "keys", (LIBRARY, BATHS))
     ports = {LIBRARY: free_port(), BATHS: free_port()}
     jobs = {
@@ -82,9 +89,12 @@ def make_pair(
                 name=JOB,
                 manifest=DEMO / "manifest.yaml",
                 peer=BATHS,
-                csv=DEMO / "garbler.csv",
-                initiate=True,
-                **(library_job or {}),
+                **{
+                    "csv": DEMO / "garbler.csv",
+                    "role": "garbler",
+                    "initiate": library_initiates,
+                    **(library_job or {}),
+                },
             )
         ],
         BATHS: baths_jobs
@@ -94,9 +104,12 @@ def make_pair(
                 name=JOB,
                 manifest=DEMO / "manifest.yaml",
                 peer=LIBRARY,
-                csv=DEMO / "evaluator.csv",
-                initiate=baths_initiates,
-                **(baths_job or {}),
+                **{
+                    "csv": DEMO / "evaluator.csv",
+                    "role": "evaluator",
+                    "initiate": baths_initiates,
+                    **(baths_job or {}),
+                },
             )
         ],
     }
@@ -154,9 +167,9 @@ def tracker_ended(node: Node, sid: str) -> bool:
     return t is not None and t.ended and (t.status != "completed" or t.result_path is not None)
 
 
-async def operator_run(nodes: dict[str, Node]) -> str:
-    """Run the job now on the library's node and wait until both nodes have ended the session; its id."""
-    started = await nodes[LIBRARY].admin_run_job({"job": JOB})
+async def operator_run(nodes: dict[str, Node], initiator: str = LIBRARY) -> str:
+    """Run the job now on the initiator's node and wait until both nodes have ended the session; its id."""
+    started = await nodes[initiator].admin_run_job({"job": JOB})
     sid = started["session"]
     await until(
         lambda: tracker_ended(nodes[LIBRARY], sid) and tracker_ended(nodes[BATHS], sid), "the session"
@@ -217,6 +230,45 @@ async def test_an_operator_run_completes_on_both_nodes_each_with_only_its_own_re
     assert 0 <= plain["mean"] - baths["mean"] < plain["mean_step"]
     assert results[LIBRARY]["withheld"] is results[BATHS]["withheld"] is False
     assert results[LIBRARY]["session"] == results[BATHS]["session"] == sid
+
+
+async def test_the_evaluators_node_may_initiate_and_each_side_still_gets_exactly_its_manifest_outputs(
+    tmp_path: Path,
+) -> None:
+    pair = make_pair(tmp_path, library_initiates=False, baths_initiates=True)
+    async with running(pair) as nodes:
+        listed = {n: (await nodes[n].admin_list_jobs({}))["jobs"][0] for n in nodes}
+        sid = await operator_run(nodes, initiator=BATHS)
+        snaps = {n: (await nodes[n].admin_show_session({"session": sid}))["session"] for n in nodes}
+    assert {n: (j["role"], j["initiate"]) for n, j in listed.items()} == {
+        LIBRARY: ("garbler", False),
+        BATHS: ("evaluator", True),
+    }
+    assert listed[LIBRARY]["next_run"] is None and listed[BATHS]["next_run"] is not None
+    # The baths' node proposed and connected; the library's node accepted and served — and garbled.
+    assert (snaps[BATHS]["trigger"], snaps[LIBRARY]["trigger"]) == ("operator", "peer")
+    assert (snaps[LIBRARY]["role"], snaps[BATHS]["role"]) == ("garbler", "evaluator")
+    assert snaps[LIBRARY]["bytes_sent"] > snaps[LIBRARY]["bytes_received"]  # the garbler sends the tables
+    assert "garbling" in [p["phase"] for p in snaps[LIBRARY]["phases"]]
+    assert "evaluation" in [p["phase"] for p in snaps[BATHS]["phases"]]
+    plain = plain_answer(DEMO / "manifest.yaml", DEMO / "garbler.csv", DEMO / "evaluator.csv")
+    results = {n: json.loads(Path(snaps[n]["result_path"]).read_text(encoding="utf-8")) for n in snaps}
+    assert (results[LIBRARY]["role"], results[BATHS]["role"]) == ("garbler", "evaluator")
+    assert results[LIBRARY]["outputs"] == {"matches": plain["matches"]}  # outputs.garbler: [matches]
+    baths = results[BATHS]["outputs"]
+    assert list(baths) == ["matches", "sum", "mean", "above"]  # outputs.evaluator
+    assert (baths["matches"], baths["sum"], baths["above"]) == (
+        plain["matches"],
+        plain["sum"],
+        plain["above"],
+    )
+    for name, role in ((LIBRARY, "garbler"), (BATHS, "evaluator")):
+        (started,) = [r for r in session_records(pair.log(name), sid) if r["kind"] == "session_started"]
+        assert started["body"]["role"] == role, name
+        assert [(r.session_id, r.role, r.status) for r in pair.store_rows(name)] == [(sid, role, "completed")]
+    comparison = compare_logs(pair.log(LIBRARY).read_bytes(), pair.log(BATHS).read_bytes())
+    assert comparison.ok, comparison.problems
+    assert comparison.matched == [sid]
 
 
 async def test_both_session_logs_verify_cross_check_and_hold_no_input_value(tmp_path: Path) -> None:
@@ -456,7 +508,12 @@ async def test_a_job_reads_its_input_from_a_sql_query_as_well_as_from_csv(tmp_pa
         "query": "SELECT email, visits FROM passes WHERE branch = 'riverside'",
     }
     job = job_entry(
-        name=JOB, manifest=DEMO / "manifest.yaml", peer=LIBRARY, csv=DEMO / "evaluator.csv", initiate=False
+        name=JOB,
+        manifest=DEMO / "manifest.yaml",
+        peer=LIBRARY,
+        csv=DEMO / "evaluator.csv",
+        role="evaluator",
+        initiate=False,
     )
     job["input"] = {"sql": sql}
     pair = make_pair(tmp_path, baths_jobs=[job])

@@ -2,11 +2,12 @@
 
 Specification: the accepting node refuses a run of a job it does not have for that peer (``job_not_configured``),
 of a job whose manifest digest differs from its own (``digest_mismatch``), outside its own run window
-(``outside_window``), when it already runs ``max_sessions`` sessions (``busy``), and when both nodes would play
-the same role (``role_mismatch``). On both nodes the session log then shows the session started and aborted with
+(``outside_window``), when it already runs ``max_sessions`` sessions (``busy``), and when both nodes' configs
+name the same manifest party as their ``role`` (``role_mismatch``, whichever party that is). On both nodes the session log then shows the session started and aborted with
 that reason (by the peer on the initiating node, by itself on the other), the job store a row with status
 ``refused``, and no result file exists; both logs still verify. The initiating node does not retry a refusal that
-retrying cannot cure.
+retrying cannot cure. A proposal for a job the accepting node initiates as well is accepted, with a warning in
+its log.
 """
 
 from __future__ import annotations
@@ -42,6 +43,7 @@ def scenario(kind: str, root: Path) -> dict[str, Any]:
             manifest=DEMO / "manifest.yaml",
             peer=LIBRARY,
             csv=DEMO / "evaluator.csv",
+            role="evaluator",
             initiate=False,
             **timing,
         )
@@ -52,14 +54,15 @@ def scenario(kind: str, root: Path) -> dict[str, Any]:
             manifest=other_manifest(root),
             peer=LIBRARY,
             csv=DEMO / "evaluator.csv",
+            role="evaluator",
             initiate=False,
             **timing,
         )
         return {"library_job": timing, "baths_jobs": [other]}
     if kind == "outside_window":
         return {"library_job": timing, "baths_job": {**timing, "window_minutes": 10}}
-    if kind == "role_mismatch":
-        return {"library_job": timing, "baths_job": timing, "baths_initiates": True}
+    if kind == "role_mismatch":  # the baths' config claims the library's party too
+        return {"library_job": timing, "baths_job": {**timing, "role": "garbler"}}
     raise AssertionError(kind)
 
 
@@ -154,3 +157,44 @@ async def test_inside_the_window_at_the_accepting_node_the_same_run_is_accepted(
             "run",
         )
         assert library.sessions[started["session"]].status == "completed"
+
+
+@pytest.mark.parametrize("shared", ["garbler", "evaluator"])
+async def test_two_nodes_claiming_the_same_manifest_party_are_refused_as_role_mismatch_on_both_sides(
+    tmp_path: Path, shared: str
+) -> None:
+    timing = {"cron": "0 3 * * *", "window_minutes": 120, "attempts": 3, "backoff_seconds": 0}
+    csv = DEMO / f"{shared}.csv"  # each node's input fits the party it claims, so the proposal goes out
+    pair = make_pair(
+        tmp_path,
+        library_job={**timing, "role": shared, "csv": csv},
+        baths_job={**timing, "role": shared, "csv": csv},
+    )
+    sid, snap = await refused_run(pair, ManualClock(NOW))
+    assert (snap["status"], snap["reason"]) == ("refused", "role_mismatch")
+    assert_refused_on_both_sides(pair, sid, "role_mismatch")
+    for name in (LIBRARY, BATHS):
+        started = session_records(pair.log(name), sid)[0]
+        assert started["body"]["role"] == shared, name  # each log says which party its node claimed
+        assert [r.role for r in pair.store_rows(name)] == [shared], name
+    detail = session_records(pair.log(BATHS), sid)[-1]["body"]["detail"]
+    assert f"both nodes are configured as the {shared} of job {JOB}" in detail
+    assert len(pair.store_rows(LIBRARY)) == 1  # not retried
+
+
+async def test_a_proposal_for_a_job_this_node_initiates_too_is_accepted_with_a_warning(
+    tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    timing = {"cron": "0 3 * * *", "window_minutes": 120}
+    pair = make_pair(tmp_path, library_job=timing, baths_job=timing, baths_initiates=True)
+    async with running(pair, ManualClock(NOW)) as nodes:
+        started = await nodes[LIBRARY].admin_run_job({"job": JOB})
+        library = nodes[LIBRARY].state
+        assert library is not None
+        sid = started["session"]
+        await until(lambda: sid in library.sessions and library.sessions[sid].ended, "the run")
+        assert library.sessions[sid].status == "completed"
+    warnings = [r.getMessage() for r in caplog.records if r.levelname == "WARNING"]
+    assert any(
+        f"{LIBRARY} proposed a run although this node initiates the job as well" in w for w in warnings
+    )

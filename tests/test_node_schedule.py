@@ -9,7 +9,7 @@ from pathlib import Path
 
 import pytest
 from jointstat.node.schedule import DueRun, JobTiming, Planner, ScheduleError
-from jointstat.node.store import JobStore, StoreError
+from jointstat.node.store import SCHEMA, JobStore, StoreError
 
 
 def utc(*args: int) -> datetime:
@@ -96,6 +96,39 @@ def test_the_store_records_runs_and_their_outcomes(tmp_path: Path) -> None:
     assert store.scheduled_done() == {("nightly", t)}
     with pytest.raises(StoreError, match="run status must be one of"):
         store.finish(run, "great", finished_at=t)
+
+
+def test_the_store_records_which_manifest_party_this_node_played_in_each_run(tmp_path: Path) -> None:
+    store = JobStore(tmp_path / "jobs.sqlite3")
+    t = utc(2026, 12, 2, 0, 30)
+    store.start("nightly", t, 1, started_at=t, role="evaluator")
+    store.start("nightly", t, 2, started_at=t, role="garbler")
+    store.start("nightly", t, 3, started_at=t)
+    assert [(r.attempt, r.role) for r in store.runs()] == [(3, None), (2, "garbler"), (1, "evaluator")]
+    with pytest.raises(StoreError, match="role must be 'garbler' or 'evaluator'"):
+        store.start("nightly", t, 4, started_at=t, role="initiator")
+
+
+def test_a_store_written_before_runs_had_a_role_gains_the_column_and_keeps_its_rows(tmp_path: Path) -> None:
+    import sqlite3
+
+    path = tmp_path / "jobs.sqlite3"
+    old_schema = SCHEMA.replace(",\n    role TEXT\n", "\n")
+    assert "role" not in old_schema
+    with sqlite3.connect(path) as db:
+        db.executescript(old_schema)
+        db.execute(
+            "INSERT INTO runs (job, scheduled_for, attempt, trigger, status, started_at)"
+            " VALUES ('nightly', '2026-12-02T00:30:00+00:00', 1, 'schedule', 'completed', '2026-12-02T00:30:00+00:00')"
+        )
+    path.chmod(0o600)
+    store = JobStore(path)
+    t = utc(2026, 12, 3, 0, 30)
+    store.start("nightly", t, 1, started_at=t, role="garbler")
+    assert [(r.scheduled_for, r.status, r.role) for r in store.runs()] == [
+        (t, "running", "garbler"),
+        (utc(2026, 12, 2, 0, 30), "completed", None),
+    ]
 
 
 def test_runs_left_running_by_a_stopped_node_are_closed_as_aborted(tmp_path: Path) -> None:

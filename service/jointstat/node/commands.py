@@ -28,7 +28,7 @@ def _check(args: argparse.Namespace) -> int:
             print(f"{config.source}: {problem}", file=sys.stderr)
         return 1
     peers = ", ".join(p.name for p in config.peers)
-    jobs = ", ".join(j.name for j in config.jobs)
+    jobs = ", ".join(f"{j.name} as {j.role}" + (", initiates" if j.initiate else "") for j in config.jobs)
     print(
         f"ok: {config.source}: node {config.node.name} listens on {config.node.listen}, admin {config.node.admin}; "
         f"{_plural(len(config.peers), 'peer')} ({peers}); {_plural(len(config.jobs), 'job')}"

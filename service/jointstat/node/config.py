@@ -24,7 +24,9 @@ Sections and defaults (all paths relative to the config file's directory unless 
   against the file, for reading aloud when the file is exchanged), ``signing_public_key`` (PEM or base64).
 * ``jobs`` — ``name``, ``manifest``, ``peer`` (a configured peer), ``input`` (exactly one of ``csv: {path}`` or
   ``sql: {url, query, password_file}``), ``schedule`` (``cron``, ``timezone`` default UTC, ``window_minutes``
-  default 120), ``initiate`` (this node starts the session), ``retries`` (``attempts`` 3, ``backoff_seconds`` 60,
+  default 120), ``role`` (``garbler`` or ``evaluator``: which of the manifest's two parties this node is for
+  this job — the table its input is read against and the outputs it receives), ``initiate`` (this node opens
+  the session; independent of the role), ``retries`` (``attempts`` 3, ``backoff_seconds`` 60,
   ``backoff_factor`` 2), ``results`` (directory, default ``<results_dir>/<job name>``).
 
 Defaults that depend on other fields are filled in before validation from the raw text, so a derived path is
@@ -48,7 +50,7 @@ import re
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
-from typing import Annotated, Any
+from typing import Annotated, Any, Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from pydantic import (
@@ -452,6 +454,10 @@ class JobConfig(StrictModel):
     peer: NodeName
     input: InputConfig
     schedule: ScheduleConfig
+    role: Annotated[
+        Literal["garbler", "evaluator"],
+        Field(description="which of the manifest's two parties this node is for this job"),
+    ]
     initiate: bool
     retries: RetryConfig = RetryConfig()
     results: ConfigPath
@@ -736,7 +742,13 @@ def _problems(exc: ValidationError) -> list[Problem]:
             for p in ctx["problems"]:
                 problems.append(Problem(f"{prefix}.{p.path}" if prefix else p.path, p.message))
             continue
-        problems.append(Problem(field_path(err["loc"]), pydantic_message(err)))
+        message = pydantic_message(err)
+        if err["type"] == "missing" and len(err["loc"]) == 3 and err["loc"][::2] == ("jobs", "role"):
+            message += (
+                " (garbler or evaluator: the party of the job's manifest this node is, as the two organisations "
+                "agreed; it does not follow from initiate)"
+            )
+        problems.append(Problem(field_path(err["loc"]), message))
     return problems
 
 

@@ -78,6 +78,7 @@ def _run_dict(r: RunRecord) -> dict[str, Any]:
         "scheduled_for": r.scheduled_for.isoformat(),
         "attempt": r.attempt,
         "trigger": r.trigger,
+        "role": r.role,
         "session": r.session_id,
         "status": r.status,
         "started_at": r.started_at.isoformat(),
@@ -85,6 +86,12 @@ def _run_dict(r: RunRecord) -> dict[str, Any]:
         "reason": r.reason,
         "result_path": r.result_path,
     }
+
+
+def job_summary(job: JobConfig) -> str:
+    """``garbler with riverside-baths, initiates``: the job's manifest role, peer and who opens its sessions."""
+    opens = "initiates" if job.initiate else "accepts the peer's proposals"
+    return f"{role_name(role_of(job))} with {job.peer}, {opens}"
 
 
 def next_fire(job: JobConfig, now: datetime) -> datetime:
@@ -156,6 +163,8 @@ class Node:
         self._scheduler = asyncio.create_task(self._schedule(), name="jointstat-scheduler")
         self._warm = asyncio.create_task(self._compile_manifests(), name="jointstat-compile")
         log.info("node %s: started", node.name)
+        for job in config.jobs:
+            log.info("job %s: %s", job.name, job_summary(job))
 
     async def _compile_manifests(self) -> None:
         """Compile every job's manifest once in the background, so the first proposal is answered quickly."""
@@ -429,8 +438,11 @@ class Node:
         now = self.clock.now()
         sid = new_session_id()
         self._spawn(job, now, "operator", sid)
-        log.info("job %s: run requested by the operator (session %s)", name, sid.hex())
-        return {"job": name, "session": sid.hex(), "scheduled_for": now.isoformat()}
+        role = role_name(role_of(job))
+        log.info(
+            "job %s: run requested by the operator, this node the %s (session %s)", name, role, sid.hex()
+        )
+        return {"job": name, "role": role, "session": sid.hex(), "scheduled_for": now.isoformat()}
 
     async def admin_history(self, request: dict[str, Any]) -> dict[str, Any]:
         assert self.state is not None
@@ -451,6 +463,7 @@ class Node:
                     {
                         "session": r.session_id,
                         "job": r.job,
+                        "role": r.role,
                         "status": r.status,
                         "started_at": r.started_at.isoformat(),
                         "reason": r.reason,
@@ -476,6 +489,8 @@ class Node:
         if rows:
             out["run"] = _run_dict(rows[0])
             out.setdefault("job", rows[0].job)
+            if rows[0].role is not None:
+                out.setdefault("role", rows[0].role)
             if tracker is None:
                 out["status"] = rows[0].status
                 out["reason"] = rows[0].reason
@@ -523,9 +538,11 @@ async def _run(config: NodeConfig) -> int:
         loop.add_signal_handler(sig, node.request_stop)
     n = config.node
     extra = f", health {n.health.host}:{node.health_port}" if n.health is not None else ""
+    jobs = "; ".join(f"{job.name} ({job_summary(job)})" for job in config.jobs)
     print(
         f"node {n.name}: serving peers on {n.listen.host}:{node.peer_port}, admin {n.admin}, "
-        f"metrics {n.metrics.host}:{node.metrics_port}{extra}; {len(config.jobs)} job(s)",
+        f"metrics {n.metrics.host}:{node.metrics_port}{extra}; {len(config.jobs)} job(s)"
+        + (f": {jobs}" if jobs else ""),
         flush=True,
     )
     try:

@@ -2,9 +2,13 @@
 
 Theory of operation
 -------------------
-Roles: the node that initiates a job (``initiate: true``) garbles and connects; the other evaluates and serves.
-Both derive the role from their own configuration and the proposal carries the proposer's, so two nodes
-configured to play the same role refuse instead of starting a session that cannot work.
+Roles: each node's job config says which of the manifest's two parties it is (``role: garbler`` or
+``evaluator``) — that decides the table its input is read against, the session it runs and the outputs it
+decodes. Which node opens the session (``initiate``) is a separate setting: the initiator connects as the
+session's client and the acceptor serves, whatever their roles (the transport lets either party serve). The
+proposal carries the proposer's role and the acceptor refuses it (``role_mismatch``) unless its own role is
+the other one, so two nodes claiming the same party never start a session, and neither node's role is ever
+inferred from who proposes.
 
 *Initiating* one attempt (``JobRunner.attempt``), each with a fresh random session id, hence fresh Δ, labels and
 OT secrets: record the run in the job store (``running``); prepare — compile the manifest (cached per file) and
@@ -112,8 +116,13 @@ T = TypeVar("T")
 
 
 def role_of(job: JobConfig) -> Party:
-    """The initiating node garbles; the accepting node evaluates."""
-    return Party.GARBLER if job.initiate else Party.EVALUATOR
+    """The manifest party this node is for ``job``: its configured ``role``, never who initiates."""
+    return Party.GARBLER if job.role == "garbler" else Party.EVALUATOR
+
+
+def other_role(party: Party) -> Party:
+    """The manifest's other party."""
+    return Party.EVALUATOR if Party(party) == Party.GARBLER else Party.GARBLER
 
 
 def role_name(party: Party) -> str:
@@ -489,6 +498,7 @@ class JobRunner:
             started_at=state.clock.now(),
             trigger=a.trigger,
             session_id=a.sid,
+            role=role_name(party),
         )
         if state.stopping:
             await self._store_finish(run_id, "aborted", "cancelled: the node is stopping")
@@ -690,8 +700,9 @@ class JobRunner:
             return _refusal(pb.REFUSAL_REASON_MALFORMED, "this session id has been used before")
         scheduled = datetime.fromtimestamp(request.scheduled_for_us / 1e6, UTC)
         peer_role = Party.GARBLER if request.role == pb.ROLE_GARBLER else Party.EVALUATOR
-        own_role = Party.EVALUATOR if peer_role == Party.GARBLER else Party.GARBLER
         job = next((j for j in state.config.jobs if j.name == request.job and j.peer == peer.name), None)
+        # The role this node records for the refusal or the session: its configured one, if it has the job.
+        own_role = role_of(job) if job is not None else other_role(peer_role)
         trigger = "peer"
 
         async def refuse(code: int, message: str, job_digest: bytes, when: datetime) -> pb.RunAnswer:
@@ -707,6 +718,7 @@ class JobRunner:
                 started_at=now,
                 trigger=trigger,
                 session_id=sid,
+                role=role_name(own_role),
             )
             a = Attempt(request.job, when, request.attempt, trigger, sid_bytes, job)
             tracker = self._tracker(a, own_role, peer.name)
@@ -728,12 +740,20 @@ class JobRunner:
             )
         timing = job.timing()
         latest = timing.latest_fire(now)
-        if role_of(job) != own_role:
+        if own_role == peer_role:
             return await refuse(
                 pb.REFUSAL_REASON_ROLE_MISMATCH,
-                f"both nodes would be the {role_name(peer_role)} (check which node initiates job {job.name})",
+                f"both nodes are configured as the {role_name(peer_role)} of job {job.name}; the role of "
+                "one of them must be the manifest's other party",
                 digest,
                 latest,
+            )
+        if job.initiate:
+            log.warning(
+                "job %s: %s proposed a run although this node initiates the job as well; with both nodes "
+                "initiating, each scheduled time runs twice (set initiate: false on one of them)",
+                job.name,
+                peer.name,
             )
         if not timing.in_window(latest, now):
             return await refuse(
@@ -791,6 +811,7 @@ class JobRunner:
             started_at=now,
             trigger=trigger,
             session_id=sid,
+            role=role_name(own_role),
         )
         try:
             await self._log_start(a, own_role, peer, own_digest)
@@ -931,8 +952,10 @@ __all__ = [
     "abort_code",
     "load_node_keys",
     "new_session_id",
+    "other_role",
     "proposal_service",
     "propose",
+    "role_name",
     "role_of",
     "write_result",
 ]

@@ -204,7 +204,8 @@ def _jobs_run(args: argparse.Namespace) -> int:
             print(json.dumps(started, indent=2))
             return 0
         if not args.json:
-            print(f"job {args.name}: run requested; first session {sid}")
+            role = started.get("role") or "?"
+            print(f"job {args.name}: run requested, this node the {role}; first session {sid}")
         if args.detach:
             return 0
         snap = follow(client, sid, tty=sys.stdout.isatty() and not args.json)
@@ -233,6 +234,7 @@ def _jobs_history(args: argparse.Namespace) -> int:
             r["job"],
             _when(r["scheduled_for"]),
             str(r["attempt"]),
+            r.get("role") or "-",
             r["trigger"],
             r["status"],
             _when(r["finished_at"]),
@@ -241,7 +243,9 @@ def _jobs_history(args: argparse.Namespace) -> int:
         ]
         for r in runs
     ]
-    _table(rows, ["RUN", "JOB", "SCHEDULED", "TRY", "TRIGGER", "STATUS", "FINISHED", "SESSION", "REASON"])
+    _table(
+        rows, ["RUN", "JOB", "SCHEDULED", "TRY", "ROLE", "TRIGGER", "STATUS", "FINISHED", "SESSION", "REASON"]
+    )
     return 0
 
 

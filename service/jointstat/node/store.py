@@ -6,7 +6,9 @@ A *run* is one attempt at one scheduled time of one job: it is recorded when it 
 updated once when it ends (``completed``, ``aborted``, ``refused`` or ``failed``, with the reason). Each change is
 one SQLite transaction, so a crash leaves either the old or the new row, never half of one; a run still marked
 ``running`` when the node starts again is closed as ``aborted`` ("node stopped during the run"). Results
-themselves are files written by the node; the store keeps their path. No secret and no input value is stored.
+themselves are files written by the node; the store keeps their path. Each run also records the manifest
+party this node played (``garbler`` or ``evaluator``); a store made before that column existed gains it, empty
+for its old rows, when opened. No secret and no input value is stored.
 """
 
 from __future__ import annotations
@@ -29,11 +31,16 @@ CREATE TABLE IF NOT EXISTS runs (
     started_at TEXT NOT NULL,
     finished_at TEXT,
     reason TEXT,
-    result_path TEXT
+    result_path TEXT,
+    role TEXT
 );
 CREATE INDEX IF NOT EXISTS runs_by_job ON runs (job, scheduled_for);
 """
 
+RUN_COLUMNS = (
+    "id, job, scheduled_for, attempt, trigger, session_id, status, started_at, finished_at, reason, result_path,"
+    " role"
+)  # named, not *, so the order is the same in a store that gained ``role`` by ALTER TABLE
 STATUSES = ("running", "completed", "aborted", "refused", "failed")
 
 
@@ -54,6 +61,7 @@ class RunRecord:
     finished_at: datetime | None
     reason: str | None
     result_path: str | None
+    role: str | None = None  # "garbler" or "evaluator"; None for runs recorded before roles were stored
 
 
 def _iso(t: datetime) -> str:
@@ -81,6 +89,9 @@ class JobStore:
             self._db = sqlite3.connect(self.path, isolation_level=None, check_same_thread=False)
             self._db.execute("PRAGMA journal_mode=WAL")
             self._db.executescript(SCHEMA)
+            columns = {row[1] for row in self._db.execute("PRAGMA table_info(runs)")}
+            if "role" not in columns:  # a store written before runs recorded their role
+                self._db.execute("ALTER TABLE runs ADD COLUMN role TEXT")
         except sqlite3.Error as exc:
             raise StoreError(f"job store {self.path}: {exc}") from exc
         for suffix in ("-wal", "-shm"):
@@ -109,12 +120,15 @@ class JobStore:
         started_at: datetime,
         trigger: str = "schedule",
         session_id: str | None = None,
+        role: str | None = None,
     ) -> int:
-        """Record that a run starts; returns its id."""
+        """Record that a run starts (``role``: the manifest party this node plays); returns its id."""
+        if role not in (None, "garbler", "evaluator"):
+            raise StoreError(f"a run's role must be 'garbler' or 'evaluator', got {role!r}")
         return self._write(
-            "INSERT INTO runs (job, scheduled_for, attempt, trigger, session_id, status, started_at)"
-            " VALUES (?, ?, ?, ?, ?, 'running', ?)",
-            (job, _iso(scheduled_for), attempt, trigger, session_id, _iso(started_at)),
+            "INSERT INTO runs (job, scheduled_for, attempt, trigger, session_id, status, started_at, role)"
+            " VALUES (?, ?, ?, ?, ?, 'running', ?, ?)",
+            (job, _iso(scheduled_for), attempt, trigger, session_id, _iso(started_at), role),
         )
 
     def set_session(self, run_id: int, session_id: str) -> None:
@@ -152,7 +166,11 @@ class JobStore:
 
     def runs(self, job: str | None = None, limit: int = 100) -> list[RunRecord]:
         """The most recent runs first."""
-        sql = "SELECT * FROM runs" + (" WHERE job = ?" if job else "") + " ORDER BY id DESC LIMIT ?"
+        sql = (
+            f"SELECT {RUN_COLUMNS} FROM runs"
+            + (" WHERE job = ?" if job else "")
+            + " ORDER BY id DESC LIMIT ?"
+        )
         rows = self._db.execute(sql, (job, limit) if job else (limit,)).fetchall()
         return [
             RunRecord(
@@ -167,6 +185,7 @@ class JobStore:
                 finished_at=_parse(r[8]),
                 reason=r[9],
                 result_path=r[10],
+                role=r[11],
             )
             for r in rows
         ]

@@ -3,7 +3,8 @@
 Theory of operation: ``make_trial_keys`` runs the same key set-up as ``jointstat keys init --trial-ca`` (a private
 CA, per node an Ed25519 signing key and a TLS key and certificate, all owner-only) and adds one key-hashing
 secret, copied owner-only for each node as the two organisations would each hold it. ``node_config`` builds one
-node's config as a mapping with absolute paths (every key as ``configs/nodes/README.md`` documents it), and
+node's config as a mapping with absolute paths (every key as ``configs/nodes/README.md`` documents it; each job
+entry from ``job_entry`` names its manifest ``role`` and, separately, whether the node ``initiate``s), and
 ``write_config`` writes it as YAML. ``free_port`` asks the system for an unused loopback port, so the demo and
 the tests never collide with other listeners (the port could in principle be taken again before the node binds
 it; on a quiet machine it is not). The demo (``jointstat demo``) and the node tests build their nodes this way.
@@ -73,12 +74,22 @@ def job_entry(
     attempts: int = 1,
     backoff_seconds: float = 5.0,
     results: Path | None = None,
+    role: str | None = None,
 ) -> dict[str, Any]:
-    """One entry of a node config's ``jobs`` list."""
+    """One entry of a node config's ``jobs`` list.
+
+    ``role`` is the manifest party this node is for the job (``garbler`` or ``evaluator``); it is written out
+    always, as a node config must say it. Left as None it is the garbler when ``initiate`` is true and the
+    evaluator otherwise — the pairing of the demo and of callers written before the config had the key — so
+    give it explicitly whenever the evaluator's node initiates.
+    """
+    if role is None:
+        role = "garbler" if initiate else "evaluator"
     entry: dict[str, Any] = {
         "name": name,
         "manifest": str(manifest),
         "peer": peer,
+        "role": role,
         "initiate": initiate,
         "input": {"csv": {"path": str(csv)}},
         "schedule": {"cron": cron, "timezone": timezone, "window_minutes": window_minutes},
