@@ -388,23 +388,26 @@ def sid_text(session_id: bytes) -> str:
 
 
 class RecordingGarbler(GarblerSession):
-    """A garbler session that hands the harness its Δ and the labels it makes (to compare and to scan for)."""
+    """A garbler session that hands the harness its Δ (when drawn) and the labels it makes."""
 
     secrets: Secrets | None = None
+
+    def _on_hello(self, frame: Any) -> tuple[str, list[bytes]]:
+        out = super()._on_hello(frame)
+        if self.secrets is not None and self._delta is not None:
+            self.secrets.add_delta(sid_text(self.session_id), self._delta.astype("<u8").tobytes())
+        return out
 
     def _build_garbling(self) -> None:
         super()._build_garbling()
         if self.secrets is None or self._engine is None or self._delta is None:
             return
-        sid = sid_text(self.session_id)
         engine = self._engine
-        delta = self._delta.astype("<u8").tobytes()
-        self.secrets.add_delta(sid, delta)
         made = [engine.constant_labels()]
         for party in Party:
             zero = engine.input_labels(party, np.zeros(self.layered.circuit.n_inputs(party), dtype=np.uint8))
             made += [zero, zero ^ self._delta]
-        self.secrets.add_labels(sid, b"".join(m.astype("<u8").tobytes() for m in made))
+        self.secrets.add_labels(sid_text(self.session_id), b"".join(m.astype("<u8").tobytes() for m in made))
 
 
 class RecordingEvaluator(EvaluatorSession):
@@ -907,6 +910,9 @@ class Side:
     killed: bool = False
     released: bool = False  # an output was available: from the session, its result, or a result file
     outputs: Any = None  # the peer's output bits; the node's result file outputs
+    decoded: dict[str, Any] | None = (
+        None  # the peer's outputs decoded by its compiled job (a retry, once judged)
+    )
     store_status: str | None = None  # the node's job-store status of the attempt
     reason: str | None = None  # abort reason (snake case), "not_opened", or "node_stopped" for a killed peer
     message: str = ""
@@ -1090,23 +1096,12 @@ class HarnessAcceptor(SessionServer):
         return side_of(acc.session, result, elapsed)
 
 
-async def run_initiator(
-    keys: PeerKeys,
-    job: PeerJob,
-    logged: LoggedNode,
-    secrets: Secrets,
-    *,
-    node_port: int,
-    target_port: int,
-    session_id: bytes,
-    attempt: int,
-    plan: FaultPlan | None,
-    fire: Fire | None,
-    limits: Limits,
-) -> tuple[Side, str | None]:
-    """The peer as the initiating node of ``JOB_ACCEPTED``: propose the run, then play the garbler's session.
+async def propose_run(
+    keys: PeerKeys, job: PeerJob, logged: LoggedNode, *, node_port: int, session_id: bytes, attempt: int
+) -> tuple[Session, pb.RunAnswer]:
+    """The peer as the initiating node of ``JOB_ACCEPTED``: log the session's start, propose the run to the node.
 
-    The proposal goes straight to the node; the session to ``target_port`` (the node, or a proxy in front of it).
+    A refusal is logged as the session's abort (its reason the refusal code) and the session is failed.
     """
     from jointstat.node.jobs import REFUSAL_CODES, propose
 
@@ -1121,22 +1116,40 @@ async def run_initiator(
         attempt=attempt,
         trigger="operator",
     )
-    t0 = time.monotonic()
     answer = await propose(keys.node_identity(node_port), proposal)
     if not answer.accepted:
         code = REFUSAL_CODES.get(answer.reason, "refused")
-        session.fail(AbortReason.SESSION_REFUSED, f"the node refused the run: {code}")
+        session.fail(AbortReason.SESSION_REFUSED, f"the node refused the run ({code}): {answer.message}")
+        assert logged.log is not None
         await asyncio.to_thread(
-            logged.ended, session_id, result_of_refusal(session), duration_s=0.0, phase="proposal"
+            logged.log.session_aborted,
+            session_id.hex(),
+            reason=code,
+            by="peer",
+            phase="proposal",
+            detail=safe_detail(answer.message),
         )
-        side = side_of(session, None, time.monotonic() - t0)
-        side.opened, side.reason, side.message = False, code, answer.message
-        return side, None
-    point = FaultPoint(plan, fire, secrets, session_id)
-    target = f"127.0.0.1:{target_port}"
+    return session, answer
+
+
+async def play_initiated(
+    session: Session,
+    keys: PeerKeys,
+    logged: LoggedNode,
+    secrets: Secrets,
+    *,
+    target_port: int,
+    plan: FaultPlan | None,
+    fire: Fire | None,
+    limits: Limits,
+) -> tuple[Side, str | None]:
+    """Play the garbler's side of an accepted session against ``target_port`` (the node, or a proxy before it)."""
+    point = FaultPoint(plan, fire, secrets, session.session_id)
+    t0 = time.monotonic()
     try:
         result = await asyncio.wait_for(
-            connect(session, target, keys.tls(), limits, point, logged.ids), timeout=end_bound(limits)
+            connect(session, f"127.0.0.1:{target_port}", keys.tls(), limits, point, logged.ids),
+            timeout=end_bound(limits),
         )
     except TimeoutError:
         side = side_of(session, None, None)
@@ -1144,14 +1157,36 @@ async def run_initiator(
         return side, point.fired
     elapsed = time.monotonic() - t0
     phase = None if plan is None else plan.phase
-    await asyncio.to_thread(logged.ended, session_id, result, duration_s=elapsed, phase=phase)
+    await asyncio.to_thread(logged.ended, session.session_id, result, duration_s=elapsed, phase=phase)
     return side_of(session, result, elapsed), point.fired
 
 
-def result_of_refusal(session: Session) -> SessionResult:
-    from jointstat.transport.driver import WireCounters, result_of
-
-    return result_of(session, WireCounters())
+async def run_initiator(
+    keys: PeerKeys,
+    job: PeerJob,
+    logged: LoggedNode,
+    secrets: Secrets,
+    *,
+    node_port: int,
+    target_port: int,
+    session_id: bytes,
+    attempt: int,
+    plan: FaultPlan | None,
+    fire: Fire | None,
+    limits: Limits,
+) -> tuple[Side, str | None]:
+    """Propose the run (straight to the node), then play its session (to ``target_port``)."""
+    t0 = time.monotonic()
+    session, answer = await propose_run(
+        keys, job, logged, node_port=node_port, session_id=session_id, attempt=attempt
+    )
+    if not answer.accepted:
+        side = side_of(session, None, time.monotonic() - t0)
+        side.opened, side.reason, side.message = False, "refused", answer.message
+        return side, None
+    return await play_initiated(
+        session, keys, logged, secrets, target_port=target_port, plan=plan, fire=fire, limits=limits
+    )
 
 
 # -- the peer as a process of its own (the kill fault) -------------------------------------------------------------------
@@ -1230,10 +1265,20 @@ class SessionRecord:
 class NodeCampaign:
     """A running node under test and the harness peer; faulted sessions, each followed by its job's retry."""
 
-    def __init__(self, workdir: Path, *, seed: int = 2027, limits: Limits = FAULT_LIMITS) -> None:
+    def __init__(
+        self,
+        workdir: Path,
+        *,
+        seed: int = 2027,
+        limits: Limits = FAULT_LIMITS,
+        max_sessions: int = 4,
+        node_deadline_s: int = NODE_DEADLINE_S,
+    ) -> None:
         self.workdir = Path(workdir)
         self.seed = seed
-        self.limits = limits
+        self.limits = limits  # the peer's
+        self.max_sessions = max_sessions
+        self.node_deadline_s = node_deadline_s
         self.secrets = Secrets()
         self.records: list[SessionRecord] = []
         self.watch = CrashWatch()
@@ -1281,11 +1326,11 @@ class NodeCampaign:
                     name=JOB_INITIATED, initiate=True, attempts=3, backoff_seconds=RETRY_BACKOFF_S, **entry
                 ),  # type: ignore[arg-type]
             ],
-            max_sessions=4,
-            session_deadline_seconds=NODE_DEADLINE_S,
+            max_sessions=self.max_sessions,
+            session_deadline_seconds=self.node_deadline_s,
         )
         path = write_config(self.workdir / f"{NODE_NAME}.yaml", config)
-        self._settings = node_under_test_settings(self.secrets, float(NODE_DEADLINE_S))
+        self._settings = node_under_test_settings(self.secrets, float(self.node_deadline_s))
         self._settings.__enter__()
         self.node = Node(load_node_config(path))
         await self.node.start()
@@ -1370,7 +1415,10 @@ class NodeCampaign:
 
         def fire(plan: FaultPlan, _kind: str, _direction: str) -> None:
             assert proxy is not None
-            proxy.cut(plan.reset) if plan.kind == CUT else proxy.stall()
+            if plan.kind == CUT:
+                proxy.cut(plan.reset)
+            else:
+                proxy.stall()
 
         try:
             return await run_initiator(
@@ -1390,19 +1438,23 @@ class NodeCampaign:
             if proxy is not None:
                 self._proxies.append(proxy)
 
-    async def node_accepts(self, plan: FaultPlan) -> None:
+    async def run_accepted(self, plan: FaultPlan | None, attempt: int = 1) -> SessionRecord:
+        """One session of the job the node accepts: proposed by the peer, broken by ``plan`` (if any)."""
         self._proxies: list[FaultProxy] = []
-        attempts = []
-        for attempt, this_plan in ((1, plan), (2, None)):
-            sid = os.urandom(16)
-            t0 = time.monotonic()
-            peer, fired = await self._peer_initiates(this_plan, attempt, sid)
-            node = await self.node_side(sid.hex(), Party.EVALUATOR, t0)
-            for proxy in self._proxies:
-                await proxy.close()
-            self._proxies.clear()
-            attempts.append((sid.hex(), this_plan, node, peer, fired))
-        self._add(attempts)
+        sid = os.urandom(16)
+        t0 = time.monotonic()
+        peer, fired = await self._peer_initiates(plan, attempt, sid)
+        node = await self.node_side(sid.hex(), Party.EVALUATOR, t0)
+        for proxy in self._proxies:
+            await proxy.close()
+        self._proxies.clear()
+        return SessionRecord(sid.hex(), "fault" if plan is not None else "retry", plan, node, peer, fired)
+
+    async def node_accepts(self, plan: FaultPlan) -> None:
+        first = await self.run_accepted(plan, 1)
+        retry = await self.run_accepted(None, 2)
+        retry.retry_of = first.session_id
+        self.records += [first, retry]
 
     # -- one faulted run with the node's own retry, the node initiating ------------------------------------------------
 
@@ -1544,6 +1596,18 @@ class NodeCampaign:
 
     # -- the whole ------------------------------------------------------------------------------------------------------
 
+    def scan(self) -> tuple[list[Finding], list[tuple[str, str]]]:
+        """Search both session logs, the Python log, the node's job store and the abort messages for every secret
+        the run made (Δs, labels, both schemes' input figures). Returns the findings and the texts searched."""
+        for value in NODE_METRES + PEER_METRES:
+            self.secrets.add_value(value)
+        texts = [
+            ("python log", "\n".join(self.watch.lines)),
+            ("node job store", _store_text(Path(self.node.config.node.job_store))),
+            ("abort messages", "\n".join(f"{r.node.message}\n{r.peer.message}" for r in self.records)),
+        ]
+        return scan_for_secrets(self.secrets, [self.node_log, self.peer_log], texts), texts
+
     async def run(self, sessions: int) -> list[SessionRecord]:
         """``sessions`` sessions: faulted ones, each followed by its job's retry (the last may have none)."""
         if sessions < 1:
@@ -1633,7 +1697,8 @@ def judge(campaign: NodeCampaign) -> list[str]:
             problems.append(f"peer did not complete ({record.peer.reason}: {record.peer.message[:160]})")
         else:
             decoded = campaign.job.compiled.decode(record.peer.party, record.peer.outputs)
-            if {k: decoded.get(k) for k in expected} != expected:
+            record.peer.decoded = {k: decoded.get(k) for k in expected}
+            if record.peer.decoded != expected:
                 wrong = True
                 problems.append("peer released a wrong result")
         for name, state in states.items():
@@ -1786,15 +1851,18 @@ def mutate(
     if how == OVERSIZED:
         if rng.random() < 0.01:  # the whole frame beyond the 4 MiB limit
             return [fr.payload_frame(fr.GARBLED_TABLES, bytes(32)) + bytes(fr.MAX_FRAME_BYTES)]
-        # A length prefix claiming more bytes than follow: the frame's own (after its tag) or its first field's.
+        # A length prefix claiming more bytes than its message holds: the frame body's own (after the frame's tag),
+        # or that of the body's first field when that field is length-delimited.
         outer = _read_varint(data, 1)
         assert outer is not None
-        _, body_at = outer
-        at = 1 if rng.random() < 0.5 or body_at + 1 >= len(data) else body_at + 1
-        parsed = _read_varint(data, at)
-        assert parsed is not None
-        length, after = parsed
-        claim = int(rng.choice([length + 1, length + 1 + int(rng.integers(1, 1 << 20)), *HUGE_LENGTHS]))
+        length, body_at = outer
+        at, after, room = 1, body_at, len(data) - body_at
+        if rng.random() < 0.5 and body_at + 1 < len(data) and data[body_at] & 7 == 2:
+            inner = _read_varint(data, body_at + 1)
+            if inner is not None:
+                at, after = body_at + 1, inner[1]
+                room = body_at + length - after
+        claim = int(rng.choice([room + 1, room + 1 + int(rng.integers(1, 1 << 20)), *HUGE_LENGTHS]))
         return [data[:at] + _varint(claim) + data[after:]]
     if how == UNKNOWN_TYPE:
         parsed = _read_varint(data, 0)
@@ -2261,15 +2329,40 @@ def _node_retained(before: Any, after: Any) -> int:
 
 
 @dataclass
+class CampaignReport:
+    """The fault campaign: its records (judged), what went wrong outside them, the secret scan, the figures."""
+
+    records: list[SessionRecord]
+    problems: list[str]
+    crashes: list[str]
+    findings: list[Finding]
+    figures: dict[str, Any]
+    secrets: Secrets
+    logs: list[Path]
+    node_bound_s: float  # how long the node may take to end a session before it counts as hung
+
+
+@dataclass
+class FuzzReport:
+    """The fuzzing: every case's outcome, what escaped, the secret scan of the abort messages, the figures."""
+
+    outcomes: list[FuzzOutcome]
+    crashes: list[str]
+    findings: list[Finding]
+    figures: dict[str, Any]
+
+
+@dataclass
 class FaultsReport:
-    """Everything one ``bench faults`` run measured: the figures, and the records behind them."""
+    """Everything one ``bench faults`` run measured: the figures, and the two reports behind them."""
 
     figures: dict[str, Any]
-    records: list[SessionRecord]
-    fuzz: list[FuzzOutcome]
-    findings: list[Finding]
-    crashes: list[str]
-    problems: list[str]
+    campaign: CampaignReport
+    fuzz: FuzzReport
+
+    @property
+    def problems(self) -> list[str]:
+        return self.campaign.problems + self.campaign.crashes + self.fuzz.crashes
 
 
 def _store_text(path: Path) -> str:
@@ -2282,63 +2375,79 @@ def _store_text(path: Path) -> str:
         db.close()
 
 
-async def measure_async(sessions: int, frames: int, workdir: Path, *, seed: int = 2027) -> FaultsReport:
-    """Run the fault campaign (``sessions`` sessions) and the fuzzer (``frames`` mutated frames) in ``workdir``."""
-    start = time.monotonic()
+async def run_campaign(sessions: int, workdir: Path, *, seed: int = 2027) -> CampaignReport:
+    """``sessions`` sessions against a node under test in ``workdir``, judged and scanned for secrets."""
     async with NodeCampaign(workdir, seed=seed) as campaign:
         await campaign.run(sessions)
     problems = judge(campaign)
-    fuzzer = Fuzzer(seed=seed + 1)
-    fuzz_figures = await fuzzer.run(frames) if frames else {}
-    secrets = Secrets()
-    secrets.merge(campaign.secrets)
-    secrets.merge(fuzzer.secrets)
-    for value in NODE_METRES + PEER_METRES:
-        secrets.add_value(value)
-    store = Path(campaign.node.config.node.job_store)
-    texts = [
-        ("python log (fault sessions)", "\n".join(campaign.watch.lines)),
-        ("python log (fuzzing)", "\n".join(fuzzer.log_lines)),
-        ("node job store", _store_text(store)),
-        (
-            "abort messages (fault sessions)",
-            "\n".join(f"{r.node.message}\n{r.peer.message}" for r in campaign.records),
-        ),
-        ("abort messages (fuzzing)", "\n".join(o.message for o in fuzzer.outcomes)),
-    ]
+    findings, texts = campaign.scan()
     logs = [campaign.node_log, campaign.peer_log]
-    findings = scan_for_secrets(secrets, logs, texts)
     verdicts = Counter(r.verdict for r in campaign.records)
     internal = [r for r in campaign.records for s in (r.node, r.peer) if s.reason == "internal"]
-    crashes = (
-        campaign.watch.crashes
-        + fuzzer.crashes
-        + [f"session {r.session_id}: internal abort" for r in internal]
-    )
-    figures: dict[str, Any] = {
+    crashes = campaign.watch.crashes + [f"session {r.session_id}: internal abort" for r in internal]
+    problems += [
+        f"{r.session_id} ({r.verdict}): {'; '.join(r.problems)}" for r in campaign.records if r.problems
+    ]
+    figures = {
         "sessions": len(campaign.records),
         "completed": verdicts["completed"],
         "aborted_cleanly": verdicts["aborted_cleanly"],
-        "hung": verdicts["hung"] + fuzz_figures.get("fuzz_hung", 0),
-        "outputs_released_wrongly": verdicts["released_wrongly"] + fuzz_figures.get("fuzz_accepted", 0),
-        "frames_fuzzed": fuzz_figures.get("frames_fuzzed", 0),
-        "crashes": len(crashes),
+        "hung": verdicts["hung"],
+        "outputs_released_wrongly": verdicts["released_wrongly"],
         "unclean": verdicts["unclean"],
+        "crashes": len(crashes),
         "faults": dict(sorted(Counter(r.plan.kind for r in campaign.records if r.plan).items())),
         "phases": dict(sorted(Counter(r.plan.phase for r in campaign.records if r.plan).items())),
         "node_initiated_faults": sum(
             1 for r in campaign.records if r.plan and r.plan.node_role == Party.GARBLER
         ),
-        **{k: v for k, v in fuzz_figures.items() if k not in ("frames_fuzzed", "fuzz_crashes")},
         "secrets_found_in_logs": len(findings),
         "log_lines_scanned": sum(len(p.read_text(encoding="utf-8").splitlines()) for p in logs)
         + sum(len(t.splitlines()) for _, t in texts),
+    }
+    return CampaignReport(
+        campaign.records, problems, crashes, findings, figures, campaign.secrets, logs, campaign.node_bound
+    )
+
+
+async def run_fuzzing(frames: int, *, seed: int = 2028, wire: int = WIRE_SAMPLE) -> FuzzReport:
+    """``frames`` mutated frames sent to a node's session server, the abort messages scanned for secrets."""
+    fuzzer = Fuzzer(seed=seed)
+    figures = await fuzzer.run(frames, wire=wire)
+    texts = [
+        ("python log", "\n".join(fuzzer.log_lines)),
+        ("abort messages", "\n".join(o.message for o in fuzzer.outcomes)),
+    ]
+    findings = scan_for_secrets(fuzzer.secrets, (), texts)
+    figures["secrets_found_in_logs"] = len(findings)
+    figures["log_lines_scanned"] = sum(len(t.splitlines()) for _, t in texts)
+    return FuzzReport(fuzzer.outcomes, fuzzer.crashes, findings, figures)
+
+
+async def measure_async(sessions: int, frames: int, workdir: Path, *, seed: int = 2027) -> FaultsReport:
+    """The fault campaign (``sessions`` sessions) and the fuzzing (``frames`` mutated frames); the figures."""
+    start = time.monotonic()
+    campaign = await run_campaign(sessions, workdir, seed=seed)
+    fuzz = await run_fuzzing(frames, seed=seed + 1) if frames else FuzzReport([], [], [], {})
+    c, f = campaign.figures, fuzz.figures
+    figures: dict[str, Any] = {
+        "sessions": c["sessions"],
+        "completed": c["completed"],
+        "aborted_cleanly": c["aborted_cleanly"],
+        "hung": c["hung"] + f.get("fuzz_hung", 0),
+        "outputs_released_wrongly": c["outputs_released_wrongly"] + f.get("fuzz_accepted", 0),
+        "frames_fuzzed": f.get("frames_fuzzed", 0),
+        "crashes": c["crashes"] + f.get("fuzz_crashes", 0),
+        "unclean": c["unclean"],
+        "faults": c["faults"],
+        "phases": c["phases"],
+        "node_initiated_faults": c["node_initiated_faults"],
+        **{k: v for k, v in f.items() if k.startswith(("fuzz_", "node_")) and k not in ("fuzz_crashes",)},
+        "secrets_found_in_logs": c["secrets_found_in_logs"] + f.get("secrets_found_in_logs", 0),
+        "log_lines_scanned": c["log_lines_scanned"] + f.get("log_lines_scanned", 0),
         "wall_s": round(time.monotonic() - start, 1),
     }
-    problems += [
-        f"{r.session_id} ({r.verdict}): {'; '.join(r.problems)}" for r in campaign.records if r.problems
-    ]
-    return FaultsReport(figures, campaign.records, fuzzer.outcomes, findings, crashes, problems)
+    return FaultsReport(figures, campaign, fuzz)
 
 
 def measure(sessions: int, frames: int = DEFAULT_FUZZ_FRAMES, *, seed: int = 2027) -> FaultsReport:

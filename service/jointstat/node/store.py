@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import os
 import sqlite3
+import threading
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
@@ -87,6 +88,9 @@ class JobStore:
             if mode & 0o077:
                 raise StoreError(f"job store {self.path}: mode {mode:o} lets others read it; use chmod 600")
             self._db = sqlite3.connect(self.path, isolation_level=None, check_same_thread=False)
+            # The node calls the store from worker threads at once (sessions ending together, proposals arriving
+            # together): one connection runs one statement or transaction at a time, so every use takes the lock.
+            self._lock = threading.Lock()
             self._db.execute("PRAGMA journal_mode=WAL")
             self._db.executescript(SCHEMA)
             columns = {row[1] for row in self._db.execute("PRAGMA table_info(runs)")}
@@ -100,11 +104,12 @@ class JobStore:
                 side.chmod(0o600)
 
     def close(self) -> None:
-        self._db.close()
+        with self._lock:
+            self._db.close()
 
     def _write(self, sql: str, args: tuple[object, ...]) -> int:
         try:
-            with self._db:
+            with self._lock, self._db:
                 self._db.execute("BEGIN IMMEDIATE")
                 cur = self._db.execute(sql, args)
                 return int(cur.lastrowid or 0)
@@ -154,7 +159,7 @@ class JobStore:
     def close_interrupted(self, now: datetime) -> int:
         """Mark runs left ``running`` by a previous process as aborted; returns how many."""
         try:
-            with self._db:
+            with self._lock, self._db:
                 cur = self._db.execute(
                     "UPDATE runs SET status = 'aborted', finished_at = ?, reason = 'node stopped during the run'"
                     " WHERE status = 'running'",
@@ -171,7 +176,8 @@ class JobStore:
             + (" WHERE job = ?" if job else "")
             + " ORDER BY id DESC LIMIT ?"
         )
-        rows = self._db.execute(sql, (job, limit) if job else (limit,)).fetchall()
+        with self._lock:
+            rows = self._db.execute(sql, (job, limit) if job else (limit,)).fetchall()
         return [
             RunRecord(
                 id=r[0],
@@ -192,9 +198,10 @@ class JobStore:
 
     def scheduled_done(self) -> set[tuple[str, datetime]]:
         """(job, scheduled time) pairs that have at least one run, of any outcome."""
-        rows = self._db.execute(
-            "SELECT DISTINCT job, scheduled_for FROM runs WHERE trigger = 'schedule'"
-        ).fetchall()
+        with self._lock:
+            rows = self._db.execute(
+                "SELECT DISTINCT job, scheduled_for FROM runs WHERE trigger = 'schedule'"
+            ).fetchall()
         return {(job, datetime.fromisoformat(t)) for job, t in rows}
 
     def last_success(self, job: str) -> RunRecord | None:

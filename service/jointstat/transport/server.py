@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+from collections import deque
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 
@@ -36,6 +37,8 @@ from jointstat.transport.channel import (
 )
 from jointstat.transport.driver import Limits, SessionResult, StreamLost, WireCounters, drive, result_of
 from jointstat.transport.tls import NodeTLS, PeerRefused, check_peer
+
+REFUSALS_KEPT = 1000
 
 
 @dataclass
@@ -69,7 +72,9 @@ class SessionServer:
         self._server: grpc.aio.Server | None = None
         self._port: int | None = None
         self._stopping = False
-        self.refused: list[str] = []  # why streams were refused, for the node's log (no secrets)
+        # Why streams were refused, for the node's log (no secrets): the latest REFUSALS_KEPT only, so a peer that
+        # keeps opening bad streams cannot grow the node's memory.
+        self.refused: deque[str] = deque(maxlen=REFUSALS_KEPT)
 
     @property
     def port(self) -> int:
