@@ -131,6 +131,35 @@ async def test_progress_phases_add_up_to_the_sessions_traffic(tmp_path: Path) ->
     ]
 
 
+def test_a_frame_written_after_the_session_ended_counts_in_the_phase_that_sent_it() -> None:
+    from types import SimpleNamespace
+
+    from jointstat.circuit.model import Party
+    from jointstat.node.progress import SessionTracker
+
+    ticks = iter(range(100))
+    tracker = SessionTracker(
+        session_id="s-1",
+        job=JOB,
+        role=Party.EVALUATOR,
+        peer=LIBRARY,
+        trigger="peer",
+        started_at=datetime(2026, 3, 2, tzinfo=UTC),
+        monotonic=lambda: float(next(ticks)),
+    )
+    # The session's own view: only its state and AND gate counts are read.
+    session = SimpleNamespace(state="awaiting finish", and_gates_done=0, and_gates_total=0)
+    tracker.attach(session)  # type: ignore[arg-type]
+    tracker.counters.bytes_received += 120  # the peer's finish arrives: the session is done ...
+    session.state = "done"
+    tracker.on_progress()
+    tracker.counters.bytes_sent += 107  # ... and only then is this node's own finish frame written
+    tracker.on_progress()
+    tracker.close_phases()  # the transport has returned
+    assert [(p.name, p.bytes_sent, p.bytes_received) for p in tracker.phases] == [("finish", 107, 120)]
+    assert tracker.phase is None
+
+
 def test_a_progress_line_shows_gates_done_of_total_bytes_rate_and_time_left() -> None:
     line = progress_line(
         {

@@ -202,6 +202,25 @@ def short_tmp() -> Path:
     return Path(tempfile.mkdtemp(prefix="jsn-", dir="/tmp"))
 
 
+def test_a_trial_port_is_free_and_outside_the_range_outgoing_connections_draw_from(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    import socket
+
+    from jointstat.node import trial
+
+    setting = tmp_path / "ip_local_port_range"
+    setting.write_text("20000\t60999\n", encoding="ascii")
+    monkeypatch.setattr(trial, "EPHEMERAL_RANGE_FILE", setting)
+    for _ in range(20):
+        port = free_port()
+        assert 10000 <= port < 20000 or 60999 < port <= 65535
+        with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+            s.bind(("127.0.0.1", port))
+    setting.write_text("10000 65535\n", encoding="ascii")  # no port outside it: the kernel's choice
+    assert 10000 <= free_port() <= 65535
+
+
 # -- an operator's run ---------------------------------------------------------------------------------------------
 
 

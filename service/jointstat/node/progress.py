@@ -7,8 +7,10 @@ A ``SessionTracker`` is made for every session the node runs or accepts. The tra
 maps it to a *phase* — ``handshake`` (hellos), ``oblivious_transfer`` (base OT and OT extension), ``garbling``
 or ``evaluation`` (input labels and the garbled tables), ``output`` (output labels and decoding), ``finish``
 (signed transcript digests). When the phase changes it closes the previous one with its wall time (monotonic
-clock, integer microseconds) and the bytes sent and received during it; the node writes these to the session log
-as ``phase_finished`` records once the session has ended. Phases the node measures itself (``prepare``: reading
+clock, integer microseconds) and the bytes sent and received during it; the last phase is closed only by
+``close_phases`` (or ``end``), after the transport has written the session's last frame, so the phases' bytes
+add up to the session's. The node writes these to the session log as ``phase_finished`` records once the session
+has ended. Phases the node measures itself (``prepare``: reading
 and encoding its input; ``proposal``: asking the peer) are added with ``add_phase``.
 
 ``snapshot()`` gives what an operator sees: status, phase, AND gates done of total (from the session's own
@@ -143,6 +145,11 @@ class SessionTracker:
         if self.session is None or self._ended_at is not None:
             return
         phase = phase_of(self.session.state)
+        if phase is None:
+            # The session is done or failed, but frames it produced on the way there (its own finish or
+            # abort) may still be queued: the open phase stays open until ``close_phases``, which the node
+            # calls once the transport has returned, so those bytes count in the phase that sent them.
+            return
         if phase != self._phase:
             self._enter(phase, self._mono())
 

@@ -5,9 +5,10 @@ CA, per node an Ed25519 signing key and a TLS key and certificate, all owner-onl
 secret, copied owner-only for each node as the two organisations would each hold it. ``node_config`` builds one
 node's config as a mapping with absolute paths (every key as ``configs/nodes/README.md`` documents it; each job
 entry from ``job_entry`` names its manifest ``role`` and, separately, whether the node ``initiate``s), and
-``write_config`` writes it as YAML. ``free_port`` asks the system for an unused loopback port, so the demo and
-the tests never collide with other listeners (the port could in principle be taken again before the node binds
-it; on a quiet machine it is not). The demo (``jointstat demo``) and the node tests build their nodes this way.
+``write_config`` writes it as YAML. ``free_port`` finds an unused loopback port outside the kernel's ephemeral
+range, so the demo and the tests do not collide with other listeners nor with the source ports of outgoing
+connections (another listener could in principle take it before the node binds it; that is rare even on a busy
+machine). The demo (``jointstat demo``) and the node tests build their nodes this way.
 """
 
 from __future__ import annotations
@@ -34,8 +35,37 @@ from jointstat.node.secrets import ensure_private_dir, write_private_file
 KEY_SECRET_BYTES = 32
 
 
+EPHEMERAL_RANGE_FILE = Path("/proc/sys/net/ipv4/ip_local_port_range")
+LOWEST_TRIAL_PORT = 10000
+PORT_TRIES = 64
+
+
+def _ephemeral_range() -> tuple[int, int]:
+    """The ports the kernel hands out for outgoing connections: Linux's setting, or its default if unreadable."""
+    try:
+        low, high = (int(v) for v in EPHEMERAL_RANGE_FILE.read_text(encoding="ascii").split())
+        return low, high
+    except (OSError, ValueError):
+        return 32768, 60999  # Linux's default range (from memory)
+
+
 def free_port(host: str = "127.0.0.1") -> int:
-    """A TCP port on ``host`` that nothing listens on at this moment."""
+    """A TCP port on ``host`` that nothing listens on at this moment, chosen outside the ephemeral range.
+
+    A port the kernel picked for us (bind to 0) is an ephemeral port, which any outgoing connection on the machine
+    may take as its source port before the node binds it; a random free port outside that range can only be
+    taken by another listener. If none is found, the kernel's choice is returned.
+    """
+    low, high = _ephemeral_range()
+    candidates = [p for p in range(LOWEST_TRIAL_PORT, 65536) if not low <= p <= high]
+    rng = secrets.SystemRandom()
+    for port in rng.sample(candidates, min(PORT_TRIES, len(candidates))):
+        with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+            try:
+                s.bind((host, port))
+            except OSError:
+                continue
+            return port
     with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
         s.bind((host, 0))
         return int(s.getsockname()[1])
