@@ -6,8 +6,8 @@ of a job whose manifest digest differs from its own (``digest_mismatch``), outsi
 name the same manifest party as their ``role`` (``role_mismatch``, whichever party that is). On both nodes the session log then shows the session started and aborted with
 that reason (by the peer on the initiating node, by itself on the other), the job store a row with status
 ``refused``, and no result file exists; both logs still verify. The initiating node does not retry a refusal that
-retrying cannot cure. A proposal for a job the accepting node initiates as well is accepted, with a warning in
-its log.
+retrying cannot cure. A proposal for a job the accepting node initiates as well is refused (``both_initiate``): with both nodes
+initiating, every scheduled time would run twice.
 """
 
 from __future__ import annotations
@@ -182,19 +182,12 @@ async def test_two_nodes_claiming_the_same_manifest_party_are_refused_as_role_mi
     assert len(pair.store_rows(LIBRARY)) == 1  # not retried
 
 
-async def test_a_proposal_for_a_job_this_node_initiates_too_is_accepted_with_a_warning(
-    tmp_path: Path, caplog: pytest.LogCaptureFixture
-) -> None:
+async def test_a_proposal_for_a_job_this_node_initiates_too_is_refused_on_both_sides(tmp_path: Path) -> None:
     timing = {"cron": "0 3 * * *", "window_minutes": 120}
     pair = make_pair(tmp_path, library_job=timing, baths_job=timing, baths_initiates=True)
-    async with running(pair, ManualClock(NOW)) as nodes:
-        started = await nodes[LIBRARY].admin_run_job({"job": JOB})
-        library = nodes[LIBRARY].state
-        assert library is not None
-        sid = started["session"]
-        await until(lambda: sid in library.sessions and library.sessions[sid].ended, "the run")
-        assert library.sessions[sid].status == "completed"
-    warnings = [r.getMessage() for r in caplog.records if r.levelname == "WARNING"]
-    assert any(
-        f"{LIBRARY} proposed a run although this node initiates the job as well" in w for w in warnings
-    )
+    sid, snap = await refused_run(pair, ManualClock(NOW))
+    assert (snap["status"], snap["reason"]) == ("refused", "both_initiate")
+    assert_refused_on_both_sides(pair, sid, "both_initiate")
+    detail = session_records(pair.log(BATHS), sid)[-1]["body"]["detail"]
+    assert f"initiates job {JOB} itself; exactly one of the two nodes may" in detail
+    assert len(pair.store_rows(LIBRARY)) == 1  # not retried: only a config change cures it

@@ -107,6 +107,7 @@ NOT_RETRIED = frozenset(
         "digest_mismatch",
         "outside_window",
         "role_mismatch",
+        "both_initiate",
         "malformed",
         "protocol_version",
     }
@@ -749,11 +750,13 @@ class JobRunner:
                 latest,
             )
         if job.initiate:
-            log.warning(
-                "job %s: %s proposed a run although this node initiates the job as well; with both nodes "
-                "initiating, each scheduled time runs twice (set initiate: false on one of them)",
-                job.name,
-                peer.name,
+            # With both nodes initiating, every scheduled time would run twice; refuse so the operators fix it.
+            return await refuse(
+                pb.REFUSAL_REASON_BOTH_INITIATE,
+                f"node {state.config.node.name} initiates job {job.name} itself; exactly one of the two nodes may"
+                " (set initiate: false on one of them)",
+                digest,
+                latest,
             )
         if not timing.in_window(latest, now):
             return await refuse(

@@ -42,6 +42,7 @@ class RefusalReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     REFUSAL_REASON_INPUT_UNAVAILABLE: _ClassVar[RefusalReason]
     REFUSAL_REASON_SHUTTING_DOWN: _ClassVar[RefusalReason]
     REFUSAL_REASON_PROTOCOL_VERSION: _ClassVar[RefusalReason]
+    REFUSAL_REASON_BOTH_INITIATE: _ClassVar[RefusalReason]
 ROLE_UNSPECIFIED: Role
 ROLE_GARBLER: Role
 ROLE_EVALUATOR: Role
@@ -70,6 +71,7 @@ REFUSAL_REASON_MALFORMED: RefusalReason
 REFUSAL_REASON_INPUT_UNAVAILABLE: RefusalReason
 REFUSAL_REASON_SHUTTING_DOWN: RefusalReason
 REFUSAL_REASON_PROTOCOL_VERSION: RefusalReason
+REFUSAL_REASON_BOTH_INITIATE: RefusalReason
 
 class Hello(_message.Message):
     __slots__ = ("protocol_version", "manifest_digest", "session_id", "role", "circuit_digest")
