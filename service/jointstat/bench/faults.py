@@ -353,12 +353,31 @@ class Finding:
     what: str
 
 
+SCAN_PREFIX = (
+    8  # every searched form is at least this long; shorter ones would match counts and times by chance
+)
+
+
+def _index(forms: dict[str, str]) -> dict[str, list[tuple[str, str]]]:
+    """Forms by their first ``SCAN_PREFIX`` characters, so a line is searched in one pass, whatever the count."""
+    index: dict[str, list[tuple[str, str]]] = {}
+    for form, what in forms.items():
+        if len(form) >= SCAN_PREFIX:
+            index.setdefault(form[:SCAN_PREFIX], []).append((form, what))
+    return index
+
+
 def scan_text(source: str, text: str, forms: dict[str, str]) -> list[Finding]:
+    """Every (line, secret) where a form of the secret occurs in the line."""
+    index = _index(forms)
     found: list[Finding] = []
     for number, line in enumerate(text.splitlines(), start=1):
-        for form, what in forms.items():
-            if form in line:
-                found.append(Finding(source, number, what))
+        hits: set[str] = set()
+        for i in range(len(line) - SCAN_PREFIX + 1):
+            for form, what in index.get(line[i : i + SCAN_PREFIX], ()):
+                if what not in hits and line.startswith(form, i):
+                    hits.add(what)
+                    found.append(Finding(source, number, what))
     return found
 
 
@@ -946,7 +965,8 @@ def side_of(session: Session, result: SessionResult | None, ended_after_s: float
 class CrashWatch:
     """Counts what escaped: exceptions in event-loop callbacks and tasks, in threads, and errors logged by gRPC.
 
-    It also keeps every Python log line emitted meanwhile (any logger, any level), for the secret scan.
+    It also keeps every Python log line emitted meanwhile at INFO and above (any logger: the level a node logs at,
+    ``node.daemon.run_node``), for the secret scan.
     """
 
     def __init__(self) -> None:
@@ -968,7 +988,7 @@ class CrashWatch:
     def __enter__(self) -> CrashWatch:
         root = logging.getLogger()
         root.addHandler(self._handler)
-        root.setLevel(logging.DEBUG)
+        root.setLevel(min(root.level or logging.WARNING, logging.INFO))
         threading.excepthook = self._thread_exception
         with contextlib.suppress(RuntimeError):
             asyncio.get_running_loop().set_exception_handler(self.loop_exception)
@@ -985,7 +1005,7 @@ class CrashWatch:
 
 class _ListHandler(logging.Handler):
     def __init__(self, watch: CrashWatch) -> None:
-        super().__init__(logging.DEBUG)
+        super().__init__(logging.INFO)
         self._watch = watch
 
     def emit(self, record: logging.LogRecord) -> None:
@@ -1321,10 +1341,15 @@ class NodeCampaign:
             metrics_port=0,
             admin=f"127.0.0.1:{free_port()}",
             jobs=[
-                job_entry(name=JOB_ACCEPTED, initiate=False, **entry),  # type: ignore[arg-type]
-                job_entry(
-                    name=JOB_INITIATED, initiate=True, attempts=3, backoff_seconds=RETRY_BACKOFF_S, **entry
-                ),  # type: ignore[arg-type]
+                job_entry(name=JOB_ACCEPTED, initiate=False, role="evaluator", **entry),  # type: ignore[arg-type]
+                job_entry(  # type: ignore[arg-type]
+                    name=JOB_INITIATED,
+                    initiate=True,
+                    role="garbler",
+                    attempts=3,
+                    backoff_seconds=RETRY_BACKOFF_S,
+                    **entry,
+                ),
             ],
             max_sessions=self.max_sessions,
             session_deadline_seconds=self.node_deadline_s,
@@ -2480,8 +2505,7 @@ def run(sessions: int, frames: int, as_json: bool) -> int:
     emit(
         "fault injection and frame fuzzing (a node under test, loopback mutual TLS)", report.figures, as_json
     )
-    for problem in (
-        report.problems + report.crashes + [f"{f.source}:{f.line}: {f.what}" for f in report.findings]
-    ):
+    findings = report.campaign.findings + report.fuzz.findings
+    for problem in report.problems + [f"secret in {f.source}, line {f.line}: {f.what}" for f in findings]:
         print(f"problem: {problem}", file=sys.stderr)
     return 0 if targets_met(report.figures) else 1

@@ -1,0 +1,265 @@
+"""Security checks on a node and its transport: who gets in, what is replayed, who can read the files, what is logged.
+
+Specification: a plaintext connection to a node is refused before any frame, and the node keeps serving; a
+certificate that is expired, not yet valid, from another CA, or from the same CA but not pinned is refused in the
+TLS handshake, as a client's and as a server's, and the session expected meanwhile is untouched; a session id used
+before — by a completed or an aborted session — is refused, proposed again or replayed on the wire; the session log,
+the job store, result files, key files and the node's config are created owner-only even under umask 000; and the
+log scan finds a label, Δ or input value in any of its forms, while no line written by the fault campaign holds one.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import base64
+import datetime
+import os
+import stat
+from pathlib import Path
+
+import grpc
+import numpy as np
+import pytest
+from jointstat.bench import faults
+from jointstat.circuit.builder import Builder
+from jointstat.circuit.layers import LayeredCircuit, schedule
+from jointstat.circuit.model import Party
+from jointstat.node.jobs import PROPOSE_PATH, propose
+from jointstat.protocol import EvaluatorSession, GarblerSession, signer, verifier
+from jointstat.protocol import frames as fr
+from jointstat.protocol.frames import AbortReason
+from jointstat.transport import Limits, SessionServer, run_client
+from jointstat.transport.channel import MESSAGE_OPTIONS, METHOD_PATH
+from jointstat.transport.pki import Issued, issue, new_ca, node_tls
+from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
+
+LIMITS = Limits(deadline_s=10, idle_timeout_s=5, abort_grace_s=0.5)
+HTTP2_PREFACE = b"PRI * HTTP/2.0\r\n\r\nSM\r\n\r\n" + bytes.fromhex(
+    "000000040000000000"
+)  # RFC 9113 §3.4, SETTINGS
+
+
+# -- plaintext -----------------------------------------------------------------------------------------------------
+
+
+async def test_a_plaintext_connection_to_a_node_is_refused_before_any_frame_and_the_node_keeps_serving(
+    tmp_path: Path,
+) -> None:
+    async with faults.NodeCampaign(tmp_path) as c:
+        hello = fr.hello_frame(
+            party=Party.GARBLER,
+            session_id=os.urandom(16),
+            manifest_digest=c.job.digest,
+            circuit_digest=c.job.layered.circuit.digest(),
+        )
+        async with grpc.aio.insecure_channel(f"127.0.0.1:{c.node_port}") as channel:
+            call = channel.stream_stream(METHOD_PATH)(timeout=10)
+            with pytest.raises(grpc.aio.AioRpcError) as stream_error:
+                await call.write(hello)
+                await call.read()
+            proposal = channel.unary_unary(
+                PROPOSE_PATH,
+                request_serializer=pb.RunProposal.SerializeToString,
+                response_deserializer=pb.RunAnswer.FromString,
+            )
+            with pytest.raises(grpc.aio.AioRpcError) as proposal_error:
+                await proposal(pb.RunProposal(protocol_version=1, job=faults.JOB_ACCEPTED), timeout=10)
+        assert stream_error.value.code() == grpc.StatusCode.UNAVAILABLE
+        assert proposal_error.value.code() == grpc.StatusCode.UNAVAILABLE
+        # Cleartext HTTP/2 bytes on the raw socket: the node answers with no HTTP/2 at all (at most a TLS alert).
+        reader, writer = await asyncio.open_connection("127.0.0.1", c.node_port)
+        writer.write(HTTP2_PREFACE)
+        await writer.drain()
+        answer = await asyncio.wait_for(reader.read(4096), timeout=10)
+        writer.close()
+        assert answer == b"" or answer[0] == 0x15  # 0x15: a TLS alert record (RFC 8446 §5.1)
+        assert c.node.state.sessions == {}  # nothing reached the node's jobs
+        served = await c.run_accepted(None)
+    assert served.node.outputs == faults.expected_result()
+
+
+# -- certificates --------------------------------------------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def tiny() -> LayeredCircuit:
+    bld = Builder()
+    a = bld.input(Party.GARBLER, 4)
+    b = bld.input(Party.EVALUATOR, 4)
+    bld.output(Party.EVALUATOR, bld.and_(a, b))
+    return schedule(bld.build())
+
+
+def sessions(layered: LayeredCircuit, sid: bytes) -> tuple[GarblerSession, EvaluatorSession]:
+    from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
+
+    gk, ek = Ed25519PrivateKey.generate(), Ed25519PrivateKey.generate()
+    common = {"session_id": sid, "layered": layered, "manifest_digest": bytes(32)}
+    g = GarblerSession(
+        inputs=np.ones(4, dtype=np.uint8), sign=signer(gk), verify=verifier(ek.public_key()), **common
+    )  # type: ignore[arg-type]
+    e = EvaluatorSession(
+        inputs=np.ones(4, dtype=np.uint8), sign=signer(ek), verify=verifier(gk.public_key()), **common
+    )  # type: ignore[arg-type]
+    return g, e
+
+
+NOW = datetime.datetime.now(datetime.UTC)
+PROBLEMS = ("expired", "not yet valid", "from another CA", "from the same CA but not pinned")
+
+
+def bad_certificate(problem: str, ca: Issued, other_ca: Issued, name: str) -> tuple[Issued, bool]:
+    """(the certificate presented, whether the other side pins that very certificate)."""
+    if problem == "expired":
+        return issue(ca, name, now=NOW - datetime.timedelta(days=30), days=2), True
+    if problem == "not yet valid":
+        return issue(ca, name, now=NOW + datetime.timedelta(days=30), days=2), True
+    if problem == "from another CA":
+        return issue(other_ca, name), False
+    return issue(ca, name), False
+
+
+@pytest.mark.parametrize("side", ["client", "server"])
+@pytest.mark.parametrize("problem", PROBLEMS)
+async def test_a_bad_certificate_is_refused_in_the_handshake_and_the_expected_session_is_untouched(
+    tiny: LayeredCircuit, problem: str, side: str
+) -> None:
+    ca, other_ca = new_ca("bike schemes trial CA"), new_ca("someone else's CA")
+    server_good, client_good = issue(ca, "riverside.bikes.test"), issue(ca, "hillside.bikes.test")
+    name = "hillside.bikes.test" if side == "client" else "riverside.bikes.test"
+    bad, pinned_itself = bad_certificate(problem, ca, other_ca, name)
+    if side == "client":
+        server_tls = node_tls(server_good, bad if pinned_itself else client_good)
+        client_tls = node_tls(bad, server_good)
+    else:
+        server_tls = node_tls(bad, client_good)
+        client_tls = node_tls(client_good, bad if pinned_itself else server_good)
+    garbler, evaluator = sessions(tiny, f"cert {problem} {side}".encode())
+    async with SessionServer(server_tls, limits=LIMITS) as server:
+        expected = server.expect(garbler)
+        result = await run_client(evaluator, f"127.0.0.1:{server.port}", client_tls, limits=LIMITS)
+        assert not expected.done() and garbler.state == "new"  # no frame ever reached the served session
+        assert server.withdraw(garbler.session_id)
+    assert not result.completed and result.outputs is None and result.counters.frames_received == 0
+    assert result.abort is not None and result.abort.reason == AbortReason.CONNECTION_LOST
+
+
+# -- replayed session ids ------------------------------------------------------------------------------------------
+
+
+async def test_a_session_id_used_before_is_refused_proposed_again_or_replayed_on_the_wire(
+    tmp_path: Path,
+) -> None:
+    async with faults.NodeCampaign(tmp_path) as c:
+        completed = await c.run_accepted(None)
+        aborted = await c.run_accepted(faults.FaultPlan("cut", faults.TABLES, 2, Party.EVALUATOR))
+        assert completed.node.store_status == "completed"
+        assert aborted.node.store_status == "aborted"
+        tls = c.keys.tls()
+        options = [*MESSAGE_OPTIONS, ("grpc.ssl_target_name_override", tls.server_name())]
+        for record in (completed, aborted):
+            sid = bytes.fromhex(record.session_id)
+            proposal = pb.RunProposal(
+                protocol_version=1,
+                job=faults.JOB_ACCEPTED,
+                manifest_digest=c.job.digest,
+                session_id=sid,
+                scheduled_for_us=1,
+                role=pb.ROLE_GARBLER,
+                attempt=9,
+                trigger="operator",
+            )
+            answer = await propose(c.keys.node_identity(c.node_port), proposal)
+            assert not answer.accepted and "used before" in answer.message
+            hello = fr.hello_frame(
+                party=Party.GARBLER,
+                session_id=sid,
+                manifest_digest=c.job.digest,
+                circuit_digest=c.job.layered.circuit.digest(),
+            )
+            async with grpc.aio.secure_channel(
+                f"127.0.0.1:{c.node_port}", tls.channel_credentials(), options=options
+            ) as channel:
+                call = channel.stream_stream(METHOD_PATH)(timeout=10)
+                await call.write(hello)
+                kind, frame = fr.decode(await call.read())
+            assert kind == fr.ABORT and frame.abort.reason == AbortReason.SESSION_REFUSED
+            assert "used before" in frame.abort.message
+        findings, _ = c.scan()
+    assert findings == []
+
+
+# -- owner-only files ----------------------------------------------------------------------------------------------
+
+
+def loose(path: Path) -> bool:
+    return bool(stat.S_IMODE(path.stat().st_mode) & 0o077)
+
+
+async def test_logs_job_store_results_keys_and_config_are_owner_only_even_under_umask_000(
+    tmp_path: Path,
+) -> None:
+    old = os.umask(0)
+    try:
+        async with faults.NodeCampaign(tmp_path) as c:
+            served = await c.run_accepted(None)
+            node = c.node.config.node
+            result = Path(c.node.config.job(faults.JOB_ACCEPTED).results)
+            files = [
+                Path(node.session_log),
+                Path(node.job_store),
+                *(
+                    Path(str(node.job_store) + s)
+                    for s in ("-wal", "-shm")
+                    if Path(str(node.job_store) + s).exists()
+                ),
+                *result.iterdir(),
+                *c.keys.directory.iterdir(),
+                tmp_path / f"{faults.NODE_NAME}.yaml",
+                c.peer_log,
+            ]
+            directories = [Path(node.data_dir), result, c.keys.directory]
+    finally:
+        os.umask(old)
+    assert served.node.outputs == faults.expected_result()
+    assert any(p.suffix == ".json" for p in result.iterdir())  # a result file was written
+    assert [p for p in files if loose(p)] == []
+    assert [d for d in directories if loose(d)] == []
+
+
+# -- the log scan --------------------------------------------------------------------------------------------------
+
+
+def test_the_log_scan_finds_a_label_a_delta_or_an_input_value_in_every_form_and_never_prints_it(
+    tmp_path: Path,
+) -> None:
+    secrets = faults.Secrets()
+    rng = np.random.default_rng(17)
+    delta, label = rng.bytes(16), rng.bytes(16)
+    secrets.add_delta("s1", delta)
+    secrets.add_labels("s1", label)
+    secrets.add_value(faults.NODE_METRES[0])
+    forms = faults.secret_forms(secrets)
+    kinds = " | ".join(forms.values())
+    for kind in ("as hex", "upper-case hex", "base64", "decimal", "bytes literal", "bit string", "bit array"):
+        assert kind in kinds
+    for form, what in forms.items():
+        log = tmp_path / "planted.jsonl"
+        log.write_text(f'{{"seq":1,"detail":"the peer said {form} and left"}}\n', encoding="utf-8")
+        found = faults.scan_for_secrets(secrets, [log])
+        assert what in {f.what for f in found}, what
+        assert all(form not in f.what for f in found)  # a finding names the secret, never shows it
+    # Base64 inside a longer base64 string, at every alignment, is found too.
+    for prefix in (b"", b"x", b"xy"):
+        blob = base64.b64encode(prefix + delta + b"tail").decode()
+        assert faults.scan_for_secrets(secrets, texts=[("blob", blob)])
+
+
+def test_no_line_written_during_the_fault_campaign_holds_a_label_a_delta_or_an_input_value(
+    campaign: faults.CampaignReport,
+) -> None:
+    assert campaign.findings == []
+    # What was searched for, and where: every session's Δ and labels, both schemes' figures, thousands of lines.
+    assert len(campaign.secrets.deltas) >= len(campaign.records) // 2
+    assert len(campaign.secrets.blocks) > 1000 and campaign.secrets.values >= set(faults.NODE_METRES)
+    assert campaign.figures["log_lines_scanned"] >= 10 * len(campaign.records)
