@@ -49,6 +49,11 @@ def _ephemeral_range() -> tuple[int, int]:
         return 32768, 60999  # Linux's default range (from memory)
 
 
+_HANDED_OUT: set[int] = (
+    set()
+)  # never hand the same port out twice in one process (two random picks can agree)
+
+
 def free_port(host: str = "127.0.0.1") -> int:
     """A TCP port on ``host`` that nothing listens on at this moment, chosen outside the ephemeral range.
 
@@ -57,7 +62,7 @@ def free_port(host: str = "127.0.0.1") -> int:
     taken by another listener. If none is found, the kernel's choice is returned.
     """
     low, high = _ephemeral_range()
-    candidates = [p for p in range(LOWEST_TRIAL_PORT, 65536) if not low <= p <= high]
+    candidates = [p for p in range(LOWEST_TRIAL_PORT, 65536) if not low <= p <= high and p not in _HANDED_OUT]
     rng = secrets.SystemRandom()
     for port in rng.sample(candidates, min(PORT_TRIES, len(candidates))):
         with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
@@ -65,10 +70,15 @@ def free_port(host: str = "127.0.0.1") -> int:
                 s.bind((host, port))
             except OSError:
                 continue
+            _HANDED_OUT.add(port)
             return port
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind((host, 0))
-        return int(s.getsockname()[1])
+    while True:
+        with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+            s.bind((host, 0))
+            port = int(s.getsockname()[1])
+        if port not in _HANDED_OUT:
+            _HANDED_OUT.add(port)
+            return port
 
 
 @dataclass(frozen=True)
