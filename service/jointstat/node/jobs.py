@@ -32,7 +32,8 @@ input cannot be read, or the node runs ``max_sessions`` sessions already. Every 
 is logged (``session_started`` then ``session_aborted``) and stored (``refused``) before the answer goes out.
 Otherwise the node builds its session, logs its start, tells the server to ``expect`` that session id from that
 peer's pinned certificate, answers *accepted*, and a task waits for the session's result and records it as
-above. A peer that never opens the accepted session is given ``CONNECT_TIMEOUT_S``.
+above. A peer that never opens the accepted session is given ``CONNECT_TIMEOUT_S`` or the session deadline, whichever
+is shorter.
 
 Results: the node's own outputs, decoded by the compiled manifest (``withheld`` and the named values, or
 nothing but ``withheld`` when the disclosure rule withheld them), are written as JSON to
@@ -858,10 +859,12 @@ class JobRunner:
     ) -> None:
         server = self.state.server
         assert server is not None
+        # The peer opens an accepted session at once; waiting longer than the session's own deadline is pointless.
+        wait_s = min(CONNECT_TIMEOUT_S, float(self.state.config.node.session_deadline_seconds))
         try:
-            done, _ = await asyncio.wait({future}, timeout=CONNECT_TIMEOUT_S)
+            done, _ = await asyncio.wait({future}, timeout=wait_s)
             if not done and server.withdraw(session.session_id):
-                detail = f"the peer did not open the accepted session within {CONNECT_TIMEOUT_S:g} s"
+                detail = f"the peer did not open the accepted session within {wait_s:g} s"
                 await _finish_despite_cancel(
                     self._close(a, run_id, tracker, "peer_never_connected", "self", detail)
                 )
