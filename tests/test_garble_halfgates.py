@@ -77,6 +77,18 @@ def test_the_two_labels_of_every_wire_differ_by_delta_and_have_opposite_signal_b
     assert ((zero[:, 0] ^ one[:, 0]) & 1 == 1).all()
 
 
+def fresh_pair(lc: LayeredCircuit, g_bits: np.ndarray, e_bits: np.ndarray) -> tuple[Garbler, Evaluator]:
+    """A garbler and an evaluator holding the input labels, before any table has been produced."""
+    garbler = Garbler(lc)
+    evaluator = Evaluator(
+        lc,
+        constant_labels=garbler.constant_labels(),
+        garbler_labels=garbler.input_labels(Party.GARBLER, g_bits),
+        evaluator_labels=garbler.input_labels(Party.EVALUATOR, e_bits),
+    )
+    return garbler, evaluator
+
+
 def _setup() -> tuple[Circuit, LayeredCircuit, np.ndarray, np.ndarray]:
     c = sample_circuit(lanes=4)
     rng = np.random.default_rng(5)
@@ -95,13 +107,7 @@ def test_wrong_decoding_bits_are_detected() -> None:
 
 def test_a_tampered_table_is_detected_at_decoding() -> None:
     _c, lc, g, e = _setup()
-    garbler = Garbler(lc)
-    evaluator = Evaluator(
-        lc,
-        constant_labels=garbler.constant_labels(),
-        garbler_labels=garbler.input_labels(Party.GARBLER, g),
-        evaluator_labels=garbler.input_labels(Party.EVALUATOR, e),
-    )
+    garbler, evaluator = fresh_pair(lc, g, e)
     stream = b"".join(garbler.tables())
     # Flip one bit in every ciphertext: whichever rows the evaluator's signal bits select, its labels go wrong.
     tampered = np.frombuffer(stream, dtype=np.uint8).copy()
@@ -123,13 +129,7 @@ def test_a_label_that_is_neither_valid_label_is_refused_by_the_garbler() -> None
 
 def test_table_streams_of_the_wrong_length_are_refused() -> None:
     _c, lc, g, e = _setup()
-    garbler = Garbler(lc)
-    evaluator = Evaluator(
-        lc,
-        constant_labels=garbler.constant_labels(),
-        garbler_labels=garbler.input_labels(Party.GARBLER, g),
-        evaluator_labels=garbler.input_labels(Party.EVALUATOR, e),
-    )
+    garbler, evaluator = fresh_pair(lc, g, e)
     stream = b"".join(garbler.tables())
     evaluator.feed(stream[:-40])
     with pytest.raises(GarbleError, match=r"table stream ended early: 2 of \d+ AND gates have no table"):
