@@ -14,7 +14,7 @@ from __future__ import annotations
 
 from typing import Literal
 
-import numpy as np
+from jointstat.circuit.bits import Bits, concat
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.library import blocks
 from jointstat.circuit.library.registry import (
@@ -34,14 +34,14 @@ class SpreadParameters(StatisticParameters):
     column: ColumnPair
 
 
-def tree_reduce(bld: Builder, keys: np.ndarray, take_larger: bool) -> np.ndarray:
+def tree_reduce(bld: Builder, keys: Bits, take_larger: bool) -> Bits:
     """The smallest (or largest) of the (n, w) unsigned keys, by a balanced tree of compare-and-select."""
     while keys.shape[0] > 1:
         half = keys.shape[0] // 2
         a, b = keys[:half], keys[half : 2 * half]
         a_larger = bld.greater_than(a, b)
         pick_b = a_larger if not take_larger else bld.not_(a_larger)
-        keys = np.concatenate([bld.select(pick_b, a, b), keys[2 * half :]], axis=0)
+        keys = concat([bld.select(pick_b, a, b), keys[2 * half :]], axis=0)
     return keys[0]
 
 
@@ -76,17 +76,17 @@ class Spread(Statistic):
     def build(self, ctx: BuildContext) -> StatisticResult:
         bld = ctx.builder
         names = self.column_names(self.params.column)  # type: ignore[attr-defined]
-        nums = blocks.align(*[ctx.table(p).number(names[p]) for p in Party])
-        keys = np.concatenate([blocks.order_key(bld, x) for x in nums], axis=0)
-        valid = np.concatenate([ctx.table(p).valid for p in Party])
+        nums = blocks.align(bld, *[ctx.table(p).number(names[p]) for p in Party])
+        keys = concat([blocks.order_key(bld, x) for x in nums], axis=0)
+        valid = concat([ctx.table(p).valid for p in Party])
         w = keys.shape[1]
-        ones = np.ones((keys.shape[0], w), dtype=np.int64)
-        zeros = np.zeros((keys.shape[0], w), dtype=np.int64)
+        ones = bld.ones((keys.shape[0], w))
+        zeros = bld.zeros((keys.shape[0], w))
         low = tree_reduce(bld, bld.select(valid, ones, keys), take_larger=False)
         high = tree_reduce(bld, bld.select(valid, zeros, keys), take_larger=True)
         count = blocks.count_bits(bld, valid)
         return StatisticResult(
-            {"spread": bld.sub(high, low), "count": Builder.extend(count, self.outputs()[1].width)},
+            {"spread": bld.sub(high, low), "count": bld.extend(count, self.outputs()[1].width)},
             count=count,
-            ok=np.asarray(blocks.at_least(bld, count, 1)),
+            ok=blocks.at_least(bld, count, 1),
         )

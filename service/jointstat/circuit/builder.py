@@ -1,258 +1,103 @@
-"""The lane-parallel circuit builder.
+"""The lane-parallel builder: word operations over ``Bits``, run against any backend.
 
 Theory of operation
 -------------------
-Values in the builder are numpy arrays of wire numbers. A *bit array* has any shape; a *word* is an array whose last
-axis holds its bits, least significant first, and whose leading axes are *lanes* (records, table rows, S-box
-positions…). Every operation acts on all lanes at once and emits its gates in bulk: ``xor(a, b)`` on two arrays of a
-million wires appends a million gates with a few numpy calls. A word operation loops in Python only over bit
-positions (at most the word width), never over lanes or gates.
+A statistic is written once, as a program over ``Bits`` values (``jointstat.circuit.bits``): a *word* is a value
+whose last axis holds its bits, least significant first, and whose leading axes are *lanes* (records, table rows,
+S-box positions…). Every operation here acts on all lanes at once and reduces to the backend's three primitives
+(``xor``, ``and_``, ``not_`` over whole arrays, see ``jointstat.circuit.backend``). A word operation loops in Python
+only over bit positions (at most the word width), never over lanes or gates, so an operation on a million lanes is
+a few batched calls — garbled, evaluated, evaluated in the clear or merely counted, depending on the backend.
 
-Constants are wires 0 and 1, and a constant's wire number is its value, so folding is a vectorised table lookup:
-``xor`` with 0 or ``and`` with 1 passes the other wire through, ``and`` with 0 gives 0, ``xor`` with 1 becomes a
-NOT, and ``xor(a, a)`` is 0. Adding a public constant therefore costs fewer AND gates than adding a secret.
+Public constants (``constant``, ``constant_word``, ``zeros``, ``ones``) fold: XOR with 0 or AND with 1 passes the
+other operand through, AND with 0 gives 0, XOR with 1 is a NOT. Adding or comparing with a public constant
+therefore costs fewer AND gates than with a secret.
 
 The AND counts of the word operations are the minimal ones for garbling with free XOR (Kolesnikov–Sadeghi–
 Schneider, CANS 2009): an n-bit adder with carry-out, a subtractor, a comparator and a multiplexer cost n AND gates
-each; addition modulo 2^n costs n − 1; equality costs n − 1.
-
-Storage: gate inputs go into two int32 columns in anonymous memory mappings that grow by doubling (``mremap``
-moves pages without copying), gate kinds are kept as runs (one per emission), and output wires are not stored at
-all — every emission takes the next consecutive wire numbers, so the output column is the complement of the input
-ranges and is rebuilt by ``build``. The finished circuit's in0/in1 arrays are the columns themselves, so a gate
-costs 13 bytes at the peak, as in the finished circuit. Every gate reads wires below the next free wire number
-(checked as it is emitted), so the builder's circuits are valid by construction; circuits of at most
-``VALIDATE_LIMIT`` gates are checked once more by ``Circuit.create``, larger ones (whose full check needs several
-times the circuit's memory) are assembled directly.
+each; addition modulo 2^n costs n − 1; equality costs n − 1. ``square`` uses that x_i ∧ x_i = x_i and
+x_i ∧ x_j = x_j ∧ x_i, so it needs only the n(n − 1)/2 cross products.
 """
 
 from __future__ import annotations
 
-import mmap
+from collections.abc import Callable, Sequence
 
 import numpy as np
 
-from jointstat.circuit.model import ONE_WIRE, WIRE_LIMIT, ZERO_WIRE, Circuit, CircuitError, GateKind, Party
-
-Wires = np.ndarray
-
-INITIAL_GATES = 1 << 12  # initial capacity of the gate-input columns; they double as needed
-VALIDATE_LIMIT = 1 << 24  # circuits up to this many gates are re-validated by Circuit.create in build()
+from jointstat.circuit.backend import Backend
+from jointstat.circuit.bits import Bits, broadcast, concat, stack
+from jointstat.circuit.model import CircuitError, Party
 
 
-class _Column:
-    """A growable int32 array in its own private anonymous memory mapping (a shared one cannot grow).
-
-    Growing doubles the mapping with ``mremap`` (``mmap.resize``), which moves pages without copying them, and
-    ``finish`` shrinks it to size and returns a view of it: the circuit's array *is* the storage the builder wrote,
-    so no memory is copied or touched twice (first touches of fresh pages dominate the cost of large arrays).
-    """
-
-    def __init__(self) -> None:
-        self._map = mmap.mmap(-1, INITIAL_GATES * 4, flags=mmap.MAP_PRIVATE | mmap.MAP_ANONYMOUS)
-        self.view = np.frombuffer(self._map, dtype=np.int32)
-        self.size = 0
-
-    def reserve(self, extra: int) -> None:
-        need = self.size + extra
-        capacity = self.view.shape[0]
-        if need <= capacity:
-            return
-        while capacity < need:
-            capacity *= 2
-        old = self.view
-        del self.view  # the mapping cannot move while a view of it exists
-        try:
-            del old
-            self._map.resize(capacity * 4)
-        except (OSError, SystemError, ValueError, BufferError):  # no mremap here: copy into a new mapping
-            fresh = mmap.mmap(-1, capacity * 4, flags=mmap.MAP_PRIVATE | mmap.MAP_ANONYMOUS)
-            np.frombuffer(fresh, dtype=np.int32)[: self.size] = np.frombuffer(self._map, dtype=np.int32)[
-                : self.size
-            ]
-            self._map = fresh
-        self.view = np.frombuffer(self._map, dtype=np.int32)
-
-    def finish(self) -> np.ndarray:
-        if self.size == 0:
-            return np.zeros(0, dtype=np.int32)
-        del self.view
-        self._map.resize(self.size * 4)
-        arr = np.frombuffer(self._map, dtype=np.int32)
-        self._map = None  # type: ignore[assignment]  # the array keeps the mapping alive
-        return arr
-
-
-def _wires(x: object) -> np.ndarray:
-    arr = np.asarray(x)
-    if arr.size and not np.issubdtype(arr.dtype, np.integer):
-        raise CircuitError(f"builder: expected wire numbers (integers), got dtype {arr.dtype}")
-    return arr.astype(np.int64, copy=False)
+def _word(x: Bits, what: str = "word") -> Bits:
+    if not isinstance(x, Bits):
+        raise CircuitError(f"builder: expected Bits for a {what}, got {type(x).__name__}")
+    if x.ndim == 0:
+        raise CircuitError(f"builder: a {what} needs a bit axis, got a single bit")
+    return x
 
 
 class Builder:
-    """Accumulates gates in bulk and produces a validated ``Circuit``."""
+    """Word operations over one backend (see the module docstring)."""
 
-    def __init__(self) -> None:
-        self._next = 2  # wires 0 and 1 are the constants
-        self._kinds: list[tuple[int, int]] = []  # (gate kind, count) per emission
-        self._in0 = _Column()
-        self._in1 = _Column()
-        self._gates = 0
-        self._input_ranges: list[tuple[int, int]] = []  # (first wire, count) of each input() call
-        self._inputs: dict[Party, list[np.ndarray]] = {p: [] for p in Party}
-        self._outputs: dict[Party, list[np.ndarray]] = {p: [] for p in Party}
-        self._output_count = {p: 0 for p in Party}
-        self.and_gates = 0
-        self._built = False
+    def __init__(self, backend: Backend) -> None:
+        self.backend = backend
 
+    # -- counts --------------------------------------------------------------------------------------------------
     @property
-    def gate_count(self) -> int:
-        """Gates emitted so far."""
-        return self._gates
+    def and_gates(self) -> int:
+        """AND gates of two secret operands so far (each costs a garbled table)."""
+        return self.backend.and_gates
 
-    # -- wires --------------------------------------------------------------------------------------------------
-    def _fresh(self, n: int) -> np.ndarray:
-        wires = np.arange(self._next, self._next + n, dtype=np.int64)
-        self._next += n
-        return wires
+    # -- inputs, outputs, constants ------------------------------------------------------------------------------
+    def input(self, party: Party, shape: int | tuple[int, ...]) -> Bits:
+        return self.backend.input(party, shape)
 
-    def input(self, party: Party, shape: int | tuple[int, ...]) -> Wires:
-        """New input wires of ``party`` in the given shape; their order (C order) is the party's input bit order."""
-        shape = (shape,) if isinstance(shape, int) else tuple(shape)
-        n = int(np.prod(shape, dtype=np.int64))
-        if self._built:
-            raise CircuitError("builder: the circuit has been built already; start a new Builder")
-        wires = self._fresh(n)
-        if n:
-            self._input_ranges.append((int(wires[0]), n))
-        self._inputs[Party(party)].append(wires)
-        return wires.reshape(shape)
+    def output(self, party: Party, bits: Bits) -> slice:
+        return self.backend.output(party, bits)
 
-    def output(self, party: Party, wires: object) -> slice:
-        """Mark ``wires`` (flattened in C order) as outputs of ``party``; returns their slice of its output bits."""
-        flat = _wires(wires).reshape(-1)
-        if flat.size and (flat.min() < 0 or flat.max() >= self._next):
-            raise CircuitError(f"builder: output wire out of range (0..{self._next - 1})")
-        start = self._output_count[Party(party)]
-        self._outputs[Party(party)].append(flat.copy())
-        self._output_count[Party(party)] += flat.size
-        return slice(start, start + flat.size)
+    def constant(self, bits: object) -> Bits:
+        """Public constant bits (0/1 values, any shape)."""
+        return self.backend.constant(bits)
 
-    @staticmethod
-    def constant(bits: object) -> Wires:
-        """Public constant bits (0/1 values) as wires: the constant's wire number is its value."""
-        arr = np.asarray(bits, dtype=np.int64)
-        if arr.size and (arr.min() < 0 or arr.max() > 1):
-            raise CircuitError("builder: constant bits must be 0 or 1")
-        return arr
-
-    def constant_word(self, values: object, width: int) -> Wires:
+    def constant_word(self, values: object, width: int) -> Bits:
         """Public integers (any shape; two's complement for negatives) as words of ``width`` bits."""
         vals = np.asarray(values, dtype=object)
-        flat = [int(v) & ((1 << width) - 1) for v in vals.reshape(-1)]
-        bits = np.array([[(v >> i) & 1 for i in range(width)] for v in flat], dtype=np.int64)
-        return bits.reshape(*vals.shape, width)
+        mask = (1 << width) - 1
+        flat = [int(v) & mask for v in vals.reshape(-1)]
+        bits = np.array([[(v >> i) & 1 for i in range(width)] for v in flat], dtype=np.uint8)
+        return self.backend.constant(bits.reshape(*vals.shape, width))
 
-    # -- gates --------------------------------------------------------------------------------------------------
-    def _emit(self, kind: GateKind, a: np.ndarray, b: np.ndarray | None) -> np.ndarray:
-        """Append gates reading ``a`` (and ``b``) — flat arrays of non-constant wires — and return their outputs."""
-        if self._built:
-            raise CircuitError("builder: the circuit has been built already; start a new Builder")
-        n = a.shape[0]
-        if not n:
-            return np.zeros(0, dtype=np.int64)
-        top = int(a.max()) if b is None else max(int(a.max()), int(b.max()))
-        if top >= self._next:
-            raise CircuitError(
-                f"builder: gate input wire {top} is not defined yet (wires are 0..{self._next - 1})"
-            )
-        if self._next + n >= WIRE_LIMIT:
-            raise CircuitError(f"builder: more than {WIRE_LIMIT} wires")
-        out = self._fresh(n)
-        self._kinds.append((int(kind), n))
-        at = self._gates
-        for column, src in ((self._in0, a), (self._in1, b)):
-            column.reserve(n)
-            if src is None:
-                column.view[at : at + n] = -1
-            else:
-                column.view[at : at + n] = src
-            column.size = at + n
-        self._gates += n
-        if kind == GateKind.AND:
-            self.and_gates += n
-        return out
+    def zeros(self, shape: int | tuple[int, ...]) -> Bits:
+        return self.backend.zeros(shape)
+
+    def ones(self, shape: int | tuple[int, ...]) -> Bits:
+        return self.backend.ones(shape)
 
     @staticmethod
-    def _flat_pair(a: object, b: object) -> tuple[np.ndarray, np.ndarray, tuple[int, ...]]:
-        a_arr, b_arr = _wires(a), _wires(b)
-        if a_arr.shape != b_arr.shape:
-            a_arr, b_arr = np.broadcast_arrays(a_arr, b_arr)
-        return a_arr.reshape(-1), b_arr.reshape(-1), a_arr.shape
+    def concat(parts: Sequence[Bits], axis: int = 0) -> Bits:
+        return concat(parts, axis)
 
     @staticmethod
-    def _no_folding(fa: np.ndarray, fb: np.ndarray) -> bool:
-        """True when no operand is a constant and no lane has equal operands: every lane becomes a gate."""
-        return bool(fa.size) and min(int(fa.min()), int(fb.min())) >= 2 and not np.any(fa == fb)
+    def stack(parts: Sequence[Bits], axis: int = 0) -> Bits:
+        return stack(parts, axis)
 
-    def not_(self, a: object) -> Wires:
-        a_arr = _wires(a)
-        flat = a_arr.reshape(-1)
-        if flat.size and int(flat.min()) >= 2:
-            return self._emit(GateKind.NOT, flat, None).reshape(a_arr.shape)
-        res = np.empty_like(flat)
-        const = flat < 2
-        res[const] = 1 - flat[const]
-        res[~const] = self._emit(GateKind.NOT, flat[~const], None)
-        return res.reshape(a_arr.shape)
+    # -- bits ----------------------------------------------------------------------------------------------------
+    def not_(self, a: Bits) -> Bits:
+        return self.backend.not_(a)
 
-    def xor(self, a: object, b: object) -> Wires:
-        fa, fb, shape = self._flat_pair(a, b)
-        if self._no_folding(fa, fb):
-            return self._emit(GateKind.XOR, fa, fb).reshape(shape)
-        res = np.empty(fa.shape, dtype=np.int64)
-        ca, cb = fa < 2, fb < 2
-        both = ca & cb
-        res[both] = fa[both] ^ fb[both]
-        pass_b = ca & ~cb & (fa == ZERO_WIRE)
-        pass_a = cb & ~ca & (fb == ZERO_WIRE)
-        res[pass_b] = fb[pass_b]
-        res[pass_a] = fa[pass_a]
-        same = ~ca & ~cb & (fa == fb)
-        res[same] = ZERO_WIRE
-        flip_b = ca & ~cb & (fa == ONE_WIRE)
-        flip_a = cb & ~ca & (fb == ONE_WIRE)
-        flips = flip_a | flip_b
-        if flips.any():
-            res[flips] = self.not_(np.where(flip_b, fb, fa)[flips])
-        gate = ~ca & ~cb & ~same
-        res[gate] = self._emit(GateKind.XOR, fa[gate], fb[gate])
-        return res.reshape(shape)
+    def xor(self, a: Bits, b: Bits) -> Bits:
+        return self.backend.xor(a, b)
 
-    def and_(self, a: object, b: object) -> Wires:
-        fa, fb, shape = self._flat_pair(a, b)
-        if self._no_folding(fa, fb):
-            return self._emit(GateKind.AND, fa, fb).reshape(shape)
-        res = np.empty(fa.shape, dtype=np.int64)
-        ca, cb = fa < 2, fb < 2
-        both = ca & cb
-        res[both] = fa[both] & fb[both]
-        only_a = ca & ~cb  # a constant: 0 → 0, 1 → b
-        res[only_a] = np.where(fa[only_a] == ONE_WIRE, fb[only_a], ZERO_WIRE)
-        only_b = cb & ~ca
-        res[only_b] = np.where(fb[only_b] == ONE_WIRE, fa[only_b], ZERO_WIRE)
-        same = ~ca & ~cb & (fa == fb)
-        res[same] = fa[same]
-        gate = ~ca & ~cb & ~same
-        res[gate] = self._emit(GateKind.AND, fa[gate], fb[gate])
-        return res.reshape(shape)
+    def and_(self, a: Bits, b: Bits) -> Bits:
+        return self.backend.and_(a, b)
 
-    def or_(self, a: object, b: object) -> Wires:
+    def or_(self, a: Bits, b: Bits) -> Bits:
         """a ∨ b = a ⊕ b ⊕ (a ∧ b): one AND gate per bit."""
         return self.xor(self.xor(a, b), self.and_(a, b))
 
-    def mux(self, select: object, if_zero: object, if_one: object) -> Wires:
+    def mux(self, select: Bits, if_zero: Bits, if_one: Bits) -> Bits:
         """``if_one`` where ``select`` is 1, else ``if_zero``: x ⊕ (s ∧ (x ⊕ y)), one AND gate per bit.
 
         ``select`` broadcasts against the others; for words give it shape (..., 1).
@@ -260,223 +105,205 @@ class Builder:
         diff = self.xor(if_zero, if_one)
         return self.xor(if_zero, self.and_(select, diff))
 
-    # -- reductions ---------------------------------------------------------------------------------------------
-    def reduce_and(self, bits: object, axis: int = -1) -> Wires:
+    # -- reductions ----------------------------------------------------------------------------------------------
+    def reduce_and(self, bits: Bits, axis: int = -1) -> Bits:
         """AND over an axis by a balanced tree: n − 1 AND gates, depth ⌈log2 n⌉."""
-        return self._tree(bits, axis, self.and_, ONE_WIRE)
+        return self._tree(bits, axis, self.and_, 1)
 
-    def reduce_or(self, bits: object, axis: int = -1) -> Wires:
+    def reduce_or(self, bits: Bits, axis: int = -1) -> Bits:
         """OR over an axis (De Morgan over ``reduce_and``): n − 1 AND gates."""
         return self.not_(self.reduce_and(self.not_(bits), axis))
 
-    def reduce_xor(self, bits: object, axis: int = -1) -> Wires:
-        return self._tree(bits, axis, self.xor, ZERO_WIRE)
+    def reduce_xor(self, bits: Bits, axis: int = -1) -> Bits:
+        return self._tree(bits, axis, self.xor, 0)
 
-    @staticmethod
-    def _tree(bits: object, axis: int, op: object, identity: int) -> Wires:
-        arr = np.moveaxis(_wires(bits), axis, -1)
+    def _tree(self, bits: Bits, axis: int, op: Callable[[Bits, Bits], Bits], identity: int) -> Bits:
+        arr = _word(bits, "bit array").moveaxis(axis, -1)
         if arr.shape[-1] == 0:
-            return np.full(arr.shape[:-1], identity, dtype=np.int64)
+            return self.zeros(arr.shape[:-1]) if identity == 0 else self.ones(arr.shape[:-1])
         while arr.shape[-1] > 1:
             half = arr.shape[-1] // 2
-            paired = op(arr[..., :half], arr[..., half : 2 * half])  # type: ignore[operator]
-            arr = np.concatenate([paired, arr[..., 2 * half :]], axis=-1)
+            paired = op(arr[..., :half], arr[..., half : 2 * half])
+            arr = concat([paired, arr[..., 2 * half :]], axis=-1) if arr.shape[-1] % 2 else paired
         return arr[..., 0]
 
-    # -- words: arithmetic -------------------------------------------------------------------------------------
+    # -- words: arithmetic ---------------------------------------------------------------------------------------
     @staticmethod
-    def _pair(x: object, y: object) -> tuple[np.ndarray, np.ndarray]:
-        xa, ya = _wires(x), _wires(y)
-        if xa.ndim == 0 or ya.ndim == 0 or xa.shape[-1] != ya.shape[-1]:
+    def _pair(x: Bits, y: Bits) -> tuple[Bits, Bits]:
+        xa, ya = _word(x), _word(y)
+        if xa.shape[-1] != ya.shape[-1]:
             raise CircuitError(
-                f"builder: words must have the same width, got {xa.shape[-1:]} and {ya.shape[-1:]} bits"
+                f"builder: words must have the same width, got {xa.shape[-1]} and {ya.shape[-1]} bits"
             )
-        xb, yb = np.broadcast_arrays(xa, ya)
+        xb, yb = broadcast(xa, ya)
         return xb, yb
 
-    def add_carry(self, x: object, y: object, carry_in: object = ZERO_WIRE) -> tuple[Wires, Wires]:
+    def _lanes(self, bit: Bits | int, lanes: tuple[int, ...]) -> Bits:
+        b = (self.zeros(()) if bit == 0 else self.ones(())) if isinstance(bit, int) else bit
+        return b if b.shape == lanes else b.broadcast_to(lanes)
+
+    def add_carry(self, x: Bits, y: Bits, carry_in: Bits | int = 0) -> tuple[Bits, Bits]:
         """Ripple-carry x + y + carry_in: (sum of the same width, carry out). n AND gates for n bits.
 
         Per bit: s = x ⊕ y ⊕ c and c' = c ⊕ ((x ⊕ c) ∧ (y ⊕ c)) (Kolesnikov–Sadeghi–Schneider 2009).
         """
         xa, ya = self._pair(x, y)
         n = xa.shape[-1]
-        carry = np.broadcast_to(_wires(carry_in), xa.shape[:-1]).astype(np.int64)
-        total = np.empty(xa.shape, dtype=np.int64)
+        carry = self._lanes(carry_in, xa.shape[:-1])
+        total: list[Bits] = []
         for i in range(n):
             xi, yi = xa[..., i], ya[..., i]
             xc = self.xor(xi, carry)
-            total[..., i] = self.xor(xc, yi)
+            total.append(self.xor(xc, yi))
             carry = self.xor(carry, self.and_(xc, self.xor(yi, carry)))
-        return total, carry
+        if not total:
+            return xa, carry
+        return stack(total, axis=-1), carry
 
-    def add(self, x: object, y: object, carry_in: object = ZERO_WIRE) -> Wires:
+    def add(self, x: Bits, y: Bits, carry_in: Bits | int = 0) -> Bits:
         """x + y (+ carry_in) modulo 2^n: n − 1 AND gates (the last carry is not computed)."""
         xa, ya = self._pair(x, y)
         n = xa.shape[-1]
         if n == 0:
-            return xa.copy()
+            return xa
+        if n == 1:
+            return self.xor(self.xor(xa, ya), self._lanes(carry_in, xa.shape[:-1])[..., None])
         low, carry = self.add_carry(xa[..., : n - 1], ya[..., : n - 1], carry_in)
         top = self.xor(self.xor(xa[..., n - 1], ya[..., n - 1]), carry)
-        return np.concatenate([low, top[..., None]], axis=-1)
+        return concat([low, top[..., None]], axis=-1)
 
-    def sub(self, x: object, y: object) -> Wires:
+    def sub(self, x: Bits, y: Bits) -> Bits:
         """x − y modulo 2^n, as x + ¬y + 1: n − 1 AND gates."""
-        return self.add(x, self.not_(y), ONE_WIRE)
+        return self.add(x, self.not_(y), 1)
 
-    def sub_borrow(self, x: object, y: object) -> tuple[Wires, Wires]:
+    def sub_borrow(self, x: Bits, y: Bits) -> tuple[Bits, Bits]:
         """(x − y modulo 2^n, x ≥ y as unsigned): n AND gates."""
-        return self.add_carry(x, self.not_(y), ONE_WIRE)
+        return self.add_carry(x, self.not_(y), 1)
 
-    def neg(self, x: object) -> Wires:
+    def neg(self, x: Bits) -> Bits:
         """−x modulo 2^n (two's complement)."""
-        xa = _wires(x)
-        return self.sub(np.zeros_like(xa), xa)
+        xa = _word(x)
+        return self.sub(self.zeros(xa.shape), xa)
 
-    def _carry_only(self, x: np.ndarray, y: np.ndarray, carry: object) -> Wires:
-        c = np.broadcast_to(_wires(carry), x.shape[:-1]).astype(np.int64)
+    def _carry_only(self, x: Bits, y: Bits, carry: Bits | int) -> Bits:
+        c = self._lanes(carry, x.shape[:-1])
         for i in range(x.shape[-1]):
             xi, yi = x[..., i], y[..., i]
             c = self.xor(c, self.and_(self.xor(xi, c), self.xor(yi, c)))
         return c
 
-    def greater_equal(self, x: object, y: object, *, signed: bool = False) -> Wires:
+    def _flip_sign(self, x: Bits) -> Bits:
+        return concat([x[..., :-1], self.not_(x[..., -1:])], axis=-1)
+
+    def greater_equal(self, x: Bits, y: Bits, *, signed: bool = False) -> Bits:
         """x ≥ y: the carry out of x + ¬y + 1, n AND gates; signed words compare with their sign bits flipped."""
         xa, ya = self._pair(x, y)
         if signed and xa.shape[-1]:
-            xa = np.concatenate([xa[..., :-1], self.not_(xa[..., -1:])], axis=-1)
-            ya = np.concatenate([ya[..., :-1], self.not_(ya[..., -1:])], axis=-1)
-        return self._carry_only(xa, self.not_(ya), ONE_WIRE)
+            xa, ya = self._flip_sign(xa), self._flip_sign(ya)
+        return self._carry_only(xa, self.not_(ya), 1)
 
-    def less_than(self, x: object, y: object, *, signed: bool = False) -> Wires:
+    def less_than(self, x: Bits, y: Bits, *, signed: bool = False) -> Bits:
         """x < y: n AND gates."""
         return self.not_(self.greater_equal(x, y, signed=signed))
 
-    def greater_than(self, x: object, y: object, *, signed: bool = False) -> Wires:
+    def greater_than(self, x: Bits, y: Bits, *, signed: bool = False) -> Bits:
         return self.less_than(y, x, signed=signed)
 
-    def less_equal(self, x: object, y: object, *, signed: bool = False) -> Wires:
+    def less_equal(self, x: Bits, y: Bits, *, signed: bool = False) -> Bits:
         return self.greater_equal(y, x, signed=signed)
 
-    def equal(self, x: object, y: object) -> Wires:
+    def equal(self, x: Bits, y: Bits) -> Bits:
         """x = y: the AND of the bitwise XNORs, n − 1 AND gates."""
         xa, ya = self._pair(x, y)
         return self.reduce_and(self.not_(self.xor(xa, ya)), axis=-1)
 
-    def is_zero(self, x: object) -> Wires:
+    def is_zero(self, x: Bits) -> Bits:
         return self.not_(self.reduce_or(x, axis=-1))
 
-    def select(self, select: object, if_zero: object, if_one: object) -> Wires:
+    def select(self, select: Bits, if_zero: Bits, if_one: Bits) -> Bits:
         """Word multiplexer: ``select`` has the lane shape; one AND gate per bit."""
-        return self.mux(_wires(select)[..., None], if_zero, if_one)
+        return self.mux(select[..., None], if_zero, if_one)
 
-    def min_max(self, x: object, y: object, *, signed: bool = False) -> tuple[Wires, Wires]:
+    def min_max(self, x: Bits, y: Bits, *, signed: bool = False) -> tuple[Bits, Bits]:
         """(min, max) of two words per lane: a comparator and one shared multiplexer, 2n AND gates."""
         xa, ya = self._pair(x, y)
         swap = self.greater_than(xa, ya, signed=signed)[..., None]
         delta = self.and_(swap, self.xor(xa, ya))
         return self.xor(xa, delta), self.xor(ya, delta)
 
-    def multiply(self, x: object, y: object, *, width: int | None = None, signed: bool = False) -> Wires:
+    def multiply(self, x: Bits, y: Bits, *, width: int | None = None, signed: bool = False) -> Bits:
         """x · y modulo 2^width (default: the operands' width) by schoolbook shift-and-add.
 
         Signed operands are sign-extended to ``width`` first, so the low ``width`` bits are the two's-complement
         product. Costs about width² AND gates for the partial products and the additions.
         """
         xa, ya = self._pair(x, y)
-        n = xa.shape[-1]
-        w = n if width is None else int(width)
+        w = xa.shape[-1] if width is None else int(width)
         xa, ya = self.extend(xa, w, signed=signed), self.extend(ya, w, signed=signed)
-        acc = np.zeros(xa.shape, dtype=np.int64)
-        for j in range(w):
+        acc = self.and_(xa, ya[..., 0:1])
+        for j in range(1, w):
             partial = self.and_(xa[..., : w - j], ya[..., j : j + 1])
-            if j == 0:
-                acc = partial
-            else:
-                high = self.add(acc[..., j:], partial)
-                acc = np.concatenate([acc[..., :j], high], axis=-1)
+            high = self.add(acc[..., j:], partial)
+            acc = concat([acc[..., :j], high], axis=-1)
         return acc
 
-    # -- words: free rewiring -----------------------------------------------------------------------------------
-    @staticmethod
-    def extend(x: object, width: int, *, signed: bool = False) -> Wires:
+    def square(self, x: Bits) -> Bits:
+        """x² of an unsigned n-bit word, 2n bits: n(n − 1)/2 cross products and the additions of their rows.
+
+        x² = Σ_i x_i·2^(2i) + Σ_{i<j} x_i x_j·2^(i+j+1), since x_i ∧ x_i = x_i and the cross products come in pairs.
+        Row i (i = 0 … n − 2) holds the products x_i ∧ x_j for j > i at weights i + j + 1; the diagonal word is free.
+        """
+        xa = _word(x)
+        n = xa.shape[-1]
+        lanes = xa.shape[:-1]
+        zero = self.zeros((*lanes, 1))
+        diag: list[Bits] = []
+        for i in range(n):
+            diag += [xa[..., i : i + 1], zero]
+        acc = concat(diag, axis=-1) if diag else self.zeros((*lanes, 0))
+        for i in range(n - 1):
+            row = self.and_(xa[..., i + 1 :], xa[..., i : i + 1])  # weights 2i + 2 … i + n
+            low = 2 * i + 2
+            total, carry = self.add_carry(acc[..., low : low + row.shape[-1]], row)
+            upper = acc[..., low + row.shape[-1] :]
+            if upper.shape[-1]:
+                upper = self.add(upper, concat([carry[..., None], self.zeros((*lanes, upper.shape[-1] - 1))], -1))
+            acc = concat([acc[..., :low], total, upper], axis=-1)
+        return acc
+
+    # -- words: free rewiring ------------------------------------------------------------------------------------
+    def extend(self, x: Bits, width: int, *, signed: bool = False) -> Bits:
         """Zero- or sign-extend (or truncate) words to ``width`` bits; free."""
-        xa = _wires(x)
+        xa = _word(x)
         n = xa.shape[-1]
         if width <= n:
-            return xa[..., :width].copy()
-        fill = np.broadcast_to(xa[..., -1:] if signed and n else ZERO_WIRE, (*xa.shape[:-1], width - n))
-        return np.concatenate([xa, fill], axis=-1)
+            return xa[..., :width]
+        if signed and n:
+            fill = xa[..., -1:].broadcast_to((*xa.shape[:-1], width - n))
+        else:
+            fill = self.zeros((*xa.shape[:-1], width - n))
+        return concat([xa, fill], axis=-1)
 
-    @staticmethod
-    def shift_left(x: object, k: int) -> Wires:
-        xa = _wires(x)
+    def shift_left(self, x: Bits, k: int) -> Bits:
+        xa = _word(x)
         n = xa.shape[-1]
         k = min(k, n)
-        return np.concatenate([np.zeros((*xa.shape[:-1], k), dtype=np.int64), xa[..., : n - k]], axis=-1)
+        return concat([self.zeros((*xa.shape[:-1], k)), xa[..., : n - k]], axis=-1)
 
-    @staticmethod
-    def shift_right(x: object, k: int, *, signed: bool = False) -> Wires:
-        xa = _wires(x)
+    def shift_right(self, x: Bits, k: int, *, signed: bool = False) -> Bits:
+        xa = _word(x)
         n = xa.shape[-1]
         k = min(k, n)
-        fill = np.broadcast_to(xa[..., -1:] if signed and n else ZERO_WIRE, (*xa.shape[:-1], k))
-        return np.concatenate([xa[..., k:], fill], axis=-1)
+        if signed and n:
+            fill = xa[..., -1:].broadcast_to((*xa.shape[:-1], k))
+        else:
+            fill = self.zeros((*xa.shape[:-1], k))
+        return concat([xa[..., k:], fill], axis=-1)
 
     @staticmethod
-    def rotate_left(x: object, k: int) -> Wires:
-        return np.roll(_wires(x), k, axis=-1)
+    def rotate_left(x: Bits, k: int) -> Bits:
+        return _word(x).roll(k, axis=-1)
 
     @staticmethod
-    def rotate_right(x: object, k: int) -> Wires:
-        return np.roll(_wires(x), -k, axis=-1)
-
-    # -- result -------------------------------------------------------------------------------------------------
-    def build(self) -> Circuit:
-        """The circuit of everything emitted (its gate-input arrays are the builder's own columns)."""
-        if self._built:
-            raise CircuitError("builder: the circuit has been built already; start a new Builder")
-        self._built = True
-        g = self._gates
-        kinds = np.empty(g, dtype=np.uint8)
-        pos = 0
-        for kind, n in self._kinds:
-            kinds[pos : pos + n] = kind
-            pos += n
-        self._kinds.clear()
-        out = self._output_wires(g)
-
-        in0 = self._in0.finish()
-        in1 = self._in1.finish()
-
-        def wires(parts: list[np.ndarray]) -> np.ndarray:
-            arr = np.concatenate(parts).astype(np.int64, copy=False) if parts else np.zeros(0, dtype=np.int64)
-            parts.clear()
-            return arr
-
-        inputs = {p: wires(self._inputs[p]) for p in Party}
-        outputs = {p: wires(self._outputs[p]) for p in Party}
-        if g <= VALIDATE_LIMIT:
-            return Circuit.create(
-                n_wires=self._next, kinds=kinds, in0=in0, in1=in1, out=out, inputs=inputs, outputs=outputs
-            )
-        # Valid by construction (see the module docstring); the full check would need several times the memory.
-        return Circuit(
-            n_wires=self._next, kinds=kinds, in0=in0, in1=in1, out=out, inputs=inputs, outputs=outputs
-        )
-
-    def _output_wires(self, g: int) -> np.ndarray:
-        """Gate output wires in emission order: every wire from 2 up that no input() call took."""
-        out = np.empty(g, dtype=np.int32)
-        at, wire = 0, 2
-        step = 1 << 22
-        for first, n in [*self._input_ranges, (self._next, 0)]:
-            while wire < first:
-                take = min(step, first - wire)
-                out[at : at + take] = np.arange(wire, wire + take, dtype=np.int32)
-                at += take
-                wire += take
-            wire = first + n
-        if at != g:
-            raise CircuitError(f"builder: internal inconsistency: {at} gate outputs for {g} gates")
-        return out
+    def rotate_right(x: Bits, k: int) -> Bits:
+        return _word(x).roll(-k, axis=-1)

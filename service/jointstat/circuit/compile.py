@@ -1,25 +1,29 @@
-"""Manifest → compiled statistic: the circuit, each party's input and output layout, decoding, and the digest.
+"""Manifest → compiled statistic: the program, each party's input and output layout, decoding, and the digest.
 
 Theory of operation
 -------------------
-Both parties compile the same manifest to the same circuit: everything that shapes it (capacities, column types,
-the statistic's parameters, who receives what) is public and in the manifest; the true row counts are secret and
-enter only as validity bits.
+Both parties compile the same manifest to the same *program* (``program(bld)``): everything that shapes it
+(capacities, column types, the statistic's parameters, who receives what) is public and in the manifest; the true
+row counts are secret and enter only as validity bits. The program is never turned into a gate list: each party
+runs it against its backend (garbler, evaluator, plain, count), see ``jointstat.circuit.backend``.
 
 Inputs of a party, in this order (the encoder in ``jointstat.circuit.inputs`` produces exactly this layout):
 the validity bit of each of its ``capacity`` rows, then for each column the statistic reads, in the order the
 table declares them, ``capacity`` rows × the column's bits, row by row, each value least significant bit first.
 
-The statistic builds its results (``library.registry``); the compiler then applies the disclosure rule inside the
-circuit: allow = ok ∧ (count ≥ min_count), every result bit is ANDed with allow, and withheld = ¬allow. A party's
-outputs are its ``withheld`` bit followed by the outputs the manifest gives it, in the order listed, each value
-least significant bit first. ``decode`` turns a party's output bits into named Python values (integers, floats for
-fixed-point outputs, booleans for flags, strings for choices), or ``None`` everywhere but ``withheld`` when the
-result was withheld.
+The statistic builds its results (``library.registry``); the program then applies the disclosure rule: allow =
+ok ∧ (count ≥ min_count), every result bit is ANDed with allow, and withheld = ¬allow. A party's outputs are its
+``withheld`` bit followed by the outputs the manifest gives it, in the order listed, each value least significant
+bit first. ``decode`` turns a party's output bits into named Python values (integers, floats for fixed-point
+outputs, booleans for flags, strings for choices), or ``None`` everywhere but ``withheld`` when the result was
+withheld.
 
-Digest: SHA-256 (FIPS 180-4) over "jointstat.manifest.v1\\n", the manifest's canonical JSON (RFC 8785 style, see
-``manifest.canonical_json``), a zero byte and the circuit's digest (``Circuit.digest``). Both nodes compare it
-before anything secret moves; the same file gives the same digest on any machine and any run.
+Size and digest: ``size()`` runs the program once on the count backend (gates, inputs, outputs, and the SHA-256
+of the program's structure: every gate batch, input and output in order). ``digest`` is SHA-256 (FIPS 180-4) over
+"jointstat.manifest.v2\\n", the manifest's canonical JSON (RFC 8785 style, see ``manifest.canonical_json``), a zero
+byte and that structure digest. Both nodes compare it before anything secret moves; the same file gives the same
+digest on any machine and any run of the same program version, and two programs that would meet their AND gates
+in a different order cannot share it.
 """
 
 from __future__ import annotations
@@ -31,9 +35,10 @@ from typing import Any
 
 import numpy as np
 
+from jointstat.circuit.backend import CountBackend, PlainBackend
+from jointstat.circuit.bits import Bits
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.encode import bits_to_int
-from jointstat.circuit.layers import LayeredCircuit, schedule
 from jointstat.circuit.library import blocks
 from jointstat.circuit.library.registry import (
     ROLES,
@@ -46,9 +51,9 @@ from jointstat.circuit.library.registry import (
     statistic_for,
 )
 from jointstat.circuit.manifest import Manifest
-from jointstat.circuit.model import ONE_WIRE, Circuit, Party
+from jointstat.circuit.model import CircuitError, Party
 
-DIGEST_DOMAIN = b"jointstat.manifest.v1\n"
+DIGEST_DOMAIN = b"jointstat.manifest.v2\n"
 WITHHELD = "withheld"
 
 
@@ -92,26 +97,136 @@ class OutputField:
         return self.spec.name
 
 
+@dataclass(frozen=True)
+class ProgramSize:
+    """What the count backend measured of a program (see ``CountBackend.counts``) and its structure digest."""
+
+    and_gates: int
+    xor_gates: int
+    not_gates: int
+    and_calls: int
+    and_depth: int
+    inputs: dict[Party, int]
+    outputs: dict[Party, int]
+    structure: bytes
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    def summary(self) -> dict[str, int]:
+        return {
+            "and_gates": self.and_gates,
+            "xor_gates": self.xor_gates,
+            "not_gates": self.not_gates,
+            "and_calls": self.and_calls,
+            "and_depth": self.and_depth,
+            "garbler_inputs": self.inputs[Party.GARBLER],
+            "evaluator_inputs": self.inputs[Party.EVALUATOR],
+            "garbler_outputs": self.outputs[Party.GARBLER],
+            "evaluator_outputs": self.outputs[Party.EVALUATOR],
+        }
+
+
+def measure(program: Any) -> ProgramSize:
+    """Run ``program(bld)`` on the count backend: gate counts, inputs, outputs and structure digest."""
+    backend = CountBackend()
+    extra = program(Builder(backend))
+    c = backend.counts()
+    return ProgramSize(
+        and_gates=c["and_gates"],
+        xor_gates=c["xor_gates"],
+        not_gates=c["not_gates"],
+        and_calls=c["and_calls"],
+        and_depth=c["and_depth"],
+        inputs=dict(backend.inputs_used),
+        outputs=dict(backend.outputs_given),
+        structure=backend.structure_digest(),
+        extra=dict(extra) if isinstance(extra, dict) else {},
+    )
+
+
 @dataclass
 class CompiledStatistic:
     manifest: Manifest
     statistic: Statistic
-    circuit: Circuit
     inputs: dict[Party, InputLayout]
     outputs: dict[Party, tuple[OutputField, ...]]
-    extra: dict[str, Any] = field(default_factory=dict)
+    _size: list[ProgramSize] = field(default_factory=list, repr=False)
 
-    @cached_property
-    def layered(self) -> LayeredCircuit:
-        return schedule(self.circuit)
+    # -- the program ------------------------------------------------------------------------------------------
+    def program(self, bld: Builder) -> dict[str, Any]:
+        """The whole job as a program: inputs in layout order, the statistic, the disclosure gate, the outputs.
+
+        Returns the statistic's extra figures (comparators, merge size…) for tests and benchmarks.
+        """
+        manifest, stat = self.manifest, self.statistic
+        tables: dict[Party, TableWires] = {}
+        for party in Party:
+            layout = self.inputs[party]
+            table = manifest.table(party)
+            valid = bld.input(party, table.capacity)
+            cols = {f.name: bld.input(party, (f.rows, f.width)) for f in layout.fields[1:]}
+            tables[party] = TableWires(
+                party, table.capacity, valid, cols, {c.name: c for c in table.columns if c.name in cols}
+            )
+        wanted = frozenset(manifest.outputs.garbler) | frozenset(manifest.outputs.evaluator)
+        min_count = manifest.disclosure.min_count
+        ctx = BuildContext(bld, manifest, tables, wanted, needs_count=min_count > 0)
+        result: StatisticResult = stat.build(ctx)
+        allow = bld.ones(()) if result.ok is None else result.ok
+        if min_count > 0:
+            if result.count is None:
+                raise ValueError(
+                    f"statistic {stat.name!r} gives no count, so the disclosure rule cannot be applied"
+                )
+            allow = bld.and_(allow, blocks.at_least(bld, result.count, min_count))
+        withheld = bld.not_(allow)
+        gated: dict[str, Bits] = {}
+        for party in Party:
+            fields = self.outputs[party]
+            if fields:
+                bld.output(party, withheld.reshape(1))
+            for f in fields[1:]:
+                spec = f.spec
+                wires = result.values[f.name]
+                if wires.shape != (*spec.shape, spec.width):
+                    raise CircuitError(
+                        f"statistic {stat.name!r} output {f.name!r}: built {wires.shape},"
+                        f" declared {(*spec.shape, spec.width)}"
+                    )
+                if f.name not in gated:
+                    gated[f.name] = blocks.gate(bld, wires, allow)
+                bld.output(party, gated[f.name])
+        return dict(result.extra)
+
+    def size(self) -> ProgramSize:
+        """The program measured on the count backend (computed once)."""
+        if not self._size:
+            self._size.append(measure(self.program))
+        return self._size[0]
+
+    @property
+    def extra(self) -> dict[str, Any]:
+        return self.size().extra
+
+    def n_inputs(self, party: Party) -> int:
+        return self.inputs[Party(party)].bits
+
+    def n_outputs(self, party: Party) -> int:
+        return sum(f.spec.bits for f in self.outputs[Party(party)])
+
+    def run_plain(self, inputs: dict[Party, np.ndarray]) -> dict[Party, np.ndarray]:
+        """Evaluate in the clear on each party's input bits (the reference answer): each party's output bits."""
+        backend = PlainBackend(inputs)
+        self.program(Builder(backend))
+        backend.check_inputs_used()
+        return {p: backend.outputs(p) for p in Party}
 
     @cached_property
     def digest(self) -> str:
-        """Hex SHA-256 over the domain, the manifest's canonical JSON and the circuit digest (module docstring)."""
+        """Hex SHA-256 over the domain, the manifest's canonical JSON and the program's structure digest."""
         h = hashlib.sha256(DIGEST_DOMAIN)
         h.update(self.manifest.canonical())
         h.update(b"\0")
-        h.update(self.circuit.digest())
+        h.update(self.size().structure)
         return h.hexdigest()
 
     def decode(self, party: Party, bits: object) -> dict[str, Any]:
@@ -168,57 +283,20 @@ def input_layout(manifest: Manifest, party: Party, needs: TableNeeds) -> InputLa
 
 
 def compile_manifest(manifest: Manifest) -> CompiledStatistic:
-    """Build the statistic's circuit (see the module docstring for the layouts)."""
+    """The statistic's program and layouts (see the module docstring); nothing runs until it is used."""
     stat = statistic_for(manifest)
     needs = stat.needs()
-    bld = Builder()
-    layouts: dict[Party, InputLayout] = {}
-    tables: dict[Party, TableWires] = {}
-    for party in Party:
-        layout = input_layout(manifest, party, needs[party])
-        table = manifest.table(party)
-        valid = bld.input(party, table.capacity)
-        cols = {}
-        for f in layout.fields[1:]:
-            cols[f.name] = bld.input(party, (f.rows, f.width))
-        layouts[party] = layout
-        tables[party] = TableWires(
-            party, table.capacity, valid, cols, {c.name: c for c in table.columns if c.name in cols}
-        )
-    wanted = frozenset(manifest.outputs.garbler) | frozenset(manifest.outputs.evaluator)
-    min_count = manifest.disclosure.min_count
-    ctx = BuildContext(bld, manifest, tables, wanted, needs_count=min_count > 0)
-    result: StatisticResult = stat.build(ctx)
-    allow = np.asarray(ONE_WIRE if result.ok is None else result.ok, dtype=np.int64)
-    if min_count > 0:
-        if result.count is None:
-            raise ValueError(
-                f"statistic {stat.name!r} gives no count, so the disclosure rule cannot be applied"
-            )
-        allow = bld.and_(allow, blocks.at_least(bld, result.count, min_count))
-    withheld = bld.not_(allow)
+    layouts = {party: input_layout(manifest, party, needs[party]) for party in Party}
     specs = {s.name: s for s in stat.outputs()}
     outputs: dict[Party, tuple[OutputField, ...]] = {}
-    gated: dict[str, np.ndarray] = {}
     for party in Party:
         names = manifest.outputs.garbler if party == Party.GARBLER else manifest.outputs.evaluator
         fields: list[OutputField] = []
         if names:
-            bld.output(party, np.atleast_1d(withheld))
             fields.append(OutputField(OutputSpec(WITHHELD, 1, description="1 when results are withheld"), 0))
         offset = 1 if names else 0
         for name in names:
-            spec = specs[name]
-            wires = np.asarray(result.values[name], dtype=np.int64)
-            if wires.shape != (*spec.shape, spec.width):
-                raise ValueError(
-                    f"statistic {stat.name!r} output {name!r}: built {wires.shape}, declared {(*spec.shape, spec.width)}"
-                )
-            if name not in gated:
-                gated[name] = blocks.gate(bld, wires, allow)
-            bld.output(party, gated[name])
-            fields.append(OutputField(spec, offset))
-            offset += spec.bits
+            fields.append(OutputField(specs[name], offset))
+            offset += specs[name].bits
         outputs[party] = tuple(fields)
-    circuit = bld.build()
-    return CompiledStatistic(manifest, stat, circuit, layouts, outputs, dict(result.extra))
+    return CompiledStatistic(manifest, stat, layouts, outputs)

@@ -1,5 +1,7 @@
-"""Half-gates garbling and evaluation over the layer schedule (see ``halfgates``)."""
+"""Garbling: the half-gates AND scheme, output decoding, and the garbler's and evaluator's backends."""
 
-from jointstat.garble.halfgates import Evaluator, GarbleError, Garbler, OutputDecoding
+from jointstat.garble.backends import EvaluatorBackend, GarblerBackend
+from jointstat.garble.halfgates import GarbleError, HalfGates
+from jointstat.garble.outputs import OutputDecoding
 
-__all__ = ["Evaluator", "GarbleError", "Garbler", "OutputDecoding"]
+__all__ = ["EvaluatorBackend", "GarbleError", "GarblerBackend", "HalfGates", "OutputDecoding"]

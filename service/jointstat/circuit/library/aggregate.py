@@ -26,6 +26,7 @@ from typing import Annotated, Literal
 
 import numpy as np
 
+from jointstat.circuit.bits import Bits, concat
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.library import blocks
 from jointstat.circuit.library.blocks import Number
@@ -38,7 +39,7 @@ from jointstat.circuit.library.registry import (
     register_statistic,
 )
 from jointstat.circuit.manifest import ColumnPair, Problem, StatisticParameters, _between
-from jointstat.circuit.model import ONE_WIRE, Party
+from jointstat.circuit.model import Party
 
 MEASURES = ("count", "sum", "mean", "variance")
 
@@ -154,19 +155,21 @@ class _Aggregate(Statistic):
             if self.p.where is not None:
                 flag = bld.and_(flag, t.bits(self.column_names(self.p.where)[party])[:, 0])
             counts.append(flag)
-        flags = np.concatenate(counts)
-        n = fit(blocks.count_bits(bld, flags), specs["count"].width)
-        values: dict[str, np.ndarray] = {"count": n}
-        ok = ONE_WIRE
+        flags = concat(counts)
+        n = fit(bld, blocks.count_bits(bld, flags), specs["count"].width)
+        values: dict[str, Bits] = {"count": n}
+        ok = bld.ones(())
         if self.level == 0:
             return StatisticResult(values, count=n)
         assert self.p.column is not None
         names = self.column_names(self.p.column)
-        nums = blocks.align(*[ctx.table(party).number(names[party]) for party in Party])
-        x = Number(np.concatenate([v.wires for v in nums], axis=0), nums[0].signed, nums[0].frac)
+        nums = blocks.align(bld, *[ctx.table(party).number(names[party]) for party in Party])
+        x = Number(concat([v.wires for v in nums], axis=0), nums[0].signed, nums[0].frac)
         masked = bld.and_(x.wires, flags[:, None])
         s = Number(
-            fit(blocks.tree_sum(bld, masked, signed=x.signed), specs["sum"].width, x.signed), x.signed, x.frac
+            fit(bld, blocks.tree_sum(bld, masked, signed=x.signed), specs["sum"].width, x.signed),
+            x.signed,
+            x.frac,
         )
         values["sum"] = s.wires
         e = self.p.precision_bits
@@ -174,23 +177,21 @@ class _Aggregate(Statistic):
         if "mean" in wanted:
             ok = blocks.at_least(bld, n, 1)
             mean = blocks.divide_fixed(bld, s, n, e, result_bits=specs["mean"].width)
-            values["mean"] = fit(mean.wires, specs["mean"].width, x.signed)
+            values["mean"] = fit(bld, mean.wires, specs["mean"].width, x.signed)
         if "variance" in wanted:
             ok = blocks.at_least(bld, n, 2 if self.p.sample else 1)
             values["variance"] = self._variance(bld, x, masked, s, n, specs["variance"].width)
-        return StatisticResult(values, count=n, ok=np.asarray(ok))
+        return StatisticResult(values, count=n, ok=ok)
 
-    def _variance(
-        self, bld: Builder, x: Number, masked: np.ndarray, s: Number, n: np.ndarray, width: int
-    ) -> np.ndarray:
+    def _variance(self, bld: Builder, x: Number, masked: Bits, s: Number, n: Bits, width: int) -> Bits:
         mag, _ = blocks.magnitude(bld, x.with_wires(masked))
-        squares = blocks.multiply_full(bld, mag, mag)
+        squares = bld.square(mag)
         q = blocks.tree_sum(bld, squares)
         nq = blocks.multiply_full(bld, q, n)
         s_mag, _ = blocks.magnitude(bld, s)
-        s2 = blocks.multiply_full(bld, s_mag, s_mag)
+        s2 = bld.square(s_mag)
         wv = max(nq.shape[-1], s2.shape[-1])
-        numerator = bld.sub(Builder.extend(nq, wv), Builder.extend(s2, wv))
+        numerator = bld.sub(bld.extend(nq, wv), bld.extend(s2, wv))
         if self.p.sample:
             den = blocks.multiply_full(bld, n, bld.sub(n, bld.constant_word(1, n.shape[-1])))
         else:
@@ -198,12 +199,12 @@ class _Aggregate(Statistic):
         var = blocks.divide_fixed(
             bld, Number(numerator, False, 2 * x.frac), den, self.p.precision_bits, width
         )
-        return fit(var.wires, width)
+        return fit(bld, var.wires, width)
 
 
-def fit(wires: np.ndarray, width: int, signed: bool = False) -> np.ndarray:
+def fit(bld: Builder, wires: Bits, width: int, signed: bool = False) -> Bits:
     """Pin a result to its declared width; the declared widths are bounds, so only known-zero bits are cut."""
-    return Builder.extend(np.asarray(wires, dtype=np.int64), width, signed=signed)
+    return bld.extend(wires, width, signed=signed)
 
 
 @register_statistic

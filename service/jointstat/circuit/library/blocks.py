@@ -35,8 +35,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from jointstat.circuit.builder import Builder, Wires
-from jointstat.circuit.model import ONE_WIRE, ZERO_WIRE, Party
+from jointstat.circuit.backend import CountBackend
+from jointstat.circuit.bits import Bits, broadcast, concat, stack
+from jointstat.circuit.builder import Builder
+from jointstat.circuit.model import Party
 
 # -- numbers ---------------------------------------------------------------------------------------------------------
 
@@ -45,7 +47,7 @@ from jointstat.circuit.model import ONE_WIRE, ZERO_WIRE, Party
 class Number:
     """Fixed-point words over lanes: ``wires`` has shape (..., width); value = integer / 2^frac."""
 
-    wires: np.ndarray
+    wires: Bits
     signed: bool
     frac: int = 0
 
@@ -53,93 +55,94 @@ class Number:
     def width(self) -> int:
         return int(self.wires.shape[-1])
 
-    def with_wires(self, wires: np.ndarray) -> Number:
+    def with_wires(self, wires: Bits) -> Number:
         return Number(wires, self.signed, self.frac)
 
 
-def rescale(x: Number, frac: int) -> Number:
+def rescale(bld: Builder, x: Number, frac: int) -> Number:
     """The same values with ``frac`` ≥ x.frac fraction bits: zero bits below (free)."""
     k = frac - x.frac
     if k < 0:
         raise ValueError(f"rescale: cannot drop fraction bits ({x.frac} → {frac})")
     if k == 0:
         return x
-    low = np.zeros((*x.wires.shape[:-1], k), dtype=np.int64)
-    return Number(np.concatenate([low, x.wires], axis=-1), x.signed, frac)
+    low = bld.zeros((*x.wires.shape[:-1], k))
+    return Number(concat([low, x.wires], axis=-1), x.signed, frac)
 
 
-def widen(x: Number, width: int, *, signed: bool | None = None) -> Number:
+def widen(bld: Builder, x: Number, width: int, *, signed: bool | None = None) -> Number:
     """Sign- or zero-extend to ``width`` bits; an unsigned number made signed gains a zero top bit first."""
     sign = x.signed if signed is None else signed
     wires = x.wires
     if sign and not x.signed:
-        wires = Builder.extend(wires, wires.shape[-1] + 1)
+        wires = bld.extend(wires, wires.shape[-1] + 1)
     if width < wires.shape[-1]:
         raise ValueError(f"widen: {wires.shape[-1]} bits do not fit in {width}")
-    return Number(Builder.extend(wires, width, signed=x.signed), sign, x.frac)
+    return Number(bld.extend(wires, width, signed=x.signed), sign, x.frac)
 
 
-def align(*xs: Number) -> list[Number]:
+def align(bld: Builder, *xs: Number) -> list[Number]:
     """Bring numbers to common fraction bits, signedness and width (all free rewiring)."""
     frac = max(x.frac for x in xs)
     signed = any(x.signed for x in xs)
-    scaled = [rescale(x, frac) for x in xs]
+    scaled = [rescale(bld, x, frac) for x in xs]
     width = max(x.width + (1 if signed and not x.signed else 0) for x in scaled)
-    return [widen(x, width, signed=signed) for x in scaled]
+    return [widen(bld, x, width, signed=signed) for x in scaled]
 
 
-def order_key(bld: Builder, x: Number) -> np.ndarray:
+def order_key(bld: Builder, x: Number) -> Bits:
     """Wires whose unsigned order is the numeric order of ``x``: a signed word gets its sign bit flipped.
 
     Flipping costs one NOT gate per lane (free under free XOR) and turns two's-complement order into unsigned order.
     """
     if not x.signed:
         return x.wires
-    return np.concatenate([x.wires[..., :-1], bld.not_(x.wires[..., -1:])], axis=-1)
+    return concat([x.wires[..., :-1], bld.not_(x.wires[..., -1:])], axis=-1)
 
 
-def from_order_key(bld: Builder, key: Wires, signed: bool) -> np.ndarray:
+def from_order_key(bld: Builder, key: Bits, signed: bool) -> Bits:
     """The inverse of ``order_key``."""
-    k = np.asarray(key, dtype=np.int64)
     if not signed:
-        return k
-    return np.concatenate([k[..., :-1], bld.not_(k[..., -1:])], axis=-1)
+        return key
+    return concat([key[..., :-1], bld.not_(key[..., -1:])], axis=-1)
 
 
 # -- comparison and compare-and-swap --------------------------------------------------------------------------------
 
 
-def greater_than(bld: Builder, x: Wires, y: Wires, diff: Wires | None = None) -> Wires:
+def greater_than(bld: Builder, x: Bits, y: Bits, diff: Bits | None = None) -> Bits:
     """x > y for unsigned words, one AND gate per bit: c' = c ⊕ ((x ⊕ y) ∧ (x ⊕ c)), c₀ = 0.
 
     ``diff`` may pass a precomputed x ⊕ y (a compare-and-swap shares it with its swap).
     """
-    xa = np.asarray(x, dtype=np.int64)
-    d = bld.xor(xa, y) if diff is None else np.asarray(diff)
-    carry = np.zeros(xa.shape[:-1], dtype=np.int64)
-    for i in range(xa.shape[-1]):
+    xa = x
+    if xa.shape[-1] == 0:
+        return bld.zeros(xa.shape[:-1])
+    d = bld.xor(xa, y) if diff is None else diff
+    # Bit 0 with c₀ = 0 is x₀ ∧ ¬y₀: the same gate, written so that a public y₀ folds it away.
+    carry = bld.and_(xa[..., 0], bld.not_(y[..., 0]))
+    for i in range(1, xa.shape[-1]):
         carry = bld.xor(carry, bld.and_(d[..., i], bld.xor(xa[..., i], carry)))
     return carry
 
 
 @dataclass(frozen=True)
 class Swapped:
-    low: np.ndarray  # keys of the smaller element of each pair
-    high: np.ndarray
-    low_payload: np.ndarray | None
-    high_payload: np.ndarray | None
-    swap: np.ndarray  # 1 where the pair was exchanged
+    low: Bits  # keys of the smaller element of each pair
+    high: Bits
+    low_payload: Bits | None
+    high_payload: Bits | None
+    swap: Bits  # 1 where the pair was exchanged
 
 
 def compare_swap(
-    bld: Builder, a: Wires, b: Wires, a_payload: Wires | None = None, b_payload: Wires | None = None
+    bld: Builder, a: Bits, b: Bits, a_payload: Bits | None = None, b_payload: Bits | None = None
 ) -> Swapped:
     """Order each lane's pair by key (unsigned): k AND gates for the comparator plus one per key and payload bit."""
-    a, b = np.asarray(a, dtype=np.int64), np.asarray(b, dtype=np.int64)
     kw = a.shape[-1]
     if a_payload is not None and b_payload is not None:
-        a = np.concatenate([a, np.asarray(a_payload, dtype=np.int64)], axis=-1)
-        b = np.concatenate([b, np.asarray(b_payload, dtype=np.int64)], axis=-1)
+        a = concat([a, a_payload], axis=-1)
+        b = concat([b, b_payload], axis=-1)
     diff = bld.xor(a, b)
     swap = greater_than(bld, a[..., :kw], b[..., :kw], diff[..., :kw])
     delta = bld.and_(swap[..., None], diff)
@@ -150,8 +153,8 @@ def compare_swap(
 
 
 def and_per_compare_swap(key_width: int, payload_width: int = 0) -> int:
-    """AND gates of one compare-and-swap on secret operands (measured on a fresh builder, not assumed)."""
-    bld = Builder()
+    """AND gates of one compare-and-swap on secret operands (counted on a fresh count backend, not assumed)."""
+    bld = Builder(CountBackend())
     a = bld.input(Party.GARBLER, (1, key_width + payload_width))
     b = bld.input(Party.EVALUATOR, (1, key_width + payload_width))
     pa = a[:, key_width:] if payload_width else None
@@ -165,22 +168,21 @@ def and_per_compare_swap(key_width: int, payload_width: int = 0) -> int:
 
 @dataclass(frozen=True)
 class Merged:
-    keys: np.ndarray  # (M, key width), sorted ascending
-    payload: np.ndarray | None  # (M, payload width), moved with the keys
-    swaps: list[np.ndarray]  # per stage, the (M/2,) swap bits, in network order
+    keys: Bits  # (M, key width), sorted ascending
+    payload: Bits | None  # (M, payload width), moved with the keys
+    swaps: list[Bits]  # per stage, the (M/2,) swap bits, in network order
     comparators: int
 
 
-def bitonic_merge(bld: Builder, keys: Wires, payload: Wires | None = None) -> Merged:
+def bitonic_merge(bld: Builder, keys: Bits, payload: Bits | None = None) -> Merged:
     """Sort a bitonic sequence of M = 2^L keys (with optional payload) by Batcher's merger: (M/2)·L comparators."""
-    keys = np.asarray(keys, dtype=np.int64)
     m, kw = keys.shape
     if m & (m - 1):
         raise ValueError(f"bitonic merge: {m} elements is not a power of two")
-    pw = 0 if payload is None else int(np.asarray(payload).shape[-1])
-    data = keys if payload is None else np.concatenate([keys, np.asarray(payload, dtype=np.int64)], axis=-1)
+    pw = 0 if payload is None else int(payload.shape[-1])
+    data = keys if payload is None else concat([keys, payload], axis=-1)
     width = kw + pw
-    swaps: list[np.ndarray] = []
+    swaps: list[Bits] = []
     comparators = 0
     half = m // 2
     while half >= 1:
@@ -188,9 +190,9 @@ def bitonic_merge(bld: Builder, keys: Wires, payload: Wires | None = None) -> Me
         a = blocks[:, 0].reshape(-1, width)
         b = blocks[:, 1].reshape(-1, width)
         res = compare_swap(bld, a[:, :kw], b[:, :kw], a[:, kw:] if pw else None, b[:, kw:] if pw else None)
-        low = res.low if not pw else np.concatenate([res.low, res.low_payload], axis=-1)  # type: ignore[list-item]
-        high = res.high if not pw else np.concatenate([res.high, res.high_payload], axis=-1)  # type: ignore[list-item]
-        data = np.stack(
+        low = res.low if res.low_payload is None else concat([res.low, res.low_payload], axis=-1)
+        high = res.high if res.high_payload is None else concat([res.high, res.high_payload], axis=-1)
+        data = stack(
             [low.reshape(m // (2 * half), half, width), high.reshape(m // (2 * half), half, width)], axis=1
         ).reshape(m, width)
         swaps.append(res.swap)
@@ -199,12 +201,12 @@ def bitonic_merge(bld: Builder, keys: Wires, payload: Wires | None = None) -> Me
     return Merged(data[:, :kw], data[:, kw:] if pw else None, swaps, comparators)
 
 
-def route_back(bld: Builder, bits: Wires, merged: Merged) -> Wires:
+def route_back(bld: Builder, bits: Bits, merged: Merged) -> Bits:
     """Carry one bit per merged position back to the element's input position: one AND per comparator.
 
     A swap is its own inverse, so the stages are replayed in reverse order with the same swap bits.
     """
-    vals = np.asarray(bits, dtype=np.int64)
+    vals = bits
     m = vals.shape[0]
     half = 1
     for swap in reversed(merged.swaps):
@@ -212,9 +214,9 @@ def route_back(bld: Builder, bits: Wires, merged: Merged) -> Wires:
         a = blocks[:, 0].reshape(-1)
         b = blocks[:, 1].reshape(-1)
         delta = bld.and_(swap, bld.xor(a, b))
-        vals = np.stack(
-            [bld.xor(a, delta).reshape(-1, half), bld.xor(b, delta).reshape(-1, half)], axis=1
-        ).reshape(m)
+        vals = stack([bld.xor(a, delta).reshape(-1, half), bld.xor(b, delta).reshape(-1, half)], axis=1).reshape(
+            m
+        )
         half *= 2
     return vals
 
@@ -238,86 +240,86 @@ class MergeLayout:
     second: slice  # positions of the second list, in reverse order (position size-1 is its element 0)
 
 
-def arrange(first: Wires, second: Wires, pad: Wires) -> tuple[np.ndarray, MergeLayout]:
+def arrange(first: Bits, second: Bits, pad: Bits) -> tuple[Bits, MergeLayout]:
     """The bitonic input: ``first`` (ascending) ++ copies of ``pad`` ++ ``second`` reversed (so descending)."""
-    first, second = np.asarray(first, dtype=np.int64), np.asarray(second, dtype=np.int64)
     na, nb = first.shape[0], second.shape[0]
     m = merge_size(na + nb)
-    fill = np.broadcast_to(np.asarray(pad, dtype=np.int64), (m - na - nb, first.shape[-1]))
-    seq = np.concatenate([first, fill, second[::-1]], axis=0)
+    parts = [first]
+    if m - na - nb:
+        parts.append(pad.broadcast_to((m - na - nb, first.shape[-1])))
+    parts.append(second[::-1])
+    seq = concat(parts, axis=0)
     return seq, MergeLayout(m, slice(0, na), slice(m - nb, m))
 
 
 # -- sums, products, division ------------------------------------------------------------------------------------------
 
 
-def tree_sum(bld: Builder, words: Wires, *, signed: bool = False) -> Wires:
+def tree_sum(bld: Builder, words: Bits, *, signed: bool = False) -> Bits:
     """Σ over axis 0 of (n, w) words, widths growing one bit per tree level: the result has w + ⌈log2 n⌉ bits."""
-    arr = np.asarray(words, dtype=np.int64)
+    arr = words
     n = arr.shape[0]
     if n == 0:
-        return np.zeros(arr.shape[1:], dtype=np.int64)
+        return bld.zeros(arr.shape[1:])
     while arr.shape[0] > 1:
         half = arr.shape[0] // 2
         x, y = arr[:half], arr[half : 2 * half]
         if signed:
             w = x.shape[-1] + 1
-            paired = bld.add(Builder.extend(x, w, signed=True), Builder.extend(y, w, signed=True))
+            paired = bld.add(bld.extend(x, w, signed=True), bld.extend(y, w, signed=True))
         else:
             total, carry = bld.add_carry(x, y)
-            paired = np.concatenate([total, carry[..., None]], axis=-1)
-        rest = Builder.extend(arr[2 * half :], paired.shape[-1], signed=signed)
-        arr = np.concatenate([paired, rest], axis=0)
+            paired = concat([total, carry[..., None]], axis=-1)
+        if arr.shape[0] % 2:
+            rest = bld.extend(arr[2 * half :], paired.shape[-1], signed=signed)
+            arr = concat([paired, rest], axis=0)
+        else:
+            arr = paired
     return arr[0]
 
 
-def count_bits(bld: Builder, bits: Wires) -> Wires:
+def count_bits(bld: Builder, bits: Bits) -> Bits:
     """How many of the bits (a flat array) are 1, as an unsigned word of ⌈log2(n+1)⌉ bits."""
-    flat = np.asarray(bits, dtype=np.int64).reshape(-1)
+    flat = bits.reshape(-1)
     n = flat.shape[0]
     width = max(1, n.bit_length())
     if n == 0:
-        return np.zeros(1, dtype=np.int64)
-    return Builder.extend(tree_sum(bld, flat[:, None]), width)
+        return bld.zeros(1)
+    return bld.extend(tree_sum(bld, flat[:, None]), width)
 
 
-def multiply_full(bld: Builder, x: Wires, y: Wires) -> Wires:
+def multiply_full(bld: Builder, x: Bits, y: Bits) -> Bits:
     """The full unsigned product of an a-bit and a b-bit word (a + b bits): a·b partial ANDs plus b − 1 adders."""
-    xa, ya = np.asarray(x, dtype=np.int64), np.asarray(y, dtype=np.int64)
-    a, b = xa.shape[-1], ya.shape[-1]
-    lanes = np.broadcast_shapes(xa.shape[:-1], ya.shape[:-1])
-    xa = np.broadcast_to(xa, (*lanes, a))
-    ya = np.broadcast_to(ya, (*lanes, b))
+    a, b = x.shape[-1], y.shape[-1]
+    lanes = np.broadcast_shapes(x.shape[:-1], y.shape[:-1])
+    xa = x.broadcast_to((*lanes, a))
+    ya = y.broadcast_to((*lanes, b))
     acc = bld.and_(xa, ya[..., 0:1])  # the running sum at weight j, here j = 0
-    low: list[np.ndarray] = []
+    low: list[Bits] = []
     for j in range(1, b):
         low.append(acc[..., 0])  # bit j − 1 of the product is final
-        rest = Builder.extend(acc[..., 1:], a)
+        rest = bld.extend(acc[..., 1:], a)
         total, carry = bld.add_carry(rest, bld.and_(xa, ya[..., j : j + 1]))
-        acc = np.concatenate([total, carry[..., None]], axis=-1)
-    bits = np.concatenate([np.stack(low, axis=-1), acc], axis=-1) if low else acc
-    return Builder.extend(bits, a + b)
+        acc = concat([total, carry[..., None]], axis=-1)
+    out = concat([stack(low, axis=-1), acc], axis=-1) if low else acc
+    return bld.extend(out, a + b)
 
 
-def negate_if(bld: Builder, x: Wires, flag: Wires) -> Wires:
+def negate_if(bld: Builder, x: Bits, flag: Bits) -> Bits:
     """x where ``flag`` is 0, −x (two's complement) where it is 1: (x ⊕ f) + f, n − 1 AND gates."""
-    xa = np.asarray(x, dtype=np.int64)
-    f = np.asarray(flag, dtype=np.int64)
-    flipped = bld.xor(xa, f[..., None])
-    return bld.add(flipped, np.zeros_like(flipped), f)
+    flipped = bld.xor(x, flag[..., None])
+    return bld.add(flipped, bld.zeros(flipped.shape), flag)
 
 
-def magnitude(bld: Builder, x: Number) -> tuple[np.ndarray, np.ndarray]:
+def magnitude(bld: Builder, x: Number) -> tuple[Bits, Bits]:
     """(|x| as an unsigned word of the same width, sign bit); for unsigned x the sign is the constant 0."""
     if not x.signed:
-        return x.wires, np.full(x.wires.shape[:-1], ZERO_WIRE, dtype=np.int64)
+        return x.wires, bld.zeros(x.wires.shape[:-1])
     sign = x.wires[..., -1]
     return negate_if(bld, x.wires, sign), sign
 
 
-def divide(
-    bld: Builder, dividend: Wires, divisor: Wires, quotient_bits: int | None = None
-) -> tuple[Wires, Wires]:
+def divide(bld: Builder, dividend: Bits, divisor: Bits, quotient_bits: int | None = None) -> tuple[Bits, Bits]:
     """Unsigned restoring division: (⌊n / d⌋, n mod d with d's width).
 
     Per quotient bit one subtract-with-borrow and one multiplexer on w_d + 1 bits. With ``quotient_bits`` = q
@@ -325,28 +327,28 @@ def divide(
     quotient is below 2^q (callers state why it is). A zero divisor gives an all-ones quotient (callers withhold
     such results).
     """
-    n = np.asarray(dividend, dtype=np.int64)
-    d = np.asarray(divisor, dtype=np.int64)
+    n, d = dividend, divisor
     wn, wd = n.shape[-1], d.shape[-1]
     q_bits = wn if quotient_bits is None else min(wn, int(quotient_bits))
     lanes = np.broadcast_shapes(n.shape[:-1], d.shape[:-1])
-    n = np.broadcast_to(n, (*lanes, wn))
-    dext = np.broadcast_to(Builder.extend(d, wd + 1), (*lanes, wd + 1))
+    n = n.broadcast_to((*lanes, wn))
+    dext = bld.extend(d, wd + 1).broadcast_to((*lanes, wd + 1))
     top = n[..., q_bits:]
     if top.shape[-1] > wd + 1:
         raise ValueError(f"divide: {top.shape[-1]} leading bits cannot be below a {wd}-bit divisor")
-    rem = Builder.extend(top, wd + 1)
-    quotient = np.zeros((*lanes, q_bits), dtype=np.int64)
+    rem = bld.extend(top, wd + 1)
+    quotient: list[Bits] = []  # most significant first
     for i in range(q_bits - 1, -1, -1):
-        rem = np.concatenate([n[..., i : i + 1], rem[..., :-1]], axis=-1)
+        rem = concat([n[..., i : i + 1], rem[..., :-1]], axis=-1)
         diff, ge = bld.sub_borrow(rem, dext)
-        quotient[..., i] = ge
+        quotient.append(ge)
         rem = bld.select(ge, rem, diff)
-    return quotient, rem[..., :wd]
+    q = stack(quotient[::-1], axis=-1) if quotient else bld.zeros((*lanes, 0))
+    return q, rem[..., :wd]
 
 
 def divide_fixed(
-    bld: Builder, numerator: Number, denominator: Wires, fraction_bits: int, result_bits: int | None = None
+    bld: Builder, numerator: Number, denominator: Bits, fraction_bits: int, result_bits: int | None = None
 ) -> Number:
     """numerator / denominator (unsigned, > 0) with ``fraction_bits`` more fraction bits, rounded toward zero.
 
@@ -354,53 +356,53 @@ def divide_fixed(
     width the true quotient is known to fit, which also shortens the division (see ``divide``).
     """
     mag, sign = magnitude(bld, numerator)
-    shifted = np.concatenate([np.zeros((*mag.shape[:-1], fraction_bits), dtype=np.int64), mag], axis=-1)
+    shifted = concat([bld.zeros((*mag.shape[:-1], fraction_bits)), mag], axis=-1)
     q_bits = None if result_bits is None else result_bits
     q, _ = divide(bld, shifted, denominator, q_bits)
     frac = numerator.frac + fraction_bits
     if not numerator.signed:
         return Number(q, False, frac)
     width = q.shape[-1] + 1 if result_bits is None else result_bits
-    q = Builder.extend(q, max(width, q.shape[-1]))
-    return Number(Builder.extend(negate_if(bld, q, sign), width), True, frac)
+    q = bld.extend(q, max(width, q.shape[-1]))
+    return Number(bld.extend(negate_if(bld, q, sign), width), True, frac)
 
 
 # -- selection and gating ----------------------------------------------------------------------------------------------
 
 
-def one_hot(bld: Builder, index: Wires, size: int) -> Wires:
+def one_hot(bld: Builder, index: Bits, size: int) -> Bits:
     """(size,) bits, bit i = [index = i], for an unsigned index word (LSB first); about ``size`` AND gates."""
-    idx = np.asarray(index, dtype=np.int64).reshape(-1)
+    idx = index.reshape(-1)
     k = idx.shape[0]
-    vec = np.array([ONE_WIRE], dtype=np.int64)
+    vec = bld.ones(1)
     for t in range(k - 1, -1, -1):  # most significant bit first
         b = idx[t]
         keep = -(-size // (1 << t))  # prefixes that can still reach an index below size
         high = bld.and_(vec, b)
         low = bld.xor(vec, high)
-        vec = np.stack([low, high], axis=-1).reshape(-1)[:keep]
-    out = np.full(size, ZERO_WIRE, dtype=np.int64)
-    out[: min(size, vec.shape[0])] = vec[:size]
-    return out
+        vec = stack([low, high], axis=-1).reshape(-1)[:keep]
+    vec = vec[:size]
+    if vec.shape[0] < size:
+        vec = concat([vec, bld.zeros(size - vec.shape[0])])
+    return vec
 
 
-def select(bld: Builder, onehot: Wires, words: Wires) -> Wires:
+def select(bld: Builder, onehot: Bits, words: Bits) -> Bits:
     """The word at the one-hot position: XOR of the words masked by the one-hot bits (one AND per bit)."""
-    masked = bld.and_(np.asarray(onehot, dtype=np.int64)[:, None], words)
+    masked = bld.and_(onehot[:, None], words)
     return bld.reduce_xor(masked, axis=0)
 
 
-def gate(bld: Builder, wires: Wires, allow: Wires) -> Wires:
+def gate(bld: Builder, wires: Bits, allow: Bits) -> Bits:
     """``wires`` where ``allow`` is 1 and all zeros where it is 0 (one AND per bit)."""
-    return bld.and_(np.asarray(wires, dtype=np.int64), allow)
+    return bld.and_(wires, allow)
 
 
-def at_least(bld: Builder, value: Wires, bound: int) -> Wires:
+def at_least(bld: Builder, value: Bits, bound: int) -> Bits:
     """value ≥ bound for an unsigned word and a public bound (constant-folded comparator)."""
-    v = np.asarray(value, dtype=np.int64)
-    w = v.shape[-1]
+    w = value.shape[-1]
     if bound <= 0:
-        return np.full(v.shape[:-1], ONE_WIRE, dtype=np.int64)
+        return bld.ones(value.shape[:-1])
     if bound >= 1 << w:
-        return np.full(v.shape[:-1], ZERO_WIRE, dtype=np.int64)
-    return bld.greater_equal(v, bld.constant_word(np.full(v.shape[:-1], bound), w))
+        return bld.zeros(value.shape[:-1])
+    return bld.greater_equal(value, bld.constant_word(bound, w).broadcast_to((*value.shape[:-1], w)))

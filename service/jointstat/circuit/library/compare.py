@@ -16,7 +16,7 @@ from typing import Literal
 
 import numpy as np
 
-from jointstat.circuit.builder import Builder
+from jointstat.circuit.bits import stack
 from jointstat.circuit.library import blocks
 from jointstat.circuit.library.blocks import Number
 from jointstat.circuit.library.registry import (
@@ -81,16 +81,16 @@ class Compare(Statistic):
     def build(self, ctx: BuildContext) -> StatisticResult:
         bld = ctx.builder
         names = self.column_names(self.p.column)
-        g, e = blocks.align(*[ctx.table(party).number(names[party]) for party in Party])
+        g, e = blocks.align(bld, *[ctx.table(party).number(names[party]) for party in Party])
         gw, ew = g.wires[0], e.wires[0]
         g_gt = bld.greater_than(gw, ew, signed=g.signed)
         e_gt = bld.greater_than(ew, gw, signed=g.signed)
-        values = {"larger": np.stack([g_gt, e_gt])}
+        values = {"larger": stack([g_gt, e_gt])}
         if "gap" in ctx.wanted:
             w = g.width + 1
-            diff = bld.sub(Builder.extend(gw, w, signed=g.signed), Builder.extend(ew, w, signed=g.signed))
+            diff = bld.sub(bld.extend(gw, w, signed=g.signed), bld.extend(ew, w, signed=g.signed))
             mag, _ = blocks.magnitude(bld, Number(diff, True, g.frac))
-            values["gap"] = Builder.extend(mag, g.width)
-        valid = np.array([ctx.table(p).valid[0] for p in Party])
+            values["gap"] = bld.extend(mag, g.width)
+        valid = stack([ctx.table(p).valid[0] for p in Party])
         count = blocks.count_bits(bld, valid)
-        return StatisticResult(values, count=count, ok=np.asarray(bld.and_(valid[0], valid[1])))
+        return StatisticResult(values, count=count, ok=bld.and_(valid[0], valid[1]))

@@ -20,7 +20,7 @@ from typing import Annotated, Literal
 import numpy as np
 from pydantic import Field, field_validator
 
-from jointstat.circuit.builder import Builder
+from jointstat.circuit.bits import concat, stack
 from jointstat.circuit.library import blocks
 from jointstat.circuit.library.join import const_at_least
 from jointstat.circuit.library.registry import (
@@ -83,14 +83,12 @@ class Histogram(Statistic):
     def build(self, ctx: BuildContext) -> StatisticResult:
         bld = ctx.builder
         names = self.column_names(self.p.column)
-        nums = blocks.align(*[ctx.table(party).number(names[party]) for party in Party])
-        x = blocks.Number(np.concatenate([v.wires for v in nums], axis=0), nums[0].signed, nums[0].frac)
-        valid = np.concatenate([ctx.table(p).valid for p in Party])
-        ge = np.stack([const_at_least(bld, x, t) for t in edge_thresholds(self.p.edges, x.frac)], axis=-1)
+        nums = blocks.align(bld, *[ctx.table(party).number(names[party]) for party in Party])
+        x = blocks.Number(concat([v.wires for v in nums], axis=0), nums[0].signed, nums[0].frac)
+        valid = concat([ctx.table(p).valid for p in Party])
+        ge = stack([const_at_least(bld, x, t) for t in edge_thresholds(self.p.edges, x.frac)], axis=-1)
         in_bin = bld.and_(bld.xor(ge[:, :-1], ge[:, 1:]), valid[:, None])  # (rows, bins)
         width = sum(self.manifest.table(p).capacity for p in Party).bit_length()
-        counts = np.stack(
-            [Builder.extend(blocks.count_bits(bld, in_bin[:, i]), width) for i in range(in_bin.shape[1])]
-        )
-        total = Builder.extend(blocks.count_bits(bld, bld.reduce_xor(in_bin, axis=-1)), width)
+        counts = stack([bld.extend(blocks.count_bits(bld, in_bin[:, i]), width) for i in range(in_bin.shape[1])])
+        total = bld.extend(blocks.count_bits(bld, bld.reduce_xor(in_bin, axis=-1)), width)
         return StatisticResult({"counts": counts, "count": total}, count=total)

@@ -32,6 +32,7 @@ from typing import Annotated, Literal
 
 import numpy as np
 
+from jointstat.circuit.bits import Bits, concat
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.library import blocks
 from jointstat.circuit.library.blocks import Number
@@ -52,7 +53,7 @@ from jointstat.circuit.manifest import (
     StrictModel,
     _between,
 )
-from jointstat.circuit.model import ONE_WIRE, ZERO_WIRE, Party
+from jointstat.circuit.model import Party
 
 
 class PartyColumn(StrictModel):
@@ -75,16 +76,16 @@ def scaled_threshold(threshold: float, frac: int) -> int:
     return math.ceil(Decimal(repr(float(threshold))) * (1 << frac))
 
 
-def const_at_least(bld: Builder, x: Number, bound: int) -> np.ndarray:
+def const_at_least(bld: Builder, x: Number, bound: int) -> Bits:
     """x ≥ bound for a public integer bound on x's encoded scale; constant where the bound is out of range."""
     w = x.width
     lo, hi = (-(1 << (w - 1)), (1 << (w - 1)) - 1) if x.signed else (0, (1 << w) - 1)
     lanes = x.wires.shape[:-1]
     if bound <= lo:
-        return np.full(lanes, ONE_WIRE, dtype=np.int64)
+        return bld.ones(lanes)
     if bound > hi:
-        return np.full(lanes, ZERO_WIRE, dtype=np.int64)
-    c = bld.constant_word(np.full(lanes, bound, dtype=object), w)
+        return bld.zeros(lanes)
+    c = bld.constant_word(bound, w).broadcast_to((*lanes, w))
     return bld.greater_equal(x.wires, c, signed=x.signed)
 
 
@@ -169,32 +170,30 @@ class KeyedJoin(Statistic):
         elements = []
         for party in Party:
             t = ctx.table(party)
-            elements.append(np.concatenate([t.bits(names[party]), bld.not_(t.valid)[:, None]], axis=1))
+            elements.append(concat([t.bits(names[party]), bld.not_(t.valid)[:, None]], axis=1))
         kw = elements[0].shape[1]
-        pad = np.array([ZERO_WIRE] * (kw - 1) + [ONE_WIRE], dtype=np.int64)
+        pad = bld.constant([0] * (kw - 1) + [1])
         seq, layout = blocks.arrange(elements[0], elements[1], pad)
         merged = blocks.bitonic_merge(bld, seq)
         k = merged.keys
         eq = bld.equal(k[:-1], k[1:])
         # match = eq ∧ valid_i = eq ⊕ (eq ∧ invalid_i)
         match = bld.xor(eq, bld.and_(eq, k[:-1, -1]))
-        matches = Builder.extend(blocks.count_bits(bld, match), specs["matches"].width)
-        values: dict[str, np.ndarray] = {"matches": matches}
+        matches = bld.extend(blocks.count_bits(bld, match), specs["matches"].width)
+        values: dict[str, Bits] = {"matches": matches}
         extra = {"comparators": merged.comparators, "key_bits": kw, "merge_size": layout.size}
-        ok: np.ndarray | None = None
+        ok: Bits | None = None
         vp = self.value_party()
         if vp is not None and self.p.value is not None and ctx.wanted & {"sum", "mean", "above"}:
-            flag = np.full(layout.size, ZERO_WIRE, dtype=np.int64)
-            flag[:-1] = match
-            flag[1:] = bld.xor(flag[1:], match)
+            # m_i = match_{i−1} ⊕ match_i, with match_{−1} = match_{M−1} = 0
+            zero = bld.zeros(1)
+            flag = bld.xor(concat([match, zero]), concat([zero, match]))
             back = blocks.route_back(bld, flag, merged)
             mine = back[layout.first] if vp == Party.GARBLER else back[layout.second][::-1]
             v = ctx.table(vp).number(self.p.value.column)
             masked = bld.and_(v.wires, mine[:, None])
             s = Number(
-                Builder.extend(
-                    blocks.tree_sum(bld, masked, signed=v.signed), specs["sum"].width, signed=v.signed
-                ),
+                bld.extend(blocks.tree_sum(bld, masked, signed=v.signed), specs["sum"].width, signed=v.signed),
                 v.signed,
                 v.frac,
             )
@@ -206,5 +205,5 @@ class KeyedJoin(Statistic):
             if "above" in ctx.wanted and self.p.threshold is not None:
                 ge = const_at_least(bld, v, scaled_threshold(self.p.threshold, v.frac))
                 above = blocks.count_bits(bld, bld.and_(ge, mine))
-                values["above"] = Builder.extend(above, specs["above"].width)
+                values["above"] = bld.extend(above, specs["above"].width)
         return StatisticResult(values, count=matches, ok=ok, extra=extra)

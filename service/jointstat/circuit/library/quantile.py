@@ -30,6 +30,7 @@ from typing import Annotated, Literal
 import numpy as np
 from pydantic import Field, field_validator
 
+from jointstat.circuit.bits import Bits, concat
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.library import blocks
 from jointstat.circuit.library.registry import (
@@ -41,7 +42,7 @@ from jointstat.circuit.library.registry import (
     register_statistic,
 )
 from jointstat.circuit.manifest import ColumnPair, Problem, StatisticParameters, _between
-from jointstat.circuit.model import ONE_WIRE, ZERO_WIRE, Party
+from jointstat.circuit.model import Party
 
 
 class QuantileParameters(StatisticParameters):
@@ -113,20 +114,20 @@ class Quantile(Statistic):
         bld = ctx.builder
         specs = {s.name: s for s in self.outputs()}
         names = self.column_names(self.p.column)
-        nums = blocks.align(*[ctx.table(party).number(names[party]) for party in Party])
+        nums = blocks.align(bld, *[ctx.table(party).number(names[party]) for party in Party])
         signed, w = nums[0].signed, nums[0].width
         elements = []
         for party, x in zip(Party, nums, strict=True):
             key = blocks.order_key(bld, x)
-            elements.append(np.concatenate([key, bld.not_(ctx.table(party).valid)[:, None]], axis=1))
-        pad = np.array([ZERO_WIRE] * w + [ONE_WIRE], dtype=np.int64)
+            elements.append(concat([key, bld.not_(ctx.table(party).valid)[:, None]], axis=1))
+        pad = bld.constant([0] * w + [1])
         seq, layout = blocks.arrange(elements[0], elements[1], pad)
         merged = blocks.bitonic_merge(bld, seq)
         sorted_vals = blocks.from_order_key(bld, merged.keys[:, :w], signed)
         m = layout.size
-        valid = np.concatenate([ctx.table(p).valid for p in Party])
-        n = Builder.extend(blocks.count_bits(bld, valid), specs["count"].width)
-        values: dict[str, np.ndarray] = {"count": n}
+        valid = concat([ctx.table(p).valid for p in Party])
+        n = bld.extend(blocks.count_bits(bld, valid), specs["count"].width)
+        values: dict[str, Bits] = {"count": n}
         n_minus_1 = bld.sub(n, bld.constant_word(1, n.shape[-1]))
         idx_bits = max(1, (m - 1).bit_length())
         for q in self.p.percentiles:
@@ -137,25 +138,23 @@ class Quantile(Statistic):
             onehot = blocks.one_hot(bld, j, m)
             x_j = blocks.select(bld, onehot, sorted_vals)
             x_next = blocks.select(bld, onehot[:-1], sorted_vals[1:]) if m > 1 else x_j
-            r_nonzero = bld.reduce_or(r) if r.shape[-1] else np.asarray(ZERO_WIRE)
+            r_nonzero = bld.reduce_or(r) if r.shape[-1] else bld.zeros(())
             values[name] = self._combine(bld, x_j, x_next, r, r_nonzero, denominator, signed, specs[name])
         extra = {"comparators": merged.comparators, "merge_size": m}
-        return StatisticResult(values, count=n, ok=np.asarray(blocks.at_least(bld, n, 1)), extra=extra)
+        return StatisticResult(values, count=n, ok=blocks.at_least(bld, n, 1), extra=extra)
 
     @staticmethod
-    def _rank(
-        bld: Builder, n_minus_1: np.ndarray, frac: Fraction, idx_bits: int
-    ) -> tuple[np.ndarray, np.ndarray, int]:
+    def _rank(bld: Builder, n_minus_1: Bits, frac: Fraction, idx_bits: int) -> tuple[Bits, Bits, int]:
         """(j, r, b) with j = ⌊(n − 1)·a/b⌋ (``idx_bits`` bits) and r = (n − 1)·a mod b."""
         a, b = frac.numerator, frac.denominator
         if a == 0:
-            return np.zeros(idx_bits, dtype=np.int64), np.zeros(0, dtype=np.int64), 1
+            return bld.zeros(idx_bits), bld.zeros(0), 1
         t = blocks.multiply_full(bld, n_minus_1, bld.constant_word(a, a.bit_length()))
         if b == 1:
-            return Builder.extend(t, idx_bits), np.zeros(0, dtype=np.int64), 1
+            return bld.extend(t, idx_bits), bld.zeros(0), 1
         if b & (b - 1) == 0:
             s = b.bit_length() - 1
-            return Builder.extend(t[s:], idx_bits), t[:s], b
+            return bld.extend(t[s:], idx_bits), t[:s], b
         # j < n ≤ 2^idx_bits, so the low idx_bits quotient bits are the whole quotient.
         q, r = blocks.divide(bld, t, bld.constant_word(b, b.bit_length()), quotient_bits=idx_bits)
         return q, r, b
@@ -163,14 +162,14 @@ class Quantile(Statistic):
     def _combine(
         self,
         bld: Builder,
-        x_j: np.ndarray,
-        x_next: np.ndarray,
-        r: np.ndarray,
-        r_nonzero: np.ndarray,
+        x_j: Bits,
+        x_next: Bits,
+        r: Bits,
+        r_nonzero: Bits,
         b: int,
         signed: bool,
         spec: OutputSpec,
-    ) -> np.ndarray:
+    ) -> Bits:
         method = self.p.method
         if method == "lower":
             return x_j
@@ -179,19 +178,15 @@ class Quantile(Statistic):
             return higher
         w = x_j.shape[-1]
         if method == "midpoint":
-            return bld.add(
-                Builder.extend(x_j, w + 1, signed=signed), Builder.extend(higher, w + 1, signed=signed)
-            )
+            return bld.add(bld.extend(x_j, w + 1, signed=signed), bld.extend(higher, w + 1, signed=signed))
         e = self.p.precision_bits
         if r.shape[-1] == 0:  # the rank is always whole
-            return Builder.extend(
-                np.concatenate([np.zeros(e, dtype=np.int64), x_j]), spec.width, signed=signed
-            )
+            return bld.extend(concat([bld.zeros(e), x_j]), spec.width, signed=signed)
         # x_{j+1} ≥ x_j whenever r > 0, so the difference is unsigned; when r = 0 it is multiplied by zero.
         d = bld.sub(x_next, x_j)
         prod = blocks.multiply_full(bld, d, r)
-        shifted = np.concatenate([np.zeros(e, dtype=np.int64), prod])
+        shifted = concat([bld.zeros(e), prod])
         part, _ = blocks.divide(bld, shifted, bld.constant_word(b, b.bit_length()), quotient_bits=w + e)
-        base = Builder.extend(np.concatenate([np.zeros(e, dtype=np.int64), x_j]), w + e + 1, signed=signed)
-        total = bld.add(base, Builder.extend(part, w + e + 1))
-        return Builder.extend(total, spec.width, signed=signed)
+        base = bld.extend(concat([bld.zeros(e), x_j]), w + e + 1, signed=signed)
+        total = bld.add(base, bld.extend(part, w + e + 1))
+        return bld.extend(total, spec.width, signed=signed)

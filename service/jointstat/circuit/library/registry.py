@@ -27,6 +27,7 @@ from typing import TYPE_CHECKING, Any, ClassVar, get_args
 
 import numpy as np
 
+from jointstat.circuit.bits import Bits
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.library.blocks import Number
 from jointstat.circuit.manifest import (
@@ -77,15 +78,15 @@ class TableWires:
 
     party: Party
     capacity: int
-    valid: np.ndarray  # (capacity,)
-    columns: dict[str, np.ndarray]  # name → (capacity, bits)
+    valid: Bits  # (capacity,)
+    columns: dict[str, Bits]  # name → (capacity, bits)
     schema: dict[str, _Column]
 
     def number(self, name: str) -> Number:
         col = self.schema[name]
         return Number(self.columns[name], col.signed, col.frac)
 
-    def bits(self, name: str) -> np.ndarray:
+    def bits(self, name: str) -> Bits:
         return self.columns[name]
 
 
@@ -103,9 +104,9 @@ class BuildContext:
 
 @dataclass
 class StatisticResult:
-    values: dict[str, np.ndarray]
-    count: np.ndarray | None = None  # the count the disclosure rule compares with min_count
-    ok: np.ndarray | None = None  # an extra condition (one wire) for the result to be released
+    values: dict[str, Bits]
+    count: Bits | None = None  # the count the disclosure rule compares with min_count
+    ok: Bits | None = None  # an extra condition (one bit) for the result to be released
     extra: dict[str, Any] = field(default_factory=dict)  # figures for tests and benchmarks
 
 

@@ -1,14 +1,14 @@
-"""AES-128 encryption (FIPS 197) as a circuit, key expansion included, with the Boyar–Peralta S-box.
+"""AES-128 encryption (FIPS 197) as a program, key expansion included, with the Boyar–Peralta S-box.
 
 Theory of operation
 -------------------
-``aes128_circuit()`` has the garbler's 128-bit key as its garbler input, the evaluator's 128-bit plaintext block
+``aes128_program`` has the garbler's 128-bit key as its garbler input, the evaluator's 128-bit plaintext block
 as its evaluator input and the 128-bit ciphertext as the evaluator's output. Bit order (all three vectors): bit
 8i + j of the vector is bit j, least significant first, of byte i, and the bytes are in FIPS 197 order
 (in0 … in15 of §3.4, the key bytes as listed in Appendix A.1). ``key_bits``, ``block_bits`` and
 ``bits_to_block`` convert; they are ``np.unpackbits``/``np.packbits`` with ``bitorder="little"``.
 
-Inside, the state is a (…, 16, 8) array of wires, byte r + 4c holding row r and column c (FIPS 197 §3.4), bits
+Inside, the state is a (…, 16, 8) array of bits, byte r + 4c holding row r and column c (FIPS 197 §3.4), bits
 LSB-first; leading axes are lanes, so ``aes128_encrypt`` also encrypts many blocks under many keys in one call.
 
 - SubBytes is the small S-box circuit of Boyar and Peralta ("A new combinational logic minimization technique
@@ -35,8 +35,9 @@ from __future__ import annotations
 
 import numpy as np
 
-from jointstat.circuit.builder import Builder, Wires
-from jointstat.circuit.model import Circuit, CircuitError, Party
+from jointstat.circuit.bits import Bits, broadcast, concat, stack
+from jointstat.circuit.builder import Builder
+from jointstat.circuit.model import CircuitError, Party
 from jointstat.circuit.reference._bytes import bits_to_bytes, bytes_to_bits
 
 KEY_BYTES = 16
@@ -110,15 +111,15 @@ _RCON = (0x01, 0x02, 0x04, 0x08, 0x10, 0x20, 0x40, 0x80, 0x1B, 0x36)
 _SHIFT_ROWS = np.array([(i % 4) + 4 * ((i // 4 + i % 4) % 4) for i in range(16)], dtype=np.int64)
 
 
-def sub_bytes(bld: Builder, data: object) -> Wires:
-    """The AES S-box on every byte of ``data`` (wires of shape (…, 8), bits LSB-first) at once.
+def sub_bytes(bld: Builder, data: Bits) -> Bits:
+    """The AES S-box on every byte of ``data`` (bits of shape (…, 8), LSB-first) at once.
 
-    Emits the Boyar–Peralta netlist once, each gate over all the bytes: 32 AND gates per byte.
+    Runs the Boyar–Peralta netlist once, each gate over all the bytes: 32 AND gates per byte.
     """
-    arr = np.asarray(data)
+    arr = data
     if arr.ndim == 0 or arr.shape[-1] != 8:
-        raise CircuitError(f"AES S-box: expected bytes of 8 wires on the last axis, got shape {arr.shape}")
-    env: dict[str, Wires] = {f"x{k}": arr[..., 7 - k] for k in range(8)}
+        raise CircuitError(f"AES S-box: expected bytes of 8 bits on the last axis, got shape {arr.shape}")
+    env: dict[str, Bits] = {f"x{k}": arr[..., 7 - k] for k in range(8)}
     for dest, op, a, b in _SBOX_GATES:
         if op == "AND":
             env[dest] = bld.and_(env[a], env[b])
@@ -126,48 +127,49 @@ def sub_bytes(bld: Builder, data: object) -> Wires:
             env[dest] = bld.xor(env[a], env[b])
         else:
             env[dest] = bld.not_(bld.xor(env[a], env[b]))
-    return np.stack([env[f"s{7 - j}"] for j in range(8)], axis=-1)
+    return stack([env[f"s{7 - j}"] for j in range(8)], axis=-1)
 
 
-def _xtime(bld: Builder, b: Wires) -> Wires:
+def _xtime(bld: Builder, b: Bits) -> Bits:
     """Multiplication by x = {02} in GF(2^8) (FIPS 197 §4.2.1) on LSB-first bits: shift up, reduce by {1b}."""
-    shifted = np.concatenate([b[..., 7:8], b[..., :7]], axis=-1)
-    reduced = shifted.copy()
-    reduced[..., [1, 3, 4]] = bld.xor(shifted[..., [1, 3, 4]], b[..., 7:8])
-    return reduced
+    top = b[..., 7:8]
+    # Shifted up by one, the old top bit wraps to bit 0 and is also XORed into bits 1, 3 and 4 ({1b}).
+    return concat(
+        [top, bld.xor(b[..., 0:1], top), b[..., 1:2], bld.xor(b[..., 2:4], top), b[..., 4:7]], axis=-1
+    )
 
 
-def _mix_columns(bld: Builder, state: Wires) -> Wires:
+def _mix_columns(bld: Builder, state: Bits) -> Bits:
     """MixColumns (FIPS 197 §5.1.3): s'_r = a_r ⊕ (a_0 ⊕ a_1 ⊕ a_2 ⊕ a_3) ⊕ xtime(a_r ⊕ a_{r+1}), XOR only."""
     cols = state.reshape(*state.shape[:-2], 4, 4, 8)  # (…, column, row, bit)
-    total = bld.reduce_xor(np.moveaxis(cols, -2, -1), axis=-1)[..., None, :]  # (…, column, 1, bit)
-    pair = bld.xor(cols, np.roll(cols, -1, axis=-2))
+    total = bld.reduce_xor(cols.moveaxis(-2, -1), axis=-1)[..., None, :]  # (…, column, 1, bit)
+    pair = bld.xor(cols, cols.roll(-1, axis=-2))
     mixed = bld.xor(bld.xor(cols, total), _xtime(bld, pair))
     return mixed.reshape(state.shape)
 
 
-def aes128_encrypt(bld: Builder, key: object, block: object) -> Wires:
-    """AES-128 encryption of ``block`` under ``key`` (both wires of shape (…, 16, 8), broadcast together).
+def aes128_encrypt(bld: Builder, key: Bits, block: Bits) -> Bits:
+    """AES-128 encryption of ``block`` under ``key`` (both bits of shape (…, 16, 8), broadcast together).
 
-    Key expansion happens inside; returns the ciphertext as wires of the broadcast shape.
+    Key expansion happens inside; returns the ciphertext as bits of the broadcast shape.
     """
-    key_arr, block_arr = np.broadcast_arrays(np.asarray(key), np.asarray(block))
+    key_arr, block_arr = broadcast(key, block)
     if key_arr.ndim < 2 or key_arr.shape[-2:] != (16, 8):
-        raise CircuitError(f"AES-128: key and block must be wires of shape (…, 16, 8), got {key_arr.shape}")
+        raise CircuitError(f"AES-128: key and block must be bits of shape (…, 16, 8), got {key_arr.shape}")
     lanes = key_arr.shape[:-2]
     words = key_arr.reshape(*lanes, 4, 4, 8)  # round key as 4 words of 4 bytes (FIPS 197 §5.2)
     state = bld.xor(block_arr, key_arr)
     for r in range(1, ROUNDS + 1):
-        rot_word = np.roll(words[..., 3, :, :], -1, axis=-2)  # RotWord
-        boxed = sub_bytes(bld, np.concatenate([state, rot_word], axis=-2))
-        state, temp = boxed[..., :16, :], boxed[..., 16:, :].copy()
-        rcon = Builder.constant([(_RCON[r - 1] >> j) & 1 for j in range(8)])
-        temp[..., 0, :] = bld.xor(temp[..., 0, :], rcon)
+        rot_word = words[..., 3, :, :].roll(-1, axis=-2)  # RotWord
+        boxed = sub_bytes(bld, concat([state, rot_word], axis=-2))
+        state, temp = boxed[..., :16, :], boxed[..., 16:, :]
+        rcon = bld.constant([(_RCON[r - 1] >> j) & 1 for j in range(8)])
+        temp = concat([bld.xor(temp[..., 0:1, :], rcon), temp[..., 1:, :]], axis=-2)
         new_words = []
         for i in range(4):
             temp = bld.xor(words[..., i, :, :], temp)
             new_words.append(temp)
-        words = np.stack(new_words, axis=-3)
+        words = stack(new_words, axis=-3)
         state = state[..., _SHIFT_ROWS, :]
         if r < ROUNDS:
             state = _mix_columns(bld, state)
@@ -175,16 +177,14 @@ def aes128_encrypt(bld: Builder, key: object, block: object) -> Wires:
     return state
 
 
-def aes128_circuit() -> Circuit:
+def aes128_program(bld: Builder) -> None:
     """AES-128: garbler input the key, evaluator input the plaintext, evaluator output the ciphertext.
 
     Each is 128 bits in the order of the module docstring (``key_bits``, ``block_bits``, ``bits_to_block``).
     """
-    bld = Builder()
     key = bld.input(Party.GARBLER, (KEY_BYTES, 8))
     block = bld.input(Party.EVALUATOR, (BLOCK_BYTES, 8))
     bld.output(Party.EVALUATOR, aes128_encrypt(bld, key, block))
-    return bld.build()
 
 
 def key_bits(key: bytes) -> np.ndarray:

@@ -1,8 +1,8 @@
-"""The SHA-256 compression function (FIPS 180-4 §6.2.2) as a circuit.
+"""The SHA-256 compression function (FIPS 180-4 §6.2.2) as a program.
 
 Theory of operation
 -------------------
-``sha256_compress_circuit()`` computes one step of SHA-256's hash computation: the garbler's 512-bit message
+``sha256_compress_program`` computes one step of SHA-256's hash computation: the garbler's 512-bit message
 block M and the evaluator's 256-bit chaining value H give the evaluator the new chaining value H' (steps 1–4 of
 §6.2.2: message schedule, working variables, 64 rounds, and the final additions H'_i = a/b/…/h + H_i). With the
 initial hash value of §5.3.3 (``INITIAL_HASH``) as H and a message padded to one block (§5.1.1) as M, H' is the
@@ -40,8 +40,9 @@ import math
 
 import numpy as np
 
-from jointstat.circuit.builder import Builder, Wires
-from jointstat.circuit.model import Circuit, CircuitError, Party
+from jointstat.circuit.bits import Bits, stack
+from jointstat.circuit.builder import Builder
+from jointstat.circuit.model import CircuitError, Party
 from jointstat.circuit.reference._bytes import bits_to_bytes, bytes_to_bits
 
 BLOCK_BYTES = 64
@@ -80,30 +81,30 @@ INITIAL_HASH: bytes = b"".join((math.isqrt(p << 64) & 0xFFFFFFFF).to_bytes(4, "b
 AND_GATES = 64 * (7 * 31 + 64) + 48 * 3 * 31 + 8 * 31 - sum((k & -k).bit_length() for k in K)
 
 
-def _words_from_bytes(data: Wires) -> Wires:
-    """(…, 4n, 8) byte wires → (…, n, 32) LSB-first words, each word big-endian over its 4 bytes."""
+def _words_from_bytes(data: Bits) -> Bits:
+    """(…, 4n, 8) byte bits → (…, n, 32) LSB-first words, each word big-endian over its 4 bytes."""
     grouped = data.reshape(*data.shape[:-2], data.shape[-2] // 4, 4, 8)
     return grouped[..., ::-1, :].reshape(*data.shape[:-2], data.shape[-2] // 4, 32)
 
 
-def _bytes_from_words(words: Wires) -> Wires:
+def _bytes_from_words(words: Bits) -> Bits:
     """Inverse of ``_words_from_bytes``."""
     grouped = words.reshape(*words.shape[:-2], words.shape[-2], 4, 8)[..., ::-1, :]
     return grouped.reshape(*words.shape[:-2], 4 * words.shape[-2], 8)
 
 
-def _rotr_xor(bld: Builder, x: Wires, rotations: tuple[int, ...], shift: int | None = None) -> Wires:
+def _rotr_xor(bld: Builder, x: Bits, rotations: tuple[int, ...], shift: int | None = None) -> Bits:
     """ROTR^r1(x) ⊕ ROTR^r2(x) ⊕ … (⊕ SHR^shift(x)): the Σ and σ functions of FIPS 180-4 §4.1.2."""
-    terms = [Builder.rotate_right(x, r) for r in rotations]
+    terms = [bld.rotate_right(x, r) for r in rotations]
     if shift is not None:
-        terms.append(Builder.shift_right(x, shift))
+        terms.append(bld.shift_right(x, shift))
     acc = terms[0]
     for term in terms[1:]:
         acc = bld.xor(acc, term)
     return acc
 
 
-def add_words(bld: Builder, pairs: list[tuple[Wires, Wires]]) -> list[Wires]:
+def add_words(bld: Builder, pairs: list[tuple[Bits, Bits]]) -> list[Bits]:
     """x + y modulo 2^32 for several pairs of words at once (each pair may carry its own lane axes).
 
     The builder's ripple-carry adder (Kolesnikov–Sadeghi–Schneider 2009: c' = c ⊕ ((x ⊕ c) ∧ (y ⊕ c)), 31 AND
@@ -111,37 +112,37 @@ def add_words(bld: Builder, pairs: list[tuple[Wires, Wires]]) -> list[Wires]:
     x ⊕ c and y ⊕ c made in one builder call, so building costs three builder calls per bit position for all
     the pairs together. Constants fold exactly as in the builder.
     """
-    shapes = [np.broadcast_shapes(np.shape(x), np.shape(y)) for x, y in pairs]
+    shapes = [np.broadcast_shapes(x.shape, y.shape) for x, y in pairs]
     width = max(shapes, key=len)
-    xs = np.stack([np.broadcast_to(x, width) for x, _ in pairs])
-    ys = np.stack([np.broadcast_to(y, width) for _, y in pairs])
+    xs = stack([x.broadcast_to(width) for x, _ in pairs])
+    ys = stack([y.broadcast_to(width) for _, y in pairs])
     n = xs.shape[-1]
-    carry = np.zeros(xs.shape[:-1], dtype=np.int64)  # the constant-0 wire
+    carry = bld.zeros(xs.shape[:-1])
     x_plus_c = []
     for i in range(n - 1):
-        xc, yc = bld.xor(np.stack([xs[..., i], ys[..., i]]), carry)
+        xc, yc = bld.xor(stack([xs[..., i], ys[..., i]]), carry)
         x_plus_c.append(xc)
         carry = bld.xor(carry, bld.and_(xc, yc))
     x_plus_c.append(bld.xor(xs[..., n - 1], carry))
-    total = bld.xor(np.stack(x_plus_c, axis=-1), ys)
+    total = bld.xor(stack(x_plus_c, axis=-1), ys)
     return list(total)
 
 
-def sha256_compress(bld: Builder, block: object, chaining: object) -> Wires:
-    """One SHA-256 compression: ``block`` wires (…, 64, 8) and ``chaining`` wires (…, 32, 8) → (…, 32, 8).
+def sha256_compress(bld: Builder, block: Bits, chaining: Bits) -> Bits:
+    """One SHA-256 compression: ``block`` bits (…, 64, 8) and ``chaining`` bits (…, 32, 8) → (…, 32, 8).
 
     Byte and bit order as in the module docstring; leading axes are lanes (broadcast together).
     """
-    blk, chn = np.asarray(block), np.asarray(chaining)
+    blk, chn = block, chaining
     if blk.ndim < 2 or blk.shape[-2:] != (BLOCK_BYTES, 8):
-        raise CircuitError(f"SHA-256: the message block must be wires of shape (…, 64, 8), got {blk.shape}")
+        raise CircuitError(f"SHA-256: the message block must be bits of shape (…, 64, 8), got {blk.shape}")
     if chn.ndim < 2 or chn.shape[-2:] != (CHAINING_BYTES, 8):
-        raise CircuitError(f"SHA-256: the chaining value must be wires of shape (…, 32, 8), got {chn.shape}")
+        raise CircuitError(f"SHA-256: the chaining value must be bits of shape (…, 32, 8), got {chn.shape}")
     lanes = np.broadcast_shapes(blk.shape[:-2], chn.shape[:-2])
-    blk = np.broadcast_to(blk, (*lanes, BLOCK_BYTES, 8))
-    chn = np.broadcast_to(chn, (*lanes, CHAINING_BYTES, 8))
-    w = list(np.moveaxis(_words_from_bytes(blk), -2, 0))  # W_0 … W_15, each (…, 32)
-    h_in = list(np.moveaxis(_words_from_bytes(chn), -2, 0))  # H_0 … H_7
+    blk = blk.broadcast_to((*lanes, BLOCK_BYTES, 8))
+    chn = chn.broadcast_to((*lanes, CHAINING_BYTES, 8))
+    w = list(_words_from_bytes(blk).moveaxis(-2, 0))  # W_0 … W_15, each (…, 32)
+    h_in = list(_words_from_bytes(chn).moveaxis(-2, 0))  # H_0 … H_7
 
     # §6.2.2 step 1. W_t and W_{t+1} read only W_0 … W_{t-1}, so they are made together, each as the sum
     # (σ1(W_{t-2}) + W_{t-7}) + (σ0(W_{t-15}) + W_{t-16}).
@@ -172,16 +173,14 @@ def sha256_compress(bld: Builder, block: object, chaining: object) -> Wires:
         new_e, new_a = add_words(bld, [(d, t1), (t1, t2)])
         a, b, c, d, e, f, g, h = new_a, a, b, c, new_e, e, f, g
     new = add_words(bld, list(zip((a, b, c, d, e, f, g, h), h_in, strict=True)))  # step 4
-    return _bytes_from_words(np.stack(new, axis=-2))
+    return _bytes_from_words(stack(new, axis=-2))
 
 
-def sha256_compress_circuit() -> Circuit:
+def sha256_compress_program(bld: Builder) -> None:
     """Garbler input the 512-bit block, evaluator input the 256-bit chaining value, evaluator output the new one."""
-    bld = Builder()
     block = bld.input(Party.GARBLER, (BLOCK_BYTES, 8))
     chaining = bld.input(Party.EVALUATOR, (CHAINING_BYTES, 8))
     bld.output(Party.EVALUATOR, sha256_compress(bld, block, chaining))
-    return bld.build()
 
 
 def block_bits(block: bytes) -> np.ndarray:
