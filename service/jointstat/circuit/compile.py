@@ -35,7 +35,7 @@ from typing import Any
 
 import numpy as np
 
-from jointstat.circuit.backend import CountBackend, PlainBackend
+from jointstat.circuit.backend import PlainBackend
 from jointstat.circuit.bits import Bits
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.encode import bits_to_int
@@ -52,6 +52,7 @@ from jointstat.circuit.library.registry import (
 )
 from jointstat.circuit.manifest import Manifest
 from jointstat.circuit.model import CircuitError, Party
+from jointstat.circuit.program import Program, ProgramSize, measure
 
 DIGEST_DOMAIN = b"jointstat.manifest.v2\n"
 WITHHELD = "withheld"
@@ -95,52 +96,6 @@ class OutputField:
     @property
     def name(self) -> str:
         return self.spec.name
-
-
-@dataclass(frozen=True)
-class ProgramSize:
-    """What the count backend measured of a program (see ``CountBackend.counts``) and its structure digest."""
-
-    and_gates: int
-    xor_gates: int
-    not_gates: int
-    and_calls: int
-    and_depth: int
-    inputs: dict[Party, int]
-    outputs: dict[Party, int]
-    structure: bytes
-    extra: dict[str, Any] = field(default_factory=dict)
-
-    def summary(self) -> dict[str, int]:
-        return {
-            "and_gates": self.and_gates,
-            "xor_gates": self.xor_gates,
-            "not_gates": self.not_gates,
-            "and_calls": self.and_calls,
-            "and_depth": self.and_depth,
-            "garbler_inputs": self.inputs[Party.GARBLER],
-            "evaluator_inputs": self.inputs[Party.EVALUATOR],
-            "garbler_outputs": self.outputs[Party.GARBLER],
-            "evaluator_outputs": self.outputs[Party.EVALUATOR],
-        }
-
-
-def measure(program: Any) -> ProgramSize:
-    """Run ``program(bld)`` on the count backend: gate counts, inputs, outputs and structure digest."""
-    backend = CountBackend()
-    extra = program(Builder(backend))
-    c = backend.counts()
-    return ProgramSize(
-        and_gates=c["and_gates"],
-        xor_gates=c["xor_gates"],
-        not_gates=c["not_gates"],
-        and_calls=c["and_calls"],
-        and_depth=c["and_depth"],
-        inputs=dict(backend.inputs_used),
-        outputs=dict(backend.outputs_given),
-        structure=backend.structure_digest(),
-        extra=dict(extra) if isinstance(extra, dict) else {},
-    )
 
 
 @dataclass
@@ -206,6 +161,10 @@ class CompiledStatistic:
     @property
     def extra(self) -> dict[str, Any]:
         return self.size().extra
+
+    def as_program(self) -> Program:
+        """The program with its measured size, as a session runs it."""
+        return Program(self.program, self.size(), name=f"manifest {self.manifest.job.name!r}")
 
     def n_inputs(self, party: Party) -> int:
         return self.inputs[Party(party)].bits

@@ -87,7 +87,7 @@ from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
 
 log = logging.getLogger("jointstat.node")
 
-PROTOCOL_VERSION = 1
+PROTOCOL_VERSION = 2
 PROPOSE_METHOD = pb.DESCRIPTOR.services_by_name["Session"].methods_by_name["Propose"].name
 PROPOSE_PATH = f"/{SERVICE_NAME}/{PROPOSE_METHOD}"
 PROPOSAL_TIMEOUT_S = 300.0  # the peer may compile the manifest before it answers

@@ -8,6 +8,13 @@ bytes that cross the wire, so both sides hash the same thing whatever protobuf l
 is larger than ``MAX_FRAME_BYTES`` (4 MiB); a payload larger than ``MAX_PAYLOAD_BYTES`` is split over consecutive
 frames of one type, each carrying the next bytes.
 
+Garbled tables are nearly all the bytes of a session, so their frames skip the protobuf library in both
+directions: ``payload_frame`` writes the protobuf encoding of ``Frame{garbled_tables{tables: payload}}`` directly
+(field 5, length-delimited, holding field 1, length-delimited: two tags and two varint lengths, then the payload —
+the encoding the protobuf library itself produces for that message, see the protobuf encoding guide), and
+``decode`` recognises exactly that layout and hands out a view of the payload inside the received bytes, with no
+copy. Any other layout goes through the protobuf library as before.
+
 Transcript: each side keeps two running SHA-256 hashes (FIPS 180-4), one per direction, over every frame except
 ``finish`` and ``abort``, each frame hashed as its 8-byte little-endian length followed by its bytes. A gRPC stream
 keeps each direction in order but the interleaving of the two directions is seen differently at the two ends, so
@@ -21,13 +28,14 @@ from __future__ import annotations
 import hashlib
 from dataclasses import dataclass
 from enum import IntEnum
+from typing import Union
 
 from google.protobuf.message import DecodeError
 
 from jointstat.circuit.model import Party
 from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
 
-PROTOCOL_VERSION = 1
+PROTOCOL_VERSION = 2  # 2: programs instead of circuit lists (program digest, no constant labels)
 MAX_FRAME_BYTES = 4 * 1024 * 1024
 MAX_PAYLOAD_BYTES = MAX_FRAME_BYTES - 64  # room for the frame's field tags and length prefixes
 MAX_SESSION_ID_BYTES = 64
@@ -65,6 +73,60 @@ PAYLOAD_FIELD = {
     EVALUATOR_OUTPUT_DECODING: "decoding",
 }
 _UNHASHED = frozenset({FINISH, ABORT})
+_TABLES_TAG = (5 << 3) | 2  # Frame.garbled_tables, length-delimited
+_TABLES_FIELD_TAG = (1 << 3) | 2  # GarbledTables.tables, length-delimited
+
+
+@dataclass(frozen=True)
+class TablesFrame:
+    """A garbled_tables frame decoded without the protobuf library: ``payload`` is a view into the received bytes."""
+
+    payload: memoryview
+
+
+AnyFrame = Union[pb.Frame, TablesFrame]  # noqa: UP007  (a runtime alias)
+
+
+def _varint(n: int) -> bytes:
+    out = bytearray()
+    while True:
+        byte = n & 0x7F
+        n >>= 7
+        if n:
+            out.append(byte | 0x80)
+        else:
+            out.append(byte)
+            return bytes(out)
+
+
+def _read_varint(data: memoryview, at: int) -> tuple[int, int]:
+    """(value, next position) of the varint at ``at``; (-1, at) if it is cut off or longer than 5 bytes."""
+    value = shift = 0
+    for i in range(at, min(at + 5, len(data))):
+        byte = data[i]
+        value |= (byte & 0x7F) << shift
+        if not byte & 0x80:
+            return value, i + 1
+        shift += 7
+    return -1, at
+
+
+def _tables_header(n: int) -> bytes:
+    inner = bytes([_TABLES_FIELD_TAG]) + _varint(n)
+    return bytes([_TABLES_TAG]) + _varint(len(inner) + n) + inner
+
+
+def _tables_payload(data: memoryview) -> memoryview | None:
+    """The payload of a garbled_tables frame in exactly the layout ``payload_frame`` writes, else None."""
+    if len(data) < 4 or data[0] != _TABLES_TAG:
+        return None
+    outer, at = _read_varint(data, 1)
+    if outer != len(data) - at or at >= len(data) or data[at] != _TABLES_FIELD_TAG:
+        return None
+    inner, start = _read_varint(data, at + 1)
+    if inner <= 0 or inner != len(data) - start:
+        return None
+    return data[start:]
 _TRANSCRIPT_LABEL = b"jointstat transcript v1"
 
 
@@ -129,7 +191,7 @@ def encode(frame: pb.Frame) -> bytes:
     return data
 
 
-def decode(data: bytes | bytearray | memoryview) -> tuple[str, pb.Frame]:
+def decode(data: bytes | bytearray | memoryview) -> tuple[str, AnyFrame]:
     """Parse one frame: ``(type, frame)``; raises ``ProtocolError`` (malformed frame) naming the problem."""
     if not isinstance(data, bytes | bytearray | memoryview):
         raise ProtocolError(AbortReason.MALFORMED_FRAME, f"a frame must be bytes, got {type(data).__name__}")
@@ -138,6 +200,9 @@ def decode(data: bytes | bytearray | memoryview) -> tuple[str, pb.Frame]:
             AbortReason.MALFORMED_FRAME,
             f"frame of {len(data)} bytes exceeds the limit of {MAX_FRAME_BYTES} bytes",
         )
+    fast = _tables_payload(memoryview(data).cast("B"))
+    if fast is not None:
+        return GARBLED_TABLES, TablesFrame(fast)
     frame = pb.Frame()
     try:
         frame.ParseFromString(bytes(data))
@@ -154,14 +219,23 @@ def decode(data: bytes | bytearray | memoryview) -> tuple[str, pb.Frame]:
     return kind, frame
 
 
-def payload_frame(kind: str, payload: bytes) -> bytes:
+def payload_frame(kind: str, payload: bytes | memoryview) -> bytes:
     """The wire bytes of a payload-carrying frame of type ``kind``."""
+    if kind == GARBLED_TABLES and len(payload):
+        header = _tables_header(len(payload))
+        if len(header) + len(payload) > MAX_FRAME_BYTES:
+            raise ProtocolError(
+                AbortReason.INTERNAL, f"outgoing garbled_tables frame of {len(payload)} bytes exceeds the limit"
+            )
+        return b"".join((header, payload))
     frame = pb.Frame()
-    setattr(getattr(frame, kind), PAYLOAD_FIELD[kind], payload)
+    setattr(getattr(frame, kind), PAYLOAD_FIELD[kind], bytes(payload))
     return encode(frame)
 
 
-def payload_of(kind: str, frame: pb.Frame) -> bytes:
+def payload_of(kind: str, frame: AnyFrame) -> bytes | memoryview:
+    if isinstance(frame, TablesFrame):
+        return frame.payload
     return getattr(getattr(frame, kind), PAYLOAD_FIELD[kind])
 
 
@@ -175,7 +249,7 @@ def hello_frame(
     party: Party,
     session_id: bytes,
     manifest_digest: bytes,
-    circuit_digest: bytes,
+    program_digest: bytes,
     version: int = PROTOCOL_VERSION,
 ) -> bytes:
     frame = pb.Frame()
@@ -183,7 +257,7 @@ def hello_frame(
     frame.hello.manifest_digest = manifest_digest
     frame.hello.session_id = session_id
     frame.hello.role = role_to_wire(party)
-    frame.hello.circuit_digest = circuit_digest
+    frame.hello.program_digest = program_digest
     return encode(frame)
 
 
@@ -201,8 +275,9 @@ def abort_frame(reason: AbortReason, message: str) -> bytes:
     return encode(frame)
 
 
-def abort_of(frame: pb.Frame) -> AbortInfo:
+def abort_of(frame: AnyFrame) -> AbortInfo:
     """The peer's abort as ``AbortInfo`` (an unknown reason code becomes ``UNSPECIFIED``)."""
+    assert isinstance(frame, pb.Frame)
     code = frame.abort.reason
     reason = AbortReason(code) if code in AbortReason._value2member_map_ else AbortReason.UNSPECIFIED
     return AbortInfo(reason=reason, message=frame.abort.message[:MAX_MESSAGE_CHARS], by_peer=True)
@@ -234,16 +309,16 @@ class Transcript:
         self.frames_received = 0
 
     @staticmethod
-    def _add(h: hashlib._Hash, data: bytes) -> None:
+    def _add(h: hashlib._Hash, data: bytes | memoryview) -> None:
         h.update(len(data).to_bytes(8, "little"))
         h.update(data)
 
-    def sent(self, kind: str, data: bytes) -> None:
+    def sent(self, kind: str, data: bytes | memoryview) -> None:
         self.frames_sent += 1
         if kind not in _UNHASHED:
             self._add(self._sent, data)
 
-    def received(self, kind: str, data: bytes) -> None:
+    def received(self, kind: str, data: bytes | memoryview) -> None:
         self.frames_received += 1
         if kind not in _UNHASHED:
             self._add(self._received, data)

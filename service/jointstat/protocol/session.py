@@ -4,20 +4,26 @@ Theory of operation
 -------------------
 Yao's protocol (semi-honest) with half-gates garbling (Zahur–Rosulek–Evans, Eurocrypt 2015), free-XOR and
 point-and-permute, the evaluator's input labels obtained by correlated OT extension (IKNP, Crypto 2003, in the
-correlated form of Asharov–Lindell–Schneider–Zohner, CCS 2013) on Chou–Orlandi base OTs (Latincrypt 2015). A
-session object never touches a socket, a clock or a thread: it takes frames in (``receive(bytes)``) and gives
-frames out (the returned list, as wire bytes). The transport only moves the bytes.
+correlated form of Asharov–Lindell–Schneider–Zohner, CCS 2013) on Chou–Orlandi base OTs (Latincrypt 2015). Both
+sides run the same *program* (``jointstat.circuit.program``) — the garbler against its garbling backend, the
+evaluator against its evaluating backend — so the circuit is garbled and evaluated while the program runs and is
+never written down (pipelined garbling, Huang–Evans–Katz–Malka, USENIX Security 2011). A session object never
+touches a socket, a clock or a thread: it takes frames in (``receive(bytes)``) and gives frames out (the returned
+list, as wire bytes). The transport only moves the bytes.
 
 Flow (G garbler, E evaluator; every arrow is one or more frames, see ``proto/jointstat/v1/session.proto``):
 
 1. Both send ``hello`` at ``start()``. Each checks the peer's protocol version, role, session id, manifest digest
-   and circuit digest; any difference aborts before anything secret moves.
+   and program digest (the structure digest of ``Program``); any difference aborts before anything secret moves.
 2. OT: E → G ``base_ot`` (point A), G → E ``base_ot`` (128 points), then E → G ``ot_extension`` columns and
    G → E ``ot_extension`` corrections, batch by batch (E keeps a bounded window of batches in flight). G ends with
    the zero labels K of E's input wires, E with K ⊕ x·Δ for its input bits x.
-3. G builds the garbling from Δ and K, then *streams*: the labels of the constants and of its own input bits
-   (``garbler_input_labels``), then the garbled tables (``garbled_tables``) chunk by chunk as ``produce()``
-   garbles them. E evaluates every chunk as it arrives, so neither side holds all tables.
+3. G *streams*: the labels of its own input bits (``garbler_input_labels``), then the garbled tables
+   (``garbled_tables``) chunk by chunk as ``produce()`` runs the program on the garbling backend from Δ, its own
+   fresh input labels and the K of E's inputs. E, holding those labels and its own, runs the same program on the
+   evaluating backend, which takes the tables as they arrive; neither side holds more than a chunk of tables.
+   The program runs in a greenlet (``jointstat.garble.streams``) that pauses whenever a chunk is full (G) or the
+   tables received so far are used up (E).
 4. E returns the labels of G's output wires (``garbler_output_labels``); G checks each is one of its two valid
    labels (else it aborts) and decodes them. G then sends the decoding bits and check tags of E's outputs only
    (``evaluator_output_decoding``); E checks every tag and decodes.
@@ -28,12 +34,12 @@ Any error — an unexpected frame, a malformed one, an OT or output check that f
 ``fail()`` — moves the session to ``failed``, raises ``ProtocolError`` whose ``frame`` is the abort frame for the
 peer, and releases no output. A peer's ``abort`` moves the session to ``failed`` likewise.
 
-Progress: ``and_gates_total`` is the circuit's AND gate count and ``and_gates_done`` how many of them the garbler
-has garbled and handed out, or the evaluator has evaluated (tables of 32 bytes per AND gate; XOR and NOT gates cost
-nothing), for a node to show how far a session is.
+Progress: ``and_gates_total`` is the program's AND gate count and ``and_gates_done`` how many of them the garbler
+has garbled, or the evaluator has evaluated (tables of 32 bytes per AND gate; XOR and NOT gates cost nothing), for
+a node to show how far a session is.
 
-Threads: the transport may run ``GarblerSession.produce()`` (the garbling) in a worker thread while it passes
-incoming frames to ``receive`` from another; a lock makes each step atomic, and the state moves past
+Threads: none here. A session, and the greenlet its program runs in, must be driven from one thread at a time —
+the same thread for its whole life (the transport gives each session one worker thread). The state moves past
 ``streaming`` before the last streamed frame is handed out, so the evaluator's reply can never find the garbler
 still in ``streaming``.
 
@@ -51,10 +57,10 @@ state before ``done``/``failed`` and leads to ``failed``)
 | garbler   | awaiting output labels   | garbler_output_labels       | when all arrived: decoding, finish  | awaiting output labels; awaiting finish |
 | garbler   | awaiting finish          | finish                      | —                                   | done |
 | evaluator | new                      | start()                     | hello                               | awaiting hello |
-| evaluator | awaiting hello           | hello                       | base_ot (A)                         | base OT; awaiting input labels if E has no inputs |
+| evaluator | awaiting hello           | hello                       | base_ot (A)                         | base OT; awaiting input labels if E has no inputs (runs the program if G has none either) |
 | evaluator | base OT                  | base_ot (128 points)        | ot_extension (first window)         | OT extension |
-| evaluator | OT extension             | ot_extension (corrections)  | ot_extension (next batch, if any)   | OT extension; awaiting input labels after the last |
-| evaluator | awaiting input labels    | garbler_input_labels        | —                                   | awaiting input labels; evaluating (or as after the last table if no AND gates) |
+| evaluator | OT extension             | ot_extension (corrections)  | ot_extension (next batch, if any)   | OT extension; awaiting input labels after the last (runs the program if G has no inputs) |
+| evaluator | awaiting input labels    | garbler_input_labels        | — (after the last: runs the program) | awaiting input labels; evaluating (or as after the last table if no AND gates) |
 | evaluator | evaluating               | garbled_tables              | after the last: garbler_output_labels | evaluating; awaiting decoding; awaiting finish if E has no outputs (then also finish) |
 | evaluator | awaiting decoding        | evaluator_output_decoding   | when all arrived: finish            | awaiting decoding; awaiting finish |
 | evaluator | awaiting finish          | finish                      | —                                   | done |
@@ -62,23 +68,19 @@ state before ``done``/``failed`` and leads to ``failed``)
 
 from __future__ import annotations
 
-import threading
+import os
 from collections.abc import Callable, Iterator, Mapping
 from typing import ClassVar
 
 import numpy as np
 
-from jointstat.circuit.layers import LayeredCircuit
+from jointstat.circuit.builder import Builder
 from jointstat.circuit.model import Party
-from jointstat.garble.halfgates import (
-    DEFAULT_CHUNK_BYTES,
-    TABLE_BYTES,
-    Evaluator,
-    GarbleError,
-    Garbler,
-    OutputDecoding,
-    fresh_delta,
-)
+from jointstat.circuit.program import Program
+from jointstat.garble.backends import DEFAULT_CHUNK_BYTES, EvaluatorBackend, GarblerBackend
+from jointstat.garble.halfgates import TABLE_BYTES, GarbleError, fresh_delta
+from jointstat.garble.outputs import OutputDecoding, decode, decode_returned, make_decoding
+from jointstat.garble.streams import Sink, Source, TableConsumer, TableProducer
 from jointstat.ot import (
     BASE_OT_RECEIVER_POINTS,
     BASE_OT_SENDER_POINT,
@@ -96,6 +98,7 @@ from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
 
 Sign = Callable[[bytes], bytes]
 Verify = Callable[[bytes, bytes], bool]
+RandomBytes = Callable[[int], bytes]
 
 START = "start()"
 TABLES_SENT = "tables sent"
@@ -141,9 +144,15 @@ GARBLER_TABLE: Mapping[tuple[str, str], Transition] = _with_abort(
 EVALUATOR_TABLE: Mapping[tuple[str, str], Transition] = _with_abort(
     {
         (NEW, START): ("_on_start", (AWAITING_HELLO,)),
-        (AWAITING_HELLO, fr.HELLO): ("_on_hello", (BASE_OT, AWAITING_INPUT_LABELS)),
+        (AWAITING_HELLO, fr.HELLO): (
+            "_on_hello",
+            (BASE_OT, AWAITING_INPUT_LABELS, EVALUATING, AWAITING_DECODING, AWAITING_FINISH),
+        ),
         (BASE_OT, fr.BASE_OT): ("_on_base_ot", (OT_EXTENSION,)),
-        (OT_EXTENSION, fr.OT_EXTENSION): ("_on_ot_extension", (OT_EXTENSION, AWAITING_INPUT_LABELS)),
+        (OT_EXTENSION, fr.OT_EXTENSION): (
+            "_on_ot_extension",
+            (OT_EXTENSION, AWAITING_INPUT_LABELS, EVALUATING, AWAITING_DECODING, AWAITING_FINISH),
+        ),
         (AWAITING_INPUT_LABELS, fr.GARBLER_INPUT_LABELS): (
             "_on_input_labels",
             (AWAITING_INPUT_LABELS, EVALUATING, AWAITING_DECODING, AWAITING_FINISH),
@@ -157,7 +166,7 @@ EVALUATOR_TABLE: Mapping[tuple[str, str], Transition] = _with_abort(
     }
 )
 
-Handler = Callable[[pb.Frame | None], tuple[str, list[bytes]]]
+Handler = Callable[[fr.AnyFrame | None], tuple[str, list[bytes]]]
 
 
 class NoOutputError(RuntimeError):
@@ -194,9 +203,9 @@ class _Accumulator:
         return data
 
 
-def _check_inputs(layered: LayeredCircuit, party: Party, inputs: object) -> np.ndarray:
+def _check_inputs(program: Program, party: Party, inputs: object) -> np.ndarray:
     bits = np.asarray(inputs)
-    expected = layered.circuit.n_inputs(party)
+    expected = program.n_inputs(party)
     name = fr.role_name(party)
     if bits.ndim != 1 or bits.shape[0] != expected:
         raise ValueError(
@@ -219,26 +228,25 @@ class _Session:
         self,
         *,
         session_id: bytes,
-        layered: LayeredCircuit,
+        program: Program,
         manifest_digest: bytes,
         inputs: object,
         sign: Sign,
         verify: Verify,
+        random_bytes: RandomBytes = os.urandom,
     ) -> None:
-        if not isinstance(layered, LayeredCircuit):
-            raise ValueError(
-                f"layered must be a LayeredCircuit (see circuit.layers.schedule), got {type(layered)}"
-            )
+        if not isinstance(program, Program):
+            raise ValueError(f"program must be a Program (see circuit.program), got {type(program).__name__}")
         if not callable(sign) or not callable(verify):
             raise ValueError("sign and verify must be callables (see protocol.signing)")
         self.session_id = fr.check_session_id(session_id)
         self.manifest_digest = fr.check_digest(manifest_digest, "manifest digest")
-        self.layered = layered
-        self.circuit_digest = layered.circuit.digest()
-        self._inputs = _check_inputs(layered, self.PARTY, inputs)
+        self.program = program
+        self.program_digest = program.digest
+        self._inputs = _check_inputs(program, self.PARTY, inputs)
         self._sign = sign
         self._verify = verify
-        self._lock = threading.RLock()
+        self._random_bytes = random_bytes
         self._state = NEW
         self._transcript = Transcript(self.PARTY, self.session_id)
         self._result: np.ndarray | None = None  # decoded, held back until the peer's finish verifies
@@ -247,9 +255,8 @@ class _Session:
         self._digest: bytes | None = None
         self._peer_signature: bytes | None = None
         self._who = f"{fr.role_name(self.PARTY)} session"
-        c = layered.circuit
-        self._n_in = {p: c.n_inputs(p) for p in Party}
-        self._n_out = {p: int(layered.output_slots[p].size) for p in Party}
+        self._n_in = {p: program.n_inputs(p) for p in Party}
+        self._n_out = {p: program.n_outputs(p) for p in Party}
 
     # -- public view ----------------------------------------------------------------------------------------------
     @property
@@ -306,8 +313,8 @@ class _Session:
 
     @property
     def and_gates_total(self) -> int:
-        """AND gates in the circuit (each costs one 32-byte garbled table)."""
-        return int(self.layered.n_and)
+        """AND gates of the program (each costs one 32-byte garbled table)."""
+        return self.program.size.and_gates
 
     @property
     def and_gates_done(self) -> int:
@@ -321,8 +328,7 @@ class _Session:
     # -- driving --------------------------------------------------------------------------------------------------
     def start(self) -> list[bytes]:
         """The frames this side sends first (its hello)."""
-        with self._lock:
-            return self._dispatch(START, None)
+        return self._dispatch(START, None)
 
     def receive(self, data: bytes) -> list[bytes]:
         """Take one frame from the peer; returns the frames to send in reply (possibly none).
@@ -330,27 +336,25 @@ class _Session:
         Raises ``ProtocolError`` when the frame ends the session in failure; send its ``frame`` (if any) to the peer.
         After a peer's ``abort`` the session is ``failed`` and the list is empty.
         """
-        with self._lock:
-            if self.ended:
-                raise ProtocolError(
-                    AbortReason.UNEXPECTED_FRAME, f"{self._who} has ended ({self._state}); frame refused"
-                )
-            try:
-                kind, frame = fr.decode(data)
-            except ProtocolError as exc:
-                raise self._failure(exc.reason, f"{self._who} in state {self._state!r}: {exc}") from None
-            self._transcript.received(kind, bytes(data))
-            return self._dispatch(kind, frame)
+        if self.ended:
+            raise ProtocolError(
+                AbortReason.UNEXPECTED_FRAME, f"{self._who} has ended ({self._state}); frame refused"
+            )
+        try:
+            kind, frame = fr.decode(data)
+        except ProtocolError as exc:
+            raise self._failure(exc.reason, f"{self._who} in state {self._state!r}: {exc}") from None
+        self._transcript.received(kind, data)
+        return self._dispatch(kind, frame)
 
     def fail(self, reason: AbortReason, message: str) -> bytes | None:
         """End the session for a reason found outside it (deadline, lost connection, shutdown).
 
         Returns the abort frame to send to the peer, or None if the session had already ended.
         """
-        with self._lock:
-            if self.ended:
-                return None
-            return self._failure(reason, f"{self._who} in state {self._state!r}: {message}").frame
+        if self.ended:
+            return None
+        return self._failure(reason, f"{self._who} in state {self._state!r}: {message}").frame
 
     # -- machinery --------------------------------------------------------------------------------------------------
     def _failure(self, reason: AbortReason, message: str) -> ProtocolError:
@@ -363,7 +367,7 @@ class _Session:
     def _release_engines(self) -> None:
         """Drop garbling, evaluation and OT state (overridden by each session)."""
 
-    def _dispatch(self, event: str, frame: pb.Frame | None) -> list[bytes]:
+    def _dispatch(self, event: str, frame: fr.AnyFrame | None) -> list[bytes]:
         state = self._state
         if state in (DONE, FAILED):
             raise ProtocolError(
@@ -391,7 +395,8 @@ class _Session:
                 AbortReason.OT_FAILURE, f"{where}: oblivious transfer failed: {exc}"
             ) from None
         except GarbleError as exc:
-            raise self._failure(AbortReason.INVALID_OUTPUT, f"{where}: {exc}") from None
+            reason = AbortReason.MALFORMED_FRAME if event == fr.GARBLED_TABLES else AbortReason.INVALID_OUTPUT
+            raise self._failure(reason, f"{where}: {exc}") from None
         except Exception as exc:
             raise self._failure(
                 AbortReason.INTERNAL, f"{where}: internal error ({type(exc).__name__})"
@@ -411,16 +416,17 @@ class _Session:
     def _emit_payload(self, kind: str, payload: bytes) -> list[bytes]:
         return [self._emit(kind, f) for f in fr.chunked_frames(kind, payload)]
 
-    def _on_start(self, _frame: pb.Frame | None) -> tuple[str, list[bytes]]:
+    def _on_start(self, _frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
         hello = fr.hello_frame(
             party=self.PARTY,
             session_id=self.session_id,
             manifest_digest=self.manifest_digest,
-            circuit_digest=self.circuit_digest,
+            program_digest=self.program_digest,
         )
         return AWAITING_HELLO, [self._emit(fr.HELLO, hello)]
 
-    def _check_hello(self, frame: pb.Frame) -> None:
+    def _check_hello(self, frame: fr.AnyFrame) -> None:
+        assert isinstance(frame, pb.Frame)
         hello = frame.hello
         if hello.protocol_version != fr.PROTOCOL_VERSION:
             raise ProtocolError(
@@ -441,11 +447,12 @@ class _Session:
                 f"manifest digests differ (this node {self.manifest_digest.hex()[:16]}…, "
                 f"peer {bytes(hello.manifest_digest).hex()[:16]}…)",
             )
-        if hello.circuit_digest != self.circuit_digest:
+        if hello.program_digest != self.program_digest:
             raise ProtocolError(
                 AbortReason.MANIFEST_MISMATCH,
-                f"compiled circuit digests differ (this node {self.circuit_digest.hex()[:16]}…, "
-                f"peer {bytes(hello.circuit_digest).hex()[:16]}…): the nodes compile the manifest differently",
+                f"program digests differ (this node {self.program_digest.hex()[:16]}…, "
+                f"peer {bytes(hello.program_digest).hex()[:16]}…): the nodes run different programs for the"
+                " manifest (different jointstat versions?)",
             )
 
     def _finish_frame(self) -> bytes:
@@ -458,7 +465,7 @@ class _Session:
         self._digest = digest
         return self._emit(fr.FINISH, fr.finish_frame(digest, bytes(signature)))
 
-    def _on_finish(self, frame: pb.Frame | None) -> tuple[str, list[bytes]]:
+    def _on_finish(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
         assert frame is not None and self._digest is not None
         finish = frame.finish
         if bytes(finish.transcript_digest) != self._digest:
@@ -479,7 +486,7 @@ class _Session:
         self._result = None
         return DONE, []
 
-    def _on_abort(self, frame: pb.Frame | None) -> tuple[str, list[bytes]]:
+    def _on_abort(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
         assert frame is not None
         self._abort = fr.abort_of(frame)
         self._result = None
@@ -490,8 +497,8 @@ class _Session:
 class GarblerSession(_Session):
     """The garbler's side of one session: fresh Δ and labels, garbled tables streamed by ``produce()``.
 
-    ``inputs`` are the garbler's input bits (in the circuit's garbler input order). After ``done``, ``outputs``
-    holds the garbler's output bits. ``chunk_bytes`` bounds the tables per frame (a multiple of 32 bytes).
+    ``inputs`` are the garbler's input bits (in the program's garbler input order). After ``done``, ``outputs``
+    holds the garbler's output bits. ``chunk_bytes`` bounds the tables per frame.
     """
 
     PARTY = Party.GARBLER
@@ -501,36 +508,42 @@ class GarblerSession(_Session):
         self,
         *,
         session_id: bytes,
-        layered: LayeredCircuit,
+        program: Program,
         manifest_digest: bytes,
         inputs: object,
         sign: Sign,
         verify: Verify,
+        random_bytes: RandomBytes = os.urandom,
         chunk_bytes: int = DEFAULT_CHUNK_BYTES,
     ) -> None:
         if not isinstance(chunk_bytes, int) or not TABLE_BYTES <= chunk_bytes <= fr.MAX_PAYLOAD_BYTES:
             raise ValueError(f"chunk_bytes must be an integer from {TABLE_BYTES} to {fr.MAX_PAYLOAD_BYTES}")
         super().__init__(
             session_id=session_id,
-            layered=layered,
+            program=program,
             manifest_digest=manifest_digest,
             inputs=inputs,
             sign=sign,
             verify=verify,
+            random_bytes=random_bytes,
         )
-        self._chunk_bytes = chunk_bytes - chunk_bytes % TABLE_BYTES
+        self._chunk_bytes = chunk_bytes
         self._delta: np.ndarray | None = None
         self._ot: CorrelatedOTSender | None = None
-        self._engine: Garbler | None = None
+        self._evaluator_zero: np.ndarray | None = None
+        self._backend: GarblerBackend | None = None
         self._producing = False
-        self._tables_out = 0
+        self._output_zero: dict[Party, np.ndarray] | None = None
         self._returned = _Accumulator(
             fr.GARBLER_OUTPUT_LABELS, BLOCK_BYTES * self._n_out[Party.GARBLER], "16 bytes per garbler output"
         )
 
     @property
     def and_gates_done(self) -> int:
-        return self._tables_out
+        backend = self._backend
+        if backend is None:
+            return self.and_gates_total if self._output_zero is not None else 0
+        return backend.next_gate
 
     @property
     def ready_to_stream(self) -> bool:
@@ -539,8 +552,10 @@ class GarblerSession(_Session):
 
     def _release_engines(self) -> None:
         self._ot = None
-        self._engine = None
+        self._backend = None
         self._delta = None
+        self._evaluator_zero = None
+        self._output_zero = None
 
     def _ot_frames(self, messages: list[OTMessage]) -> list[bytes]:
         out = []
@@ -551,98 +566,136 @@ class GarblerSession(_Session):
             out.append(self._emit(kind, fr.payload_frame(kind, m.payload)))
         return out
 
-    def _on_hello(self, frame: pb.Frame | None) -> tuple[str, list[bytes]]:
+    def _on_hello(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
         assert frame is not None
         self._check_hello(frame)
-        self._delta = fresh_delta()
+        self._delta = fresh_delta(self._random_bytes)
         self._ot = CorrelatedOTSender(self.session_id, self._delta, self._n_in[Party.EVALUATOR])
         replies = self._ot_frames(self._ot.start())
         if self._ot.done:
-            self._build_garbling()
+            self._ot_finished()
             return STREAMING, replies
         return BASE_OT, replies
 
-    def _on_base_ot(self, frame: pb.Frame | None) -> tuple[str, list[bytes]]:
+    def _on_base_ot(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
         assert frame is not None and self._ot is not None
         replies = self._ot.receive(OTMessage(BASE_OT_SENDER_POINT, fr.payload_of(fr.BASE_OT, frame)))
         return OT_EXTENSION, self._ot_frames(replies)
 
-    def _on_ot_extension(self, frame: pb.Frame | None) -> tuple[str, list[bytes]]:
+    def _on_ot_extension(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
         assert frame is not None and self._ot is not None
         replies = self._ot_frames(
             self._ot.receive(OTMessage(EXTENSION_COLUMNS, fr.payload_of(fr.OT_EXTENSION, frame)))
         )
         if self._ot.done:
-            self._build_garbling()
+            self._ot_finished()
             return STREAMING, replies
         return OT_EXTENSION, replies
 
-    def _build_garbling(self) -> None:
-        assert self._ot is not None and self._delta is not None
-        zero = self._ot.zero_labels if self._n_in[Party.EVALUATOR] else None
-        self._engine = Garbler(self.layered, delta=self._delta, evaluator_zero_labels=zero)
+    def _ot_finished(self) -> None:
+        assert self._ot is not None
+        n = self._n_in[Party.EVALUATOR]
+        self._evaluator_zero = self._ot.zero_labels if n else np.zeros((0, 2), dtype=BLOCK_DTYPE)
         self._ot = None
 
     def produce(self) -> Iterator[bytes]:
         """The streamed frames: the garbler's input labels, then the garbled tables, garbled as they are pulled.
 
-        Valid once, in state ``streaming``. Safe to run in a worker thread while ``receive`` runs in another; if
-        the session fails meanwhile, the iterator stops. The state leaves ``streaming`` before the last frame is
-        handed out (and, when the garbler has no outputs, the decoding and finish frames follow).
+        Valid once, in state ``streaming``. If the session fails meanwhile, the iterator stops. The state leaves
+        ``streaming`` before the last frame is handed out (and, when the garbler has no outputs, the decoding and
+        finish frames follow).
         """
-        with self._lock:
-            if self._state != STREAMING or self._producing or self._engine is None:
-                raise ProtocolError(
-                    AbortReason.INTERNAL,
-                    f"{self._who} in state {self._state!r}: produce() is valid once, in streaming",
-                )
-            self._producing = True
-            engine = self._engine
-        payloads = self._payloads(engine)
-        current = next(payloads)
-        while current is not None:
-            # Pull the next chunk first: it garbles outside the lock, and it finishes the trailing linear layers
-            # (which fix the output labels) before the state may leave 'streaming'.
-            upcoming = next(payloads, None)
-            with self._lock:
+        if self._state != STREAMING or self._producing or self._evaluator_zero is None or self._delta is None:
+            raise ProtocolError(
+                AbortReason.INTERNAL,
+                f"{self._who} in state {self._state!r}: produce() is valid once, in streaming",
+            )
+        self._producing = True
+        payloads = self._payloads(self._delta, self._evaluator_zero)
+        self._evaluator_zero = None
+        try:
+            current = next(payloads, None)
+            if current is None:  # no garbler inputs and no AND gates: nothing to stream
+                yield from self._dispatch(TABLES_SENT, None)
+                return
+            while current is not None:
+                # Pull the next chunk first: it runs the program further, and after the last one the program has
+                # ended (its output labels are known) before the state may leave 'streaming'.
+                upcoming = next(payloads, None)
                 if self._state != STREAMING:
                     return
                 kind, payload = current
                 data = self._emit(kind, fr.payload_frame(kind, payload))
-                if kind == fr.GARBLED_TABLES:
-                    self._tables_out += len(payload) // TABLE_BYTES
                 extra = self._dispatch(TABLES_SENT, None) if upcoming is None else []
-            yield data
-            yield from extra
-            current = upcoming
+                yield data
+                yield from extra
+                current = upcoming
+        except ProtocolError:
+            raise
+        except GarbleError as exc:
+            raise self._failure(AbortReason.INTERNAL, f"{self._who} in state {self._state!r}: {exc}") from None
+        except Exception as exc:
+            raise self._failure(
+                AbortReason.INTERNAL,
+                f"{self._who} in state {self._state!r}: garbling failed ({type(exc).__name__})",
+            ) from exc
 
-    def _payloads(self, engine: Garbler) -> Iterator[tuple[str, bytes]]:
-        labels = np.concatenate([engine.constant_labels(), engine.input_labels(Party.GARBLER, self._inputs)])
-        raw = labels.astype(BLOCK_DTYPE, copy=False).tobytes()
+    def _payloads(self, delta: np.ndarray, evaluator_zero: np.ndarray) -> Iterator[tuple[str, bytes]]:
+        own_zero = np.frombuffer(
+            bytearray(self._random_bytes(BLOCK_BYTES * self._n_in[Party.GARBLER])), dtype=BLOCK_DTYPE
+        ).reshape(-1, 2)
+        mask = (self._inputs.astype(np.uint64) * np.uint64(0xFFFFFFFFFFFFFFFF)).reshape(-1, 1)
+        raw = (own_zero ^ (np.broadcast_to(delta, own_zero.shape) & mask)).tobytes()
         for i in range(0, len(raw), fr.MAX_PAYLOAD_BYTES):
             yield fr.GARBLER_INPUT_LABELS, raw[i : i + fr.MAX_PAYLOAD_BYTES]
-        for chunk in engine.tables(self._chunk_bytes):
-            yield fr.GARBLED_TABLES, chunk
+        program = self.program
 
-    def _on_tables_sent(self, _frame: pb.Frame | None) -> tuple[str, list[bytes]]:
+        def garble(sink: Sink) -> GarblerBackend:
+            backend = GarblerBackend(
+                delta=delta,
+                input_labels={Party.GARBLER: own_zero, Party.EVALUATOR: evaluator_zero},
+                sink=sink,
+                chunk_bytes=self._chunk_bytes,
+            )
+            self._backend = backend
+            program.run(Builder(backend))
+            backend.check_inputs_used()
+            backend.flush()
+            return backend
+
+        producer = TableProducer(garble)
+        while True:
+            chunk = producer.next_chunk()
+            if chunk is None:
+                break
+            yield fr.GARBLED_TABLES, chunk
+        backend = producer.result
+        if backend.and_gates != self.and_gates_total:
+            raise GarbleError(
+                f"the program garbled {backend.and_gates} AND gates but measured {self.and_gates_total}"
+            )
+        self._output_zero = {p: backend.output_labels(p) for p in Party}
+        self._backend = None
+
+    def _on_tables_sent(self, _frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
         if self._n_out[Party.GARBLER] == 0:
             self._result = np.zeros(0, dtype=np.uint8)
             return AWAITING_FINISH, self._decoding_and_finish()
         return AWAITING_OUTPUT_LABELS, []
 
-    def _on_output_labels(self, frame: pb.Frame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None and self._engine is not None
+    def _on_output_labels(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
+        assert frame is not None and self._output_zero is not None and self._delta is not None
         self._returned.add(fr.payload_of(fr.GARBLER_OUTPUT_LABELS, frame))
         if not self._returned.complete:
             return AWAITING_OUTPUT_LABELS, []
         labels = np.frombuffer(self._returned.take(), dtype=BLOCK_DTYPE).reshape(-1, 2)
-        self._result = self._engine.decode_returned(Party.GARBLER, labels)
+        self._result = decode_returned(self._output_zero[Party.GARBLER], self._delta, labels)
         return AWAITING_FINISH, self._decoding_and_finish()
 
     def _decoding_and_finish(self) -> list[bytes]:
-        assert self._engine is not None
-        decoding = self._engine.output_decoding(Party.EVALUATOR).to_bytes()
-        self._engine = None
+        assert self._output_zero is not None and self._delta is not None
+        decoding = make_decoding(self._output_zero[Party.EVALUATOR], self._delta).to_bytes()
+        self._output_zero = None
         self._delta = None
         out = self._emit_payload(fr.EVALUATOR_OUTPUT_DECODING, decoding)
         out.append(self._finish_frame())
@@ -663,44 +716,52 @@ class EvaluatorSession(_Session):
         self,
         *,
         session_id: bytes,
-        layered: LayeredCircuit,
+        program: Program,
         manifest_digest: bytes,
         inputs: object,
         sign: Sign,
         verify: Verify,
+        random_bytes: RandomBytes = os.urandom,
     ) -> None:
         super().__init__(
             session_id=session_id,
-            layered=layered,
+            program=program,
             manifest_digest=manifest_digest,
             inputs=inputs,
             sign=sign,
             verify=verify,
+            random_bytes=random_bytes,
         )
         self._ot: CorrelatedOTReceiver | None = None
         self._own_labels: np.ndarray | None = None
-        self._engine: Evaluator | None = None
-        self._table_bytes_left = TABLE_BYTES * layered.n_and
+        self._consumer: TableConsumer | None = None
+        self._backend: EvaluatorBackend | None = None
+        self._table_bytes_total = TABLE_BYTES * program.size.and_gates
+        self._table_bytes_left = self._table_bytes_total
         self._given = _Accumulator(
             fr.GARBLER_INPUT_LABELS,
-            BLOCK_BYTES * (2 + self._n_in[Party.GARBLER]),
-            "16 bytes for each constant and each garbler input",
+            BLOCK_BYTES * self._n_in[Party.GARBLER],
+            "16 bytes for each garbler input",
         )
         n = self._n_out[Party.EVALUATOR]
         self._decoding = _Accumulator(
             fr.EVALUATOR_OUTPUT_DECODING,
-            (n + 7) // 8 + 16 * n,
+            OutputDecoding.size(n),
             "packed decoding bits and two 8-byte tags per output",
         )
 
     @property
     def and_gates_done(self) -> int:
-        return (TABLE_BYTES * self.layered.n_and - self._table_bytes_left) // TABLE_BYTES
+        backend = self._backend
+        if backend is not None:
+            return backend.next_gate
+        return (self._table_bytes_total - self._table_bytes_left) // TABLE_BYTES
 
     def _release_engines(self) -> None:
         self._ot = None
         self._own_labels = None
-        self._engine = None
+        self._consumer = None
+        self._backend = None
 
     def _ot_frames(self, messages: list[OTMessage]) -> list[bytes]:
         out = []
@@ -711,7 +772,7 @@ class EvaluatorSession(_Session):
             out.append(self._emit(kind, fr.payload_frame(kind, m.payload)))
         return out
 
-    def _on_hello(self, frame: pb.Frame | None) -> tuple[str, list[bytes]]:
+    def _on_hello(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
         assert frame is not None
         self._check_hello(frame)
         self._ot = CorrelatedOTReceiver(self.session_id, self._inputs)
@@ -719,15 +780,15 @@ class EvaluatorSession(_Session):
         if self._ot.done:
             self._own_labels = np.empty((0, 2), dtype=BLOCK_DTYPE)
             self._ot = None
-            return AWAITING_INPUT_LABELS, replies
+            return self._after_ot(replies)
         return BASE_OT, replies
 
-    def _on_base_ot(self, frame: pb.Frame | None) -> tuple[str, list[bytes]]:
+    def _on_base_ot(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
         assert frame is not None and self._ot is not None
         replies = self._ot.receive(OTMessage(BASE_OT_RECEIVER_POINTS, fr.payload_of(fr.BASE_OT, frame)))
         return OT_EXTENSION, self._ot_frames(replies)
 
-    def _on_ot_extension(self, frame: pb.Frame | None) -> tuple[str, list[bytes]]:
+    def _on_ot_extension(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
         assert frame is not None and self._ot is not None
         replies = self._ot_frames(
             self._ot.receive(OTMessage(EXTENSION_CORRECTIONS, fr.payload_of(fr.OT_EXTENSION, frame)))
@@ -735,66 +796,85 @@ class EvaluatorSession(_Session):
         if self._ot.done:
             self._own_labels = self._ot.labels
             self._ot = None
-            return AWAITING_INPUT_LABELS, replies
+            return self._after_ot(replies)
         return OT_EXTENSION, replies
 
-    def _on_input_labels(self, frame: pb.Frame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None and self._own_labels is not None
+    def _after_ot(self, replies: list[bytes]) -> tuple[str, list[bytes]]:
+        if self._given.total == 0:  # the garbler has no inputs: nothing to wait for
+            state, more = self._start_program(np.zeros((0, 2), dtype=BLOCK_DTYPE))
+            return state, replies + more
+        return AWAITING_INPUT_LABELS, replies
+
+    def _on_input_labels(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
+        assert frame is not None
         self._given.add(fr.payload_of(fr.GARBLER_INPUT_LABELS, frame))
         if not self._given.complete:
             return AWAITING_INPUT_LABELS, []
-        given = np.frombuffer(self._given.take(), dtype=BLOCK_DTYPE).reshape(-1, 2)
-        self._engine = Evaluator(
-            self.layered,
-            constant_labels=given[:2],
-            garbler_labels=given[2:],
-            evaluator_labels=self._own_labels,
-        )
-        self._own_labels = None
-        if self._engine.done:
+        return self._start_program(np.frombuffer(self._given.take(), dtype=BLOCK_DTYPE).reshape(-1, 2))
+
+    def _start_program(self, given: np.ndarray) -> tuple[str, list[bytes]]:
+        assert self._own_labels is not None
+        own, self._own_labels = self._own_labels, None
+        program = self.program
+
+        def evaluate(source: Source) -> EvaluatorBackend:
+            backend = EvaluatorBackend(input_labels={Party.GARBLER: given, Party.EVALUATOR: own}, source=source)
+            self._backend = backend
+            program.run(Builder(backend))
+            backend.check_inputs_used()
+            return backend
+
+        self._consumer = TableConsumer(evaluate, total=self._table_bytes_total)
+        self._consumer.start()
+        if self._consumer.finished:
             return self._after_tables()
         return EVALUATING, []
 
-    def _on_tables(self, frame: pb.Frame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None and self._engine is not None
+    def _on_tables(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
+        assert frame is not None and self._consumer is not None
         tables = fr.payload_of(fr.GARBLED_TABLES, frame)
-        if not tables or len(tables) % TABLE_BYTES:
-            raise ProtocolError(
-                AbortReason.MALFORMED_FRAME,
-                f"garbled_tables frame of {len(tables)} bytes is not a positive whole number of "
-                f"{TABLE_BYTES}-byte tables",
-            )
+        if not len(tables):
+            raise ProtocolError(AbortReason.MALFORMED_FRAME, "empty garbled_tables frame")
         if len(tables) > self._table_bytes_left:
             raise ProtocolError(
                 AbortReason.MALFORMED_FRAME,
                 f"garbled_tables frame of {len(tables)} bytes exceeds the {self._table_bytes_left} bytes of tables "
-                "the circuit still needs",
+                "the program still needs",
             )
-        self._engine.feed(tables)
         self._table_bytes_left -= len(tables)
+        self._consumer.feed(tables)
         if self._table_bytes_left == 0:
+            self._consumer.close()  # a program that wants more tables than it declared fails here
+        if self._consumer.finished:
             return self._after_tables()
         return EVALUATING, []
 
     def _after_tables(self) -> tuple[str, list[bytes]]:
-        assert self._engine is not None
-        returned = self._engine.output_labels(Party.GARBLER).astype(BLOCK_DTYPE, copy=False).tobytes()
+        assert self._consumer is not None
+        backend: EvaluatorBackend = self._consumer.result
+        if self._table_bytes_left:
+            raise GarbleError(
+                f"the program ended with {self._table_bytes_left} bytes of tables still due from the garbler"
+            )
+        self._consumer = None
+        self._backend = backend
+        returned = backend.output_labels(Party.GARBLER).tobytes()
         out = self._emit_payload(fr.GARBLER_OUTPUT_LABELS, returned)
         if self._decoding.total == 0:
             self._result = np.zeros(0, dtype=np.uint8)
-            self._engine = None
+            self._backend = None
             out.append(self._finish_frame())
             return AWAITING_FINISH, out
         return AWAITING_DECODING, out
 
-    def _on_decoding(self, frame: pb.Frame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None and self._engine is not None
+    def _on_decoding(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
+        assert frame is not None and self._backend is not None
         self._decoding.add(fr.payload_of(fr.EVALUATOR_OUTPUT_DECODING, frame))
         if not self._decoding.complete:
             return AWAITING_DECODING, []
         decoding = OutputDecoding.from_bytes(self._decoding.take(), self._n_out[Party.EVALUATOR])
-        self._result = self._engine.decode(decoding)
-        self._engine = None
+        self._result = decode(self._backend.output_labels(Party.EVALUATOR), decoding)
+        self._backend = None
         return AWAITING_FINISH, [self._finish_frame()]
 
 
@@ -805,21 +885,23 @@ def new_session(
     party: Party,
     *,
     session_id: bytes,
-    layered: LayeredCircuit,
+    program: Program,
     manifest_digest: bytes,
     inputs: object,
     sign: Sign,
     verify: Verify,
+    random_bytes: RandomBytes = os.urandom,
     chunk_bytes: int = DEFAULT_CHUNK_BYTES,
 ) -> Session:
-    """A session for ``party`` with the given circuit, digest and own inputs (``chunk_bytes``: garbler only)."""
+    """A session for ``party`` with the given program, digest and own inputs (``chunk_bytes``: garbler only)."""
     common = {
         "session_id": session_id,
-        "layered": layered,
+        "program": program,
         "manifest_digest": manifest_digest,
         "inputs": inputs,
         "sign": sign,
         "verify": verify,
+        "random_bytes": random_bytes,
     }
     if Party(party) == Party.GARBLER:
         return GarblerSession(chunk_bytes=chunk_bytes, **common)  # type: ignore[arg-type]
