@@ -18,8 +18,8 @@ Theory of operation — the one-process demonstration (``run``, ``jointstat demo
 -----------------------------------------------------------------------------------------
 An invented scenario: a library (the garbler) keeps a secret AES-128 key with which it turns member
 numbers into pseudonyms; a research partner (the evaluator) holds one 16-byte member record and wants its
-pseudonym without learning the key, while the library learns nothing about the record. The demo builds the
-AES-128 circuit (``aes128``), garbles it with half-gates, streams the garbled tables to the evaluator in small
+pseudonym without learning the key, while the library learns nothing about the record. The demo runs the
+AES-128 program (``aes128``) on the garbling backend (half-gates), streams the garbled tables to the evaluator in small
 chunks as they are made, evaluates, decodes, and prints the result beside AES-128 from the ``cryptography``
 package on the same inputs. Both roles run in this one process and the evaluator's input labels are handed over
 directly (a stand-in for oblivious transfer). The exit code is 0 only if the garbled result equals
@@ -41,9 +41,9 @@ from typing import Any
 
 from cryptography.hazmat.primitives.ciphers import Cipher, algorithms, modes
 
-from jointstat.circuit.layers import schedule
-from jointstat.circuit.model import GateKind, Party
-from jointstat.circuit.reference.aes128 import aes128_circuit, bits_to_block, block_bits, key_bits
+from jointstat.circuit.model import Party
+from jointstat.circuit.program import Program
+from jointstat.circuit.reference.aes128 import aes128_program, bits_to_block, block_bits, key_bits
 from jointstat.garble.local import run_locally
 
 CHUNK_BYTES = 16 * 1024
@@ -62,11 +62,14 @@ def reference_aes128(key: bytes, block: bytes) -> bytes:
 def run() -> int:
     """Run the demonstration and print its report; 0 if the garbled result matches ``cryptography``'s, else 1."""
     t0 = time.perf_counter()
-    circuit = aes128_circuit()
-    layered = schedule(circuit)
+    program = Program.of(aes128_program, name="AES-128")
     t_build = time.perf_counter() - t0
 
-    run = run_locally(layered, key_bits(LIBRARY_KEY), block_bits(MEMBER_RECORD), chunk_bytes=CHUNK_BYTES)
+    run = run_locally(
+        program.run,
+        {Party.GARBLER: key_bits(LIBRARY_KEY), Party.EVALUATOR: block_bits(MEMBER_RECORD)},
+        chunk_bytes=CHUNK_BYTES,
+    )
     garbled = bits_to_block(run.outputs[Party.EVALUATOR])
     table_bytes, chunks, t_garble, t_eval = (
         run.table_bytes,
@@ -84,14 +87,15 @@ def run() -> int:
     print("  learn nothing about the record. The library garbles; the partner evaluates.")
     print("  (Here the partner's input labels are handed over directly, standing in for oblivious transfer.)")
     print()
+    size = program.size
     print(
-        f"  circuit         {circuit.and_count:,} AND   {circuit.count(GateKind.XOR):,} XOR"
-        f"   {circuit.count(GateKind.NOT):,} NOT   {layered.n_layers:,} layers"
+        f"  circuit         {size.and_gates:,} AND   {size.xor_gates:,} XOR   {size.not_gates:,} NOT"
+        f"   AND depth {size.and_depth:,}"
     )
     print(
         f"  garbled tables  {table_bytes:,} bytes, streamed in {chunks} chunks of at most {CHUNK_BYTES:,} bytes"
     )
-    print(f"  time            build {t_build:.3f} s   garble {t_garble:.3f} s   evaluate {t_eval:.3f} s")
+    print(f"  time            count {t_build:.3f} s   garble {t_garble:.3f} s   evaluate {t_eval:.3f} s")
     print(f"  record          {MEMBER_RECORD.decode('ascii')!r}")
     print(f"  pseudonym       garbled circuit  {garbled.hex()}")
     print(f"                  cryptography     {expected.hex()}")

@@ -33,11 +33,11 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     bench = sub.add_parser("bench", help="measure this machine (prints JSON with --json)")
     which = bench.add_subparsers(dest="what", required=True, metavar="WHAT")
 
-    garble = which.add_parser("garble", help="garbling and evaluation speed of a wide circuit")
+    garble = which.add_parser("garble", help="garbling and evaluation speed of a wide program")
     garble.add_argument(
-        "--and-gates", type=int, default=1 << 20, help="AND gates in the circuit (default 2^20)"
+        "--and-gates", type=int, default=1 << 20, help="AND gates in the program (default 2^20)"
     )
-    garble.add_argument("--width", type=int, default=8192, help="AND gates per layer (default 8192)")
+    garble.add_argument("--width", type=int, default=1 << 14, help="AND gates per call (default 2^14)")
     garble.add_argument("--json", action="store_true", help="print one JSON object")
     garble.set_defaults(handler=_garble)
 
@@ -48,7 +48,7 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
 
     session = which.add_parser("session", help="a whole session between two node processes over loopback TLS")
     session.add_argument(
-        "--and-gates", type=int, default=1 << 22, help="AND gates in the circuit (default 2^22)"
+        "--and-gates", type=int, default=1 << 22, help="AND gates in the program (default 2^22)"
     )
     session.add_argument("--json", action="store_true", help="print one JSON object")
     session.set_defaults(handler=_session)

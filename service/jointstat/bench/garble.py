@@ -1,10 +1,10 @@
-"""``jointstat bench garble``: garbling and evaluation speed of a wide circuit, tables streamed between them.
+"""``jointstat bench garble``: garbling and evaluation speed of a wide program, tables streamed between them.
 
-The circuit: ``width`` lanes of state; each round ANDs every lane with a pseudo-randomly chosen other lane of the
-current state and XORs in the previous state, so every AND layer has exactly ``width`` gates and reads from a
-nearby slice of the label array, as the layers of a lane-parallel statistic do. The garbler's generator and the
-evaluator's ``feed`` alternate chunk by chunk in one process; each side's time is measured separately, so peak
-memory reflects streaming (no side ever holds all tables). Speeds are the median over three garblings.
+The program: ``width`` lanes of state; each round ANDs every lane with its neighbour (the state rotated by one
+lane) and XORs in the previous state, so every AND call has exactly ``width`` gates (the last may have fewer), as
+the word operations of a lane-parallel statistic do. The garbler's and the evaluator's programs alternate chunk by
+chunk in one process (``garble.local``); each side's time is measured separately, and memory stays that of the
+state, whatever the number of gates. Speeds are the median over three garblings.
 """
 
 from __future__ import annotations
@@ -14,48 +14,47 @@ import time
 import numpy as np
 
 from jointstat.bench.report import emit, peak_rss_mib
+from jointstat.circuit.bits import concat
 from jointstat.circuit.builder import Builder
-from jointstat.circuit.layers import LayeredCircuit, evaluate_plain, schedule
-from jointstat.circuit.model import Circuit, Party
+from jointstat.circuit.model import Party
+from jointstat.circuit.program import Program
 from jointstat.garble.halfgates import STEP
 from jointstat.garble.local import run_locally
 from jointstat.primitives.aes import aes_blocks_per_second
 
 REPEATS = 3
+DEFAULT_WIDTH = 1 << 14
 
 
-def wide_circuit(and_gates: int, width: int, seed: int = 7) -> Circuit:
-    """A circuit of exactly ``and_gates`` AND gates in layers of ``width`` (the last may be narrower)."""
-    rng = np.random.default_rng(seed)
-    bld = Builder()
-    prev = bld.input(Party.GARBLER, width)
-    cur = bld.input(Party.EVALUATOR, width)
-    left = and_gates
-    while left > 0:
-        n = min(width, left)
-        # A random cyclic order pairs every lane with a different lane, so no AND folds away.
-        order = rng.permutation(width)
-        partner_of = np.empty(width, dtype=np.int64)
-        partner_of[order] = np.roll(order, 1)
-        mixed = bld.and_(cur[:n], cur[partner_of[:n]])
-        nxt = cur.copy()
-        nxt[:n] = bld.xor(mixed, prev[:n])
-        prev, cur = cur, nxt
-        left -= n
-    bld.output(Party.EVALUATOR, cur[: width // 2])
-    bld.output(Party.GARBLER, cur[width // 2 :])
-    return bld.build()
+def wide_program(and_gates: int, width: int) -> Program:
+    """A program of exactly ``and_gates`` AND gates in calls of ``width`` lanes (the last may be narrower)."""
+
+    def run(bld: Builder) -> None:
+        prev = bld.input(Party.GARBLER, width)
+        cur = bld.input(Party.EVALUATOR, width)
+        left = and_gates
+        while left > 0:
+            n = min(width, left)
+            mixed = bld.and_(cur[:n], cur.roll(1, axis=0)[:n])  # every lane with its neighbour: no AND folds
+            nxt = bld.xor(mixed, prev[:n])
+            prev, cur = cur, (nxt if n == width else concat([nxt, cur[n:]]))
+            left -= n
+        bld.output(Party.EVALUATOR, cur[: width // 2])
+        bld.output(Party.GARBLER, cur[width // 2 :])
+
+    return Program.of(run, name=f"wide program of {and_gates} AND gates")
 
 
-def measure(layered: LayeredCircuit, check: bool) -> dict[str, float]:
-    c = layered.circuit
+def measure(program: Program, check: bool) -> dict[str, float]:
     rng = np.random.default_rng(11)
-    g_bits = rng.integers(0, 2, c.n_inputs(Party.GARBLER), dtype=np.uint8)
-    e_bits = rng.integers(0, 2, c.n_inputs(Party.EVALUATOR), dtype=np.uint8)
-    result = run_locally(layered, g_bits, e_bits)
+    bits = {p: rng.integers(0, 2, program.n_inputs(p), dtype=np.uint8) for p in Party}
+    result = run_locally(program.run, bits)
     if check:
-        ref = evaluate_plain(layered, {Party.GARBLER: g_bits, Party.EVALUATOR: e_bits})
-        if not all(np.array_equal(ref[p], result.outputs[p]) for p in Party):
+        from jointstat.circuit.backend import PlainBackend
+
+        plain = PlainBackend(bits)
+        program.run(Builder(plain))
+        if not all(np.array_equal(plain.outputs(p), result.outputs[p]) for p in Party):
             raise RuntimeError("garbled evaluation disagrees with plain evaluation")
     return {
         "garble_s": result.garble_seconds,
@@ -66,16 +65,13 @@ def measure(layered: LayeredCircuit, check: bool) -> dict[str, float]:
 
 def run(and_gates: int, width: int, as_json: bool) -> int:
     t0 = time.perf_counter()
-    circuit = wide_circuit(and_gates, width)
+    program = wide_program(and_gates, width)
     t1 = time.perf_counter()
-    layered = schedule(circuit)
-    t2 = time.perf_counter()
     # Three garblings, each with fresh Δ and labels; the median of each side's time is reported (a single run of a
     # fraction of a second is at the mercy of whatever else the two cores are doing).
-    runs = [measure(layered, check=and_gates <= 1 << 22 and i == 0) for i in range(REPEATS)]
+    runs = [measure(program, check=and_gates <= 1 << 22 and i == 0) for i in range(REPEATS)]
     figures = {key: float(np.median([r[key] for r in runs])) for key in runs[0]}
-    n_and = circuit.and_count
-    widths = layered.and_width_stats()
+    n_and = program.size.and_gates
     emit(
         "garbling benchmark (one process, tables streamed garbler → evaluator)",
         {
@@ -85,10 +81,9 @@ def run(and_gates: int, width: int, as_json: bool) -> int:
             "aes_blocks_per_s": round(aes_blocks_per_second(batch=4 * STEP), 1),
             "table_bytes_per_and": figures["table_bytes"] / n_and,
             "peak_rss_mib": round(peak_rss_mib(), 1),
-            "layers": widths["layers"],
-            "min_and_per_layer": widths["min_and_per_layer"],
-            "build_s": round(t1 - t0, 3),
-            "schedule_s": round(t2 - t1, 3),
+            "width": width,
+            "and_calls": program.size.and_calls,
+            "count_s": round(t1 - t0, 3),
             "garble_s": round(figures["garble_s"], 3),
             "evaluate_s": round(figures["evaluate_s"], 3),
             "repeats": REPEATS,

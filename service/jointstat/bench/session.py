@@ -3,19 +3,22 @@
 Theory of operation: the benchmark makes a private CA, two node certificates and two Ed25519 signing keys, then
 starts two processes (``spawn``, so each is a fresh interpreter with its own memory): the garbler serves on
 127.0.0.1 with ``SessionServer``, the evaluator connects with ``run_client``; each pins the other's certificate.
-Each process builds and schedules the same circuit itself (the wide circuit of ``bench garble``: ``and_gates`` AND
-gates in layers of ``width``, half the final state to each party) with invented inputs, runs its side of the
-session — hello, base OT and OT extension for the evaluator's inputs, the garbled tables streamed in frames of
-``chunk_bytes``, output labels, decoding, signed finish — and reports its figures to the parent.
+Each process measures the same program itself (the wide program of ``bench garble``: ``and_gates`` AND gates in
+calls of ``width`` lanes, half the final state to each party) with invented inputs, runs its side of the session —
+hello, base OT and OT extension for the evaluator's inputs, the garbled tables streamed in frames of
+``chunk_bytes`` while the program runs, output labels, decoding, signed finish — and reports its figures.
 
 Figures: ``wall_s`` runs from the evaluator's first connection attempt to the later of the two sides' ends (the
-circuit is built and scheduled before, and timed separately as ``setup_s``); ``bytes_on_wire`` counts every frame
-in both directions at the garbler's transport (frame bytes plus the 5-byte gRPC message prefix, see
+program is measured on the count backend before, timed separately as ``setup_s``); ``bytes_on_wire`` counts every
+frame in both directions at the garbler's transport (frame bytes plus the 5-byte gRPC message prefix, see
 ``transport.driver``). Memory, per process: ``*_peak_rss_mib`` is its whole peak resident set size (the kernel's
-high-water mark: circuit building and scheduling included), ``*_session_peak_rss_mib`` the peak during the session
-alone (the high-water mark is reset, through ``/proc/self/clear_refs``, once the circuit is scheduled; None where
-the kernel does not allow it). Each side checks its own outputs against plain evaluation after the session
-(``outputs_correct``; skipped above 2^22 AND gates).
+high-water mark), ``*_session_peak_rss_mib`` the peak during the session alone (the high-water mark is reset,
+through ``/proc/self/clear_refs``, just before; None where the kernel does not allow it). Each side checks its own
+outputs against the same program on the plain backend after the session (``outputs_correct``).
+
+Link: after the session the evaluator pulls ``PUMP_BYTES`` from the garbler over a fresh stream of the same kind
+(gRPC, mutual TLS, 1 MiB messages, loopback, the same two processes) and times it: ``link_bytes_per_s`` is what
+the transport itself carries here, and ``link_utilisation`` the session's bytes per second over that.
 """
 
 from __future__ import annotations
@@ -32,8 +35,11 @@ import numpy as np
 
 from jointstat.bench.report import emit
 
-DEFAULT_WIDTH = 8192
+DEFAULT_WIDTH = 1 << 14
 DEFAULT_CHUNK_BYTES = 1 << 20
+PUMP_BYTES = 1 << 29
+PUMP_MESSAGE = 1 << 20
+PUMP_PATH = "/jointstat.bench.Pump/Stream"
 SESSION_ID = b"bench-session-loopback"
 CHILD_TIMEOUT_S = 1800.0
 
@@ -73,25 +79,23 @@ def node_process(spec: dict[str, Any], conn: Connection) -> None:
 async def _node_async(spec: dict[str, Any], conn: Connection) -> dict[str, Any]:
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 
-    from jointstat.bench.garble import wide_circuit
-    from jointstat.circuit.layers import evaluate_plain, schedule
+    from jointstat.bench.garble import wide_program
     from jointstat.circuit.model import Party
     from jointstat.protocol import EvaluatorSession, GarblerSession, signer, verifier
     from jointstat.transport import Limits, SessionServer, run_client
     from jointstat.transport.tls import NodeTLS
 
     t0 = time.monotonic()
-    layered = schedule(wide_circuit(spec["and_gates"], spec["width"]))
+    program = wide_program(spec["and_gates"], spec["width"])
     setup_s = time.monotonic() - t0
-    c = layered.circuit
     rng = np.random.default_rng(2024)
-    bits = {p: rng.integers(0, 2, c.n_inputs(p), dtype=np.uint8) for p in Party}  # invented inputs
+    bits = {p: rng.integers(0, 2, program.n_inputs(p), dtype=np.uint8) for p in Party}  # invented inputs
     tls = NodeTLS(spec["certificate"], spec["private_key"], (spec["peer_certificate"],))
     key = Ed25519PrivateKey.from_private_bytes(spec["signing_key"])
     peer = Ed25519PublicKey.from_public_bytes(spec["peer_public_key"])
     common = {
         "session_id": SESSION_ID,
-        "layered": layered,
+        "program": program,
         "manifest_digest": spec["manifest_digest"],
         "sign": signer(key),
         "verify": verifier(peer),
@@ -103,13 +107,15 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> dict[str, Any]:
     if spec["role"] == "garbler":
         party = Party.GARBLER
         session = GarblerSession(inputs=bits[party], chunk_bytes=spec["chunk_bytes"], **common)
-        server = SessionServer(tls, address="127.0.0.1:0", limits=limits)
+        server = SessionServer(tls, address="127.0.0.1:0", limits=limits, services=[_add_pump])
         port = await server.start()
         expected = server.expect(session)
         conn.send({"port": port})
         result = await expected
         start = float("nan")
         end = time.monotonic()
+        await asyncio.get_running_loop().run_in_executor(None, conn.poll, CHILD_TIMEOUT_S)  # the pump is done
+        conn.recv()
         await server.stop(1.0)
     else:
         party = Party.EVALUATOR
@@ -118,6 +124,8 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> dict[str, Any]:
         result = await run_client(session, f"127.0.0.1:{spec['port']}", tls, limits=limits)
         end = time.monotonic()
     session_peak = _peak_rss_mib() if separate_peak else None
+    peak = max(setup_peak, _peak_rss_mib())  # before the link measurement, whose buffers are not the session's
+    pump_s = await _pump(f"127.0.0.1:{spec['port']}", tls) if party == Party.EVALUATOR else None
     figures: dict[str, Any] = {
         "role": spec["role"],
         "completed": result.completed,
@@ -128,15 +136,53 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> dict[str, Any]:
         "bytes_sent": result.counters.bytes_sent,
         "bytes_received": result.counters.bytes_received,
         "frames": result.counters.frames_sent + result.counters.frames_received,
-        "peak_rss_mib": max(setup_peak, _peak_rss_mib()),
+        "peak_rss_mib": peak,
         "session_peak_rss_mib": session_peak,
-        "and_gates": c.and_count,
-        "evaluator_inputs": c.n_inputs(Party.EVALUATOR),
+        "and_gates": program.size.and_gates,
+        "evaluator_inputs": program.n_inputs(Party.EVALUATOR),
+        "pump_s": pump_s,
     }
     if result.completed and spec["check"]:
-        reference = evaluate_plain(layered, bits)
-        figures["outputs_correct"] = bool(np.array_equal(reference[party], result.outputs))
+        from jointstat.circuit.backend import PlainBackend
+        from jointstat.circuit.builder import Builder
+
+        plain = PlainBackend(bits)
+        program.run(Builder(plain))
+        figures["outputs_correct"] = bool(np.array_equal(plain.outputs(party), result.outputs))
     return figures
+
+
+def _add_pump(server: Any) -> None:
+    """Register the link measurement on the garbler's port: a stream of PUMP_MESSAGE-byte messages."""
+    import grpc
+
+    async def stream(request: bytes, context: Any) -> Any:
+        total = int.from_bytes(request, "little")
+        message = bytes(PUMP_MESSAGE)
+        for _ in range(total // PUMP_MESSAGE):
+            yield message
+
+    handler = grpc.unary_stream_rpc_method_handler(stream, request_deserializer=None, response_serializer=None)
+    server.add_generic_rpc_handlers((grpc.method_handlers_generic_handler("jointstat.bench.Pump", {"Stream": handler}),))
+
+
+async def _pump(target: str, tls: Any) -> float:
+    """Seconds to pull PUMP_BYTES from the garbler's port (same TLS, same message options as a session)."""
+    import grpc
+
+    from jointstat.transport.channel import MESSAGE_OPTIONS
+
+    options = [*MESSAGE_OPTIONS, ("grpc.ssl_target_name_override", tls.server_name())]
+    async with grpc.aio.secure_channel(target, tls.channel_credentials(), options=options) as channel:
+        method = channel.unary_stream(PUMP_PATH, request_serializer=None, response_deserializer=None)
+        start = time.monotonic()
+        got = 0
+        async for message in method(PUMP_BYTES.to_bytes(8, "little")):
+            got += len(message)
+        elapsed = time.monotonic() - start
+    if got != PUMP_BYTES:
+        raise RuntimeError(f"link measurement: received {got} of {PUMP_BYTES} bytes")
+    return elapsed
 
 
 def _receive(conn: Connection, what: str) -> dict[str, Any]:
@@ -175,7 +221,7 @@ def node_specs(
         "width": width,
         "chunk_bytes": chunk_bytes,
         "manifest_digest": hashlib.sha256(b"invented manifest: session benchmark").digest(),
-        "check": and_gates <= 1 << 22,
+        "check": True,
     }
     g_spec = {
         **base,
@@ -214,6 +260,7 @@ def measure(
         evaluator = ctx.Process(target=node_process, args=(e_spec, e_child), name="jointstat-bench-evaluator")
         evaluator.start()
         e_fig = _receive(e_parent, "evaluator")
+        g_parent.send({"pump": "done"})
         g_fig = _receive(g_parent, "garbler")
     finally:
         for proc in (evaluator, garbler):
@@ -258,9 +305,9 @@ def run(and_gates: int, as_json: bool) -> int:
         "evaluator_inputs_by_ot": g["evaluator_inputs"],
         "setup_s": round(max(g["setup_s"], e["setup_s"]), 3),
     }
-    checked = "outputs_correct" in g and "outputs_correct" in e
-    figures["outputs_checked"] = checked
-    # null when the circuit was too large to evaluate in the clear for comparison
-    figures["outputs_correct"] = bool(g["outputs_correct"] and e["outputs_correct"]) if checked else None
+    link = PUMP_BYTES / e["pump_s"]
+    figures["link_bytes_per_s"] = round(link, 1)
+    figures["link_utilisation"] = round((on_wire / wall) / link, 3)
+    figures["outputs_correct"] = bool(g.get("outputs_correct") and e.get("outputs_correct"))
     emit("session benchmark (two node processes on loopback, mutual TLS)", figures, as_json)
     return 1 if figures["outputs_correct"] is False else 0

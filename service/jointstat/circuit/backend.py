@@ -38,7 +38,7 @@ from collections.abc import Mapping
 
 import numpy as np
 
-from jointstat.circuit.bits import PUB_DTYPE, SECRET, Bits, broadcast
+from jointstat.circuit.bits import PUB_DTYPE, SECRET, Bits, Meter, broadcast
 from jointstat.circuit.model import CircuitError, Party
 
 DIGEST_DOMAIN = b"jointstat.program.v2\n"
@@ -63,6 +63,8 @@ class Backend(ABC):
         self.depth = 0  # deepest AND depth of any value so far (an upper bound, see Bits.depth)
         self.inputs_used = {p: 0 for p in Party}
         self.outputs_given = {p: 0 for p in Party}
+        self.meter = Meter()  # bits the program holds (see Bits.buffer)
+        self.widest_call = 0  # the most bits one primitive call produced (its temporaries scale with it)
         self._structure = hashlib.sha256(DIGEST_DOMAIN)
 
     # -- payload operations supplied by a backend -------------------------------------------------------------
@@ -105,7 +107,7 @@ class Backend(ABC):
         data = self._input_data(party, n)
         self.inputs_used[party] += n
         self._note(_OP_INPUT, n, int(party))
-        return Bits(shape, None if data is None else data.reshape(shape))
+        return Bits(shape, None if data is None else data.reshape(shape), buffer=self.meter.buffer(n))
 
     def output(self, party: Party, bits: Bits) -> slice:
         """Give ``bits`` (flattened in C order) to ``party`` as its next output bits; returns their slice."""
@@ -125,20 +127,20 @@ class Backend(ABC):
         bits = arr.astype(np.uint8)
         if bits.size and int(bits.max()) > 1:
             raise CircuitError("constant bits must be 0 or 1")
-        return Bits(bits.shape, self._const_data(bits), bits.astype(PUB_DTYPE))
+        return Bits(bits.shape, self._const_data(bits), bits.astype(PUB_DTYPE), buffer=self.meter.buffer(bits.size))
 
     def zeros(self, shape: int | tuple[int, ...]) -> Bits:
         """Public zero bits; costs no memory beyond one payload however large the shape."""
         shape = (shape,) if isinstance(shape, int) else tuple(shape)
         one = self._const_data(np.zeros((), dtype=np.uint8))
         data = None if one is None else np.broadcast_to(one, shape)
-        return Bits(shape, data, np.broadcast_to(np.int8(0), shape))
+        return Bits(shape, data, np.broadcast_to(np.int8(0), shape), buffer=self.meter.buffer(1))
 
     def ones(self, shape: int | tuple[int, ...]) -> Bits:
         shape = (shape,) if isinstance(shape, int) else tuple(shape)
         one = self._const_data(np.ones((), dtype=np.uint8))
         data = None if one is None else np.broadcast_to(one, shape)
-        return Bits(shape, data, np.broadcast_to(np.int8(1), shape))
+        return Bits(shape, data, np.broadcast_to(np.int8(1), shape), buffer=self.meter.buffer(1))
 
     # -- the primitives ------------------------------------------------------------------------------------------
     def _finish(self, shape: tuple[int, ...], data: np.ndarray | None, pub: np.ndarray | None, depth: int) -> Bits:
@@ -148,7 +150,10 @@ class Backend(ABC):
             pub = None
         if depth > self.depth:
             self.depth = depth
-        return Bits(shape, data, pub, depth)
+        n = int(np.prod(shape, dtype=np.int64))
+        if n > self.widest_call:
+            self.widest_call = n
+        return Bits(shape, data, pub, depth, self.meter.buffer(n))
 
     def not_(self, a: Bits) -> Bits:
         a = _as_bits(a)
@@ -221,6 +226,8 @@ class Backend(ABC):
             "not_gates": self.not_gates,
             "and_calls": self.and_calls,
             "and_depth": self.depth,
+            "peak_bits": self.meter.peak,
+            "widest_call": self.widest_call,
             "garbler_inputs": self.inputs_used[Party.GARBLER],
             "evaluator_inputs": self.inputs_used[Party.EVALUATOR],
             "garbler_outputs": self.outputs_given[Party.GARBLER],

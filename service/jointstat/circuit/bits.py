@@ -25,10 +25,17 @@ values, and a label lives exactly as long as some value the program holds refers
 
 ``depth`` is an upper bound on the AND depth of any bit of the value (a whole value gets the depth of its deepest
 bit): a cheap figure for planning, kept per value rather than per bit.
+
+``buffer`` stands for the payload memory the value keeps alive, the way numpy's views keep their base array alive:
+results of gates and inputs get a buffer of their own, views (slices, reshapes, broadcasts) share their parent's,
+and copies (``concat``, ``stack``, indexing with arrays) get a new one. A backend's ``Meter`` adds each buffer's
+bits when it is made and takes them away when the last value holding it goes, so even the count backend, which
+holds no payload at all, knows the most bits a program ever holds at once (its memory per lane, in labels).
 """
 
 from __future__ import annotations
 
+import weakref
 from collections.abc import Iterator, Sequence
 from typing import Any
 
@@ -40,6 +47,42 @@ PUB_DTYPE = np.dtype(np.int8)
 _DUMMY = np.zeros((), dtype=np.bool_)
 
 
+class Meter:
+    """Bits held alive right now, and the most ever (see the module docstring)."""
+
+    def __init__(self) -> None:
+        self.live = 0
+        self.peak = 0
+
+    def buffer(self, bits: int) -> Buffer:
+        return Buffer(self, bits)
+
+    def _add(self, bits: int) -> None:
+        self.live += bits
+        if self.live > self.peak:
+            self.peak = self.live
+
+    def _sub(self, bits: int) -> None:
+        self.live -= bits
+
+
+class Buffer:
+    """A token for payload memory of ``bits`` bits, counted by ``meter`` while any value holds it."""
+
+    __slots__ = ("__weakref__", "meter")
+
+    def __init__(self, meter: Meter, bits: int) -> None:
+        self.meter = meter
+        meter._add(bits)
+        weakref.finalize(self, meter._sub, bits)
+
+
+def _copies(index: Any) -> bool:
+    """Whether numpy indexing with ``index`` copies (advanced indexing) rather than making a view."""
+    items = index if isinstance(index, tuple) else (index,)
+    return any(not (isinstance(i, int | slice | np.integer) or i is None or i is Ellipsis) for i in items)
+
+
 def _shape_after(shape: tuple[int, ...], op: Any) -> tuple[int, ...]:
     """The shape ``op`` gives an array of ``shape`` (worked out on a zero-stride stand-in; free for views)."""
     return tuple(op(np.broadcast_to(_DUMMY, shape)).shape)
@@ -48,7 +91,7 @@ def _shape_after(shape: tuple[int, ...], op: Any) -> tuple[int, ...]:
 class Bits:
     """An immutable array of bits (see the module docstring)."""
 
-    __slots__ = ("data", "depth", "pub", "shape")
+    __slots__ = ("buffer", "data", "depth", "pub", "shape")
 
     def __init__(
         self,
@@ -56,11 +99,13 @@ class Bits:
         data: np.ndarray | None,
         pub: np.ndarray | None = None,
         depth: int = 0,
+        buffer: Buffer | None = None,
     ) -> None:
         self.shape = tuple(int(s) for s in shape)
         self.data = data
         self.pub = pub
         self.depth = depth
+        self.buffer = buffer
 
     # -- numpy-like views -------------------------------------------------------------------------------------
     @property
@@ -84,7 +129,7 @@ class Bits:
         public = "no public bits" if self.pub is None else f"{int((self.pub >= 0).sum())} public bits"
         return f"Bits(shape={self.shape}, {public})"
 
-    def _apply(self, op: Any) -> Bits:
+    def _apply(self, op: Any, copies: bool = False) -> Bits:
         data = None if self.data is None else op(self.data)
         pub = None if self.pub is None else op(self.pub)
         if data is not None:
@@ -93,12 +138,15 @@ class Bits:
             shape = pub.shape
         else:
             shape = _shape_after(self.shape, op)
-        return Bits(shape, data, pub, self.depth)
+        buffer = self.buffer
+        if copies and buffer is not None:
+            buffer = buffer.meter.buffer(int(np.prod(shape, dtype=np.int64)))
+        return Bits(shape, data, pub, self.depth, buffer)
 
     def __getitem__(self, index: Any) -> Bits:
         if isinstance(index, Bits):
             raise TypeError("Bits cannot be indexed by secret bits; use the builder's select or mux")
-        return self._apply(lambda a: a[index])
+        return self._apply(lambda a: a[index], copies=_copies(index))
 
     def reshape(self, *shape: int | tuple[int, ...]) -> Bits:
         new = shape[0] if len(shape) == 1 and isinstance(shape[0], tuple) else shape
@@ -117,7 +165,7 @@ class Bits:
         return self._apply(lambda a: np.flip(a, axis))
 
     def roll(self, shift: int, axis: int = -1) -> Bits:
-        return self._apply(lambda a: np.roll(a, shift, axis))
+        return self._apply(lambda a: np.roll(a, shift, axis), copies=True)
 
     # -- what is public ---------------------------------------------------------------------------------------
     @property
@@ -151,7 +199,9 @@ def _join(parts: Sequence[Bits], op: Any, shape: tuple[int, ...]) -> Bits:
     pub = None
     if any(p.pub is not None for p in parts):
         pub = op([_pub_or_secret(p) for p in parts])
-    return Bits(shape, data, pub, max(p.depth for p in parts))
+    meter = next((p.buffer.meter for p in parts if p.buffer is not None), None)
+    buffer = None if meter is None else meter.buffer(int(np.prod(shape, dtype=np.int64)))
+    return Bits(shape, data, pub, max(p.depth for p in parts), buffer)
 
 
 def concat(parts: Sequence[Bits], axis: int = 0) -> Bits:

@@ -1,22 +1,29 @@
-"""Cost planning: what a compiled job will cost on the parties' link, before anything runs.
+"""Cost planning: what a compiled job will cost on the parties' link and in memory, before anything runs.
 
 Theory of operation
 -------------------
-The gate counts and layers come from the compiled circuit and its layer schedule. The traffic is computed from
-what the protocol sends (κ = 128, 16-byte labels):
+The gate counts, the AND depth bound and the memory come from running the job's program once on the count
+backend (``CompiledStatistic.size``; no payload, only shapes and which bits are public). The traffic is computed
+from what the protocol sends (κ = 128, 16-byte labels):
 
 * garbler → evaluator: 32 bytes per AND gate (two half-gates ciphertexts; XOR and NOT are free), 16 bytes per
-  garbler input label and per constant label, the OT-extension corrections (16 bytes per evaluator input bit),
-  the decoding information for the evaluator's outputs (16 bytes of check tags and one decoding bit each, as
-  ``OutputDecoding.to_bytes`` packs them) and the base-OT receiver's points (128 × 32 bytes);
+  garbler input label, the OT-extension corrections (16 bytes per evaluator input bit), the decoding information
+  for the evaluator's outputs (16 bytes of check tags and one decoding bit each, as ``OutputDecoding.to_bytes``
+  packs them) and the base-OT receiver's points (128 × 32 bytes);
 * evaluator → garbler: the IKNP matrix columns (16 bytes per OT, each batch padded to a multiple of 128 OTs),
   the labels of the garbler's outputs (16 bytes each) and the base-OT sender's point (32 bytes).
 
 The time estimate assumes garbling, transfer and evaluation overlap (tables stream while garbling goes on), so the
-table phase takes the longest of the three: AND gates at this machine's measured garbling and evaluation speed
-(a short real run of ``jointstat.bench.garble``, about a second), and the garbler's bytes at the given bandwidth;
-the OT and output bytes are added at the bandwidth. It leaves out network latency, OT-extension computation and
-the base OTs' public-key work (tens of milliseconds); both parties are assumed to be as fast as this machine.
+table phase takes the longest of the three: AND gates at the measured garbling and evaluation speed passed in
+(``Speed``; the command measures this machine with a short real run), and the garbler's bytes at the given
+bandwidth; the OT and output bytes are added at the bandwidth. It leaves out network latency, OT-extension
+computation and the base OTs' public-key work (tens of milliseconds); both parties are assumed to be as fast as
+this machine.
+
+Memory: a party holds the labels of the bits its program holds (``ProgramSize.label_bytes``: 16 bytes per bit at
+the program's peak, its input labels and the temporaries of its widest call) plus the process itself
+(``PROCESS_BYTES``, measured). ``check_limits`` refuses a job above a node's memory or time limit with the
+figures, so it is refused before a night's run rather than killed by the kernel halfway through.
 """
 
 from __future__ import annotations
@@ -26,7 +33,7 @@ import time
 from dataclasses import dataclass
 
 from jointstat.circuit.compile import CompiledStatistic
-from jointstat.circuit.model import GateKind, Party
+from jointstat.circuit.model import Party
 
 LABEL_BYTES = 16
 TABLE_BYTES_PER_AND = 32
@@ -34,6 +41,11 @@ BASE_OT_COUNT = 128
 POINT_BYTES = 32
 OT_BATCH = 1 << 16  # OTs per extension batch (jointstat.ot.extension.DEFAULT_BATCH)
 DEFAULT_BANDWIDTH = "100Mbit/s"
+DEFAULT_MEMORY_LIMIT = 8 * 2**30  # per session and party, when no node config says otherwise (common practice)
+DEFAULT_TIME_LIMIT_S = 3600.0  # the node's default session deadline
+# Resident memory of a node process before a session's labels: measured with `jointstat bench session` (the
+# processes' peak RSS minus the labels a tiny program holds), rounded up.
+PROCESS_BYTES = 160 * 2**20
 
 _RATE = re.compile(r"\s*(\d+(?:\.\d+)?)\s*([kKMGT]i?)?\s*(bit/s|bps|b/s|B/s|byte/s|bytes/s)\s*")
 _PREFIX = {
@@ -78,63 +90,81 @@ class Speed:
     evaluate_and_per_s: float
 
 
-_speed_cache: list[Speed] = []
+class LimitError(ValueError):
+    """A job that would need more memory or time than the node allows; the message gives the figures."""
 
 
-def measure_speed(and_gates: int = 1 << 19) -> Speed:
-    """Garble and evaluate a wide circuit once (``bench.garble``'s circuit), cached for the process."""
-    if not _speed_cache:
-        from jointstat.bench.garble import measure, wide_circuit
-        from jointstat.circuit.layers import schedule
-
-        layered = schedule(wide_circuit(and_gates, 8192))
-        figures = measure(layered, check=False)
-        _speed_cache.append(
-            Speed(and_gates / max(figures["garble_s"], 1e-9), and_gates / max(figures["evaluate_s"], 1e-9))
-        )
-    return _speed_cache[0]
-
-
-def plan(compiled: CompiledStatistic, bandwidth: float, speed: Speed | None = None) -> dict[str, object]:
+def plan(compiled: CompiledStatistic, bandwidth: float, speed: Speed) -> dict[str, object]:
     """The figures of ``jointstat plan`` (see the module docstring for what they assume)."""
-    c = compiled.circuit
-    and_gates = c.count(GateKind.AND)
-    xor_gates = c.count(GateKind.XOR) + c.count(GateKind.NOT)
-    ot_count = c.n_inputs(Party.EVALUATOR)
-    ev_out, g_out = c.n_outputs(Party.EVALUATOR), c.n_outputs(Party.GARBLER)
+    t0 = time.perf_counter()
+    size = compiled.size()
+    count_s = time.perf_counter() - t0
+    and_gates = size.and_gates
+    ot_count = size.inputs[Party.EVALUATOR]
+    ev_out, g_out = size.outputs[Party.EVALUATOR], size.outputs[Party.GARBLER]
     tables = TABLE_BYTES_PER_AND * and_gates
     ots = padded_ots(ot_count) if ot_count else 0
     base = BASE_OT_COUNT * POINT_BYTES if ot_count else 0
     g_to_e = (
         tables
-        + LABEL_BYTES * (c.n_inputs(Party.GARBLER) + 2)
+        + LABEL_BYTES * size.inputs[Party.GARBLER]
         + LABEL_BYTES * ots
         + (2 * 8 * ev_out + (ev_out + 7) // 8)
         + base
     )
     e_to_g = LABEL_BYTES * ots + LABEL_BYTES * g_out + (POINT_BYTES if ot_count else 0)
-    t0 = time.perf_counter()
-    layers = compiled.layered.n_layers
-    schedule_s = time.perf_counter() - t0
-    sp = speed or measure_speed()
-    table_phase = max(and_gates / sp.garble_and_per_s, and_gates / sp.evaluate_and_per_s, tables / bandwidth)
+    table_phase = max(
+        and_gates / speed.garble_and_per_s, and_gates / speed.evaluate_and_per_s, tables / bandwidth
+    )
     rest = (g_to_e - tables + e_to_g) / bandwidth
     return {
         "job": compiled.manifest.job.name,
         "statistic": compiled.statistic.name,
         "and_gates": and_gates,
-        "xor_gates": xor_gates,
-        "layers": layers,
+        "xor_gates": size.xor_gates + size.not_gates,
+        "and_depth": size.and_depth,
         "ot_count": ot_count,
         "bytes_garbler_to_evaluator": g_to_e,
         "bytes_evaluator_to_garbler": e_to_g,
-        "est_seconds": round(table_phase + rest + schedule_s, 6),
+        "memory_bytes": memory_bytes(compiled),
+        "est_seconds": round(table_phase + rest + count_s, 6),
         "bandwidth_bytes_per_s": bandwidth,
-        "garble_and_per_s": round(sp.garble_and_per_s),
-        "evaluate_and_per_s": round(sp.evaluate_and_per_s),
+        "garble_and_per_s": round(speed.garble_and_per_s),
+        "evaluate_and_per_s": round(speed.evaluate_and_per_s),
+        "count_seconds": round(count_s, 6),
         "assumes": (
             "garbling, transfer and evaluation overlap; AND gates at this machine's measured speed on both sides;"
-            " bytes at the given bandwidth; plus the layer scheduling measured here; no latency, OT-extension"
-            " computation or base-OT public-key work"
+            " bytes at the given bandwidth; no latency, OT-extension computation or base-OT public-key work"
         ),
     }
+
+
+def memory_bytes(compiled: CompiledStatistic) -> int:
+    """Estimated peak resident memory of one party's node process running the job (module docstring)."""
+    return PROCESS_BYTES + compiled.size().label_bytes()
+
+
+def _gib(n: float) -> str:
+    return f"{n / 2**30:.2f} GiB"
+
+
+def check_limits(
+    compiled: CompiledStatistic,
+    *,
+    memory_limit: int = DEFAULT_MEMORY_LIMIT,
+    time_limit_s: float = DEFAULT_TIME_LIMIT_S,
+    est_seconds: float | None = None,
+) -> None:
+    """Raise ``LimitError`` naming the figure when the job needs more memory (or estimated time) than allowed."""
+    need = memory_bytes(compiled)
+    if need > memory_limit:
+        raise LimitError(
+            f"job {compiled.manifest.job.name!r} needs about {_gib(need)} of memory per party"
+            f" ({compiled.size().peak_bits:,} bits held at its peak, 16 bytes each), more than the"
+            f" {_gib(memory_limit)} allowed; lower the capacities or raise the node's session memory limit"
+        )
+    if est_seconds is not None and est_seconds > time_limit_s:
+        raise LimitError(
+            f"job {compiled.manifest.job.name!r} is estimated at {est_seconds:,.0f} s, more than the"
+            f" {time_limit_s:,.0f} s a session may take; lower the capacities or raise the session deadline"
+        )

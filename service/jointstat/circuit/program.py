@@ -33,10 +33,17 @@ class ProgramSize:
     not_gates: int
     and_calls: int
     and_depth: int
+    peak_bits: int  # the most bits the program holds at once (Bits.buffer), inputs included
+    widest_call: int  # the most bits one primitive call produced
     inputs: dict[Party, int]
     outputs: dict[Party, int]
     structure: bytes
     extra: dict[str, Any] = field(default_factory=dict)
+
+    def label_bytes(self) -> int:
+        """Estimated peak memory of one party's labels while running: 16 bytes per held bit, the input labels,
+        and room for the temporaries of the widest call (its operands, result and a masked copy: 3×)."""
+        return 16 * (self.peak_bits + self.inputs[Party.GARBLER] + self.inputs[Party.EVALUATOR] + 3 * self.widest_call)
 
     def summary(self) -> dict[str, int]:
         return {
@@ -45,6 +52,8 @@ class ProgramSize:
             "not_gates": self.not_gates,
             "and_calls": self.and_calls,
             "and_depth": self.and_depth,
+            "peak_bits": self.peak_bits,
+            "widest_call": self.widest_call,
             "garbler_inputs": self.inputs[Party.GARBLER],
             "evaluator_inputs": self.inputs[Party.EVALUATOR],
             "garbler_outputs": self.outputs[Party.GARBLER],
@@ -63,6 +72,8 @@ def measure(run: Run) -> ProgramSize:
         not_gates=c["not_gates"],
         and_calls=c["and_calls"],
         and_depth=c["and_depth"],
+        peak_bits=c["peak_bits"],
+        widest_call=c["widest_call"],
         inputs=dict(backend.inputs_used),
         outputs=dict(backend.outputs_given),
         structure=backend.structure_digest(),

@@ -24,11 +24,12 @@ what the program takes, and ``close()`` fails a program that still waits for tab
 
 from __future__ import annotations
 
+import contextlib
 from collections import deque
 from collections.abc import Callable
 from typing import Any
 
-from greenlet import getcurrent, greenlet
+from greenlet import GreenletExit, getcurrent, greenlet
 
 from jointstat.garble.halfgates import GarbleError
 
@@ -55,6 +56,15 @@ class TableProducer:
         data = bytes(chunk)  # the backend reuses its chunk buffer once this returns
         self.bytes_out += len(data)
         self._caller.switch(data)
+
+    def close(self) -> None:
+        """Stop a program paused mid-way (its stack unwinds now, freeing its labels); call on the owning thread."""
+        glet, self._glet = self._glet, None
+        self.finished = True
+        if glet is not None and not glet.dead:
+            glet.parent = getcurrent()
+            with contextlib.suppress(Exception):
+                glet.throw(GreenletExit)
 
     def next_chunk(self) -> bytes | None:
         """The next chunk of tables, garbling as far as needed; None once the program has finished."""
@@ -172,6 +182,17 @@ class TableConsumer:
         self._pieces.append(view)
         self._available += view.nbytes
         self._resume()
+
+    def close_quietly(self) -> None:
+        """Stop a program paused mid-way without an error (the session has ended); call on the owning thread."""
+        glet, self._glet = self._glet, None
+        self.finished = True
+        self._pieces.clear()
+        self._available = 0
+        if glet is not None and not glet.dead:
+            glet.parent = getcurrent()
+            with contextlib.suppress(Exception):
+                glet.throw(GreenletExit)
 
     def close(self) -> None:
         """No more tables will come: a program still waiting for them fails with a clear error."""

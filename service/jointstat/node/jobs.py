@@ -246,7 +246,7 @@ class Preparer:
             if hit is not None and hit[0] == stamp:
                 return hit[1]
             compiled = compile_manifest(load_manifest(path))
-            _ = compiled.layered  # schedule now, off the event loop
+            _ = compiled.digest  # measure the program now (count backend), off the event loop
             self._cache[path] = (stamp, compiled)
             return compiled
 
@@ -583,7 +583,7 @@ class JobRunner:
         session = new_session(
             prepared.party,
             session_id=a.session_id,
-            layered=prepared.compiled.layered,
+            program=prepared.compiled.as_program(),
             manifest_digest=prepared.digest,
             inputs=prepared.inputs,
             sign=sign,
@@ -827,7 +827,7 @@ class JobRunner:
         session = new_session(
             own_role,
             session_id=sid_bytes,
-            layered=compiled.layered,
+            program=compiled.as_program(),
             manifest_digest=own_digest,
             inputs=bits,
             sign=sign,

@@ -28,7 +28,8 @@ from __future__ import annotations
 import hashlib
 from dataclasses import dataclass
 from enum import IntEnum
-from typing import Union
+from collections.abc import Callable
+from typing import Any, Union
 
 from google.protobuf.message import DecodeError
 
@@ -300,16 +301,16 @@ def check_digest(digest: object, what: str) -> bytes:
 class Transcript:
     """The running transcript of one session as seen by ``party`` (see the module docstring)."""
 
-    def __init__(self, party: Party, session_id: bytes) -> None:
+    def __init__(self, party: Party, session_id: bytes, hash_factory: Callable[[], Any] = hashlib.sha256) -> None:
         self._party = Party(party)
         self._session_id = session_id
-        self._sent = hashlib.sha256()
-        self._received = hashlib.sha256()
+        self._sent = hash_factory()
+        self._received = hash_factory()
         self.frames_sent = 0
         self.frames_received = 0
 
     @staticmethod
-    def _add(h: hashlib._Hash, data: bytes | memoryview) -> None:
+    def _add(h: Any, data: bytes | memoryview) -> None:
         h.update(len(data).to_bytes(8, "little"))
         h.update(data)
 

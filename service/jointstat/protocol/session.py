@@ -70,7 +70,7 @@ from __future__ import annotations
 
 import os
 from collections.abc import Callable, Iterator, Mapping
-from typing import ClassVar
+from typing import Any, ClassVar
 
 import numpy as np
 
@@ -326,6 +326,17 @@ class _Session:
         return self._transcript.frames_received
 
     # -- driving --------------------------------------------------------------------------------------------------
+    def use_hash_factory(self, factory: Callable[[], Any]) -> None:
+        """Hash the transcript with objects from ``factory`` (``update``/``digest``, SHA-256); before ``start``."""
+        if self._state != NEW:
+            raise ValueError(f"{self._who} in state {self._state!r}: the transcript hash is chosen before start()")
+        self._transcript = Transcript(self.PARTY, self.session_id, factory)
+
+    def release(self) -> None:
+        """Drop the engines (and stop a program paused in its greenlet) once the session has ended."""
+        if self.ended:
+            self._release_engines()
+
     def start(self) -> list[bytes]:
         """The frames this side sends first (its hello)."""
         return self._dispatch(START, None)
@@ -532,6 +543,7 @@ class GarblerSession(_Session):
         self._ot: CorrelatedOTSender | None = None
         self._evaluator_zero: np.ndarray | None = None
         self._backend: GarblerBackend | None = None
+        self._producer: TableProducer | None = None
         self._producing = False
         self._output_zero: dict[Party, np.ndarray] | None = None
         self._returned = _Accumulator(
@@ -556,6 +568,9 @@ class GarblerSession(_Session):
         self._delta = None
         self._evaluator_zero = None
         self._output_zero = None
+        if self._producer is not None:
+            self._producer.close()
+            self._producer = None
 
     def _ot_frames(self, messages: list[OTMessage]) -> list[bytes]:
         out = []
@@ -663,7 +678,7 @@ class GarblerSession(_Session):
             backend.flush()
             return backend
 
-        producer = TableProducer(garble)
+        producer = self._producer = TableProducer(garble)
         while True:
             chunk = producer.next_chunk()
             if chunk is None:
@@ -676,6 +691,7 @@ class GarblerSession(_Session):
             )
         self._output_zero = {p: backend.output_labels(p) for p in Party}
         self._backend = None
+        self._producer = None
 
     def _on_tables_sent(self, _frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
         if self._n_out[Party.GARBLER] == 0:
@@ -760,8 +776,10 @@ class EvaluatorSession(_Session):
     def _release_engines(self) -> None:
         self._ot = None
         self._own_labels = None
-        self._consumer = None
         self._backend = None
+        if self._consumer is not None:
+            self._consumer.close_quietly()
+            self._consumer = None
 
     def _ot_frames(self, messages: list[OTMessage]) -> list[bytes]:
         out = []

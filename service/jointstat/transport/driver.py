@@ -1,19 +1,27 @@
-"""Runs one sans-I/O session over one frame stream: reading, writing, garbling off the event loop, deadlines.
+"""Runs one sans-I/O session over one frame stream: reading, writing, computing off the event loop, deadlines.
 
 Theory of operation
 -------------------
-Four activities share one session object (whose lock makes each of its steps atomic):
+Every call into the session object — ``start``, ``receive``, ``fail`` and each step of the garbler's ``produce()``
+— runs on the session's own worker thread, one call at a time and always the same thread: the session has no lock
+of its own, and the greenlet its program runs in belongs to that thread (``jointstat.garble.streams``). OT,
+garbling and evaluation therefore never stall the event loop, and numpy and AES release the GIL, so the worker
+overlaps with the network. Four tasks on the event loop share the session:
 
-- the *reader* (a task) reads the peer's frames and passes each to ``session.receive`` in a worker thread
-  (``asyncio.to_thread``), so OT and evaluation never stall the event loop; the replies go to the outbox;
-- the *producer* (a thread, garbler only) runs ``session.produce()``, i.e. garbles chunk after chunk. Before
-  handing a frame to the outbox it takes one of ``Limits.send_window`` slots, which the writer gives back once the
-  frame is written. gRPC's ``write`` completes only as HTTP/2 flow control lets the bytes out, so a slow evaluator
-  stops the garbler after at most ``send_window`` frames plus gRPC's own bounded buffers: memory stays bounded,
-  and garbling overlaps sending (numpy and AES release the GIL, so the two use both cores);
-- the *writer* (a task) writes the outbox to the stream in order;
-- the *watchdog* (a task) ends the session when nothing has been sent or received for ``idle_timeout_s``; the whole
+- the *reader* reads the peer's frames and hands each to ``session.receive`` on the worker; replies go to the
+  outbox;
+- the *producer* (garbler only) pulls the streamed frames of ``session.produce()`` one at a time on the worker.
+  Before each it takes one of ``Limits.send_window`` slots, which the writer gives back once the frame is written.
+  gRPC's ``write`` completes only as HTTP/2 flow control lets the bytes out, so a slow evaluator stops the garbler
+  after at most ``send_window`` frames plus gRPC's own bounded buffers: memory stays bounded, and garbling overlaps
+  sending. It pulls until ``produce()`` is exhausted, so every frame the session produced is sent, even when the
+  peer's ``finish`` has already ended the session;
+- the *writer* writes the outbox to the stream in order;
+- the *watchdog* ends the session when nothing has been sent or received for ``idle_timeout_s``; the whole
   session is also bounded by ``deadline_s``.
+
+The session's transcript is hashed on a thread of its own (``BackgroundHasher``): SHA-256 of every table byte is
+off the critical path, and the digest waits for the hashing to catch up only at ``finish``.
 
 The session ends when it is done, fails (a bad frame, the peer's abort) or a limit passes. On a local failure the
 abort frame jumps the queue (frames still waiting are dropped), is given ``abort_grace_s`` to leave, then the
@@ -32,10 +40,13 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import hashlib
+import queue
 import threading
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
-from typing import Protocol
+from typing import Any, Protocol
 
 import numpy as np
 
@@ -137,6 +148,51 @@ def result_of(session: Session, counters: WireCounters) -> SessionResult:
 _Item = tuple[bytes, bool] | None  # (frame, took a send slot); None ends the writer
 
 
+class BackgroundHasher:
+    """SHA-256 states updated in order on one background thread (hashlib releases the GIL on large buffers).
+
+    ``new()`` gives an object with ``update`` (queues the bytes; they must not change afterwards) and ``digest``
+    (waits until everything queued before it is hashed). It serves ``frames.Transcript`` as its hash factory.
+    """
+
+    def __init__(self) -> None:
+        self._queue: queue.SimpleQueue[tuple[Any, Any] | None] = queue.SimpleQueue()
+        self._thread = threading.Thread(target=self._run, name="jointstat-transcript", daemon=True)
+        self._thread.start()
+
+    def _run(self) -> None:
+        while True:
+            item = self._queue.get()
+            if item is None:
+                return
+            target, data = item
+            if isinstance(target, threading.Event):
+                target.set()
+            else:
+                target.update(data)
+
+    def new(self) -> _QueuedHash:
+        return _QueuedHash(self)
+
+    def close(self) -> None:
+        self._queue.put(None)
+
+
+class _QueuedHash:
+    def __init__(self, owner: BackgroundHasher) -> None:
+        self._owner = owner
+        self._hash = hashlib.sha256()
+
+    def update(self, data: bytes | memoryview) -> None:
+        self._owner._queue.put((self._hash, data))
+
+    def digest(self) -> bytes:
+        done = threading.Event()
+        self._owner._queue.put((done, None))
+        done.wait()
+        return self._hash.digest()
+
+
 class _Driver:
     def __init__(
         self,
@@ -153,13 +209,20 @@ class _Driver:
         self._on_progress = on_progress
         self._loop = asyncio.get_running_loop()
         self._outbox: asyncio.Queue[_Item] = asyncio.Queue()
-        self._slots = threading.Semaphore(limits.send_window)
-        self._stop = threading.Event()
+        self._slots = asyncio.Semaphore(limits.send_window)
+        self._stop = asyncio.Event()
         self._ended = asyncio.Event()
         self._last_progress = self._loop.time()
-        self._producer: threading.Thread | None = None
+        self._producer: asyncio.Task[None] | None = None
+        self._worker = ThreadPoolExecutor(max_workers=1, thread_name_prefix="jointstat-session")
+        self._hasher = BackgroundHasher()
+        session.use_hash_factory(self._hasher.new)
 
     # -- helpers ----------------------------------------------------------------------------------------------------
+    async def _call(self, fn: Callable[..., Any], *args: Any) -> Any:
+        """Run one step of the session on its worker thread."""
+        return await self._loop.run_in_executor(self._worker, fn, *args)
+
     def _progress(self) -> None:
         self._last_progress = self._loop.time()
 
@@ -182,36 +245,35 @@ class _Driver:
             if item is not None and item[1]:
                 self._slots.release()
 
-    def _local_fail(self, reason: AbortReason, message: str) -> None:
-        """End the session for a reason found here; the abort frame jumps the queue."""
-        abort = self.session.fail(reason, message)
+    def _send_abort_first(self, frame: bytes | None) -> None:
         self._stop.set()
-        if abort is not None:
+        if frame is not None:
             self._drop_queued()
-            self._outbox.put_nowait((abort, False))
+            self._outbox.put_nowait((frame, False))
         self._ended.set()
 
-    def _after_protocol_error(self, exc: ProtocolError) -> None:
+    async def _local_fail(self, reason: AbortReason, message: str) -> None:
+        """End the session for a reason found here; the abort frame jumps the queue."""
         self._stop.set()
-        if exc.frame is not None:
-            self._drop_queued()
-            self._outbox.put_nowait((exc.frame, False))
-        self._ended.set()
+        abort = await self._call(self.session.fail, reason, message)
+        self._send_abort_first(abort)
+
+    def _after_protocol_error(self, exc: ProtocolError) -> None:
+        self._send_abort_first(exc.frame)
 
     # -- activities ---------------------------------------------------------------------------------------------------
     async def _deliver(self, data: bytes) -> None:
         self.counters.bytes_received += len(data) + GRPC_MESSAGE_PREFIX
         self.counters.frames_received += 1
         try:
-            replies = await asyncio.to_thread(self.session.receive, data)
+            replies = await self._call(self.session.receive, data)
         except ProtocolError as exc:
             self._after_protocol_error(exc)
             return
         self._enqueue(replies)
         session = self.session
         if isinstance(session, GarblerSession) and session.ready_to_stream and self._producer is None:
-            self._producer = threading.Thread(target=self._produce, name="jointstat-garbler", daemon=True)
-            self._producer.start()
+            self._producer = asyncio.create_task(self._produce(session.produce()), name="jointstat-producer")
         self._check_ended()
         self._notify()
 
@@ -223,13 +285,13 @@ class _Driver:
                 data = await self.stream.read()
                 self._progress()
                 if data is None:
-                    self._local_fail(
+                    await self._local_fail(
                         AbortReason.CONNECTION_LOST, "the peer closed the stream before the session ended"
                     )
                     return
                 await self._deliver(data)
         except StreamLost as exc:
-            self._local_fail(AbortReason.CONNECTION_LOST, f"receiving failed: {exc}")
+            await self._local_fail(AbortReason.CONNECTION_LOST, f"receiving failed: {exc}")
 
     async def _write_loop(self) -> None:
         while True:
@@ -240,47 +302,55 @@ class _Driver:
             try:
                 await self.stream.write(data)
             except StreamLost as exc:
-                self._local_fail(AbortReason.CONNECTION_LOST, f"sending failed: {exc}")
-                return
-            finally:
                 if slotted:
                     self._slots.release()
+                await self._local_fail(AbortReason.CONNECTION_LOST, f"sending failed: {exc}")
+                return
+            if slotted:
+                self._slots.release()
             self.counters.bytes_sent += len(data) + GRPC_MESSAGE_PREFIX
             self.counters.frames_sent += 1
             self._progress()
             self._notify()
 
-    def _produce(self) -> None:
-        """Producer thread: garble and hand frames to the loop, one send slot each."""
-        assert isinstance(self.session, GarblerSession)
-        post: Callable[..., object] = self._loop.call_soon_threadsafe
+    async def _produce(self, frames: Iterator[bytes]) -> None:
+        """Pull the garbler's streamed frames on the worker, one send slot each, until ``produce()`` ends."""
         try:
-            for data in self.session.produce():
-                while not self._slots.acquire(timeout=0.05):
-                    if self._stop.is_set():
-                        return
+            while not self._stop.is_set():
+                await self._slots.acquire()
                 if self._stop.is_set():
                     self._slots.release()
                     return
-                post(self._outbox.put_nowait, (data, True))
-            post(self._check_ended)
+                data = await self._call(next, frames, None)
+                if data is None:
+                    self._slots.release()
+                    break
+                self._outbox.put_nowait((data, True))
+            self._check_ended()
         except ProtocolError as exc:
-            post(self._after_protocol_error, exc)
+            self._after_protocol_error(exc)
         except Exception as exc:
-            post(self._local_fail, AbortReason.INTERNAL, f"garbling failed ({type(exc).__name__})")
+            await self._local_fail(AbortReason.INTERNAL, f"garbling failed ({type(exc).__name__})")
 
     async def _watchdog(self) -> None:
         limit = self.limits.idle_timeout_s
         while not self._ended.is_set():
             idle = self._loop.time() - self._last_progress
             if idle >= limit:
-                self._local_fail(AbortReason.DEADLINE, f"nothing was sent or received for {limit:g} s")
+                await self._local_fail(AbortReason.DEADLINE, f"nothing was sent or received for {limit:g} s")
                 return
             await asyncio.sleep(min(limit - idle, 1.0) + 0.001)
 
     # -- the whole ------------------------------------------------------------------------------------------------------
     async def run(self, first_frame: bytes | None) -> SessionResult:
-        self._enqueue(self.session.start())
+        try:
+            return await self._run(first_frame)
+        finally:
+            self._hasher.close()
+            self._worker.shutdown(wait=False)
+
+    async def _run(self, first_frame: bytes | None) -> SessionResult:
+        self._enqueue(await self._call(self.session.start))
         writer = asyncio.create_task(self._write_loop(), name="jointstat-writer")
         reader = asyncio.create_task(self._read_loop(first_frame), name="jointstat-reader")
         watchdog = asyncio.create_task(self._watchdog(), name="jointstat-watchdog")
@@ -289,21 +359,28 @@ class _Driver:
             try:
                 await asyncio.wait_for(self._ended.wait(), timeout=self.limits.deadline_s)
             except TimeoutError:
-                self._local_fail(
+                await self._local_fail(
                     AbortReason.DEADLINE, f"the session deadline of {self.limits.deadline_s:g} s passed"
                 )
         except asyncio.CancelledError:
             cancelled = True
             if self.stream.peer_gone():
-                self._local_fail(
-                    AbortReason.CONNECTION_LOST, "the peer cancelled the stream or the connection dropped"
-                )
+                reason, why = AbortReason.CONNECTION_LOST, "the peer cancelled the stream or the connection dropped"
             else:
-                self._local_fail(AbortReason.CANCELLED, "the local node cancelled the session")
+                reason, why = AbortReason.CANCELLED, "the local node cancelled the session"
+            self._stop.set()
+            abort = await asyncio.shield(self._call(self.session.fail, reason, why))
+            self._send_abort_first(abort)
         finally:
+            completed = self.session.done
+            producer = self._producer
+            if producer is not None and not producer.done():
+                if completed:  # the last streamed frames (decoding, finish) are still to be pulled and sent
+                    with contextlib.suppress(TimeoutError, asyncio.CancelledError, Exception):
+                        await asyncio.wait_for(asyncio.shield(producer), timeout=self.limits.abort_grace_s)
+                producer.cancel()
             self._stop.set()
             watchdog.cancel()
-            completed = self.session.done
             self._outbox.put_nowait(None)
             grace = self.limits.idle_timeout_s if completed else self.limits.abort_grace_s
             try:
@@ -316,11 +393,11 @@ class _Driver:
                 await self.stream.close(completed)
             if cancelled or not completed:
                 self.stream.cancel()
-            for task in (reader, writer, watchdog):
+            for task in (reader, writer, watchdog, *([producer] if producer is not None else [])):
                 with contextlib.suppress(asyncio.CancelledError, Exception):
                     await task
-            if self._producer is not None:
-                await asyncio.to_thread(self._producer.join)
+            with contextlib.suppress(Exception):
+                await self._call(self.session.release)
         result = result_of(self.session, self.counters)
         self._notify()
         if cancelled:
