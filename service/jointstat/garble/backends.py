@@ -60,6 +60,12 @@ def _blocks(cells: np.ndarray) -> np.ndarray:
     return flat.view(BLOCK_DTYPE).reshape(flat.shape[0], 2)
 
 
+def _pairs(cells: np.ndarray) -> np.ndarray:
+    """Cells of any shape → (n, 2) words, a view when the cells can be flattened without a copy."""
+    flat = cells.reshape(-1)
+    return flat.view(PAIRS) if flat.ndim == 1 else flat
+
+
 def _xor_cells(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     ca, cb = _contiguous(a), _contiguous(b)
     out = np.empty(ca.shape, dtype=CELL_DTYPE)
@@ -151,7 +157,7 @@ class GarblerBackend(_LabelBackend):
     def _and_data(self, a: np.ndarray | None, b: np.ndarray | None) -> np.ndarray:
         assert a is not None and b is not None
         shape = a.shape
-        a0, b0 = _blocks(a), _blocks(b)
+        a0, b0 = _pairs(a), _pairs(b)
         n = a0.shape[0]
         c0 = np.empty((n, 2), dtype=BLOCK_DTYPE)
         for s in range(0, n, STEP):
@@ -229,7 +235,7 @@ class EvaluatorBackend(_LabelBackend):
     def _and_data(self, a: np.ndarray | None, b: np.ndarray | None) -> np.ndarray:
         assert a is not None and b is not None
         shape = a.shape
-        wa, wb = _blocks(a), _blocks(b)
+        wa, wb = _pairs(a), _pairs(b)
         n = wa.shape[0]
         c = np.empty((n, 2), dtype=BLOCK_DTYPE)
         for s in range(0, n, STEP):
