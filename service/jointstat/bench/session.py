@@ -124,7 +124,9 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> dict[str, Any]:
         result = await run_client(session, f"127.0.0.1:{spec['port']}", tls, limits=limits)
         end = time.monotonic()
     session_peak = _peak_rss_mib() if separate_peak else None
-    peak = max(setup_peak, _peak_rss_mib())  # before the link measurement, whose buffers are not the session's
+    peak = max(
+        setup_peak, _peak_rss_mib()
+    )  # before the link measurement, whose buffers are not the session's
     pump_s = await _pump(f"127.0.0.1:{spec['port']}", tls) if party == Party.EVALUATOR else None
     figures: dict[str, Any] = {
         "role": spec["role"],
@@ -162,8 +164,12 @@ def _add_pump(server: Any) -> None:
         for _ in range(total // PUMP_MESSAGE):
             yield message
 
-    handler = grpc.unary_stream_rpc_method_handler(stream, request_deserializer=None, response_serializer=None)
-    server.add_generic_rpc_handlers((grpc.method_handlers_generic_handler("jointstat.bench.Pump", {"Stream": handler}),))
+    handler = grpc.unary_stream_rpc_method_handler(
+        stream, request_deserializer=None, response_serializer=None
+    )
+    server.add_generic_rpc_handlers(
+        (grpc.method_handlers_generic_handler("jointstat.bench.Pump", {"Stream": handler}),)
+    )
 
 
 async def _pump(target: str, tls: Any) -> float:

@@ -127,7 +127,9 @@ class Backend(ABC):
         bits = arr.astype(np.uint8)
         if bits.size and int(bits.max()) > 1:
             raise CircuitError("constant bits must be 0 or 1")
-        return Bits(bits.shape, self._const_data(bits), bits.astype(PUB_DTYPE), buffer=self.meter.buffer(bits.size))
+        return Bits(
+            bits.shape, self._const_data(bits), bits.astype(PUB_DTYPE), buffer=self.meter.buffer(bits.size)
+        )
 
     def zeros(self, shape: int | tuple[int, ...]) -> Bits:
         """Public zero bits; costs no memory beyond one payload however large the shape."""
@@ -143,9 +145,13 @@ class Backend(ABC):
         return Bits(shape, data, np.broadcast_to(np.int8(1), shape), buffer=self.meter.buffer(1))
 
     # -- the primitives ------------------------------------------------------------------------------------------
-    def _finish(self, shape: tuple[int, ...], data: np.ndarray | None, pub: np.ndarray | None, depth: int) -> Bits:
+    def _finish(
+        self, shape: tuple[int, ...], data: np.ndarray | None, pub: np.ndarray | None, depth: int
+    ) -> Bits:
         if data is not None and data.shape != shape:
-            raise CircuitError(f"internal: a backend made payload of shape {data.shape} for bits of shape {shape}")
+            raise CircuitError(
+                f"internal: a backend made payload of shape {data.shape} for bits of shape {shape}"
+            )
         if pub is not None and not bool((pub >= 0).any()):
             pub = None
         if depth > self.depth:

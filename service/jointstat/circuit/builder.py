@@ -267,7 +267,9 @@ class Builder:
             total, carry = self.add_carry(acc[..., low : low + row.shape[-1]], row)
             upper = acc[..., low + row.shape[-1] :]
             if upper.shape[-1]:
-                upper = self.add(upper, concat([carry[..., None], self.zeros((*lanes, upper.shape[-1] - 1))], -1))
+                upper = self.add(
+                    upper, concat([carry[..., None], self.zeros((*lanes, upper.shape[-1] - 1))], -1)
+                )
             acc = concat([acc[..., :low], total, upper], axis=-1)
         return acc
 

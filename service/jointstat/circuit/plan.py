@@ -41,7 +41,9 @@ BASE_OT_COUNT = 128
 POINT_BYTES = 32
 OT_BATCH = 1 << 16  # OTs per extension batch (jointstat.ot.extension.DEFAULT_BATCH)
 DEFAULT_BANDWIDTH = "100Mbit/s"
-DEFAULT_MEMORY_LIMIT = 8 * 2**30  # per session and party, when no node config says otherwise (common practice)
+DEFAULT_MEMORY_LIMIT = (
+    8 * 2**30
+)  # per session and party, when no node config says otherwise (common practice)
 DEFAULT_TIME_LIMIT_S = 3600.0  # the node's default session deadline
 # Resident memory of a node process before a session's labels: measured with `jointstat bench session` (the
 # processes' peak RSS minus the labels a tiny program holds), rounded up.

@@ -43,7 +43,9 @@ class ProgramSize:
     def label_bytes(self) -> int:
         """Estimated peak memory of one party's labels while running: 16 bytes per held bit, the input labels,
         and room for the temporaries of the widest call (its operands, result and a masked copy: 3×)."""
-        return 16 * (self.peak_bits + self.inputs[Party.GARBLER] + self.inputs[Party.EVALUATOR] + 3 * self.widest_call)
+        return 16 * (
+            self.peak_bits + self.inputs[Party.GARBLER] + self.inputs[Party.EVALUATOR] + 3 * self.widest_call
+        )
 
     def summary(self) -> dict[str, int]:
         return {

@@ -83,7 +83,9 @@ class _LabelBackend(Backend):
         for p in Party:
             labels = np.asarray(input_labels.get(p, np.zeros((0, 2), dtype=BLOCK_DTYPE)), dtype=BLOCK_DTYPE)
             if labels.ndim != 2 or labels.shape[1] != 2:
-                raise GarbleError(f"{p.name.lower()} input labels: expected (n, 2) blocks, got {labels.shape}")
+                raise GarbleError(
+                    f"{p.name.lower()} input labels: expected (n, 2) blocks, got {labels.shape}"
+                )
             self._input_cells[p] = _cells(labels)
         self._outputs: dict[Party, list[np.ndarray]] = {p: [] for p in Party}
         self.next_gate = 0  # the running AND index: gate j gets tweaks from j

@@ -150,7 +150,9 @@ class HalfGates:
         d ^= hb0
         np.bitwise_xor(w, d, out=c0_out)  # C⁰ = W_G⁰ ⊕ W_E⁰
 
-    def evaluate(self, a: np.ndarray, b: np.ndarray, table: np.ndarray, first_gate: int, c_out: np.ndarray) -> None:
+    def evaluate(
+        self, a: np.ndarray, b: np.ndarray, table: np.ndarray, first_gate: int, c_out: np.ndarray
+    ) -> None:
         """Active labels A, B of k gates and their table → active output labels C."""
         k = a.shape[0]
         if k > STEP:

@@ -59,9 +59,7 @@ def run_locally(
 
     def garble(sink: Sink) -> GarblerBackend:
         nonlocal garbler
-        garbler = GarblerBackend(
-            delta=delta, input_labels=zero, sink=sink, chunk_bytes=chunk_bytes
-        )
+        garbler = GarblerBackend(delta=delta, input_labels=zero, sink=sink, chunk_bytes=chunk_bytes)
         program(Builder(garbler))
         garbler.check_inputs_used()
         garbler.flush()

@@ -26,9 +26,9 @@ therefore compute the same 32 bytes exactly when they sent and received the same
 from __future__ import annotations
 
 import hashlib
+from collections.abc import Callable
 from dataclasses import dataclass
 from enum import IntEnum
-from collections.abc import Callable
 from typing import Any, Union
 
 from google.protobuf.message import DecodeError
@@ -128,6 +128,8 @@ def _tables_payload(data: memoryview) -> memoryview | None:
     if inner <= 0 or inner != len(data) - start:
         return None
     return data[start:]
+
+
 _TRANSCRIPT_LABEL = b"jointstat transcript v1"
 
 
@@ -226,7 +228,8 @@ def payload_frame(kind: str, payload: bytes | memoryview) -> bytes:
         header = _tables_header(len(payload))
         if len(header) + len(payload) > MAX_FRAME_BYTES:
             raise ProtocolError(
-                AbortReason.INTERNAL, f"outgoing garbled_tables frame of {len(payload)} bytes exceeds the limit"
+                AbortReason.INTERNAL,
+                f"outgoing garbled_tables frame of {len(payload)} bytes exceeds the limit",
             )
         return b"".join((header, payload))
     frame = pb.Frame()
@@ -301,7 +304,9 @@ def check_digest(digest: object, what: str) -> bytes:
 class Transcript:
     """The running transcript of one session as seen by ``party`` (see the module docstring)."""
 
-    def __init__(self, party: Party, session_id: bytes, hash_factory: Callable[[], Any] = hashlib.sha256) -> None:
+    def __init__(
+        self, party: Party, session_id: bytes, hash_factory: Callable[[], Any] = hashlib.sha256
+    ) -> None:
         self._party = Party(party)
         self._session_id = session_id
         self._sent = hash_factory()

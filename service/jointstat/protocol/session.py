@@ -329,7 +329,9 @@ class _Session:
     def use_hash_factory(self, factory: Callable[[], Any]) -> None:
         """Hash the transcript with objects from ``factory`` (``update``/``digest``, SHA-256); before ``start``."""
         if self._state != NEW:
-            raise ValueError(f"{self._who} in state {self._state!r}: the transcript hash is chosen before start()")
+            raise ValueError(
+                f"{self._who} in state {self._state!r}: the transcript hash is chosen before start()"
+            )
         self._transcript = Transcript(self.PARTY, self.session_id, factory)
 
     def release(self) -> None:
@@ -648,7 +650,9 @@ class GarblerSession(_Session):
         except ProtocolError:
             raise
         except GarbleError as exc:
-            raise self._failure(AbortReason.INTERNAL, f"{self._who} in state {self._state!r}: {exc}") from None
+            raise self._failure(
+                AbortReason.INTERNAL, f"{self._who} in state {self._state!r}: {exc}"
+            ) from None
         except Exception as exc:
             raise self._failure(
                 AbortReason.INTERNAL,
@@ -836,7 +840,9 @@ class EvaluatorSession(_Session):
         program = self.program
 
         def evaluate(source: Source) -> EvaluatorBackend:
-            backend = EvaluatorBackend(input_labels={Party.GARBLER: given, Party.EVALUATOR: own}, source=source)
+            backend = EvaluatorBackend(
+                input_labels={Party.GARBLER: given, Party.EVALUATOR: own}, source=source
+            )
             self._backend = backend
             program.run(Builder(backend))
             backend.check_inputs_used()

@@ -365,7 +365,10 @@ class _Driver:
         except asyncio.CancelledError:
             cancelled = True
             if self.stream.peer_gone():
-                reason, why = AbortReason.CONNECTION_LOST, "the peer cancelled the stream or the connection dropped"
+                reason, why = (
+                    AbortReason.CONNECTION_LOST,
+                    "the peer cancelled the stream or the connection dropped",
+                )
             else:
                 reason, why = AbortReason.CANCELLED, "the local node cancelled the session"
             self._stop.set()

@@ -24,8 +24,6 @@ from __future__ import annotations
 
 from typing import Annotated, Literal
 
-import numpy as np
-
 from jointstat.circuit.bits import Bits, concat
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.library import blocks

@@ -36,7 +36,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from jointstat.circuit.backend import CountBackend
-from jointstat.circuit.bits import Bits, broadcast, concat, stack
+from jointstat.circuit.bits import Bits, concat, stack
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.model import Party
 
@@ -214,9 +214,9 @@ def route_back(bld: Builder, bits: Bits, merged: Merged) -> Bits:
         a = blocks[:, 0].reshape(-1)
         b = blocks[:, 1].reshape(-1)
         delta = bld.and_(swap, bld.xor(a, b))
-        vals = stack([bld.xor(a, delta).reshape(-1, half), bld.xor(b, delta).reshape(-1, half)], axis=1).reshape(
-            m
-        )
+        vals = stack(
+            [bld.xor(a, delta).reshape(-1, half), bld.xor(b, delta).reshape(-1, half)], axis=1
+        ).reshape(m)
         half *= 2
     return vals
 
@@ -319,7 +319,9 @@ def magnitude(bld: Builder, x: Number) -> tuple[Bits, Bits]:
     return negate_if(bld, x.wires, sign), sign
 
 
-def divide(bld: Builder, dividend: Bits, divisor: Bits, quotient_bits: int | None = None) -> tuple[Bits, Bits]:
+def divide(
+    bld: Builder, dividend: Bits, divisor: Bits, quotient_bits: int | None = None
+) -> tuple[Bits, Bits]:
     """Unsigned restoring division: (⌊n / d⌋, n mod d with d's width).
 
     Per quotient bit one subtract-with-borrow and one multiplexer on w_d + 1 bits. With ``quotient_bits`` = q

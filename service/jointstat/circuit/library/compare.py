@@ -14,8 +14,6 @@ from __future__ import annotations
 
 from typing import Literal
 
-import numpy as np
-
 from jointstat.circuit.bits import stack
 from jointstat.circuit.library import blocks
 from jointstat.circuit.library.blocks import Number

@@ -17,7 +17,6 @@ import math
 from decimal import Decimal
 from typing import Annotated, Literal
 
-import numpy as np
 from pydantic import Field, field_validator
 
 from jointstat.circuit.bits import concat, stack
@@ -89,6 +88,8 @@ class Histogram(Statistic):
         ge = stack([const_at_least(bld, x, t) for t in edge_thresholds(self.p.edges, x.frac)], axis=-1)
         in_bin = bld.and_(bld.xor(ge[:, :-1], ge[:, 1:]), valid[:, None])  # (rows, bins)
         width = sum(self.manifest.table(p).capacity for p in Party).bit_length()
-        counts = stack([bld.extend(blocks.count_bits(bld, in_bin[:, i]), width) for i in range(in_bin.shape[1])])
+        counts = stack(
+            [bld.extend(blocks.count_bits(bld, in_bin[:, i]), width) for i in range(in_bin.shape[1])]
+        )
         total = bld.extend(blocks.count_bits(bld, bld.reduce_xor(in_bin, axis=-1)), width)
         return StatisticResult({"counts": counts, "count": total}, count=total)

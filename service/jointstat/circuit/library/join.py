@@ -30,8 +30,6 @@ import math
 from decimal import Decimal
 from typing import Annotated, Literal
 
-import numpy as np
-
 from jointstat.circuit.bits import Bits, concat
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.library import blocks
@@ -193,7 +191,9 @@ class KeyedJoin(Statistic):
             v = ctx.table(vp).number(self.p.value.column)
             masked = bld.and_(v.wires, mine[:, None])
             s = Number(
-                bld.extend(blocks.tree_sum(bld, masked, signed=v.signed), specs["sum"].width, signed=v.signed),
+                bld.extend(
+                    blocks.tree_sum(bld, masked, signed=v.signed), specs["sum"].width, signed=v.signed
+                ),
                 v.signed,
                 v.frac,
             )

@@ -27,7 +27,6 @@ from __future__ import annotations
 from fractions import Fraction
 from typing import Annotated, Literal
 
-import numpy as np
 from pydantic import Field, field_validator
 
 from jointstat.circuit.bits import Bits, concat
