@@ -17,6 +17,7 @@ from jointstat.bench.report import emit, peak_rss_mib
 from jointstat.circuit.bits import concat
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.model import Party
+from jointstat.circuit.plan import Speed
 from jointstat.circuit.program import Program
 from jointstat.garble.halfgates import STEP
 from jointstat.garble.local import run_locally
@@ -43,6 +44,19 @@ def wide_program(and_gates: int, width: int) -> Program:
         bld.output(Party.GARBLER, cur[width // 2 :])
 
     return Program.of(run, name=f"wide program of {and_gates} AND gates")
+
+
+_speed: list[Speed] = []
+
+
+def measured_speed(and_gates: int = 1 << 19) -> Speed:
+    """This machine's garbling and evaluation speed on the wide program (one short run, cached per process)."""
+    if not _speed:
+        figures = measure(wide_program(and_gates, DEFAULT_WIDTH), check=False)
+        _speed.append(
+            Speed(and_gates / max(figures["garble_s"], 1e-9), and_gates / max(figures["evaluate_s"], 1e-9))
+        )
+    return _speed[0]
 
 
 def measure(program: Program, check: bool) -> dict[str, float]:

@@ -32,6 +32,7 @@ A subclass supplies the payload operations: ``_const_data`` (public values → p
 from __future__ import annotations
 
 import hashlib
+import math
 import struct
 from abc import ABC, abstractmethod
 from collections.abc import Mapping
@@ -103,7 +104,7 @@ class Backend(ABC):
         """The next input bits of ``party`` in the given shape (C order is the party's input bit order)."""
         shape = (shape,) if isinstance(shape, int) else tuple(int(s) for s in shape)
         party = Party(party)
-        n = int(np.prod(shape, dtype=np.int64))
+        n = math.prod(shape)
         data = self._input_data(party, n)
         self.inputs_used[party] += n
         self._note(_OP_INPUT, n, int(party))
@@ -156,7 +157,7 @@ class Backend(ABC):
             pub = None
         if depth > self.depth:
             self.depth = depth
-        n = int(np.prod(shape, dtype=np.int64))
+        n = math.prod(shape)
         if n > self.widest_call:
             self.widest_call = n
         return Bits(shape, data, pub, depth, self.meter.buffer(n))

@@ -35,7 +35,7 @@ holds no payload at all, knows the most bits a program ever holds at once (its m
 
 from __future__ import annotations
 
-import weakref
+import math
 from collections.abc import Iterator, Sequence
 from typing import Any
 
@@ -69,12 +69,15 @@ class Meter:
 class Buffer:
     """A token for payload memory of ``bits`` bits, counted by ``meter`` while any value holds it."""
 
-    __slots__ = ("__weakref__", "meter")
+    __slots__ = ("bits", "meter")
 
     def __init__(self, meter: Meter, bits: int) -> None:
         self.meter = meter
+        self.bits = bits
         meter._add(bits)
-        weakref.finalize(self, meter._sub, bits)
+
+    def __del__(self) -> None:
+        self.meter._sub(self.bits)
 
 
 def _copies(index: Any) -> bool:
@@ -86,6 +89,37 @@ def _copies(index: Any) -> bool:
 def _shape_after(shape: tuple[int, ...], op: Any) -> tuple[int, ...]:
     """The shape ``op`` gives an array of ``shape`` (worked out on a zero-stride stand-in; free for views)."""
     return tuple(op(np.broadcast_to(_DUMMY, shape)).shape)
+
+
+def _basic_index_shape(shape: tuple[int, ...], index: Any) -> tuple[int, ...] | None:
+    """The shape of ``array[index]`` for basic indexing (ints, slices, None, one Ellipsis); None otherwise."""
+    items = list(index) if isinstance(index, tuple) else [index]
+    if sum(1 for i in items if i is Ellipsis) > 1:
+        return None
+    consumed = sum(1 for i in items if isinstance(i, int | slice | np.integer) and not isinstance(i, bool))
+    if consumed > len(shape) or any(isinstance(i, bool) for i in items):
+        return None
+    if not any(i is Ellipsis for i in items):
+        items.append(Ellipsis)
+    out: list[int] = []
+    axis = 0
+    for item in items:
+        if item is Ellipsis:
+            take = len(shape) - consumed
+            out.extend(shape[axis : axis + take])
+            axis += take
+        elif item is None:
+            out.append(1)
+        elif isinstance(item, slice):
+            out.append(len(range(*item.indices(shape[axis]))))
+            axis += 1
+        elif isinstance(item, int | np.integer):
+            if not -shape[axis] <= int(item) < shape[axis]:
+                return None  # numpy raises the IndexError
+            axis += 1
+        else:
+            return None
+    return tuple(out)
 
 
 class Bits:
@@ -114,7 +148,7 @@ class Bits:
 
     @property
     def size(self) -> int:
-        return int(np.prod(self.shape, dtype=np.int64))
+        return math.prod(self.shape)
 
     def __len__(self) -> int:
         if not self.shape:
@@ -140,12 +174,16 @@ class Bits:
             shape = _shape_after(self.shape, op)
         buffer = self.buffer
         if copies and buffer is not None:
-            buffer = buffer.meter.buffer(int(np.prod(shape, dtype=np.int64)))
+            buffer = buffer.meter.buffer(math.prod(shape))
         return Bits(shape, data, pub, self.depth, buffer)
 
     def __getitem__(self, index: Any) -> Bits:
         if isinstance(index, Bits):
             raise TypeError("Bits cannot be indexed by secret bits; use the builder's select or mux")
+        if self.data is None and self.pub is None:  # shapes only: work the shape out without numpy
+            shape = _basic_index_shape(self.shape, index)
+            if shape is not None:
+                return Bits(shape, None, None, self.depth, self.buffer)
         return self._apply(lambda a: a[index], copies=_copies(index))
 
     def reshape(self, *shape: int | tuple[int, ...]) -> Bits:
@@ -200,7 +238,7 @@ def _join(parts: Sequence[Bits], op: Any, shape: tuple[int, ...]) -> Bits:
     if any(p.pub is not None for p in parts):
         pub = op([_pub_or_secret(p) for p in parts])
     meter = next((p.buffer.meter for p in parts if p.buffer is not None), None)
-    buffer = None if meter is None else meter.buffer(int(np.prod(shape, dtype=np.int64)))
+    buffer = None if meter is None else meter.buffer(math.prod(shape))
     return Bits(shape, data, pub, max(p.depth for p in parts), buffer)
 
 
@@ -233,5 +271,8 @@ def stack(parts: Sequence[Bits], axis: int = 0) -> Bits:
 
 def broadcast(*values: Bits) -> list[Bits]:
     """The values broadcast to their common shape (numpy's rules; free)."""
+    first = values[0].shape
+    if all(v.shape == first for v in values):
+        return list(values)
     shape = np.broadcast_shapes(*(v.shape for v in values))
     return [v if v.shape == shape else v.broadcast_to(shape) for v in values]

@@ -42,12 +42,17 @@ def _schema(args: argparse.Namespace) -> int:
 
 def _check(args: argparse.Namespace) -> int:
     from jointstat.circuit.inputs import expected_false_matches
+    from jointstat.circuit.plan import LimitError, check_limits, memory_bytes
+    from jointstat.cli import UserError
 
     compiled = _compile(args.file)
     m = compiled.manifest
-    c = compiled.circuit
+    size = compiled.size()
     print(f"{args.file}: ok — job {m.job.name} version {m.job.version}, statistic {compiled.statistic.name}")
-    print(f"  circuit: {c.and_count:,} AND gates, {c.n_gates:,} gates")
+    print(
+        f"  program: {size.and_gates:,} AND gates, {size.xor_gates + size.not_gates:,} free XOR/NOT gates,"
+        f" about {_size(memory_bytes(compiled))} of memory per party"
+    )
     for role in ("garbler", "evaluator"):
         names = getattr(m.outputs, role)
         print(
@@ -65,6 +70,10 @@ def _check(args: argparse.Namespace) -> int:
     if len(keys) == 2:
         fm = expected_false_matches(keys[0][1], keys[1][1], keys[0][0])
         print(f"  key hashes: {keys[0][0]} bits; at full capacity about {fm:.2g} false matches expected")
+    try:
+        check_limits(compiled)
+    except LimitError as exc:
+        raise UserError(str(exc)) from None
     return 0
 
 
@@ -74,14 +83,20 @@ def _digest(args: argparse.Namespace) -> int:
 
 
 def _plan(args: argparse.Namespace) -> int:
-    from jointstat.circuit.plan import parse_rate, plan
+    from jointstat.bench.garble import measured_speed
+    from jointstat.circuit.plan import LimitError, check_limits, parse_rate, plan
     from jointstat.cli import UserError
 
     try:
         rate = parse_rate(args.bandwidth)
     except ValueError as exc:
         raise UserError(str(exc)) from None
-    figures = plan(_compile(args.file), rate)
+    compiled = _compile(args.file)
+    figures = plan(compiled, rate, measured_speed())
+    try:
+        check_limits(compiled, est_seconds=float(figures["est_seconds"]))  # type: ignore[arg-type]
+    except LimitError as exc:
+        raise UserError(str(exc)) from None
     if args.json:
         json.dump(figures, sys.stdout)
         sys.stdout.write("\n")
@@ -92,10 +107,11 @@ def _plan(args: argparse.Namespace) -> int:
     rows = [
         ("AND gates", f"{figures['and_gates']:,}"),
         ("XOR/NOT gates (free)", f"{figures['xor_gates']:,}"),
-        ("layers", f"{figures['layers']:,}"),
+        ("AND depth (at most)", f"{figures['and_depth']:,}"),
         ("oblivious transfers", f"{figures['ot_count']:,}"),
         ("garbler → evaluator", _size(int(figures["bytes_garbler_to_evaluator"]))),  # type: ignore[arg-type]
         ("evaluator → garbler", _size(int(figures["bytes_evaluator_to_garbler"]))),  # type: ignore[arg-type]
+        ("memory per party", _size(int(figures["memory_bytes"]))),  # type: ignore[arg-type]
         ("garbling speed here", f"{figures['garble_and_per_s']:,} AND/s"),
         ("estimated time", f"{figures['est_seconds']:,} s"),
     ]
@@ -116,7 +132,7 @@ def _size(n: int) -> str:
 def _bench_join(args: argparse.Namespace) -> int:
     from jointstat.bench.join import run
 
-    return run(rows=args.rows, as_json=args.json)
+    return run(rows=args.rows, as_json=args.json, session=args.session)
 
 
 def add_commands(sub: argparse._SubParsersAction) -> None:
@@ -125,10 +141,10 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     schema = which.add_parser("schema", help="print the manifest JSON Schema")
     schema.add_argument("--plugin", action="append", help="a Python file registering custom statistics")
     schema.set_defaults(handler=_schema)
-    check = which.add_parser("check", help="validate a manifest and compile its circuit")
+    check = which.add_parser("check", help="validate a manifest, count its program, check it fits the limits")
     check.add_argument("file")
     check.set_defaults(handler=_check)
-    digest = which.add_parser("digest", help="print the digest pinning the manifest and its compiled circuit")
+    digest = which.add_parser("digest", help="print the digest pinning the manifest and its program")
     digest.add_argument("file")
     digest.set_defaults(handler=_digest)
 
@@ -147,7 +163,12 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
 
 
 def add_bench_command(which: argparse._SubParsersAction) -> None:
-    join = which.add_parser("join", help="build time, memory and AND count of a keyed-join sum circuit")
+    join = which.add_parser(
+        "join", help="the keyed-join sum at a size: counted, or a real session (--session)"
+    )
     join.add_argument("--rows", type=int, default=1 << 16, help="rows per party (default 2^16)")
+    join.add_argument(
+        "--session", action="store_true", help="run two node processes over loopback TLS on generated data"
+    )
     join.add_argument("--json", action="store_true", help="print one JSON object")
     join.set_defaults(handler=_bench_join)

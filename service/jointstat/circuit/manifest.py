@@ -45,7 +45,9 @@ from pydantic import (
 from jointstat.canonical import canonicalize
 from jointstat.problems import Problem, ProblemError, field_path, pydantic_message, read_yaml
 
-MAX_CAPACITY = 1 << 20  # rows per party table
+MAX_CAPACITY = (
+    1 << 24
+)  # rows per party table (what fits is decided by the memory and time limits, see circuit.plan)
 MAX_WIDTH = 64
 
 # -- errors ------------------------------------------------------------------------------------------------------------

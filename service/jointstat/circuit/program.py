@@ -41,11 +41,10 @@ class ProgramSize:
     extra: dict[str, Any] = field(default_factory=dict)
 
     def label_bytes(self) -> int:
-        """Estimated peak memory of one party's labels while running: 16 bytes per held bit, the input labels,
-        and room for the temporaries of the widest call (its operands, result and a masked copy: 3×)."""
-        return 16 * (
-            self.peak_bits + self.inputs[Party.GARBLER] + self.inputs[Party.EVALUATOR] + 3 * self.widest_call
-        )
+        """Estimated peak memory of one party's labels while running: 16 bytes per bit held at the peak (input
+        labels included) and room for the temporaries of the widest call (contiguous copies of its operands and
+        its result: 3×)."""
+        return 16 * (self.peak_bits + 3 * self.widest_call)
 
     def summary(self) -> dict[str, int]:
         return {

@@ -31,6 +31,7 @@ integer over 2^fraction_bits); ``align`` brings two numbers to one scale and wid
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -174,34 +175,83 @@ class Merged:
     comparators: int
 
 
-def bitonic_merge(bld: Builder, keys: Bits, payload: Bits | None = None) -> Merged:
-    """Sort a bitonic sequence of M = 2^L keys (with optional payload) by Batcher's merger: (M/2)·L comparators."""
+MERGE_CHUNK = (
+    1 << 15
+)  # elements per piece of a merge stage: wide enough for batched AES, small next to the data
+
+
+def bitonic_merge(bld: Builder, keys: Bits, payload: Bits | None = None, chunk: int = MERGE_CHUNK) -> Merged:
+    """Sort a bitonic sequence of M = 2^L keys (with optional payload) by Batcher's merger: (M/2)·L comparators.
+
+    The sequence is held as pieces of ``chunk`` elements (a power of two), and each stage replaces its pieces one
+    pair at a time, so besides the data itself only one pair of pieces' temporaries is ever alive: a stage whose
+    comparators span pieces (distance ≥ ``chunk``) pairs piece j with piece j + distance/chunk; a shorter stage
+    works inside each piece. The swap bits of each stage are kept in network order (for ``route_back``).
+    """
     m, kw = keys.shape
     if m & (m - 1):
         raise ValueError(f"bitonic merge: {m} elements is not a power of two")
+    if chunk < 1 or chunk & (chunk - 1):
+        raise ValueError(f"bitonic merge: the chunk of {chunk} elements is not a power of two")
     pw = 0 if payload is None else int(payload.shape[-1])
     data = keys if payload is None else concat([keys, payload], axis=-1)
     width = kw + pw
+    size = min(m, chunk)
+    pieces: list[Bits | None] = [data[i : i + size] for i in range(0, m, size)]
+    del data, keys, payload
+
+    def swap_pair(a: Bits, b: Bits) -> tuple[Bits, Bits, Bits]:
+        res = compare_swap(bld, a[:, :kw], b[:, :kw], a[:, kw:] if pw else None, b[:, kw:] if pw else None)
+        low = res.low if res.low_payload is None else concat([res.low, res.low_payload], axis=-1)
+        high = res.high if res.high_payload is None else concat([res.high, res.high_payload], axis=-1)
+        return low, high, res.swap
+
     swaps: list[Bits] = []
     comparators = 0
     half = m // 2
     while half >= 1:
-        blocks = data.reshape(m // (2 * half), 2, half, width)
-        a = blocks[:, 0].reshape(-1, width)
-        b = blocks[:, 1].reshape(-1, width)
-        res = compare_swap(bld, a[:, :kw], b[:, :kw], a[:, kw:] if pw else None, b[:, kw:] if pw else None)
-        low = res.low if res.low_payload is None else concat([res.low, res.low_payload], axis=-1)
-        high = res.high if res.high_payload is None else concat([res.high, res.high_payload], axis=-1)
-        data = stack(
-            [low.reshape(m // (2 * half), half, width), high.reshape(m // (2 * half), half, width)], axis=1
-        ).reshape(m, width)
-        swaps.append(res.swap)
+        stage: list[Bits] = []
+        if half >= size:
+            step = half // size
+            for group in range(0, len(pieces), 2 * step):
+                for j in range(group, group + step):
+                    a, b = pieces[j], pieces[j + step]
+                    assert a is not None and b is not None
+                    pieces[j] = pieces[j + step] = None
+                    low, high, swap = swap_pair(a, b)
+                    del a, b
+                    pieces[j], pieces[j + step] = low, high
+                    stage.append(swap)
+        else:
+            groups = size // (2 * half)
+            for j, piece in enumerate(pieces):
+                assert piece is not None
+                pieces[j] = None
+                blocks = piece.reshape(groups, 2, half, width)
+                del piece
+                low, high, swap = swap_pair(blocks[:, 0].reshape(-1, width), blocks[:, 1].reshape(-1, width))
+                del blocks
+                pieces[j] = stack(
+                    [low.reshape(groups, half, width), high.reshape(groups, half, width)], axis=1
+                ).reshape(size, width)
+                stage.append(swap)
+        swaps.append(concat(stage))
         comparators += m // 2
         half //= 2
+    data = concat([p for p in pieces if p is not None])
     return Merged(data[:, :kw], data[:, kw:] if pw else None, swaps, comparators)
 
 
-def route_back(bld: Builder, bits: Bits, merged: Merged) -> Bits:
+def lanewise(fn: Callable[..., Bits], *xs: Bits, chunk: int = MERGE_CHUNK) -> Bits:
+    """``fn(*xs)`` computed on pieces of ``chunk`` lanes (axis 0) and the results joined: the same gates when
+    ``fn`` acts on each lane alone, with the temporaries of one piece alive at a time."""
+    n = xs[0].shape[0]
+    if n <= chunk:
+        return fn(*xs)
+    return concat([fn(*(x[i : i + chunk] for x in xs)) for i in range(0, n, chunk)])
+
+
+def route_back(bld: Builder, bits: Bits, swaps: list[Bits]) -> Bits:
     """Carry one bit per merged position back to the element's input position: one AND per comparator.
 
     A swap is its own inverse, so the stages are replayed in reverse order with the same swap bits.
@@ -209,7 +259,7 @@ def route_back(bld: Builder, bits: Bits, merged: Merged) -> Bits:
     vals = bits
     m = vals.shape[0]
     half = 1
-    for swap in reversed(merged.swaps):
+    for swap in reversed(swaps):
         blocks = vals.reshape(m // (2 * half), 2, half)
         a = blocks[:, 0].reshape(-1)
         b = blocks[:, 1].reshape(-1)
@@ -240,6 +290,12 @@ class MergeLayout:
     second: slice  # positions of the second list, in reverse order (position size-1 is its element 0)
 
 
+def merge_layout(na: int, nb: int) -> MergeLayout:
+    """Where ``arrange`` puts lists of ``na`` and ``nb`` elements."""
+    m = merge_size(na + nb)
+    return MergeLayout(m, slice(0, na), slice(m - nb, m))
+
+
 def arrange(first: Bits, second: Bits, pad: Bits) -> tuple[Bits, MergeLayout]:
     """The bitonic input: ``first`` (ascending) ++ copies of ``pad`` ++ ``second`` reversed (so descending)."""
     na, nb = first.shape[0], second.shape[0]
@@ -249,7 +305,7 @@ def arrange(first: Bits, second: Bits, pad: Bits) -> tuple[Bits, MergeLayout]:
         parts.append(pad.broadcast_to((m - na - nb, first.shape[-1])))
     parts.append(second[::-1])
     seq = concat(parts, axis=0)
-    return seq, MergeLayout(m, slice(0, na), slice(m - nb, m))
+    return seq, merge_layout(na, nb)
 
 
 # -- sums, products, division ------------------------------------------------------------------------------------------
@@ -389,10 +445,17 @@ def one_hot(bld: Builder, index: Bits, size: int) -> Bits:
     return vec
 
 
-def select(bld: Builder, onehot: Bits, words: Bits) -> Bits:
-    """The word at the one-hot position: XOR of the words masked by the one-hot bits (one AND per bit)."""
-    masked = bld.and_(onehot[:, None], words)
-    return bld.reduce_xor(masked, axis=0)
+def select(bld: Builder, onehot: Bits, words: Bits, chunk: int = MERGE_CHUNK) -> Bits:
+    """The word at the one-hot position: XOR of the words masked by the one-hot bits (one AND per bit).
+
+    Works in pieces of ``chunk`` words, XORing the pieces' results (XOR is free), so only one piece's masked
+    words are alive at a time.
+    """
+    total: Bits | None = None
+    for i in range(0, words.shape[0], chunk):
+        part = bld.reduce_xor(bld.and_(onehot[i : i + chunk, None], words[i : i + chunk]), axis=0)
+        total = part if total is None else bld.xor(total, part)
+    return total if total is not None else bld.zeros(words.shape[1:])
 
 
 def gate(bld: Builder, wires: Bits, allow: Bits) -> Bits:

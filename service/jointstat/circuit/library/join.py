@@ -171,22 +171,29 @@ class KeyedJoin(Statistic):
             elements.append(concat([t.bits(names[party]), bld.not_(t.valid)[:, None]], axis=1))
         kw = elements[0].shape[1]
         pad = bld.constant([0] * (kw - 1) + [1])
-        seq, layout = blocks.arrange(elements[0], elements[1], pad)
-        merged = blocks.bitonic_merge(bld, seq)
+        layout = blocks.merge_layout(elements[0].shape[0], elements[1].shape[0])
+        # The arranged sequence is handed straight to the merge, which frees it piece by piece.
+        merged = blocks.bitonic_merge(bld, blocks.arrange(elements.pop(0), elements.pop(0), pad)[0])
         k = merged.keys
-        eq = bld.equal(k[:-1], k[1:])
-        # match = eq ∧ valid_i = eq ⊕ (eq ∧ invalid_i)
-        match = bld.xor(eq, bld.and_(eq, k[:-1, -1]))
+
+        def neighbours_match(low: Bits, high: Bits) -> Bits:
+            eq = bld.equal(low, high)
+            return bld.xor(eq, bld.and_(eq, low[:, -1]))  # match = eq ∧ valid_i = eq ⊕ (eq ∧ invalid_i)
+
+        match = blocks.lanewise(neighbours_match, k[:-1], k[1:])
+        del k
+        swaps = merged.swaps  # all the merge leaves behind: route_back needs its swap bits, not its keys
+        extra = {"comparators": merged.comparators, "key_bits": kw, "merge_size": layout.size}
+        del merged
         matches = bld.extend(blocks.count_bits(bld, match), specs["matches"].width)
         values: dict[str, Bits] = {"matches": matches}
-        extra = {"comparators": merged.comparators, "key_bits": kw, "merge_size": layout.size}
         ok: Bits | None = None
         vp = self.value_party()
         if vp is not None and self.p.value is not None and ctx.wanted & {"sum", "mean", "above"}:
             # m_i = match_{i−1} ⊕ match_i, with match_{−1} = match_{M−1} = 0
             zero = bld.zeros(1)
             flag = bld.xor(concat([match, zero]), concat([zero, match]))
-            back = blocks.route_back(bld, flag, merged)
+            back = blocks.route_back(bld, flag, swaps)
             mine = back[layout.first] if vp == Party.GARBLER else back[layout.second][::-1]
             v = ctx.table(vp).number(self.p.value.column)
             masked = bld.and_(v.wires, mine[:, None])
