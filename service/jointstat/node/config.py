@@ -15,7 +15,8 @@ Sections and defaults (all paths relative to the config file's directory unless 
   ``health`` (optional plaintext host:port serving only the standard gRPC health service, for orchestrator probes),
   ``data_dir``, ``job_store`` (default ``<data_dir>/jobs.sqlite3``), ``session_log`` (default
   ``<data_dir>/sessions.jsonl``), ``results_dir`` (default ``<data_dir>/results``), ``max_sessions`` (default 4),
-  ``session_deadline_seconds`` (default 3600).
+  ``session_deadline_seconds`` (default 3600), ``session_memory_mib`` (default 8192: a job whose program would
+  need more memory per party, as ``jointstat plan`` estimates it, is refused before its input is read).
 * ``tls`` — ``certificate`` (this node's, PEM) and ``private_key`` (secret). There is no CA setting: the transport
   trusts only the pinned peer certificates (``jointstat.transport.tls``), never an issuer.
 * ``signing_key`` (secret), ``key_hashing_secret`` (secret, optional; needed by manifests with identifier keys).
@@ -346,6 +347,12 @@ class NodeSection(StrictModel):
     results_dir: ConfigPath
     max_sessions: Annotated[int, _between(1, 64)] = 4
     session_deadline_seconds: Annotated[int, _between(1, 86400)] = 3600
+    session_memory_mib: Annotated[int, _between(64, 1 << 22)] = 8192
+
+    @property
+    def session_memory_bytes(self) -> int:
+        """The most memory one session's program may need (``jointstat plan`` reports a job's need)."""
+        return self.session_memory_mib * 2**20
 
     @model_validator(mode="before")
     @classmethod

@@ -226,8 +226,9 @@ class Prepared:
 class Preparer:
     """Compiles manifests (cached by file, size and modification time) and reads a job's input."""
 
-    def __init__(self, key_secret: bytes | None) -> None:
+    def __init__(self, key_secret: bytes | None, memory_limit: int | None = None) -> None:
         self._key_secret = key_secret
+        self._memory_limit = memory_limit  # a job whose program needs more is refused before its input is read
         self._cache: dict[Path, tuple[tuple[int, int], CompiledStatistic]] = {}
         self._lock = (
             threading.Lock()
@@ -268,8 +269,12 @@ class Preparer:
         return encode_inputs(compiled, party, records)
 
     def prepare(self, job: JobConfig) -> Prepared:
+        from jointstat.circuit.plan import check_limits
+
         t0 = time.monotonic()
         compiled = self.compiled(job)
+        if self._memory_limit is not None:
+            check_limits(compiled, memory_limit=self._memory_limit)
         bits = self.inputs(job, compiled)
         return Prepared(compiled, role_of(job), bytes.fromhex(compiled.digest), bits, time.monotonic() - t0)
 
@@ -368,7 +373,7 @@ class JobRunner:
 
     def __init__(self, state: NodeState) -> None:
         self.state = state
-        self.preparer = Preparer(state.keys.key_secret)
+        self.preparer = Preparer(state.keys.key_secret, state.config.node.session_memory_bytes)
         self.planner = Planner(
             [j.timing() for j in state.config.jobs if j.initiate], started_at=state.clock.now()
         )
