@@ -228,7 +228,9 @@ class Preparer:
 
     def __init__(self, key_secret: bytes | None, memory_limit: int | None = None) -> None:
         self._key_secret = key_secret
-        self._memory_limit = memory_limit  # a job whose program needs more is refused before its input is read
+        self._memory_limit = (
+            memory_limit  # a job whose program needs more is refused before its input is read
+        )
         self._cache: dict[Path, tuple[tuple[int, int], CompiledStatistic]] = {}
         self._lock = (
             threading.Lock()

@@ -8,8 +8,9 @@ of its own, and the greenlet its program runs in belongs to that thread (``joint
 garbling and evaluation therefore never stall the event loop, and numpy and AES release the GIL, so the worker
 overlaps with the network. Four tasks on the event loop share the session:
 
-- the *reader* reads the peer's frames and hands each to ``session.receive`` on the worker; replies go to the
-  outbox;
+- the *reader* reads the peer's frames into a short inbox (``READ_AHEAD`` frames), and the *processor* hands each
+  to ``session.receive`` on the worker; replies go to the outbox. Reading the next frame thus overlaps evaluating
+  the last one;
 - the *producer* (garbler only) pulls the streamed frames of ``session.produce()`` one at a time on the worker.
   Before each it takes one of ``Limits.send_window`` slots, which the writer gives back once the frame is written.
   gRPC's ``write`` completes only as HTTP/2 flow control lets the bytes out, so a slow evaluator stops the garbler
@@ -55,6 +56,7 @@ from jointstat.protocol.frames import AbortInfo, AbortReason, ProtocolError
 from jointstat.protocol.session import GarblerSession, Session
 
 GRPC_MESSAGE_PREFIX = 5  # compressed flag and 4-byte length before every gRPC message
+READ_AHEAD = 4  # frames read from the stream before the session has taken the ones before
 
 
 @dataclass(frozen=True)
@@ -209,6 +211,7 @@ class _Driver:
         self._on_progress = on_progress
         self._loop = asyncio.get_running_loop()
         self._outbox: asyncio.Queue[_Item] = asyncio.Queue()
+        self._inbox: asyncio.Queue[bytes | StreamLost | None] = asyncio.Queue(maxsize=READ_AHEAD)
         self._slots = asyncio.Semaphore(limits.send_window)
         self._stop = asyncio.Event()
         self._ended = asyncio.Event()
@@ -277,21 +280,33 @@ class _Driver:
         self._check_ended()
         self._notify()
 
-    async def _read_loop(self, first_frame: bytes | None) -> None:
+    async def _read_loop(self) -> None:
         try:
-            if first_frame is not None:
-                await self._deliver(first_frame)
-            while not self._ended.is_set():
+            while True:
                 data = await self.stream.read()
                 self._progress()
+                await self._inbox.put(data)
                 if data is None:
-                    await self._local_fail(
-                        AbortReason.CONNECTION_LOST, "the peer closed the stream before the session ended"
-                    )
                     return
-                await self._deliver(data)
         except StreamLost as exc:
-            await self._local_fail(AbortReason.CONNECTION_LOST, f"receiving failed: {exc}")
+            await self._inbox.put(exc)
+
+    async def _process_loop(self, first_frame: bytes | None) -> None:
+        if first_frame is not None:
+            await self._deliver(first_frame)
+        while not self._ended.is_set():
+            item = await self._inbox.get()
+            if self._ended.is_set():
+                return
+            if item is None:
+                await self._local_fail(
+                    AbortReason.CONNECTION_LOST, "the peer closed the stream before the session ended"
+                )
+                return
+            if isinstance(item, StreamLost):
+                await self._local_fail(AbortReason.CONNECTION_LOST, f"receiving failed: {item}")
+                return
+            await self._deliver(item)
 
     async def _write_loop(self) -> None:
         while True:
@@ -352,7 +367,8 @@ class _Driver:
     async def _run(self, first_frame: bytes | None) -> SessionResult:
         self._enqueue(await self._call(self.session.start))
         writer = asyncio.create_task(self._write_loop(), name="jointstat-writer")
-        reader = asyncio.create_task(self._read_loop(first_frame), name="jointstat-reader")
+        reader = asyncio.create_task(self._read_loop(), name="jointstat-reader")
+        processor = asyncio.create_task(self._process_loop(first_frame), name="jointstat-processor")
         watchdog = asyncio.create_task(self._watchdog(), name="jointstat-watchdog")
         cancelled = False
         try:
@@ -390,13 +406,14 @@ class _Driver:
                 await asyncio.wait_for(asyncio.shield(writer), timeout=grace)
             except (TimeoutError, asyncio.CancelledError):
                 writer.cancel()
-            if not reader.done():
-                reader.cancel()
+            for task in (reader, processor):
+                if not task.done():
+                    task.cancel()
             with contextlib.suppress(asyncio.CancelledError, Exception):
                 await self.stream.close(completed)
             if cancelled or not completed:
                 self.stream.cancel()
-            for task in (reader, writer, watchdog, *([producer] if producer is not None else [])):
+            for task in (reader, processor, writer, watchdog, *([producer] if producer is not None else [])):
                 with contextlib.suppress(asyncio.CancelledError, Exception):
                     await task
             with contextlib.suppress(Exception):
