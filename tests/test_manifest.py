@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import subprocess
@@ -151,13 +152,35 @@ def test_layout_comments_and_key_order_do_not_change_the_digest(tmp_path: Path) 
     assert compile_manifest(load_manifest(changed)).digest != a.digest
 
 
+def test_the_digest_is_sha256_of_the_documented_layout() -> None:
+    # jointstat.circuit.compile: SHA-256 (FIPS 180-4, computed here by hashlib) over the domain, the manifest's
+    # canonical JSON, a zero byte and the program's structure digest from the count backend.
+    compiled = compile_manifest(load_manifest(JOIN))
+    structure = compiled.size().structure
+    assert len(structure) == 32
+    expected = hashlib.sha256(b"jointstat.manifest.v2\n" + compiled.manifest.canonical() + b"\0" + structure)
+    assert compiled.digest == expected.hexdigest()
+
+
+def test_the_digest_follows_the_program_not_only_the_manifest_text() -> None:
+    # Two manifests that differ only in what a party receives run different programs (different outputs), so
+    # their structure digests and their manifest digests differ.
+    data = base()
+    data["outputs"]["evaluator"] = ["matches"]
+    fewer = parse_manifest(yaml.safe_dump(data), "m.yaml")
+    a, b = compile_manifest(load_manifest(JOIN)), compile_manifest(fewer)
+    assert a.size().structure != b.size().structure
+    assert a.digest != b.digest
+
+
 def test_the_digest_of_an_example_never_changes() -> None:
-    # Pinned value, computed by this project when manifest digests v1 were defined: a change to the canonical form,
-    # the statistic library or the builder's gate order changes every agreed digest, so it must be deliberate.
+    # Pinned value, computed by this project when manifest digests v2 (over the program's structure digest) were
+    # defined: a change to the canonical form, the statistic library or the order of the program's gate batches
+    # changes every agreed digest, so it must be deliberate.
     assert compile_manifest(load_manifest(JOIN)).digest == PINNED_JOIN_DIGEST
 
 
-PINNED_JOIN_DIGEST = "84ace8474d74a8d655815debad6ecd1a44dfceecca1308fb9bf11a8e0f9f8fa2"
+PINNED_JOIN_DIGEST = "a686a57fb81d5e6adafe750be336123ef540f245bbfd9857f160ae8fa68e74ac"
 
 
 def test_the_digest_is_the_same_in_another_process_with_another_hash_seed() -> None:
