@@ -8,6 +8,10 @@ earlier wires only. ``run(bld)`` replays the list through the builder's backend 
 over a 1-d (or, with ``square``, a 2-d) array of bits — ``batch`` = 1 replays gate by gate. Inputs are declared in
 two calls per party and the outputs given at the end, garbler's first.
 
+``garble_and_evaluate`` runs any program on the garbler's backend, collecting its table stream, then on the
+evaluator's backend reading that stream (one after the other, no greenlets), with fresh Δ and labels and the
+evaluator's active labels handed over directly in place of OT.
+
 ``reference_eval`` evaluates the list one gate at a time on Python integers, and ``expected_and_gates`` counts
 its AND gates of two secret operands by applying the folding rules written out here once more (a public 0 makes
 an AND public 0, a public 1 passes the other operand, operations on public bits stay public); neither uses any
@@ -16,13 +20,19 @@ code of the project.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 from hypothesis import strategies as st
 from jointstat.circuit.bits import Bits, stack
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.model import Party
+from jointstat.garble.backends import EvaluatorBackend, GarblerBackend
+from jointstat.garble.halfgates import fresh_delta
+from jointstat.garble.outputs import decode, decode_returned, make_decoding
+from jointstat.primitives.blocks import random_blocks
 
 AND, XOR, NOT = "and", "xor", "not"
 KINDS = (AND, XOR, NOT)
@@ -180,3 +190,64 @@ def random_bits(rng: np.random.Generator, n: int) -> np.ndarray:
 def random_inputs(program: RandomProgram, seed: int) -> dict[Party, np.ndarray]:
     rng = np.random.default_rng(seed)
     return {p: random_bits(rng, program.n_inputs[p]) for p in Party}
+
+
+@dataclass
+class GarbledRun:
+    """Both backends after a run, the table stream between them and what each run of the program returned."""
+
+    garbler: GarblerBackend
+    evaluator: EvaluatorBackend
+    delta: np.ndarray
+    stream: bytes
+    chunk_sizes: list[int]
+    returned: dict[Party, Any] = field(default_factory=dict)  # keyed by the role that ran the program
+
+    def outputs(self) -> dict[Party, np.ndarray]:
+        """Both parties' outputs, decoded with check tags (evaluator) and checked labels (garbler)."""
+        g, e = self.garbler, self.evaluator
+        return {
+            Party.EVALUATOR: decode(
+                e.output_labels(Party.EVALUATOR), make_decoding(g.output_labels(Party.EVALUATOR), self.delta)
+            ),
+            Party.GARBLER: decode_returned(
+                g.output_labels(Party.GARBLER), self.delta, e.output_labels(Party.GARBLER)
+            ),
+        }
+
+
+def garble_and_evaluate(
+    run: Callable[[Builder], Any],
+    bits: dict[Party, np.ndarray],
+    *,
+    chunk_bytes: int = 64,
+    tamper: Callable[[bytes], bytes] | None = None,
+) -> GarbledRun:
+    """Run ``run`` on the garbler's backend, then on the evaluator's backend fed the (maybe tampered) stream."""
+    delta = fresh_delta()
+    zero = {p: random_blocks(int(np.asarray(bits[p]).size)) for p in Party}
+    chunks: list[bytes] = []
+    garbler = GarblerBackend(
+        delta=delta, input_labels=zero, sink=lambda c: chunks.append(bytes(c)), chunk_bytes=chunk_bytes
+    )
+    returned = {Party.GARBLER: run(Builder(garbler))}
+    garbler.check_inputs_used()
+    garbler.flush()
+    stream = b"".join(chunks)
+    fed = memoryview(tamper(stream) if tamper else stream)
+    taken = 0
+
+    def source(n: int) -> memoryview:
+        nonlocal taken
+        taken += n
+        return fed[taken - n : taken]
+
+    active = {p: garbler.input_labels(p, bits[p]) for p in Party}
+    evaluator = EvaluatorBackend(input_labels=active, source=source)
+    returned[Party.EVALUATOR] = run(Builder(evaluator))
+    evaluator.check_inputs_used()
+    assert taken == len(stream), (
+        taken,
+        len(stream),
+    )  # the evaluator took exactly the tables the garbler made
+    return GarbledRun(garbler, evaluator, delta, stream, [len(c) for c in chunks], returned)

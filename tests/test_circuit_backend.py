@@ -20,12 +20,12 @@ from jointstat.circuit.model import CircuitError, Party
 from jointstat.circuit.program import Program
 from jointstat.garble.backends import EvaluatorBackend, GarblerBackend
 from jointstat.garble.halfgates import GarbleError, fresh_delta
-from jointstat.garble.outputs import decode, decode_returned, make_decoding
 from jointstat.primitives.blocks import random_blocks
 
 from tests.circuits import (
     RandomProgram,
     expected_and_gates,
+    garble_and_evaluate,
     public_wires,
     random_inputs,
     random_programs,
@@ -38,36 +38,10 @@ G, E = Party.GARBLER, Party.EVALUATOR
 def garble_then_evaluate(
     program: RandomProgram, bits: dict[Party, np.ndarray]
 ) -> tuple[GarblerBackend, EvaluatorBackend, dict[Party, np.ndarray], dict[Party, dict[Party, Bits]]]:
-    """Run the program on the garbler's backend (collecting its table stream), then on the evaluator's backend
-    reading that stream; decode both parties' outputs. Returns the backends, the outputs and each backend's output
-    values."""
-    delta = fresh_delta()
-    zero = {p: random_blocks(program.n_inputs[p]) for p in Party}
-    chunks: list[bytes] = []
-    garbler = GarblerBackend(
-        delta=delta, input_labels=zero, sink=lambda c: chunks.append(bytes(c)), chunk_bytes=64
-    )
-    given_g = program.run_collect(Builder(garbler))
-    garbler.check_inputs_used()
-    garbler.flush()
-    stream = memoryview(b"".join(chunks))
-    taken = 0
-
-    def source(n: int) -> memoryview:
-        nonlocal taken
-        taken += n
-        return stream[taken - n : taken]
-
-    active = {p: garbler.input_labels(p, bits[p]) for p in Party}
-    evaluator = EvaluatorBackend(input_labels=active, source=source)
-    given_e = program.run_collect(Builder(evaluator))
-    evaluator.check_inputs_used()
-    assert taken == len(stream)  # the evaluator consumed exactly the tables the garbler made
-    outputs = {
-        E: decode(evaluator.output_labels(E), make_decoding(garbler.output_labels(E), delta)),
-        G: decode_returned(garbler.output_labels(G), delta, evaluator.output_labels(G)),
-    }
-    return garbler, evaluator, outputs, {G: given_g, E: given_e}
+    """The program garbled, then evaluated on the garbler's table stream: both backends, both parties' decoded
+    outputs, and the output values each backend's run gave."""
+    run = garble_and_evaluate(program.run_collect, bits)
+    return run.garbler, run.evaluator, run.outputs(), run.returned
 
 
 # -- one program, four backends ---------------------------------------------------------------------------------
