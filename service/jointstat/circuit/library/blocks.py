@@ -5,9 +5,10 @@ Theory of operation
 Every block works on lanes at once (see ``jointstat.circuit.builder``) and uses the AND-count-minimal word
 operations of Kolesnikov–Sadeghi–Schneider (CANS 2009); with free XOR only AND gates cost ciphertexts.
 
-* ``greater_than`` — x > y on unsigned words, n AND gates and no NOT gates: the carry out of x + ¬y, with the
-  majority rewritten so the complement disappears, c' = c ⊕ ((x ⊕ y) ∧ (x ⊕ c)). The x ⊕ y it reads is the
-  same difference a compare-and-swap needs, so the two share it.
+* ``greater_than`` — x > y on unsigned words, n AND gates and a single NOT (at bit 0, x₀ ∧ ¬y₀) instead of n:
+  the carry out of x + ¬y, with the majority rewritten so the complement disappears,
+  c' = c ⊕ ((x ⊕ y) ∧ (x ⊕ c)). The x ⊕ y it reads is the same difference a compare-and-swap needs, so the two
+  share it.
 * ``compare_swap`` — orders two elements by a key: a comparator (k AND gates for a k-bit key) and one shared
   swap, δ = s ∧ (a ⊕ b), a' = a ⊕ δ, b' = b ⊕ δ (one AND gate per key or payload bit). Its swap bits are kept,
   so a bit can later be carried back to where its element came from (``route_back``, one AND per comparator).
