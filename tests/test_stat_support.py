@@ -16,6 +16,7 @@ from typing import Any
 import numpy as np
 import pytest
 import yaml
+from hypothesis import settings
 from jointstat.circuit.compile import CompiledStatistic, compile_manifest
 from jointstat.circuit.inputs import Records, encode_inputs, hash_key
 from jointstat.circuit.manifest import Manifest, parse_manifest
@@ -92,6 +93,18 @@ def run_garbled(compiled: CompiledStatistic, g: Records, e: Records) -> dict[Par
     """Decoded outputs of the program garbled and evaluated in one process (tables streamed in 64 KiB chunks)."""
     out = garble_locally(compiled, g, e, chunk_bytes=1 << 16).outputs
     return {p: compiled.decode(p, out[p]) for p in Party}
+
+
+def run_garbled_raw(compiled: CompiledStatistic, g: Records, e: Records) -> dict[Party, dict[str, Any]]:
+    """Outputs of the garbled program as integers, like ``run_plain_raw``."""
+    out = garble_locally(compiled, g, e, chunk_bytes=1 << 16).outputs
+    return {p: compiled.decode_raw(p, out[p]) for p in Party}
+
+
+def garbled_examples() -> int:
+    """Examples for hypothesis properties that garble every example: a quarter of the profile's, at least 8
+    (10 in the ci profile, 125 in the thorough one)."""
+    return max(8, settings.default.max_examples // 4)
 
 
 def compiled_sum() -> CompiledStatistic:
