@@ -102,6 +102,17 @@ def test_errors_name_the_field_and_say_what_is_wrong(change: object, expected: s
     assert any(p.startswith(expected) for p in found), found
 
 
+def test_capacities_reach_the_record_counts_of_large_organisations() -> None:
+    # Issue 11: the organisations hold 10^5 to 10^7 records each; plan must take a join of 2^22 rows a side.
+    data = base()
+    data["tables"]["garbler"]["capacity"] = data["tables"]["evaluator"]["capacity"] = 1 << 22
+    assert parse_manifest(yaml.safe_dump(data), "m.yaml").tables.garbler.capacity == 1 << 22
+    data["tables"]["garbler"]["capacity"] = 10**7
+    assert parse_manifest(yaml.safe_dump(data), "m.yaml").tables.garbler.capacity == 10**7
+    data["tables"]["garbler"]["capacity"] = (1 << 24) + 1
+    assert problems_of(data) == ["tables.garbler.capacity: must be between 1 and 16777216"]
+
+
 def test_a_key_given_twice_is_an_error_not_silently_dropped() -> None:
     text = JOIN.read_text().replace("  version: 1\n", "  version: 1\n  version: 2\n", 1)
     with pytest.raises(ManifestError, match="key 'version' appears twice"):
