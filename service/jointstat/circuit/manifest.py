@@ -45,7 +45,7 @@ from pydantic import (
 from jointstat.canonical import canonicalize
 from jointstat.problems import Problem, ProblemError, field_path, pydantic_message, read_yaml
 
-MAX_CAPACITY = 1 << 20  # rows per party table
+MAX_CAPACITY = 1 << 24  # rows per party table: above the 10^7 records of the largest organisations (issue 11)
 MAX_WIDTH = 64
 
 # -- errors ------------------------------------------------------------------------------------------------------------
