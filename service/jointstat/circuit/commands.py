@@ -45,9 +45,12 @@ def _check(args: argparse.Namespace) -> int:
 
     compiled = _compile(args.file)
     m = compiled.manifest
-    c = compiled.circuit
+    size = compiled.size()
     print(f"{args.file}: ok — job {m.job.name} version {m.job.version}, statistic {compiled.statistic.name}")
-    print(f"  circuit: {c.and_count:,} AND gates, {c.n_gates:,} gates")
+    print(
+        f"  program: {size.and_gates:,} AND gates, {size.xor_gates + size.not_gates:,} free XOR/NOT gates,"
+        f" AND depth {size.and_depth:,}"
+    )
     for role in ("garbler", "evaluator"):
         names = getattr(m.outputs, role)
         print(
@@ -73,6 +76,25 @@ def _digest(args: argparse.Namespace) -> int:
     return 0
 
 
+def _measure_speed():  # type: ignore[no-untyped-def]
+    """This machine's garbling and evaluation speed from a short one-process run of ``bench garble``'s program."""
+    import numpy as np
+
+    from jointstat.bench.garble import wide_program
+    from jointstat.circuit.model import Party
+    from jointstat.circuit.plan import Speed
+    from jointstat.garble.local import run_locally
+
+    program = wide_program(SPEED_AND_GATES, SPEED_WIDTH)
+    run = run_locally(program.run, {p: np.zeros(program.n_inputs(p), dtype=np.uint8) for p in Party})
+    n = program.size.and_gates
+    return Speed(n / max(run.garble_seconds, 1e-9), n / max(run.evaluate_seconds, 1e-9))
+
+
+SPEED_AND_GATES = 1 << 17  # a fraction of a second on this kind of machine
+SPEED_WIDTH = 1 << 13
+
+
 def _plan(args: argparse.Namespace) -> int:
     from jointstat.circuit.plan import parse_rate, plan
     from jointstat.cli import UserError
@@ -81,7 +103,8 @@ def _plan(args: argparse.Namespace) -> int:
         rate = parse_rate(args.bandwidth)
     except ValueError as exc:
         raise UserError(str(exc)) from None
-    figures = plan(_compile(args.file), rate)
+    compiled = _compile(args.file)
+    figures = plan(compiled, rate, _measure_speed())
     if args.json:
         json.dump(figures, sys.stdout)
         sys.stdout.write("\n")
@@ -92,10 +115,11 @@ def _plan(args: argparse.Namespace) -> int:
     rows = [
         ("AND gates", f"{figures['and_gates']:,}"),
         ("XOR/NOT gates (free)", f"{figures['xor_gates']:,}"),
-        ("layers", f"{figures['layers']:,}"),
+        ("AND depth", f"{figures['and_depth']:,}"),
         ("oblivious transfers", f"{figures['ot_count']:,}"),
         ("garbler → evaluator", _size(int(figures["bytes_garbler_to_evaluator"]))),  # type: ignore[arg-type]
         ("evaluator → garbler", _size(int(figures["bytes_evaluator_to_garbler"]))),  # type: ignore[arg-type]
+        ("memory per party", _size(int(figures["memory_bytes"]))),  # type: ignore[arg-type]
         ("garbling speed here", f"{figures['garble_and_per_s']:,} AND/s"),
         ("estimated time", f"{figures['est_seconds']:,} s"),
     ]
