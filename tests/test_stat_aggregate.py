@@ -79,20 +79,49 @@ def test_aggregates_match_the_statistics_module(g: list[int], e: list[int], samp
     check_against_statistics(raw, union, sample)
 
 
+@cache
+def aggregate_circuit(name: str, sample: bool, cap_g: int, cap_e: int) -> CompiledStatistic:
+    outputs = ["count", "sum", "mean", "variance"][: ["count", "sum", "mean", "variance"].index(name) + 1]
+    statistic: dict[str, object] = {"name": name, "precision_bits": 5}
+    if name != "count":
+        statistic["column"] = {"garbler": "x", "evaluator": "y"}
+    if sample:
+        statistic["sample"] = True
+    return compile_manifest(
+        manifest(
+            {"garbler": table(cap_g, G_COL), "evaluator": table(cap_e, E_COL)},
+            statistic,
+            {"garbler": outputs[-1:], "evaluator": outputs},
+        )
+    )
+
+
 @settings(max_examples=garbled_examples())
-@given(st.integers(1, 7), st.integers(1, 6), st.booleans(), st.data())
-def test_plain_garbled_and_statistics_agree_for_any_capacities(
-    cap_g: int, cap_e: int, sample: bool, data: st.DataObject
+@given(st.sampled_from(["count", "sum", "mean", "variance"]), st.integers(1, 7), st.integers(1, 6), st.data())
+def test_plain_garbled_and_statistics_agree_for_every_aggregate_and_any_capacities(
+    name: str, cap_g: int, cap_e: int, data: st.DataObject
 ) -> None:
+    sample = name == "variance" and data.draw(st.booleans())
     g = data.draw(st.lists(st.integers(-512, 511), max_size=cap_g))
     e = data.draw(st.lists(st.integers(0, 127), max_size=cap_e))
-    c = variance_circuit(sample, cap_g=cap_g, cap_e=cap_e)
+    c = aggregate_circuit(name, sample, cap_g, cap_e)
     g_rec, e_rec = records("g", x=g), records("e", y=e)
     plain = run_plain_raw(c, g_rec, e_rec)
     assert run_garbled_raw(c, g_rec, e_rec) == plain
-    check_against_statistics(
-        plain[Party.EVALUATOR], [Fraction(v, 4) for v in g] + [Fraction(v) for v in e], sample
-    )
+    raw = plain[Party.EVALUATOR]
+    union = [Fraction(v, 4) for v in g] + [Fraction(v) for v in e]
+    if name == "variance":
+        check_against_statistics(raw, union, sample)
+        return
+    needed = 1 if name == "mean" else 0
+    if len(union) < needed:
+        assert raw["withheld"] is True
+        return
+    assert raw["withheld"] is False and raw["count"] == len(union)
+    if name != "count":
+        assert Fraction(raw["sum"], 4) == sum(union)  # Python's exact sum of fractions
+    if name == "mean":
+        assert raw["mean"] == truncate(statistics.mean(union), 2 + 5)  # statistics.mean
 
 
 def test_decoded_values_are_numbers_on_the_output_scale() -> None:
