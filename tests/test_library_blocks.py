@@ -171,6 +171,22 @@ def test_restoring_division_is_divmod(wn: int, wd: int, data: st.DataObject) -> 
 
 
 @settings(max_examples=40)
+@given(st.integers(1, 4), st.integers(1, 8), st.integers(1, 6), st.data())
+def test_division_with_a_bounded_quotient_takes_a_dividend_wider_than_the_divisor(
+    wd: int, q: int, extra: int, data: st.DataObject
+) -> None:
+    # The caller knows ⌊n / d⌋ < 2^q; the dividend may carry more leading bits than the divisor has (they are zero
+    # whenever the bound holds: n >> q < d < 2^wd), e.g. a sum over many rows divided by a count of few.
+    wn = q + wd + 1 + extra
+    d = data.draw(st.integers(1, 2**wd - 1))
+    n = data.draw(st.integers(0, min(2**wn - 1, d * 2**q - 1)))
+    bld = plain(int_to_bits(n, wn), int_to_bits(d, wd))
+    quotient, remainder = blocks.divide(bld, bld.input(G, wn), bld.input(E, wd), quotient_bits=q)
+    assert quotient.shape == (q,)
+    assert (ints(quotient)[0], ints(remainder)[0]) == divmod(n, d)
+
+
+@settings(max_examples=40)
 @given(st.integers(-(2**11), 2**11 - 1), st.integers(1, 200), st.integers(0, 6))
 def test_fixed_point_division_rounds_toward_zero(num: int, den: int, extra: int) -> None:
     bld = plain(int_to_bits(num, 12), int_to_bits(den, 8))

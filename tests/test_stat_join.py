@@ -117,6 +117,19 @@ def test_plain_garbled_and_the_clear_join_agree_for_any_capacities(
         assert plain[Party.GARBLER] == {"withheld": False, "matches": ref["matches"]}
 
 
+@pytest.mark.parametrize(("cap_g", "cap_e"), [(1, 5), (3, 64), (1, 1)])
+def test_a_small_table_joins_a_much_larger_one(cap_g: int, cap_e: int) -> None:
+    # The mean divides a sum over up to cap_e rows by a count of at most cap_g matches.
+    c = join_circuit(cap_g=cap_g, cap_e=cap_e)
+    g_keys = [f"id-{i}@example.org" for i in range(cap_g)]
+    e_keys = [f"id-{i}@example.org" for i in range(cap_e - 1, -1, -1)]
+    spend = [(-1) ** i * (100 * i + 7) for i in range(cap_e)]
+    g, e = key_records("g.csv", "member", g_keys), key_records("e.csv", "holder", e_keys, spend=spend)
+    got = run_plain(c, g, e)
+    assert got[Party.EVALUATOR] == {"withheld": False, **clear_join(g_keys, e_keys, spend)}
+    assert run_garbled(c, g, e) == got
+
+
 def test_no_keys_in_common_gives_zero_matches() -> None:
     c = compile_manifest(
         manifest(
