@@ -327,8 +327,9 @@ def divide(
 
     Per quotient bit one subtract-with-borrow and one multiplexer on w_d + 1 bits. With ``quotient_bits`` = q
     only the low q quotient bits are computed, starting from the remainder n >> q: correct whenever the true
-    quotient is below 2^q (callers state why it is). A zero divisor gives an all-ones quotient (callers withhold
-    such results).
+    quotient is below 2^q (callers state why it is), since then n >> q < d < 2^w_d, so the dividend's bits above
+    q + w_d are zero and are dropped (a sum over many rows divided by a count of few has such bits). A zero
+    divisor gives an all-ones quotient (callers withhold such results).
     """
     n, d = dividend, divisor
     wn, wd = n.shape[-1], d.shape[-1]
@@ -336,10 +337,7 @@ def divide(
     lanes = np.broadcast_shapes(n.shape[:-1], d.shape[:-1])
     n = n.broadcast_to((*lanes, wn))
     dext = bld.extend(d, wd + 1).broadcast_to((*lanes, wd + 1))
-    top = n[..., q_bits:]
-    if top.shape[-1] > wd + 1:
-        raise ValueError(f"divide: {top.shape[-1]} leading bits cannot be below a {wd}-bit divisor")
-    rem = bld.extend(top, wd + 1)
+    rem = bld.extend(n[..., q_bits:], wd + 1)  # n >> q < d: bits above w_d are zero (docstring)
     quotient: list[Bits] = []  # most significant first
     for i in range(q_bits - 1, -1, -1):
         rem = concat([n[..., i : i + 1], rem[..., :-1]], axis=-1)
