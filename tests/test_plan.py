@@ -1,17 +1,31 @@
-"""Planning: rates, and traffic figures that equal what the garbling layer actually produces."""
+"""Planning: rates; traffic figures that equal what the garbling backends actually produce; memory, depth and the
+limits a node refuses a job above; and a plan at the scale of large organisations, on the count backend only."""
 
 from __future__ import annotations
 
 import json
 from pathlib import Path
 
+import numpy as np
 import pytest
-from jointstat.circuit.compile import compile_manifest
+from jointstat.circuit.compile import CompiledStatistic, compile_manifest
 from jointstat.circuit.manifest import load_manifest
 from jointstat.circuit.model import Party
-from jointstat.circuit.plan import Speed, padded_ots, parse_rate, plan
+from jointstat.circuit.plan import (
+    PROCESS_BYTES,
+    LimitError,
+    Speed,
+    check_limits,
+    memory_bytes,
+    padded_ots,
+    parse_rate,
+    plan,
+)
 from jointstat.cli import main
-from jointstat.garble import Garbler
+from jointstat.garble.outputs import OutputDecoding, make_decoding
+
+from tests.circuits import garble_and_evaluate
+from tests.test_stat_support import manifest, table
 
 ROOT = Path(__file__).resolve().parents[1]
 EXAMPLE = ROOT / "configs" / "shared-customers" / "manifest.yaml"
@@ -52,16 +66,20 @@ def test_ot_batches_are_padded_to_multiples_of_128() -> None:
 def test_traffic_figures_match_the_garbled_tables_and_decoding() -> None:
     compiled = compile_manifest(load_manifest(EXAMPLE))
     figures = plan(compiled, parse_rate("100Mbit/s"), FIXED_SPEED)
-    c = compiled.circuit
-    garbler = Garbler(compiled.layered)
-    table_bytes = sum(len(chunk) for chunk in garbler.tables())
-    decoding = len(garbler.output_decoding(Party.EVALUATOR).to_bytes())
-    ots = padded_ots(c.n_inputs(Party.EVALUATOR))
-    labels = 16 * (c.n_inputs(Party.GARBLER) + 2)
-    assert figures["and_gates"] == c.and_count and figures["ot_count"] == c.n_inputs(Party.EVALUATOR)
+    size = compiled.size()
+    bits = {p: np.zeros(compiled.n_inputs(p), dtype=np.uint8) for p in Party}
+    run = garble_and_evaluate(compiled.program, bits, chunk_bytes=1 << 16)
+    table_bytes = len(run.stream)
+    decoding = len(make_decoding(run.garbler.output_labels(Party.EVALUATOR), run.delta).to_bytes())
+    assert decoding == OutputDecoding.size(size.outputs[Party.EVALUATOR])
+    ots = padded_ots(size.inputs[Party.EVALUATOR])
+    labels = 16 * size.inputs[Party.GARBLER]  # the garbler's input labels only: constants need none
+    assert figures["and_gates"] == size.and_gates == table_bytes // 32
+    assert figures["ot_count"] == size.inputs[Party.EVALUATOR]
     assert figures["bytes_garbler_to_evaluator"] == table_bytes + labels + 16 * ots + decoding + 128 * 32
-    assert figures["bytes_evaluator_to_garbler"] == 16 * ots + 16 * c.n_outputs(Party.GARBLER) + 32
-    assert figures["layers"] == compiled.layered.n_layers
+    assert figures["bytes_evaluator_to_garbler"] == 16 * ots + 16 * size.outputs[Party.GARBLER] + 32
+    assert figures["and_depth"] == size.and_depth > 0
+    assert figures["xor_gates"] == size.xor_gates + size.not_gates
 
 
 def test_the_estimate_is_bounded_by_the_slowest_of_garbling_and_transfer() -> None:
@@ -69,8 +87,95 @@ def test_the_estimate_is_bounded_by_the_slowest_of_garbling_and_transfer() -> No
     slow_link = plan(compiled, parse_rate("1kB/s"), FIXED_SPEED)
     assert slow_link["est_seconds"] >= slow_link["bytes_garbler_to_evaluator"] / 1000
     fast_link = plan(compiled, parse_rate("10GB/s"), FIXED_SPEED)
-    assert fast_link["est_seconds"] >= compiled.circuit.and_count / 1e6
+    assert fast_link["est_seconds"] >= compiled.size().and_gates / 1e6
+    slow_evaluator = plan(compiled, parse_rate("10GB/s"), Speed(garble_and_per_s=1e9, evaluate_and_per_s=1e3))
+    assert slow_evaluator["est_seconds"] >= compiled.size().and_gates / 1e3
     assert "assumes" in fast_link
+    assert fast_link["garble_and_per_s"] == 1_000_000 and fast_link["evaluate_and_per_s"] == 2_000_000
+    assert 0 <= fast_link["count_seconds"] <= fast_link["est_seconds"]
+
+
+def join_of(rows: int) -> CompiledStatistic:
+    key = {"name": "k", "type": "key", "width": 32}
+    return compile_manifest(
+        manifest(
+            {"garbler": table(rows, key), "evaluator": table(rows, key)},
+            {"name": "keyed_join", "key": "k"},
+            {"evaluator": ["matches"]},
+        )
+    )
+
+
+def test_memory_is_the_process_plus_the_labels_the_program_holds_at_its_peak() -> None:
+    compiled = compile_manifest(load_manifest(EXAMPLE))
+    size = compiled.size()
+    labels = 16 * (
+        size.peak_bits + size.inputs[Party.GARBLER] + size.inputs[Party.EVALUATOR] + 3 * size.widest_call
+    )
+    assert size.label_bytes() == labels
+    assert (
+        memory_bytes(compiled) == PROCESS_BYTES + labels == plan(compiled, 1e6, FIXED_SPEED)["memory_bytes"]
+    )
+    small, large = join_of(64), join_of(4096)
+    assert memory_bytes(small) < memory_bytes(large)
+    # the labels follow the live state: 64 times the rows hold at least 64 times the bits, not the whole circuit
+    assert large.size().peak_bits >= 64 * small.size().peak_bits
+    assert large.size().peak_bits < large.size().and_gates
+
+
+def test_a_job_above_the_memory_limit_is_refused_with_the_figure() -> None:
+    compiled = join_of(4096)
+    need = memory_bytes(compiled)
+    check_limits(compiled, memory_limit=need)  # exactly enough
+    with pytest.raises(LimitError) as info:
+        check_limits(compiled, memory_limit=need - 1)
+    message = str(info.value)
+    assert f"needs about {need / 2**30:.2f} GiB of memory per party" in message
+    assert f"({compiled.size().peak_bits:,} bits held at its peak, 16 bytes each)" in message
+    assert f"more than the {(need - 1) / 2**30:.2f} GiB allowed" in message
+    assert "job 'test-job'" in message and "lower the capacities" in message
+
+
+def test_a_job_above_the_time_limit_is_refused_with_the_figure() -> None:
+    compiled = compile_manifest(load_manifest(EXAMPLE))
+    check_limits(compiled, est_seconds=3600.0)  # the default session deadline, not more
+    with pytest.raises(
+        LimitError, match=r"is estimated at 5,000 s, more than the 3,600 s a session may take"
+    ):
+        check_limits(compiled, est_seconds=5000.0)
+    with pytest.raises(LimitError, match=r"estimated at 61 s, more than the 60 s"):
+        check_limits(compiled, time_limit_s=60, est_seconds=61.0)
+
+
+def tree_sum_and_gates(n: int) -> int:
+    """AND gates of blocks.tree_sum over n one-bit words: at each level ⌊n/2⌋ adders with carry-out (KSS 2009: one
+    AND per bit), the words one bit wider per level."""
+    total, width = 0, 1
+    while n > 1:
+        total += (n // 2) * width
+        n, width = -(-n // 2), width + 1
+    return total
+
+
+def join_matches_and_gates(rows: int, key_bits: int) -> int:
+    """The join module's structure for ``matches`` with equal capacities of a power of two (no padding, no
+    disclosure count): Batcher's merger of M = 2·rows elements of k = key_bits + 1 bits, (M/2)·log2 M
+    compare-and-swaps of 2k AND gates; M − 1 neighbour comparisons of k − 1 (equality) + 1 (validity) AND gates;
+    and the count of the M − 1 match bits (a tree sum)."""
+    m, k = 2 * rows, key_bits + 1
+    return (m // 2) * (m.bit_length() - 1) * 2 * k + (m - 1) * k + tree_sum_and_gates(m - 1)
+
+
+@pytest.mark.parametrize("rows", [1, 4, 1024])
+def test_the_join_formula_holds_at_small_sizes(rows: int) -> None:
+    assert join_of(rows).size().and_gates == join_matches_and_gates(rows, 32)
+
+
+def test_a_keyed_join_of_2_22_rows_a_side_is_planned_on_the_count_backend() -> None:
+    compiled = join_of(1 << 22)
+    figures = plan(compiled, parse_rate("1Gbit/s"), FIXED_SPEED)
+    assert figures["and_gates"] == join_matches_and_gates(1 << 22, 32) == 6_660_554_693
+    assert figures["ot_count"] == compiled.n_inputs(Party.EVALUATOR) == (1 << 22) * 33
 
 
 def test_the_plan_command_prints_json_or_a_table(capsys: pytest.CaptureFixture[str]) -> None:
@@ -79,8 +184,10 @@ def test_the_plan_command_prints_json_or_a_table(capsys: pytest.CaptureFixture[s
     for key in (
         "and_gates",
         "xor_gates",
-        "layers",
+        "and_depth",
         "ot_count",
+        "memory_bytes",
+        "count_seconds",
         "bytes_garbler_to_evaluator",
         "bytes_evaluator_to_garbler",
         "est_seconds",
@@ -88,6 +195,7 @@ def test_the_plan_command_prints_json_or_a_table(capsys: pytest.CaptureFixture[s
         assert key in figures
     assert main(["plan", str(EXAMPLE)]) == 0
     out = capsys.readouterr().out
-    assert "AND gates" in out and "assumes:" in out and "100Mbit/s" in out
+    assert "AND gates" in out and "AND depth" in out and "memory per party" in out
+    assert "assumes:" in out and "100Mbit/s" in out
     assert main(["plan", str(EXAMPLE), "--bandwidth", "quick"]) == 2
     assert "cannot read the bandwidth 'quick'" in capsys.readouterr().err

@@ -16,12 +16,16 @@ import pytest
 from cryptography.hazmat.primitives.ciphers import Cipher, algorithms, modes
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from jointstat.circuit.backend import CountBackend, PlainBackend
+from jointstat.circuit.bits import stack
 from jointstat.circuit.builder import Builder
-from jointstat.circuit.layers import LayeredCircuit, evaluate_plain, schedule
-from jointstat.circuit.model import Circuit, GateKind, Party
+from jointstat.circuit.model import CircuitError, Party
+from jointstat.circuit.program import Program
 from jointstat.circuit.reference import aes128, sha256
 from jointstat.demo import run as run_demo
 from jointstat.garble.local import run_locally
+
+G, E = Party.GARBLER, Party.EVALUATOR
 
 # FIPS 197 Appendix C.1 (AES-128), from memory; checked against `cryptography` below.
 FIPS197_C1_KEY = bytes.fromhex("000102030405060708090a0b0c0d0e0f")
@@ -84,30 +88,37 @@ def sha256_pad(message: bytes) -> bytes:
 
 
 # -- helpers -----------------------------------------------------------------------------------------------------
-def garble_and_evaluate(layered: LayeredCircuit, g_bits: np.ndarray, e_bits: np.ndarray) -> np.ndarray:
+def garble_and_evaluate(program: Program, g_bits: np.ndarray, e_bits: np.ndarray) -> np.ndarray:
     """Garble with fresh labels, stream the tables in 4 KiB chunks fed in pieces of 1000 bytes (not a whole number
-    of tables: the evaluator must carry the remainder), evaluate, decode."""
-    return run_locally(layered, g_bits, e_bits, chunk_bytes=4096, feed_bytes=1000).outputs[Party.EVALUATOR]
+    of tables: the evaluator must carry the remainder), evaluate, decode; checks one table per counted AND gate."""
+    run = run_locally(program.run, {G: g_bits, E: e_bits}, chunk_bytes=4096, feed_bytes=1000)
+    assert run.and_gates == program.size.and_gates and run.table_bytes == 32 * run.and_gates
+    return run.outputs[E]
+
+
+def run_plain(program: Program, g_bits: np.ndarray, e_bits: np.ndarray) -> np.ndarray:
+    """The program on the plain backend: the evaluator's output bits."""
+    plain = PlainBackend({G: g_bits, E: e_bits})
+    program.run(Builder(plain))
+    plain.check_inputs_used()
+    return plain.outputs(E)
+
+
+def counted(make: object) -> CountBackend:
+    """A count backend after ``make(bld)``."""
+    backend = CountBackend()
+    make(Builder(backend))  # type: ignore[operator]
+    return backend
 
 
 @pytest.fixture(scope="module")
-def aes_circuit() -> Circuit:
-    return aes128.aes128_circuit()
+def aes_program() -> Program:
+    return Program.of(aes128.aes128_program, name="AES-128")
 
 
 @pytest.fixture(scope="module")
-def aes_layered(aes_circuit: Circuit) -> LayeredCircuit:
-    return schedule(aes_circuit)
-
-
-@pytest.fixture(scope="module")
-def sha_circuit() -> Circuit:
-    return sha256.sha256_compress_circuit()
-
-
-@pytest.fixture(scope="module")
-def sha_layered(sha_circuit: Circuit) -> LayeredCircuit:
-    return schedule(sha_circuit)
+def sha_program() -> Program:
+    return Program.of(sha256.sha256_compress_program, name="SHA-256 compression")
 
 
 # -- the independent S-box and GF(2^8) arithmetic against FIPS 197 -----------------------------------------------
@@ -129,31 +140,29 @@ def test_independent_sbox_matches_fips197_listed_values() -> None:
 
 # -- the Boyar–Peralta S-box circuit ----------------------------------------------------------------------------
 def test_sbox_circuit_equals_fips197_sbox_on_all_256_inputs_as_lanes() -> None:
-    bld = Builder()
-    x = bld.input(Party.EVALUATOR, (256, 8))
-    bld.output(Party.EVALUATOR, aes128.sub_bytes(bld, x))
-    circuit = bld.build()
-    assert circuit.and_count == 256 * aes128.SBOX_AND_GATES
     inputs = np.unpackbits(np.arange(256, dtype=np.uint8), bitorder="little")
-    out = evaluate_plain(schedule(circuit), {Party.EVALUATOR: inputs})[Party.EVALUATOR]
-    got = np.packbits(out, bitorder="little")
-    want = np.array([fips197_sbox(a) for a in range(256)], dtype=np.uint8)
+    plain = PlainBackend({E: inputs})
+    bld = Builder(plain)
+    bld.output(E, aes128.sub_bytes(bld, bld.input(E, (256, 8))))
+    assert plain.and_gates == 256 * aes128.SBOX_AND_GATES
+    got = np.packbits(plain.outputs(E), bitorder="little")
+    want = np.array([fips197_sbox(a) for a in range(256)], dtype=np.uint8)  # FIPS 197 §5.1.1 definition
     assert np.array_equal(got, want)
 
 
 def test_sbox_netlist_has_32_and_and_83_xor_or_xnor_gates() -> None:
-    bld = Builder()
-    bld.output(Party.EVALUATOR, aes128.sub_bytes(bld, bld.input(Party.EVALUATOR, 8)))
-    circuit = bld.build()
-    assert circuit.and_count == 32
-    assert circuit.count(GateKind.XOR) == 83  # 79 XOR and 4 XNOR, each XNOR an XOR and a free NOT
-    assert circuit.count(GateKind.NOT) == 4
+    backend = counted(lambda b: b.output(E, aes128.sub_bytes(b, b.input(E, 8))))
+    assert backend.and_gates == 32
+    assert backend.xor_gates == 83  # 79 XOR and 4 XNOR, each XNOR an XOR and a free NOT
+    assert backend.not_gates == 4
 
 
-def test_sbox_rejects_wires_that_are_not_bytes() -> None:
-    bld = Builder()
-    with pytest.raises(ValueError, match="8 wires on the last axis"):
-        aes128.sub_bytes(bld, bld.input(Party.EVALUATOR, (2, 7)))
+def test_sbox_rejects_bits_that_are_not_bytes() -> None:
+    bld = Builder(CountBackend())
+    with pytest.raises(
+        CircuitError, match=r"AES S-box: expected bytes of 8 bits on the last axis, got shape \(2, 7\)"
+    ):
+        aes128.sub_bytes(bld, bld.input(E, (2, 7)))
 
 
 # -- AES-128 ------------------------------------------------------------------------------------------------------
@@ -161,22 +170,26 @@ def test_fips197_appendix_c1_vector_agrees_with_cryptography() -> None:
     assert cryptography_aes128(FIPS197_C1_KEY, FIPS197_C1_PLAINTEXT) == FIPS197_C1_CIPHERTEXT
 
 
-def test_aes128_circuit_has_6400_and_gates_one_sbox_of_32_per_byte_and_round(aes_circuit: Circuit) -> None:
-    c = aes_circuit
+def test_aes128_program_has_6400_and_gates_one_sbox_of_32_per_byte_and_round(aes_program: Program) -> None:
+    size = aes_program.size
     print(
-        f"\nAES-128 circuit: {c.and_count} AND, {c.count(GateKind.XOR)} XOR, {c.count(GateKind.NOT)} NOT,"
-        f" {schedule(c).n_layers} layers"
+        f"\nAES-128 program: {size.and_gates} AND, {size.xor_gates} XOR, {size.not_gates} NOT, depth {size.and_depth}"
     )
-    assert c.and_count == aes128.AND_GATES == 10 * 20 * 32 == 6400
-    assert c.count(GateKind.XOR) == 24040
-    assert c.count(GateKind.NOT) == 816
-    assert (c.n_inputs(Party.GARBLER), c.n_inputs(Party.EVALUATOR)) == (128, 128)
-    assert (c.n_outputs(Party.GARBLER), c.n_outputs(Party.EVALUATOR)) == (0, 128)
+    assert size.and_gates == aes128.AND_GATES == 10 * 20 * 32 == 6400
+    assert size.not_gates == 10 * 20 * 4  # the S-boxes' XNORs; Rcon is XORed in as a constant
+    assert (size.inputs[G], size.inputs[E]) == (128, 128)
+    assert (size.outputs[G], size.outputs[E]) == (0, 128)
+    assert size.and_calls == 10 * 32  # one call per S-box AND gate and round, over all 20 bytes at once
 
 
-def test_aes128_garbled_equals_fips197_appendix_c1(aes_layered: LayeredCircuit) -> None:
+def test_aes128_plain_equals_fips197_appendix_c1(aes_program: Program) -> None:
+    out = run_plain(aes_program, aes128.key_bits(FIPS197_C1_KEY), aes128.block_bits(FIPS197_C1_PLAINTEXT))
+    assert aes128.bits_to_block(out) == FIPS197_C1_CIPHERTEXT
+
+
+def test_aes128_garbled_equals_fips197_appendix_c1(aes_program: Program) -> None:
     out = garble_and_evaluate(
-        aes_layered, aes128.key_bits(FIPS197_C1_KEY), aes128.block_bits(FIPS197_C1_PLAINTEXT)
+        aes_program, aes128.key_bits(FIPS197_C1_KEY), aes128.block_bits(FIPS197_C1_PLAINTEXT)
     )
     assert aes128.bits_to_block(out) == FIPS197_C1_CIPHERTEXT
 
@@ -184,39 +197,47 @@ def test_aes128_garbled_equals_fips197_appendix_c1(aes_layered: LayeredCircuit) 
 @settings(max_examples=6)
 @given(key=st.binary(min_size=16, max_size=16), block=st.binary(min_size=16, max_size=16))
 def test_aes128_garbled_equals_cryptography_on_random_keys_and_blocks(
-    aes_layered: LayeredCircuit, key: bytes, block: bytes
+    aes_program: Program, key: bytes, block: bytes
 ) -> None:
-    out = garble_and_evaluate(aes_layered, aes128.key_bits(key), aes128.block_bits(block))
+    out = garble_and_evaluate(aes_program, aes128.key_bits(key), aes128.block_bits(block))
     assert aes128.bits_to_block(out) == cryptography_aes128(key, block)
 
 
-def test_aes128_plain_evaluation_equals_cryptography_on_64_random_inputs_at_once(
-    aes_layered: LayeredCircuit,
-) -> None:
+def test_aes128_encrypt_runs_64_lanes_of_keys_and_blocks_like_cryptography() -> None:
     rng = np.random.default_rng(197)
     keys = [rng.bytes(16) for _ in range(64)]
     blocks = [rng.bytes(16) for _ in range(64)]
-    g = np.stack([aes128.key_bits(k) for k in keys], axis=1)  # (128, runs)
-    e = np.stack([aes128.block_bits(b) for b in blocks], axis=1)
-    out = evaluate_plain(aes_layered, {Party.GARBLER: g, Party.EVALUATOR: e})[Party.EVALUATOR]
-    got = [aes128.bits_to_block(out[:, i]) for i in range(64)]
+    plain = PlainBackend(
+        {
+            G: np.concatenate([aes128.key_bits(k) for k in keys]),
+            E: np.concatenate([aes128.block_bits(b) for b in blocks]),
+        }
+    )
+    bld = Builder(plain)
+    bld.output(E, aes128.aes128_encrypt(bld, bld.input(G, (64, 16, 8)), bld.input(E, (64, 16, 8))))
+    assert (
+        plain.and_gates == 64 * 6400 and plain.and_calls == 10 * 32
+    )  # lanes widen the calls, not their number
+    got = [aes128.bits_to_block(part) for part in plain.outputs(E).reshape(64, 128)]
     assert got == [cryptography_aes128(k, b) for k, b in zip(keys, blocks, strict=True)]
 
 
-def test_aes128_encrypt_runs_lanes_of_keys_and_blocks_in_one_circuit() -> None:
-    bld = Builder()
-    keys = bld.input(Party.GARBLER, (3, 16, 8))
-    blocks = bld.input(Party.EVALUATOR, (3, 16, 8))
-    bld.output(Party.EVALUATOR, aes128.aes128_encrypt(bld, keys, blocks))
-    circuit = bld.build()
-    assert circuit.and_count == 3 * 6400
+def test_aes128_encrypt_broadcasts_one_key_over_many_blocks() -> None:
     rng = np.random.default_rng(5)
-    key_list, block_list = [rng.bytes(16) for _ in range(3)], [rng.bytes(16) for _ in range(3)]
-    g = np.concatenate([aes128.key_bits(k) for k in key_list])
-    e = np.concatenate([aes128.block_bits(b) for b in block_list])
-    out = evaluate_plain(schedule(circuit), {Party.GARBLER: g, Party.EVALUATOR: e})[Party.EVALUATOR]
-    got = [aes128.bits_to_block(part) for part in out.reshape(3, 128)]
-    assert got == [cryptography_aes128(k, b) for k, b in zip(key_list, block_list, strict=True)]
+    key, blocks = rng.bytes(16), [rng.bytes(16) for _ in range(3)]
+    plain = PlainBackend({G: aes128.key_bits(key), E: np.concatenate([aes128.block_bits(b) for b in blocks])})
+    bld = Builder(plain)
+    bld.output(E, aes128.aes128_encrypt(bld, bld.input(G, (16, 8)), bld.input(E, (3, 16, 8))))
+    got = [aes128.bits_to_block(part) for part in plain.outputs(E).reshape(3, 128)]
+    assert got == [cryptography_aes128(key, b) for b in blocks]
+    with pytest.raises(
+        CircuitError, match=r"AES-128: key and block must be bits of shape \(…, 16, 8\), got \(3, 8\)"
+    ):
+        aes128.aes128_encrypt(
+            bld,
+            bld.constant(np.zeros((3, 8), dtype=np.uint8)),
+            bld.constant(np.zeros((3, 8), dtype=np.uint8)),
+        )
 
 
 def test_aes_bit_order_is_bytes_in_order_each_least_significant_bit_first() -> None:
@@ -251,58 +272,62 @@ def test_sha256_constants_computed_from_their_definition_match_fips180_listed_va
     assert len(sha256.K) == 64 and len(sha256.INITIAL_HASH) == 32
 
 
-def test_sha256_compression_circuit_has_22573_and_gates(
-    sha_circuit: Circuit, sha_layered: LayeredCircuit
-) -> None:
-    c = sha_circuit
+def test_sha256_compression_program_has_22573_and_gates(sha_program: Program) -> None:
+    size = sha_program.size
     print(
-        f"\nSHA-256 compression circuit: {c.and_count} AND, {c.count(GateKind.XOR)} XOR,"
-        f" {c.count(GateKind.NOT)} NOT, {sha_layered.n_layers} layers"
+        f"\nSHA-256 compression program: {size.and_gates} AND, {size.xor_gates} XOR, depth {size.and_depth}"
     )
-    assert c.and_count == sha256.AND_GATES == 22573
-    assert c.count(GateKind.XOR) == 93666
-    assert (c.n_inputs(Party.GARBLER), c.n_inputs(Party.EVALUATOR)) == (512, 256)
-    assert (c.n_outputs(Party.GARBLER), c.n_outputs(Party.EVALUATOR)) == (0, 256)
+    # 64 rounds × (7 additions of 31 AND + 64 for Ch and Maj) + 48 schedule words × 3 additions + 8 final
+    # additions, less the carries the public K_t fold (sha256 module docstring)
+    folded = sum((k & -k).bit_length() for k in sha256.K)
+    assert size.and_gates == sha256.AND_GATES == 64 * (7 * 31 + 64) + 48 * 3 * 31 + 8 * 31 - folded == 22573
+    assert (size.xor_gates, size.not_gates) == (99994, 0)  # as the sha256 module docstring states (measured)
+    assert (size.inputs[G], size.inputs[E]) == (512, 256)
+    assert (size.outputs[G], size.outputs[E]) == (0, 256)
 
 
-def test_sha256_garbled_on_the_padded_abc_block_gives_the_fips180_digest(sha_layered: LayeredCircuit) -> None:
-    out = garble_and_evaluate(
-        sha_layered, sha256.block_bits(sha256_pad(b"abc")), sha256.chaining_bits(sha256.INITIAL_HASH)
-    )
-    assert sha256.bits_to_chaining(out) == FIPS180_ABC_DIGEST
+def sha256_lanes(n: int) -> Program:
+    """SHA-256 compression of n garbler blocks (lanes) under one evaluator chaining value."""
+
+    def run(bld: Builder) -> None:
+        block, chaining = bld.input(G, (n, 64, 8)), bld.input(E, (32, 8))
+        bld.output(
+            E, sha256.sha256_compress(bld, block, chaining)
+        )  # the chaining value broadcast over the lanes
+
+    return Program.of(run, name=f"SHA-256 compression of {n} blocks")
 
 
-def test_sha256_garbled_equals_hashlib_on_a_random_one_block_message(sha_layered: LayeredCircuit) -> None:
+def test_sha256_garbled_gives_the_fips180_abc_digest_and_hashlibs_on_a_random_message() -> None:
     message = np.random.default_rng(1804).bytes(41)
-    out = garble_and_evaluate(
-        sha_layered, sha256.block_bits(sha256_pad(message)), sha256.chaining_bits(sha256.INITIAL_HASH)
-    )
-    assert sha256.bits_to_chaining(out) == hashlib.sha256(message).digest()
+    program = sha256_lanes(2)
+    assert program.size.and_gates == 2 * 22573
+    g = np.concatenate([sha256.block_bits(sha256_pad(b"abc")), sha256.block_bits(sha256_pad(message))])
+    out = garble_and_evaluate(program, g, sha256.chaining_bits(sha256.INITIAL_HASH)).reshape(2, 256)
+    assert sha256.bits_to_chaining(out[0]) == FIPS180_ABC_DIGEST
+    assert sha256.bits_to_chaining(out[1]) == hashlib.sha256(message).digest()
 
 
-def test_sha256_plain_evaluation_equals_hashlib_on_random_one_block_messages(
-    sha_layered: LayeredCircuit,
-) -> None:
+def test_sha256_plain_gives_the_fips180_abc_digest_and_hashlibs_on_lanes_of_messages() -> None:
     rng = np.random.default_rng(180)
-    messages = [rng.bytes(n) for n in [0, 1, 3, 31, 32, 54, 55, *rng.integers(0, 56, 25).tolist()]]
-    g = np.stack([sha256.block_bits(sha256_pad(m)) for m in messages], axis=1)
-    e = sha256.chaining_bits(sha256.INITIAL_HASH)
-    out = evaluate_plain(sha_layered, {Party.GARBLER: g, Party.EVALUATOR: e})[Party.EVALUATOR]
-    got = [sha256.bits_to_chaining(out[:, i]) for i in range(len(messages))]
+    messages = [b"abc"] + [rng.bytes(n) for n in [0, 1, 3, 31, 32, 54, 55, *rng.integers(0, 56, 25).tolist()]]
+    program = sha256_lanes(len(messages))
+    g = np.concatenate([sha256.block_bits(sha256_pad(m)) for m in messages])
+    out = run_plain(program, g, sha256.chaining_bits(sha256.INITIAL_HASH)).reshape(len(messages), 256)
+    got = [sha256.bits_to_chaining(part) for part in out]
+    assert got[0] == FIPS180_ABC_DIGEST
     assert got == [hashlib.sha256(m).digest() for m in messages]
 
 
-def test_sha256_compression_chains_over_two_blocks_like_hashlib(sha_layered: LayeredCircuit) -> None:
+def test_sha256_compression_chains_over_two_blocks_like_hashlib(sha_program: Program) -> None:
     message = np.random.default_rng(2).bytes(100)  # pads to two blocks
     padded = sha256_pad(message)
     assert len(padded) == 128
     state = sha256.INITIAL_HASH
     for block in (padded[:64], padded[64:]):
-        out = evaluate_plain(
-            sha_layered,
-            {Party.GARBLER: sha256.block_bits(block), Party.EVALUATOR: sha256.chaining_bits(state)},
+        state = sha256.bits_to_chaining(
+            run_plain(sha_program, sha256.block_bits(block), sha256.chaining_bits(state))
         )
-        state = sha256.bits_to_chaining(out[Party.EVALUATOR])
     assert state == hashlib.sha256(message).digest()
 
 
@@ -315,10 +340,16 @@ def test_sha256_helpers_reject_wrong_lengths_naming_the_input() -> None:
         sha256.bits_to_chaining(np.zeros(255, dtype=np.uint8))
 
 
-def test_sha256_compress_rejects_wires_of_the_wrong_shape() -> None:
-    bld = Builder()
-    with pytest.raises(ValueError, match="message block must be wires of shape"):
-        sha256.sha256_compress(bld, bld.input(Party.GARBLER, (32, 8)), bld.input(Party.EVALUATOR, (32, 8)))
+def test_sha256_compress_rejects_bits_of_the_wrong_shape() -> None:
+    bld = Builder(CountBackend())
+    with pytest.raises(
+        CircuitError, match=r"SHA-256: the message block must be bits of shape \(…, 64, 8\), got \(32, 8\)"
+    ):
+        sha256.sha256_compress(bld, bld.input(G, (32, 8)), bld.input(E, (32, 8)))
+    with pytest.raises(
+        CircuitError, match=r"SHA-256: the chaining value must be bits of shape \(…, 32, 8\), got \(64, 8\)"
+    ):
+        sha256.sha256_compress(bld, bld.input(G, (64, 8)), bld.input(E, (64, 8)))
 
 
 # -- add_words: the batched adder -----------------------------------------------------------------------------
@@ -330,23 +361,23 @@ def test_sha256_compress_rejects_wires_of_the_wrong_shape() -> None:
 def test_add_words_adds_modulo_2_32_for_every_pair_and_folds_constants(
     pairs: list[tuple[int, int]], constant: int
 ) -> None:
-    bld = Builder()
-    xs = bld.input(Party.GARBLER, (len(pairs), 32))
-    ys = bld.input(Party.EVALUATOR, (len(pairs), 32))
-    word = bld.constant_word(constant, 32)
-    sums = sha256.add_words(bld, [*((xs[i], ys[i]) for i in range(len(pairs))), (xs[0], word)])
-    # Below and at the constant's lowest set bit the carry is a constant, so those bits cost no AND gate.
-    constant_cost = 0 if constant % 2**31 == 0 else 31 - (constant & -constant).bit_length()
-    assert bld.and_gates == 31 * len(pairs) + constant_cost
-    bld.output(Party.EVALUATOR, np.stack(sums))
-    layered = schedule(bld.build())
     g = np.concatenate(
         [np.unpackbits(np.array([x], "<u4").view(np.uint8), bitorder="little") for x, _ in pairs]
     )
     e = np.concatenate(
         [np.unpackbits(np.array([y], "<u4").view(np.uint8), bitorder="little") for _, y in pairs]
     )
-    out = evaluate_plain(layered, {Party.GARBLER: g, Party.EVALUATOR: e})[Party.EVALUATOR].reshape(-1, 32)
+    plain = PlainBackend({G: g, E: e})
+    bld = Builder(plain)
+    xs = bld.input(G, (len(pairs), 32))
+    ys = bld.input(E, (len(pairs), 32))
+    word = bld.constant_word(constant, 32)
+    sums = sha256.add_words(bld, [*((xs[i], ys[i]) for i in range(len(pairs))), (xs[0], word)])
+    # Below and at the constant's lowest set bit the carry is a constant, so those bits cost no AND gate.
+    constant_cost = 0 if constant % 2**31 == 0 else 31 - (constant & -constant).bit_length()
+    assert plain.and_gates == 31 * len(pairs) + constant_cost
+    bld.output(E, stack(sums))
+    out = plain.outputs(E).reshape(-1, 32)
     got = np.packbits(out, axis=1, bitorder="little").view("<u4").reshape(-1).tolist()
     want = [(x + y) % 2**32 for x, y in pairs] + [(pairs[0][0] + constant) % 2**32]
     assert got == want

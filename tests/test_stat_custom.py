@@ -1,4 +1,6 @@
-"""Custom statistics registered from Python, and every example in configs/ run end to end on its CSV files."""
+"""Custom statistics registered from Python, and every example in configs/ run on its CSV files: on the plain
+backend, garbled in one process with exactly one table per AND gate the count backend counts, and against numpy
+and the statistics module computed from the same CSV files."""
 
 from __future__ import annotations
 
@@ -9,9 +11,8 @@ from typing import Literal
 
 import numpy as np
 import pytest
-from jointstat.circuit.builder import Builder
-from jointstat.circuit.compile import compile_manifest
-from jointstat.circuit.inputs import read_csv
+from jointstat.circuit.compile import CompiledStatistic, compile_manifest
+from jointstat.circuit.inputs import Records, encode_inputs, read_csv
 from jointstat.circuit.library import blocks
 from jointstat.circuit.library.registry import (
     BuildContext,
@@ -26,7 +27,16 @@ from jointstat.circuit.manifest import Problem, StatisticParameters, load_manife
 from jointstat.circuit.model import Party
 from jointstat.cli import main
 
-from tests.test_stat_support import SECRET, manifest, records, run_garbled, run_plain, table
+from tests.test_stat_support import (
+    SECRET,
+    TABLE_BYTES_PER_AND,
+    garble_locally,
+    manifest,
+    records,
+    run_garbled,
+    run_plain,
+    table,
+)
 
 ROOT = Path(__file__).resolve().parents[1]
 CONFIGS = ROOT / "configs"
@@ -58,7 +68,7 @@ class WeightedTotal(Statistic):
         sums = []
         for p in Party:
             t = ctx.table(p)
-            sums.append(Builder.extend(blocks.tree_sum(bld, bld.and_(t.bits("v"), t.valid[:, None])), 16))
+            sums.append(bld.extend(blocks.tree_sum(bld, bld.and_(t.bits("v"), t.valid[:, None])), 16))
         w = self.params.weight  # type: ignore[attr-defined]
         weighted = blocks.multiply_full(bld, sums[0], bld.constant_word(w, w.bit_length()))[:16]
         return StatisticResult({"total": bld.add(weighted, sums[1])})
@@ -92,7 +102,10 @@ def test_a_custom_statistics_own_checks_name_their_field() -> None:
         )
 
 
-def load_example(folder: str) -> tuple[object, dict[Party, object]]:
+EXAMPLES = sorted(path.parent.name for path in CONFIGS.glob("*/manifest.yaml"))
+
+
+def load_example(folder: str) -> tuple[CompiledStatistic, dict[Party, Records]]:
     m = load_manifest(CONFIGS / folder / "manifest.yaml")
     compiled = compile_manifest(m)
     recs = {}
@@ -104,14 +117,42 @@ def load_example(folder: str) -> tuple[object, dict[Party, object]]:
 
 
 def run_example(folder: str) -> dict[Party, dict[str, object]]:
+    """The example on the plain backend; the garbled run must give the same outputs."""
     compiled, recs = load_example(folder)
-    return run_plain(compiled, recs[Party.GARBLER], recs[Party.EVALUATOR])  # type: ignore[arg-type]
+    plain = run_plain(compiled, recs[Party.GARBLER], recs[Party.EVALUATOR])
+    assert run_garbled(compiled, recs[Party.GARBLER], recs[Party.EVALUATOR]) == plain
+    return plain
 
 
 def csv_column(folder: str, party: str, column: str) -> list[str]:
     lines = (CONFIGS / folder / f"{party}.csv").read_text().splitlines()
     idx = lines[0].split(",").index(column)
     return [line.split(",")[idx] for line in lines[1:] if line]
+
+
+def test_every_example_is_here() -> None:
+    assert EXAMPLES == [
+        "bike-prices-median",
+        "default-rate-compare",
+        "delivery-spread",
+        "demo",
+        "pooled-wait-times",
+        "rainfall-totals",
+        "repair-cafe-visits",
+        "shared-customers",
+        "volunteer-ages",
+    ]
+
+
+@pytest.mark.parametrize("folder", EXAMPLES)
+def test_every_example_garbles_one_table_per_and_gate_the_count_backend_counts(folder: str) -> None:
+    compiled, recs = load_example(folder)
+    run = garble_locally(compiled, recs[Party.GARBLER], recs[Party.EVALUATOR], chunk_bytes=1 << 14)
+    assert run.and_gates == compiled.size().and_gates > 0
+    assert run.table_bytes == TABLE_BYTES_PER_AND * compiled.size().and_gates
+    plain = compiled.run_plain({p: encode_inputs(compiled, p, recs[p]) for p in Party})
+    for p in Party:
+        assert np.array_equal(run.outputs[p], plain[p])
 
 
 def test_the_custom_spread_example_runs_on_its_csv_files() -> None:
@@ -133,9 +174,11 @@ def test_the_examples_give_the_figures_computed_in_the_clear() -> None:
         float(v) for v in csv_column("pooled-wait-times", "evaluator", "wait")
     ]
     got = run_example("pooled-wait-times")[Party.EVALUATOR]
-    assert got["count"] == len(waits) and got["sum"] == sum(waits)
-    assert abs(got["mean"] - statistics.mean(waits)) < 2**-8
-    assert abs(got["variance"] - statistics.pvariance(waits)) < 2**-6
+    assert got["count"] == len(waits) and got["sum"] == sum(waits) == float(np.sum(waits))  # numpy.sum
+    assert abs(got["mean"] - statistics.mean(waits)) < 2**-8  # statistics.mean, rounded toward zero
+    assert abs(got["mean"] - float(np.mean(waits))) < 2**-8  # numpy.mean
+    assert abs(got["variance"] - statistics.pvariance(waits)) < 2**-6  # statistics.pvariance
+    assert abs(got["variance"] - float(np.var(waits))) < 2**-6  # numpy.var
 
     rain = [
         float(v)
@@ -147,13 +190,17 @@ def test_the_examples_give_the_figures_computed_in_the_clear() -> None:
         "count": len(rain),
         "sum": sum(rain),
     }
+    assert abs(sum(rain) - float(np.sum(rain))) < 1e-9  # numpy.sum
 
     returning = [
         v in ("yes", "true")
         for v in csv_column("repair-cafe-visits", "garbler", "returning")
         + csv_column("repair-cafe-visits", "evaluator", "returning")
     ]
-    assert run_example("repair-cafe-visits")[Party.EVALUATOR] == {"withheld": False, "count": sum(returning)}
+    assert run_example("repair-cafe-visits")[Party.EVALUATOR] == {
+        "withheld": False,
+        "count": int(np.count_nonzero(returning)),  # numpy.count_nonzero
+    }
 
     prices = [
         float(v)
@@ -161,8 +208,10 @@ def test_the_examples_give_the_figures_computed_in_the_clear() -> None:
         + csv_column("bike-prices-median", "evaluator", "sale_price")
     ]
     got = run_example("bike-prices-median")[Party.GARBLER]
-    assert got["p50"] == statistics.median(prices)
+    assert got["p50"] == statistics.median(prices)  # statistics.median
+    assert got["p50"] == float(np.percentile(prices, 50, method="midpoint"))  # numpy.percentile
     assert got["p90"] == float(np.percentile(prices, 90, method="midpoint"))
+    assert got["count"] == len(prices)
 
     g_mail = {v.lower() for v in csv_column("shared-customers", "garbler", "email")}
     spend = dict(
@@ -172,11 +221,30 @@ def test_the_examples_give_the_figures_computed_in_the_clear() -> None:
             strict=True,
         )
     )
-    shared = [float(s) for k, s in spend.items() if k.lower() in g_mail]
+    shared = np.array([float(s) for k, s in spend.items() if k.lower() in g_mail])  # Python sets
     got = run_example("shared-customers")[Party.EVALUATOR]
-    assert got["matches"] == len(shared) and abs(got["sum"] - sum(shared)) <= 0.25 * len(shared)
-    assert got["above"] == sum(s >= 200 for s in shared)
+    assert got["matches"] == len(shared) and abs(got["sum"] - float(shared.sum())) <= 0.25 * len(shared)
+    assert got["above"] == int((shared >= 200).sum())
 
+    visits = dict(
+        zip(
+            [v.lower() for v in csv_column("demo", "evaluator", "email")],
+            [int(v) for v in csv_column("demo", "evaluator", "visits")],
+            strict=True,
+        )
+    )
+    members = {v.lower() for v in csv_column("demo", "garbler", "email")}
+    both = np.array([n for k, n in visits.items() if k in members])  # Python sets, fold_case
+    got = run_example("demo")
+    assert got[Party.GARBLER] == {"withheld": False, "matches": len(both)}
+    assert got[Party.EVALUATOR]["matches"] == len(both) and got[Party.EVALUATOR]["sum"] == int(both.sum())
+    assert 0 <= float(np.mean(both)) - got[Party.EVALUATOR]["mean"] < 2**-8  # numpy.mean, rounded toward zero
+    assert got[Party.EVALUATOR]["above"] == int((both >= 10).sum())
+
+    rates = [
+        float(csv_column("default-rate-compare", p, "default_rate")[0]) for p in ("garbler", "evaluator")
+    ]
+    assert rates[0] > rates[1]
     assert run_example("default-rate-compare")[Party.EVALUATOR] == {"withheld": False, "larger": "garbler"}
 
     ages = [
@@ -184,8 +252,9 @@ def test_the_examples_give_the_figures_computed_in_the_clear() -> None:
         for v in csv_column("volunteer-ages", "garbler", "age")
         + csv_column("volunteer-ages", "evaluator", "age_years")
     ]
-    ref, _ = np.histogram(ages, bins=[16, 25, 40, 65, 100])
-    assert run_example("volunteer-ages")[Party.EVALUATOR]["counts"] == list(ref)
+    ref, _ = np.histogram(ages, bins=[16, 25, 40, 65, 100])  # numpy.histogram
+    got = run_example("volunteer-ages")[Party.EVALUATOR]
+    assert got["counts"] == list(ref) and got["count"] == int(ref.sum())
 
 
 def test_manifest_commands_work_on_every_example(capsys: pytest.CaptureFixture[str]) -> None:

@@ -1,4 +1,5 @@
-"""Keyed-join statistics (sort–merge–compare, Huang–Evans–Katz 2012) against the same figures computed in the clear.
+"""Keyed-join statistics (sort–merge–compare, Huang–Evans–Katz 2012) against the same figures computed in the clear;
+the same answer on the plain backend and garbled in one process.
 
 The clear reference is Python sets and dicts over the identifiers; values are compared exactly (sums) or against
 the rounding the module documents (means rounded toward zero).
@@ -18,19 +19,19 @@ from jointstat.circuit.library.blocks import and_per_compare_swap, bitonic_compa
 from jointstat.circuit.model import Party
 from jointstat.cli import main
 
-from tests.test_stat_support import key_records, manifest, run_garbled, run_plain, table
+from tests.test_stat_support import garbled_examples, key_records, manifest, run_garbled, run_plain, table
 
 CAP_G, CAP_E = 6, 5
 
 
 @cache
-def join_circuit(min_count: int = 0) -> CompiledStatistic:
+def join_circuit(min_count: int = 0, cap_g: int = CAP_G, cap_e: int = CAP_E) -> CompiledStatistic:
     return compile_manifest(
         manifest(
             {
-                "garbler": table(CAP_G, {"name": "member", "type": "key", "width": 32}),
+                "garbler": table(cap_g, {"name": "member", "type": "key", "width": 32}),
                 "evaluator": table(
-                    CAP_E,
+                    cap_e,
                     {"name": "holder", "type": "key", "width": 32},
                     {"name": "spend", "type": "fixed", "width": 12, "fraction_bits": 1},
                 ),
@@ -49,6 +50,7 @@ def join_circuit(min_count: int = 0) -> CompiledStatistic:
 
 
 def clear_join(g_keys: list[str], e_keys: list[str], spend: list[int]) -> dict[str, object]:
+    """The join's figures from Python sets and sums (spend in halves: the column has one fraction bit)."""
     common = set(g_keys) & set(e_keys)
     vals = [v for k, v in zip(e_keys, spend, strict=True) if k in common]
     out: dict[str, object] = {
@@ -89,6 +91,45 @@ def test_join_matches_the_clear_computation(
     assert got[Party.GARBLER] == {"withheld": False, "matches": ref["matches"]}
 
 
+@settings(max_examples=garbled_examples())
+@given(st.integers(1, 7), st.integers(1, 6), st.data())
+def test_plain_garbled_and_the_clear_join_agree_for_any_capacities(
+    cap_g: int, cap_e: int, data: st.DataObject
+) -> None:
+    g_keys = data.draw(st.lists(names, max_size=cap_g, unique=True))
+    e_keys = data.draw(st.lists(names, max_size=cap_e, unique=True))
+    spend = data.draw(st.lists(st.integers(-2048, 2047), min_size=len(e_keys), max_size=len(e_keys)))
+    c = join_circuit(cap_g=cap_g, cap_e=cap_e)
+    g_rec, e_rec = key_records("g.csv", "member", g_keys), key_records("e.csv", "holder", e_keys, spend=spend)
+    plain = run_plain(c, g_rec, e_rec)
+    assert run_garbled(c, g_rec, e_rec) == plain
+    ref = clear_join(g_keys, e_keys, spend)
+    if ref["matches"] == 0:
+        assert plain[Party.EVALUATOR] == {
+            "withheld": True,
+            "matches": None,
+            "sum": None,
+            "mean": None,
+            "above": None,
+        }
+    else:
+        assert plain[Party.EVALUATOR] == {"withheld": False, **ref}
+        assert plain[Party.GARBLER] == {"withheld": False, "matches": ref["matches"]}
+
+
+@pytest.mark.parametrize(("cap_g", "cap_e"), [(1, 5), (3, 64), (1, 1)])
+def test_a_small_table_joins_a_much_larger_one(cap_g: int, cap_e: int) -> None:
+    # The mean divides a sum over up to cap_e rows by a count of at most cap_g matches.
+    c = join_circuit(cap_g=cap_g, cap_e=cap_e)
+    g_keys = [f"id-{i}@example.org" for i in range(cap_g)]
+    e_keys = [f"id-{i}@example.org" for i in range(cap_e - 1, -1, -1)]
+    spend = [(-1) ** i * (30 * i + 7) for i in range(cap_e)]  # within the 12-bit column
+    g, e = key_records("g.csv", "member", g_keys), key_records("e.csv", "holder", e_keys, spend=spend)
+    got = run_plain(c, g, e)
+    assert got[Party.EVALUATOR] == {"withheld": False, **clear_join(g_keys, e_keys, spend)}
+    assert run_garbled(c, g, e) == got
+
+
 def test_no_keys_in_common_gives_zero_matches() -> None:
     c = compile_manifest(
         manifest(
@@ -104,6 +145,7 @@ def test_no_keys_in_common_gives_zero_matches() -> None:
     assert got[Party.EVALUATOR] == {"withheld": False, "matches": 0}
     both_empty = run_plain(c, key_records("g", "k", []), key_records("e", "k", []))
     assert both_empty[Party.EVALUATOR] == {"withheld": False, "matches": 0}
+    assert run_garbled(c, key_records("g", "k", []), key_records("e", "k", [])) == both_empty
     full = run_plain(c, key_records("g", "k", list("wxyz")), key_records("e", "k", list("zyxw")))
     assert full[Party.EVALUATOR]["matches"] == 4
 
@@ -125,10 +167,18 @@ def test_disclosure_rule_withholds_small_joins_inside_the_circuit() -> None:
     assert three[Party.EVALUATOR] == {
         "withheld": False,
         "matches": 3,
-        "sum": 20.0,
-        "mean": 6.65625,
-        "above": 1,
+        "sum": 20.0,  # (4 + 6 + 30) / 2
+        "mean": 6.65625,  # 20 / 3 = 6.666…, rounded toward zero to 5 fraction bits
+        "above": 1,  # 15.0 ≥ 10.5
     }
+    assert (
+        run_garbled(
+            c,
+            key_records("g", "member", ["a", "b", "c"]),
+            key_records("e", "holder", ["c", "b", "a"], spend=[4, 6, 30]),
+        )
+        == three
+    )
 
 
 def test_a_garbled_run_gives_the_clear_result() -> None:
@@ -162,7 +212,7 @@ def test_keyed_join_and_count_is_within_1_2_times_the_merge_network() -> None:
     assert comparators == c.extra["comparators"] == (2 * rows // 2) * 13
     per_cas = and_per_compare_swap(33)  # 32 key bits and the invalid bit
     assert per_cas == 66  # a 33-bit comparator (33) and a 33-bit swap (33), Kolesnikov–Sadeghi–Schneider 2009
-    ratio = c.circuit.and_count / (comparators * per_cas)
+    ratio = c.size().and_gates / (comparators * per_cas)
     assert 1.0 < ratio <= 1.2, ratio
 
 
@@ -181,7 +231,9 @@ def test_the_merge_sorts_every_key_once() -> None:
             {"garbler": ["matches"]},
         )
     )
-    assert run_plain(c, key_records("g", "k", g), key_records("e", "k", e))[Party.GARBLER]["matches"] == 15
+    got = run_plain(c, key_records("g", "k", g), key_records("e", "k", e))
+    assert got[Party.GARBLER]["matches"] == 15 == len(set(g) & set(e))  # Python sets
+    assert run_garbled(c, key_records("g", "k", g), key_records("e", "k", e)) == got
 
 
 def test_the_join_benchmark_reports_its_figures(capsys: pytest.CaptureFixture[str]) -> None:

@@ -245,6 +245,8 @@ def _join(parts: Sequence[Bits], op: Any, shape: tuple[int, ...]) -> Bits:
 def concat(parts: Sequence[Bits], axis: int = 0) -> Bits:
     """Join values along an existing axis (free)."""
     parts = list(parts)
+    if not parts:
+        raise ValueError("concat of no Bits")
     if len(parts) == 1:
         return parts[0]
     shapes = [p.shape for p in parts]
@@ -260,6 +262,8 @@ def concat(parts: Sequence[Bits], axis: int = 0) -> Bits:
 def stack(parts: Sequence[Bits], axis: int = 0) -> Bits:
     """Join values of one shape along a new axis (free)."""
     parts = list(parts)
+    if not parts:
+        raise ValueError("stack of no Bits")
     shapes = {p.shape for p in parts}
     if len(shapes) != 1:
         raise ValueError(f"stack: values of different shapes {sorted(shapes)}")

@@ -93,13 +93,18 @@ def _plan(args: argparse.Namespace) -> int:
         raise UserError(str(exc)) from None
     compiled = _compile(args.file)
     figures = plan(compiled, rate, measured_speed())
+    refused = None
     try:
         check_limits(compiled, est_seconds=float(figures["est_seconds"]))  # type: ignore[arg-type]
     except LimitError as exc:
-        raise UserError(str(exc)) from None
+        refused = str(exc)
+    figures["refused"] = refused
     if args.json:
         json.dump(figures, sys.stdout)
         sys.stdout.write("\n")
+        if refused:
+            print(f"jointstat: {refused}", file=sys.stderr)
+            return 2
         return 0
     print(
         f"plan for {args.file} (job {figures['job']}, statistic {figures['statistic']}) at {args.bandwidth}"
@@ -119,6 +124,8 @@ def _plan(args: argparse.Namespace) -> int:
     for key, value in rows:
         print(f"  {key:<{width}}  {value}")
     print(f"  assumes: {figures['assumes']}")
+    if refused:
+        raise UserError(refused)
     return 0
 
 

@@ -5,9 +5,10 @@ Theory of operation
 Every block works on lanes at once (see ``jointstat.circuit.builder``) and uses the AND-count-minimal word
 operations of Kolesnikov–Sadeghi–Schneider (CANS 2009); with free XOR only AND gates cost ciphertexts.
 
-* ``greater_than`` — x > y on unsigned words, n AND gates and no NOT gates: the carry out of x + ¬y, with the
-  majority rewritten so the complement disappears, c' = c ⊕ ((x ⊕ y) ∧ (x ⊕ c)). The x ⊕ y it reads is the
-  same difference a compare-and-swap needs, so the two share it.
+* ``greater_than`` — x > y on unsigned words, n AND gates and a single NOT (at bit 0, x₀ ∧ ¬y₀) instead of n:
+  the carry out of x + ¬y, with the majority rewritten so the complement disappears,
+  c' = c ⊕ ((x ⊕ y) ∧ (x ⊕ c)). The x ⊕ y it reads is the same difference a compare-and-swap needs, so the two
+  share it.
 * ``compare_swap`` — orders two elements by a key: a comparator (k AND gates for a k-bit key) and one shared
   swap, δ = s ∧ (a ⊕ b), a' = a ⊕ δ, b' = b ⊕ δ (one AND gate per key or payload bit). Its swap bits are kept,
   so a bit can later be carried back to where its element came from (``route_back``, one AND per comparator).
@@ -382,8 +383,9 @@ def divide(
 
     Per quotient bit one subtract-with-borrow and one multiplexer on w_d + 1 bits. With ``quotient_bits`` = q
     only the low q quotient bits are computed, starting from the remainder n >> q: correct whenever the true
-    quotient is below 2^q (callers state why it is). A zero divisor gives an all-ones quotient (callers withhold
-    such results).
+    quotient is below 2^q (callers state why it is), since then n >> q < d < 2^w_d, so the dividend's bits above
+    q + w_d are zero and are dropped (a sum over many rows divided by a count of few has such bits). A zero
+    divisor gives an all-ones quotient (callers withhold such results).
     """
     n, d = dividend, divisor
     wn, wd = n.shape[-1], d.shape[-1]
@@ -391,10 +393,7 @@ def divide(
     lanes = np.broadcast_shapes(n.shape[:-1], d.shape[:-1])
     n = n.broadcast_to((*lanes, wn))
     dext = bld.extend(d, wd + 1).broadcast_to((*lanes, wd + 1))
-    top = n[..., q_bits:]
-    if top.shape[-1] > wd + 1:
-        raise ValueError(f"divide: {top.shape[-1]} leading bits cannot be below a {wd}-bit divisor")
-    rem = bld.extend(top, wd + 1)
+    rem = bld.extend(n[..., q_bits:], wd + 1)  # n >> q < d: bits above w_d are zero (docstring)
     quotient: list[Bits] = []  # most significant first
     for i in range(q_bits - 1, -1, -1):
         rem = concat([n[..., i : i + 1], rem[..., :-1]], axis=-1)
