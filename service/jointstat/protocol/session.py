@@ -546,6 +546,7 @@ class GarblerSession(_Session):
         self._evaluator_zero: np.ndarray | None = None
         self._backend: GarblerBackend | None = None
         self._producer: TableProducer | None = None
+        self._gates_garbled = 0  # once the program has ended (the backend is gone)
         self._producing = False
         self._output_zero: dict[Party, np.ndarray] | None = None
         self._returned = _Accumulator(
@@ -555,9 +556,7 @@ class GarblerSession(_Session):
     @property
     def and_gates_done(self) -> int:
         backend = self._backend
-        if backend is None:
-            return self.and_gates_total if self._output_zero is not None else 0
-        return backend.next_gate
+        return self._gates_garbled if backend is None else backend.next_gate
 
     @property
     def ready_to_stream(self) -> bool:
@@ -694,6 +693,7 @@ class GarblerSession(_Session):
                 f"the program garbled {backend.and_gates} AND gates but measured {self.and_gates_total}"
             )
         self._output_zero = {p: backend.output_labels(p) for p in Party}
+        self._gates_garbled = backend.next_gate
         self._backend = None
         self._producer = None
 
