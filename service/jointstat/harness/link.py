@@ -540,8 +540,8 @@ class _Flow:
         if self.stopped:
             return
         now = self.link.loop.time()
-        if self.queue:
-            late = max(0.0, now - self.queue[0][0])
+        if self.queue and self.queue[0][0] <= now:
+            late = now - self.queue[0][0]
             lane = self.lane
             lane.deliveries += 1
             lane.late_total += late
@@ -561,10 +561,14 @@ class _Flow:
         assert self.dest is not None and self.dest.transport is not None
         n = len(data)
         transport = self.dest.transport
-        transport.write(data)
-        self.queued -= n
-        unsent = transport.get_write_buffer_size()
         lane = self.lane
+        self.queued -= n
+        if transport.is_closing():  # the receiver's socket failed; its connection is being torn down
+            lane.lost += n
+            lane.count_held(-n)
+            return
+        transport.write(data)
+        unsent = transport.get_write_buffer_size()
         lane.delivered += n
         lane.count_held(unsent - self.unsent - n)
         self.unsent = unsent
@@ -675,6 +679,7 @@ class _Connection:
         loop = self.link.loop
         cfg = self.link.config
         self.down.blocks.add("connecting")
+        self.up.update_reading()  # the lane may be full already (other connections)
         if handshake:
             now = loop.time()
             self.up.blocks.add("handshake")
@@ -858,9 +863,9 @@ class Link:
         cut = list(self.connections)
         for conn in cut:
             if self.config.cut_mode == "silent":
-                conn.sever()
                 self.connections.discard(conn)  # no longer carried; closed when its endpoints close
                 self._severed.add(conn)
+                conn.sever()
             else:
                 conn.teardown(reset=self.config.cut_mode == "reset")
         now = self.loop.time()
@@ -1020,8 +1025,9 @@ def config_from_arguments(args: argparse.Namespace) -> LinkConfig:
 
 
 def _say(message: dict[str, object]) -> None:
-    sys.stdout.write(json.dumps(message) + "\n")
-    sys.stdout.flush()
+    with contextlib.suppress(OSError):  # the parent is gone: nobody to tell
+        sys.stdout.write(json.dumps(message) + "\n")
+        sys.stdout.flush()
 
 
 async def serve(config: LinkConfig, target: tuple[str, int], listen: tuple[str, int]) -> int:
