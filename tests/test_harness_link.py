@@ -12,6 +12,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import hashlib
+import json
 import math
 import os
 import socket
@@ -756,3 +757,53 @@ async def test_a_stalled_receiver_back_pressures_the_sender_and_the_emulator_hol
     # the tens of MB the sender offered.
     assert peak <= buffer + 2 * buffer + 256 * 1024, f"{peak} bytes"
     assert digest.digest() == hashlib.sha256(pattern * (total // len(pattern))).digest()
+
+
+async def test_connections_through_the_link_share_its_rate() -> None:
+    way = OneWay(20 * MBIT, 0.001)
+    each = 250_000  # 0.1 s alone at 20 Mbit/s
+    async with through_link(LinkConfig(way, way, handshake=False)) as (link, target):
+        first = await connect(link, target)
+        second = await connect(link, target)
+        started = time.monotonic()
+        for _, writer, _, _ in (first, second):
+            writer.write(bytes(each))
+        got = await asyncio.gather(*(far_reader.readexactly(each) for _, _, far_reader, _ in (first, second)))
+        elapsed = time.monotonic() - started
+    assert [len(g) for g in got] == [each, each]
+    # One serialiser for the direction: both connections' bytes leave one after another at the rate (a strict bound).
+    assert elapsed >= 2 * each / way.rate_bytes_per_s + way.delay_s
+
+
+def test_the_emulator_process_stops_when_its_standard_input_closes() -> None:
+    with listening() as server:
+        link = LinkProcess(LinkConfig(FAST, FAST), server.getsockname())
+        link.start()
+        proc = link._proc
+        assert proc is not None and proc.stdin is not None
+        proc.stdin.close()  # what happens when the process that started it dies
+        assert proc.wait(timeout=TEST_TIMEOUT_S) == 0
+        final = link.stop()  # what it said as it stopped
+        assert final is not None and final.connections == 0
+
+
+# -- jointstat bench link ------------------------------------------------------------------------------------------------
+
+
+def test_bench_link_reports_its_figures(capsys: pytest.CaptureFixture[str]) -> None:
+    from jointstat import cli
+
+    assert cli.main(["bench", "link", "--rate", "200Mbit/s", "--rtt", "2ms", "--bytes", "1MB", "--json"]) == 0
+    figures = json.loads(capsys.readouterr().out)
+    assert figures["bulk_bytes"] == 1_000_000 and figures["rtt_setting_ms"] == 2.0
+    for key in ("to_server_utilisation", "to_client_utilisation", "duplex_to_server_utilisation"):
+        assert 0 < figures[key] <= 1  # at most 1 by construction (see ``utilisation`` above)
+    for key in ("rtt_median_ms", "first_exchange_ms", "emulator_cpu", "emulator_mean_late_us"):
+        assert key in figures
+
+
+def test_bench_link_refuses_a_rate_it_cannot_read(capsys: pytest.CaptureFixture[str]) -> None:
+    from jointstat import cli
+
+    assert cli.main(["bench", "link", "--rate", "100Mbps"]) == 2
+    assert "bench link: rate: '100Mbps' is not understood" in capsys.readouterr().err

@@ -1116,6 +1116,7 @@ class LinkProcess:
         self._replies: queue.Queue[dict[str, object] | None] = queue.Queue()
         self._stderr: list[str] = []
         self._threads: list[threading.Thread] = []
+        self._stopped = False
         self.final: LinkCounters | None = None
 
     @property
@@ -1218,24 +1219,31 @@ class LinkProcess:
         return self._counters(self._ask("counters"), "counters")
 
     def stop(self) -> LinkCounters | None:
-        """Stop the process (reset its connections); returns its last counters (None if it had already ended)."""
+        """Stop the process (it resets its connections); returns its last counters (None if it said nothing)."""
         proc = self._proc
-        if proc is None or self.final is not None:
+        if proc is None or self._stopped:
             return self.final
+        self._stopped = True
+        with contextlib.suppress(OSError, ValueError):  # it may have stopped already (its stdin closed)
+            assert proc.stdin is not None
+            proc.stdin.write("stop\n")
+            proc.stdin.flush()
         try:
-            self.final = self._counters(self._ask("stop"), "stopped")
-        except (RuntimeError, OSError):
-            self.final = None
-        finally:
-            try:
-                proc.wait(timeout=self.reply_timeout_s)
-            except subprocess.TimeoutExpired:
-                proc.kill()
-                proc.wait()
-            for stream in (proc.stdin, proc.stdout, proc.stderr):
-                if stream is not None:
-                    with contextlib.suppress(OSError):
-                        stream.close()
+            while (reply := self._replies.get(timeout=self.reply_timeout_s)) is not None:
+                if "stopped" in reply:
+                    self.final = self._counters(reply, "stopped")
+                    break
+        except queue.Empty:
+            pass
+        try:
+            proc.wait(timeout=self.reply_timeout_s)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.wait()
+        for stream in (proc.stdin, proc.stdout, proc.stderr):
+            if stream is not None:
+                with contextlib.suppress(OSError):
+                    stream.close()
         return self.final
 
     def __enter__(self) -> LinkProcess:
