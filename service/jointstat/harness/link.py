@@ -498,15 +498,15 @@ class _Flow:
         assert self.read_buffer is not None
         now = self.link.loop.time()
         start = max(now, lane.free_at)
-        per_byte = 1.0 / lane.rate
+        rate = lane.rate
         view = self.read_buffer
         step = lane.slice
         arrival = start
         for offset in range(0, n, step):
             end = min(n, offset + step)
-            arrival = start + end * per_byte + lane.delay
+            arrival = start + end / rate + lane.delay  # from the read's start: no error accumulates
             self.queue.append((arrival, bytes(view[offset:end])))
-        lane.free_at = start + n * per_byte
+        lane.free_at = start + n / rate
         self.queued += n
         lane.admitted += n
         lane.count_held(n)
