@@ -941,20 +941,32 @@ def build_parser() -> argparse.ArgumentParser:
         ),
     )
     parser.add_argument(
-        "--listen", default="127.0.0.1:0", help="HOST:PORT to listen on, loopback only (default 127.0.0.1:0)"
+        "--listen",
+        default="127.0.0.1:0",
+        metavar="HOST:PORT",
+        help="where to listen, loopback only (default 127.0.0.1:0: a free port, printed)",
     )
-    parser.add_argument("--target", required=True, help="HOST:PORT of the server the connections go to")
-    parser.add_argument("--rate", help="the rate each way, e.g. 100Mbit/s, 1Gbit/s, 12.5MB/s")
-    parser.add_argument("--rtt", help="the round-trip time, half of it each way, e.g. 40ms")
     parser.add_argument(
-        "--buffer", help="each direction's buffer, e.g. 4MiB (default: rate × delay + 20 ms of queue)"
+        "--target", required=True, metavar="HOST:PORT", help="the server the connections go to"
+    )
+    parser.add_argument("--rate", metavar="RATE", help="the rate each way, e.g. 100Mbit/s, 1Gbit/s, 12.5MB/s")
+    parser.add_argument("--rtt", metavar="TIME", help="the round-trip time, half of it each way, e.g. 40ms")
+    parser.add_argument(
+        "--buffer",
+        metavar="SIZE",
+        help="each direction's buffer, e.g. 4MiB (default: rate × delay + 20 ms of queue)",
     )
     for dashed in ("to-server", "to-client"):
+        towards = f"towards the {dashed.removeprefix('to-')}"
         parser.add_argument(
-            f"--rate-{dashed}", help=f"the rate {dashed.replace('-', ' ')} (overrides --rate)"
+            f"--rate-{dashed}", metavar="RATE", help=f"the rate {towards} (instead of --rate)"
         )
-        parser.add_argument(f"--delay-{dashed}", help=f"the one-way delay {dashed.replace('-', ' ')}")
-        parser.add_argument(f"--buffer-{dashed}", help=f"the buffer {dashed.replace('-', ' ')}")
+        parser.add_argument(
+            f"--delay-{dashed}", metavar="TIME", help=f"the delay {towards} (instead of --rtt)"
+        )
+        parser.add_argument(
+            f"--buffer-{dashed}", metavar="SIZE", help=f"the buffer {towards} (instead of --buffer)"
+        )
     parser.add_argument(
         "--cut-after",
         action="append",
