@@ -29,6 +29,12 @@ def _faults(args: argparse.Namespace) -> int:
     return run(sessions=args.sessions, frames=args.frames, as_json=args.json)
 
 
+def _link(args: argparse.Namespace) -> int:
+    from jointstat.bench.link import run
+
+    return run(rate=args.rate, rtt=args.rtt, bulk=args.bytes, buffer=args.buffer, as_json=args.json)
+
+
 def add_commands(sub: argparse._SubParsersAction) -> None:
     bench = sub.add_parser("bench", help="measure this machine (prints JSON with --json)")
     which = bench.add_subparsers(dest="what", required=True, metavar="WHAT")
@@ -62,3 +68,13 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     faults.add_argument("--frames", type=int, default=10_000, help="mutated frames to send (default 10,000)")
     faults.add_argument("--json", action="store_true", help="print one JSON object")
     faults.set_defaults(handler=_faults)
+
+    link = which.add_parser(
+        "link", help="the link emulator's rate, delay and ceiling on this machine (harness/link.py)"
+    )
+    link.add_argument("--rate", default="100Mbit/s", help="the rate each way (default 100Mbit/s)")
+    link.add_argument("--rtt", default="40ms", help="the round-trip time, half each way (default 40ms)")
+    link.add_argument("--bytes", help="bytes per bulk transfer (default: two seconds at the rate)")
+    link.add_argument("--buffer", help="each direction's buffer (default: rate × delay + 20 ms of queue)")
+    link.add_argument("--json", action="store_true", help="print one JSON object")
+    link.set_defaults(handler=_link)
