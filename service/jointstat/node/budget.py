@@ -3,8 +3,8 @@
 Theory of operation
 -------------------
 Releasing a value with ε-differential privacy spends ε; k releases about the same people are together (Σ ε)-DP
-(basic composition: Dwork–Roth, "The Algorithmic Foundations of Differential Privacy", 2014, theorem 3.16; with δ's
-the δ's add too). A job's budget caps the ε of the results it releases in any window of one ``period`` (for example
+(basic composition: Dwork–Roth, "The Algorithmic Foundations of Differential Privacy", 2014, theorem 3.16, number
+from memory; with δ's the δ's add too). A job's budget caps the ε of the results it releases in any window of one ``period`` (for example
 30 days) at ``total``. All amounts are ``fractions.Fraction``s taken from the decimals written (``jointstat.exact``),
 so ten spends of 0.1 are exactly 1 and no rounding ever lets one more run through.
 

@@ -5,8 +5,9 @@ Theory of operation
 **The law.** The discrete Laplace (two-sided geometric) distribution with parameter α = e^(−ε/Δ) has
 P(N = k) = (1 − α)/(1 + α) · α^|k| for every integer k. Adding it to an integer statistic of sensitivity Δ (one
 person changes the statistic by at most Δ) releases the value with ε-differential privacy: the geometric mechanism
-of Ghosh–Roughgarden–Sundararajan (STOC 2009, section 2), the integer counterpart of the Laplace mechanism of
-Dwork–Roth ("The Algorithmic Foundations of Differential Privacy", 2014, definition 3.3 and theorem 3.6).
+of Ghosh–Roughgarden–Sundararajan (STOC 2009), the integer counterpart of the Laplace mechanism of Dwork–Roth
+("The Algorithmic Foundations of Differential Privacy", 2014, definition 3.3 and theorem 3.6; numbers of
+definitions and theorems of that book are cited from memory here and below).
 Everything below is integer or rational arithmetic; no floating-point number decides a sample (Mironov, CCS 2012,
 shows how floating-point Laplace samplers leak).
 
