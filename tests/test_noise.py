@@ -373,6 +373,9 @@ def test_and_gates_per_sample_are_one_per_compared_bit_after_the_folded_ones(
         ("0.5", 1.0, "job.noise.sensitivity", "integer"),
         ("0.5", True, "job.noise.sensitivity", "integer"),
         ("1e-15", 1, "job.noise.epsilon", "too small"),
+        ("1e-9", 10**5, "job.noise.epsilon", "too small"),
+        ("64.5", 1, "job.noise.epsilon", "above 64"),
+        ("0.5", 2**41, "job.noise.sensitivity", "between 1"),
     ],
 )
 def test_bad_settings_are_refused_naming_the_field(

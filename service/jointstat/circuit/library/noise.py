@@ -59,8 +59,9 @@ probability zero there); δ ≤ 2^−64 is the price of a sampler with a fixed n
 lane as geometric 1's bits 0 … n−1 then geometric 2's, each w_i bits least significant first. One ``less_than``
 against the constant t_i per bit position covers both geometrics of all lanes; its AND gates are w_i − 1 minus the
 trailing zeros of t_i (the first carries fold on the constant). The noise word is G₁ − G₂ on n + 1 signed bits
-(|N| ≤ 2^n − 1), n more AND gates: 2·Σ_i (w_i − 1 − tz(t_i)) + n per sample in all. ``add_noise`` adds it to a value on max(value bits, n + 1) + 1 signed bits (an unsigned value
-counts one bit more), where two's-complement addition of two such operands cannot overflow.
+(|N| ≤ 2^n − 1), n more AND gates: 2·Σ_i (w_i − 1 − tz(t_i)) + n per sample in all. ``add_noise`` adds it to a
+value on max(value bits, n + 1) + 1 signed bits (an unsigned value counts one bit more), where two's-complement
+addition of two such operands cannot overflow.
 
 ``plain_noise`` evaluates the same rule in the clear with numpy (lexicographic comparison, no carry chain) for the
 tests and the benchmark; ``noise_pmf`` is the exact law of the implemented sampler, as fractions.
@@ -80,7 +81,8 @@ from jointstat.exact import ExactNumberError, decimal_text, positive_number
 
 TAIL_BITS = 64  # the dropped tail α^(2^n) and δ are each at most 2^−TAIL_BITS
 SLACK = Fraction(1, 1 << 32)  # the sampler is built for ε_s = ε·(1 − SLACK)
-MAX_NOISE_BITS = 48  # n beyond this (ε/Δ below about 10^−12) is refused
+MAX_NOISE_BITS = 48  # n beyond this (ε/Δ below about 1.6·10^−13) is refused
+MAX_RATIO = 64  # ε/Δ above this is refused: the noise would be 0 except with probability below 2^−91
 MAX_SENSITIVITY = 1 << 40
 EXACT_PMF_MAX_BITS = 12  # noise_pmf is a quadratic convolution of big integers; beyond this it is too slow
 _START_PRECISION = 256  # bits of the fixed-point exp bounds; doubled until every interval is narrow enough
@@ -281,6 +283,18 @@ def noise_parameters(epsilon: object, sensitivity: object, *, field: str = "nois
         )
     if not 1 <= sensitivity <= MAX_SENSITIVITY:
         raise NoiseError(f"{field}.sensitivity: must be between 1 and 2^40, got {sensitivity}")
+    ratio = eps / sensitivity
+    if ratio > MAX_RATIO:
+        raise NoiseError(
+            f"{field}.epsilon: ε/Δ = {decimal_text(eps)}/{sensitivity} is above {MAX_RATIO}: the noise would be 0 "
+            "except with probability below 2^−91"
+        )
+    # Necessary for a tail α^(2^n) ≤ 2^−64 with n ≤ MAX_NOISE_BITS: ε_s/Δ·2^n ≥ 64·ln 2 > 44.
+    if ratio * (1 - SLACK) * (1 << MAX_NOISE_BITS) < 44:
+        raise NoiseError(
+            f"{field}.epsilon: ε/Δ = {decimal_text(eps)}/{sensitivity} is too small: the noise would need more "
+            f"than {MAX_NOISE_BITS} bits"
+        )
     precision = _START_PRECISION
     while precision <= _MAX_PRECISION:
         params = _plan(eps, sensitivity, precision, field)
@@ -337,6 +351,8 @@ def _plan(eps: Fraction, sens: int, precision: int, field: str) -> NoiseParamete
         n += 1
 
     intervals = [powers.probability(i) for i in range(n)]
+    if any(low <= 0 for low, _ in intervals):
+        return None  # a power of α below 2^−precision: more precision
     zeros = [_leading_zeros(low) for low, _ in intervals]
     # R: L ≈ n·2^−R, so start just below log2(n / budget) and widen until the exact bound fits
     relative = max(1, (n * rounding_budget.denominator // rounding_budget.numerator).bit_length() - 2)
