@@ -34,6 +34,7 @@ bench: $(STAMP)
 	$(BIN)/jointstat bench join --rows 65536 --json
 	$(BIN)/jointstat bench faults --sessions 300 --json
 	$(BIN)/jointstat bench link --json
+	$(BIN)/jointstat bench noise --epsilon 0.5 --sensitivity 1 --samples 200000 --json
 
 lock:
 	rm -rf /tmp/jointstat-lock && $(PY) -m venv /tmp/jointstat-lock

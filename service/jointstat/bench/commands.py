@@ -35,6 +35,18 @@ def _link(args: argparse.Namespace) -> int:
     return run(rate=args.rate, rtt=args.rtt, bulk=args.bytes, buffer=args.buffer, as_json=args.json)
 
 
+def _noise(args: argparse.Namespace) -> int:
+    from jointstat.bench.noise import run
+
+    return run(
+        epsilon=args.epsilon,
+        sensitivity=args.sensitivity,
+        samples=args.samples,
+        as_json=args.json,
+        lanes=args.lanes,
+    )
+
+
 def add_commands(sub: argparse._SubParsersAction) -> None:
     bench = sub.add_parser("bench", help="measure this machine (prints JSON with --json)")
     which = bench.add_subparsers(dest="what", required=True, metavar="WHAT")
@@ -78,3 +90,15 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     link.add_argument("--buffer", help="each direction's buffer (default: rate × delay + 20 ms of queue)")
     link.add_argument("--json", action="store_true", help="print one JSON object")
     link.set_defaults(handler=_link)
+    noise = which.add_parser(
+        "noise",
+        help="discrete Laplace noise drawn through the garbled circuit, checked against its exact law",
+    )
+    noise.add_argument("--epsilon", default="0.5", help="privacy parameter ε, a decimal (default 0.5)")
+    noise.add_argument(
+        "--sensitivity", type=int, default=1, help="sensitivity Δ, a positive integer (default 1)"
+    )
+    noise.add_argument("--samples", type=int, default=200_000, help="samples to draw (default 200,000)")
+    noise.add_argument("--lanes", type=int, default=4096, help="samples per garbled circuit (default 4096)")
+    noise.add_argument("--json", action="store_true", help="print one JSON object")
+    noise.set_defaults(handler=_noise)
