@@ -6,8 +6,9 @@ The node writes one JSON file per completed run (``jobs.write_result``, format `
 job's result directory, named ``<UTC time>-<session id>.json`` so that names sort by time. ``read_result`` parses
 one file strictly: the format tag, the job, the session, the role, the times, the ``withheld`` flag and the named
 outputs; anything else is a ``ResultFileError`` naming the file and the field (never a value). ``job_results``
-lists the newest ``limit`` files of a directory (oldest first) and reads each; a file that cannot be read is
-returned as a ``ResultFileError`` in its place, so one damaged file does not hide the others.
+lists the newest ``limit`` files of a directory and reads each, giving them oldest first by their finish time
+(names carry whole seconds only); a file that cannot be read is returned as a ``ResultFileError`` after them, so
+one damaged file does not hide the others.
 
 Only this node's own results are in these files; the other party's never reach this node.
 """
@@ -113,10 +114,12 @@ def job_results(directory: str | Path, limit: int = 100) -> list[ResultRecord | 
         return []
     except OSError as exc:
         return [ResultFileError(d, f"cannot list the directory ({exc.strerror})")]
-    out: list[ResultRecord | ResultFileError] = []
+    good: list[ResultRecord] = []
+    bad: list[ResultFileError] = []
     for name in names[-limit:] if limit > 0 else []:
         try:
-            out.append(read_result(d / name))
+            good.append(read_result(d / name))
         except ResultFileError as exc:
-            out.append(exc)
-    return out
+            bad.append(exc)
+    good.sort(key=lambda r: r.finished_at)  # names carry whole seconds only
+    return [*good, *bad]
