@@ -125,8 +125,8 @@ class DaemonView:
     async def session(self, session_id: str) -> SessionView | None:
         state = self._node.state
         tracker = None if state is None else state.sessions.get(session_id)
-        if tracker is not None and not tracker.ended:
-            return session_view({**tracker.snapshot(), "live": True})  # no job-store read while it runs
+        if tracker is not None:  # followed by the node: its tracker has it all (no job-store read)
+            return session_view({**tracker.snapshot(), "live": True})
         try:
             answer = await self._node.admin_show_session({"session": session_id})
         except RequestError:

@@ -13,7 +13,7 @@ The console shows job settings and outcomes, session progress and phase timings,
 a chart per numeric output, and the verification of the session logs (``checks``). It never shows an input
 value, a wire label, Δ, a key or any other secret: none of them is in what ``NodeView`` gives it. It changes
 nothing but two things: "run now" of a job this node initiates, and checking an uploaded peer log (which is
-read in memory, verified and discarded).
+read, verified and discarded).
 """
 
 from __future__ import annotations

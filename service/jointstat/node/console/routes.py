@@ -313,7 +313,7 @@ class Pages:
         out = []
         for s in listed:
             if s.live:
-                full = await self.view.session(s.session) if not s.ended else s
+                full = await self.view.session(s.session)
                 data = (full or s).progress()
                 data.update(
                     {"job": s.job, "role": s.role, "peer": s.peer, "started_at": s.started_at.isoformat()}

@@ -57,7 +57,7 @@
       el.textContent = p.status;
       el.className = "pill " + p.status;
     });
-    setText(root, "phase", phaseName(p.phase));
+    setText(root, "phase", p.ended ? "" : phaseName(p.phase));
     const total = p.and_gates_total;
     root.querySelectorAll('[data-field="bar"]').forEach(function (bar) {
       bar.max = total || 1;
@@ -118,7 +118,8 @@
     document.querySelector("main").prepend(note);
   }
 
-  // Ask ``url`` every pollMs; ``handle`` returns false to stop. Errors back off and retry.
+  // Ask ``url`` every pollMs; ``handle`` returns false to stop, or a number of milliseconds to wait instead.
+  // Errors back off and retry.
   function poll(url, handle) {
     function next(delay) {
       window.setTimeout(run, delay);
@@ -134,7 +135,9 @@
           return response.json();
         })
         .then(function (data) {
-          if (data !== null && handle(data) !== false) next(pollMs);
+          if (data === null) return;
+          const wait = handle(data);
+          if (wait !== false) next(typeof wait === "number" ? wait : pollMs);
         })
         .catch(function () {
           next(pollMs * 4);
@@ -186,7 +189,10 @@
       const any = body.rows.length > 0;
       if (empty) empty.hidden = any;
       if (table) table.hidden = !any;
-      return true;
+      const moving = data.sessions.some(function (s) {
+        return !s.ended;
+      });
+      return moving ? pollMs : pollMs * 4; // look less often while nothing runs
     });
   }
 })();
