@@ -151,3 +151,21 @@ def test_a_damaged_file_is_named_with_what_is_wrong_and_never_its_values(
     assert "987654321" not in str(caught.value)
     listed = job_results(good.parent)
     assert isinstance(listed[0], ResultRecord) and isinstance(listed[1], ResultFileError)
+
+
+def test_results_finished_within_one_second_are_listed_by_their_finish_time_not_their_session_id(
+    tmp_path: Path,
+) -> None:
+    j = job(tmp_path)
+    for i, sid in enumerate(("f" * 32, "0" * 32, "8" * 32)):  # session ids in no order
+        write_result(
+            j,
+            session_id=sid,
+            party=Party.GARBLER,
+            digest=bytes(32),
+            scheduled_for=MIDNIGHT,
+            finished_at=MIDNIGHT + timedelta(microseconds=100_000 * i),  # all in the same second
+            outputs={"withheld": False, "count": i},
+        )
+    got = job_results(j.results)
+    assert [r.outputs["count"] for r in got if isinstance(r, ResultRecord)] == [0, 1, 2]
