@@ -25,6 +25,11 @@ SIGTERM stays the node's — and ``stop`` fires the trigger: the socket closes a
 
 Static files (one stylesheet, one small script of our own for live progress, an icon) are served from the
 package; the pages load nothing from any other origin.
+
+Sources: Content-Security-Policy — W3C Content Security Policy Level 3; cookie attributes ``HttpOnly``,
+``SameSite`` and the ``__Host-`` prefix — RFC 6265 and its revision draft (RFC 6265bis); ``Sec-Fetch-Site`` — W3C
+Fetch Metadata Request Headers; the token and header rules follow the OWASP Cross-Site Request Forgery and HTTP
+Headers cheat sheets (common practice).
 """
 
 from __future__ import annotations
@@ -33,7 +38,6 @@ import asyncio
 import contextlib
 import logging
 import socket
-from collections.abc import AsyncIterator
 from pathlib import Path
 from typing import Any
 
@@ -55,6 +59,8 @@ from jointstat.node.console.settings import ConsoleSettings
 from jointstat.node.console.view import NodeView
 
 log = logging.getLogger("jointstat.node.console")
+SERVER_LOG = logging.getLogger("jointstat.node.console.server")
+SERVER_LOG.setLevel(logging.WARNING)
 
 HERE = Path(__file__).resolve().parent
 UPLOAD_PATH = "/audit/compare"
@@ -222,6 +228,13 @@ def build_app(view: NodeView, visits: Visits, settings: ConsoleSettings) -> Star
     )
 
 
+def _report_end(task: asyncio.Task[None]) -> None:
+    """A server that ends on its own (not by ``stop``) is an error worth a log line."""
+    if not task.cancelled() and task.exception() is not None:
+        exc = task.exception()
+        log.error("console: the web server stopped: %s: %s", type(exc).__name__, exc)
+
+
 class ConsoleServer:
     """The console served by Hypercorn on the running event loop (see the module docstring)."""
 
@@ -254,21 +267,20 @@ class ConsoleServer:
         try:
             sock = self._listen()
         except OSError as exc:
-            raise OSError(
-                f"node.console: cannot listen on {self.host}:{self.port} ({exc.strerror or exc})"
-            ) from None
+            where = f"[{self.host}]:{self.port}" if ":" in self.host else f"{self.host}:{self.port}"
+            raise OSError(f"node.console: cannot listen on {where} ({exc.strerror or exc})") from None
         port = int(sock.getsockname()[1])
         config = Config()
         config.bind = [f"fd://{sock.detach()}"]
         config.accesslog = None
-        config.errorlog = log
-        config.loglevel = "WARNING"
+        config.errorlog = SERVER_LOG  # its warnings and errors only (not its start-up banner)
         config.include_server_header = False
         config.graceful_timeout = GRACEFUL_S
         self._task = asyncio.create_task(
             serve(self.app, config, shutdown_trigger=self._stop.wait),
             name="jointstat-console",  # type: ignore[arg-type]
         )
+        self._task.add_done_callback(_report_end)
         self.port = port
         return port
 
@@ -280,14 +292,3 @@ class ConsoleServer:
         with contextlib.suppress(asyncio.CancelledError, Exception):
             await asyncio.wait_for(self._task, GRACEFUL_S + 5.0)
         self._task = None
-
-
-@contextlib.asynccontextmanager
-async def serving(app: ASGIApp, host: str, port: int) -> AsyncIterator[ConsoleServer]:
-    """``ConsoleServer`` as a context manager (for tests)."""
-    server = ConsoleServer(app, host, port)
-    await server.start()
-    try:
-        yield server
-    finally:
-        await server.stop()

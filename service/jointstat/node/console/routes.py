@@ -1,10 +1,17 @@
 """The console's pages and its two actions: Jobs (run now), Sessions (live progress), Results, Audit (upload).
 
+Theory of operation
+-------------------
 Every handler but the login page requires a logged-in visit (``auth``): a page answers a visit that is not logged
 in with a redirect to ``/login``, a JSON endpoint with 401. Every POST also requires the visit's CSRF token and
 is refused when the browser says it comes from another site (``Sec-Fetch-Site``). Handlers only read the node
 through ``NodeView`` and render templates with autoescaping; values from the node or the user reach a page only
 as template variables, never as markup.
+
+*Run now* goes to the new session's page, which (like the Sessions page) asks ``…/progress`` (``/sessions/live``)
+for the counts every ``ConsoleSettings.poll_ms`` while the session runs; the Results page charts every output whose
+released values are all numbers (``charts``), and lists the latest runs with withheld ones marked; the Audit page
+verifies this node's log and, on upload, cross-checks the peer's (``checks``).
 """
 
 from __future__ import annotations
@@ -21,6 +28,7 @@ from starlette.requests import Request
 from starlette.responses import JSONResponse, RedirectResponse, Response
 from starlette.templating import Jinja2Templates
 
+from jointstat.audit.records import public_key_text
 from jointstat.node.console.auth import Visit, Visits, csrf_ok
 from jointstat.node.console.charts import ChartPoint, line_chart
 from jointstat.node.console.checks import LogChecks
@@ -379,8 +387,6 @@ class Pages:
     async def _audit(self, request: Request, visit: Visit, status: int = 200, **context: Any) -> Response:
         check = await self.checks.own()
         keys = self.view.log_keys()
-        from jointstat.audit.records import public_key_text
-
         return self.render(
             request,
             "audit.html",
