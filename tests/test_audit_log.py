@@ -342,3 +342,32 @@ def test_appends_from_several_threads_keep_one_valid_chain(tmp_path: Path) -> No
     assert report.ok, report.problem
     assert report.records == 1 + 4 + 100
     assert all(len(s.phases) == 25 for s in report.sessions.values())
+
+
+def test_a_snapshot_taken_while_records_are_appended_holds_whole_records_only_and_verifies(
+    tmp_path: Path,
+) -> None:
+    ka, _ = keys()
+    snapshots: list[bytes] = []
+    with SessionLog(tmp_path / "a.log", ka, "alpha", clock=FakeClock()) as a:
+        a.session_started("s-1", job="shared-donors", manifest_digest=MANIFEST, role="garbler", peer="beta")
+
+        def work() -> None:
+            for i in range(200):
+                a.phase_finished("s-1", phase="garbling", duration_us=i, bytes_sent=i, bytes_received=0)
+
+        writer = threading.Thread(target=work)
+        writer.start()
+        while writer.is_alive():
+            snapshots.append(a.snapshot())
+        writer.join()
+        snapshots.append(a.snapshot())
+        assert snapshots[-1] == (tmp_path / "a.log").read_bytes()
+    with pytest.raises(AuditError, match="closed"):
+        a.snapshot()
+    assert len(snapshots) > 1
+    for data in snapshots:
+        assert data.endswith(b"\n")
+        report = verify_log(data)
+        assert report.ok, report.problem
+    assert verify_log(snapshots[-1]).records == 1 + 1 + 200

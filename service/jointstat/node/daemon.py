@@ -14,6 +14,8 @@ one asyncio event loop:
   probes that hold no client certificate;
 - the Prometheus endpoint on ``node.metrics`` (``node.metrics``);
 - the admin API on ``node.admin`` (``node.admin``);
+- the operator console in the browser on ``node.console`` when set (``node.console``, seeing the node only
+  through ``node.nodeview.DaemonView``);
 - the scheduler: once at start-up, each initiated job's latest scheduled time whose window is still open and which
   the store has no run for — if it fell after this node's first start (``<data_dir>/first-start``), since a node
   that did not exist missed nothing — is run (catch-up); then it sleeps on the injected clock (``node.clock``)
@@ -23,7 +25,7 @@ one asyncio event loop:
 scheduler and the sessions this node initiated are cancelled, the peer server stops at once (so sessions it serves
 are cancelled too); the transport sends each peer an abort frame, and every session is logged ``session_aborted``
 and stored ``aborted`` before the log and the store are closed. A result file is only ever written whole
-(atomically), so a stop leaves either a complete result or none.
+(atomically), so a stop leaves either a complete result or none. The console, when set, stops first.
 """
 
 from __future__ import annotations
@@ -114,10 +116,12 @@ class Node:
         self.peer_port: int | None = None
         self.health_port: int | None = None
         self.metrics_port: int | None = None
+        self.console_port: int | None = None
         self.started_at: datetime | None = None
         self._server: SessionServer | None = None
         self._health_server: grpc.aio.Server | None = None
         self._admin_server: grpc.aio.Server | None = None
+        self._console: Any = None  # console.Console when node.console is set
         self._scheduler: asyncio.Task[None] | None = None
         self._warm: asyncio.Task[None] | None = None
         self._jobs: set[asyncio.Task[Any]] = set()
@@ -247,7 +251,27 @@ class Node:
         if isinstance(node.admin, UnixSocket):
             os.chmod(node.admin.path, 0o600)
         self._admin_server = admin
+        if node.console is not None:
+            await self._start_console()
         await self.health.set("", health_pb2.HealthCheckResponse.SERVING)
+
+    async def _start_console(self) -> None:
+        """The operator console in the browser (``node.console``), seeing the node only through ``DaemonView``."""
+        from jointstat.node.console import Console
+        from jointstat.node.nodeview import DaemonView
+
+        node = self.config.node
+        assert node.console is not None
+        console = Console(
+            DaemonView(self),
+            host=node.console.host,
+            port=node.console.port,
+            behind_proxy=node.console_behind_proxy,
+            token_file=node.console_token_path(),
+            make_token=node.console_token_file is None,
+        )
+        self.console_port = await console.start()
+        self._console = console
 
     # -- scheduling ----------------------------------------------------------------------------------------------
 
@@ -325,6 +349,7 @@ class Node:
             state.stopping = True
         with contextlib.suppress(Exception):
             await self.health.enter_graceful_shutdown()
+        await self._stop_console()
         for background in (self._scheduler, self._warm):
             if background is not None:
                 background.cancel()
@@ -347,7 +372,14 @@ class Node:
             running,
         )
 
+    async def _stop_console(self) -> None:
+        console, self._console = self._console, None
+        if console is not None:
+            with contextlib.suppress(Exception):
+                await console.stop()
+
     async def _close_everything(self) -> None:
+        await self._stop_console()
         if self._server is not None:
             with contextlib.suppress(Exception):
                 await self._server.stop(None)
@@ -517,6 +549,10 @@ def _clear_stale_socket(path: Path) -> None:
     path.unlink()
 
 
+def _url_host(host: str) -> str:
+    return f"[{host}]" if ":" in host else host
+
+
 def _problem(message: str) -> list[Any]:
     from jointstat.problems import Problem
 
@@ -538,6 +574,8 @@ async def _run(config: NodeConfig) -> int:
         loop.add_signal_handler(sig, node.request_stop)
     n = config.node
     extra = f", health {n.health.host}:{node.health_port}" if n.health is not None else ""
+    if n.console is not None:
+        extra += f", console http://{_url_host(n.console.host)}:{node.console_port}/"
     jobs = "; ".join(f"{job.name} ({job_summary(job)})" for job in config.jobs)
     print(
         f"node {n.name}: serving peers on {n.listen.host}:{node.peer_port}, admin {n.admin}, "

@@ -75,6 +75,7 @@ from jointstat.node.clock import Clock
 from jointstat.node.config import JOB_NAME, JobConfig, NodeConfig
 from jointstat.node.metrics import NodeMetrics
 from jointstat.node.progress import ABORTED, COMPLETED, FAILED, PROPOSING, REFUSED, SessionTracker
+from jointstat.node.results import RESULT_FORMAT
 from jointstat.node.schedule import Planner
 from jointstat.node.store import JobStore
 from jointstat.protocol.frames import AbortReason
@@ -93,7 +94,6 @@ PROPOSE_PATH = f"/{SERVICE_NAME}/{PROPOSE_METHOD}"
 PROPOSAL_TIMEOUT_S = 300.0  # the peer may compile the manifest before it answers
 CONNECT_TIMEOUT_S = 60.0
 SESSION_ID_BYTES = 16
-RESULT_FORMAT = "jointstat-result/1"
 MAX_MESSAGE = 300
 
 # Refusal codes: the wire enum's names in snake case are the reasons in logs, the store and metrics.
