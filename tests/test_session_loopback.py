@@ -107,6 +107,20 @@ async def serve_and_connect(
     return server_result, client_result
 
 
+async def frames_sent(session: Session, count: int, within_s: float = 20.0) -> None:
+    """Wait until ``session`` has sent ``count`` frames; fail at once if it ends first, or after ``within_s``."""
+    loop = asyncio.get_running_loop()
+    deadline = loop.time() + within_s
+    while session.frames_sent < count:
+        if session.ended:
+            raise AssertionError(f"the session ended ({session.state}) after {session.frames_sent} frames")
+        if loop.time() > deadline:
+            raise AssertionError(
+                f"the session sent {session.frames_sent} frames in {within_s:g} s, not {count}"
+            )
+        await asyncio.sleep(0.001)
+
+
 def assert_nothing_released(*results: SessionResult) -> None:
     for r in results:
         assert not r.completed and r.outputs is None and r.transcript_digest is None
@@ -288,8 +302,7 @@ async def test_cancelling_the_client_aborts_the_server_side_too(nodes: Nodes, wi
         client = asyncio.create_task(
             run_client(evaluator, f"127.0.0.1:{server.port}", nodes.mill_tls, limits=LIMITS)
         )
-        while garbler.frames_sent < 20:  # wait until tables flow
-            await asyncio.sleep(0.001)
+        await frames_sent(garbler, 20)  # wait until tables flow
         client.cancel()
         with pytest.raises(asyncio.CancelledError):
             await client
@@ -315,8 +328,7 @@ async def test_stopping_the_server_mid_session_aborts_the_client(nodes: Nodes, w
     client = asyncio.create_task(
         run_client(evaluator, f"127.0.0.1:{server.port}", nodes.mill_tls, limits=LIMITS)
     )
-    while garbler.frames_sent < 20:
-        await asyncio.sleep(0.001)
+    await frames_sent(garbler, 20)
     await server.stop(0)
     e = await asyncio.wait_for(client, timeout=LIMITS.idle_timeout_s + 5)
     g = await asyncio.wait_for(expected, timeout=5)
