@@ -25,6 +25,7 @@ from jointstat.circuit.reference import aes128
 from jointstat.protocol import AbortReason, EvaluatorSession, GarblerSession, signer, verifier
 from jointstat.protocol import frames as fr
 from jointstat.protocol.session import Session
+from jointstat.statements import transcript_signature_ok
 from jointstat.transport import Limits, SessionIds, SessionRefused, SessionServer, run_client
 from jointstat.transport.channel import MESSAGE_OPTIONS, METHOD_PATH, ClientStream
 from jointstat.transport.driver import SessionResult, drive
@@ -141,7 +142,9 @@ async def test_aes128_gives_the_evaluator_the_fips197_ciphertext_and_the_garbler
     assert aes128.bits_to_block(e.outputs) == FIPS197_C1_CIPHERTEXT
     assert g.outputs is not None and g.outputs.size == 0  # the ciphertext goes to the evaluator only
     assert g.transcript_digest == e.transcript_digest
-    assert verifier(nodes.bakery_key.public_key())(e.peer_signature, e.transcript_digest)
+    assert transcript_signature_ok(
+        nodes.bakery_key.public_key(), b"aes-fips197-c1".hex(), e.transcript_digest, e.peer_signature
+    )
     # Table bytes dominate what crossed the wire: 32 bytes for each of the 6,400 AND gates, both directions counted.
     assert g.bytes_on_wire == e.bytes_on_wire >= 32 * layered.n_and
     assert g.counters.bytes_sent == e.counters.bytes_received

@@ -46,12 +46,12 @@ from jointstat.audit.records import (
     node_name_ok,
     public_key_text,
     session_id_ok,
-    sign_transcript,
     signing_input,
     validate_body,
 )
 from jointstat.audit.verify import LogVerifier
 from jointstat.canonical import canonicalize
+from jointstat.statements import sign_transcript
 
 Clock = Callable[[], datetime]
 
@@ -201,9 +201,13 @@ class SessionLog:
     def transcript(self, session_id: str, digest: bytes) -> bytes:
         """Record the transcript digest with this node's signature over it; returns that 64-byte signature.
 
-        The returned signature is what goes to the peer in the finish frame (``records.sign_transcript``).
+        The returned signature is what goes to the peer in the finish frame (``statements.sign_transcript``).
         """
         hexdigest = _digest_hex(digest, "transcript digest")
+        if not isinstance(session_id, str) or not session_id_ok(session_id):
+            raise AuditError(
+                "session id: must be 1–128 characters of letters, digits and . _ : - (not first)"
+            )
         signature = sign_transcript(self._key, session_id, digest)
         self._typed(Kind.TRANSCRIPT, session_id, {"digest": hexdigest, "signature": encode_b64(signature)})
         return signature

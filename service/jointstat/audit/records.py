@@ -21,9 +21,9 @@ digest and its signature over it); then one ``peer_attestation`` (the peer's sig
 the finish frame); then ``session_completed``. ``session_aborted`` may end a session at any point before that.
 Nothing follows a session's end.
 
-The transcript statement both nodes sign is ``TRANSCRIPT_CONTEXT`` followed by the canonical bytes of
-``{"session": id, "transcript": hex digest}``; :func:`sign_transcript` / :func:`transcript_signature_ok` are the
-one definition of it, used by the protocol when it builds and checks the finish frame.
+The transcript statement both nodes sign (and send in their finish frames) is defined once, in
+``jointstat.statements``, which the protocol and this package both use (``statements.sign_transcript`` and
+``statements.transcript_signature_ok``).
 """
 
 from __future__ import annotations
@@ -36,17 +36,16 @@ from datetime import UTC, datetime
 from enum import StrEnum
 from typing import Annotated, Any, Literal
 
-from cryptography.exceptions import InvalidSignature
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 from cryptography.hazmat.primitives.serialization import Encoding, PublicFormat
 from pydantic import BaseModel, ConfigDict, Field, StringConstraints, ValidationError, field_validator
 
 from jointstat.canonical import MAX_SAFE_INTEGER, canonicalize
+from jointstat.statements import transcript_signature_ok
 
 FORMAT = "jointstat-audit/1"
 GENESIS = "0" * 64
 RECORD_CONTEXT = b"jointstat audit record v1\x00"
-TRANSCRIPT_CONTEXT = b"jointstat transcript v1\x00"
 ENVELOPE_FIELDS = frozenset({"seq", "time", "kind", "session", "body", "prev", "sig"})
 MAX_DETAIL = 300
 
@@ -246,29 +245,6 @@ def public_key_from_text(text: str) -> Ed25519PublicKey | None:
 
 def signing_input(record_without_sig: dict[str, Any]) -> bytes:
     return RECORD_CONTEXT + canonicalize(record_without_sig)
-
-
-def transcript_statement(session_id: str, digest: bytes) -> bytes:
-    """The bytes both nodes sign to attest a session's transcript digest."""
-    if not session_id_ok(session_id):
-        raise AuditError("session id: must be 1–128 characters of letters, digits and . _ : - (not first)")
-    if len(digest) != 32:
-        raise AuditError(f"transcript digest: must be 32 bytes (SHA-256), got {len(digest)}")
-    return TRANSCRIPT_CONTEXT + canonicalize({"session": session_id, "transcript": digest.hex()})
-
-
-def sign_transcript(key: Ed25519PrivateKey, session_id: str, digest: bytes) -> bytes:
-    """This node's 64-byte signature over the transcript statement (sent to the peer in the finish frame)."""
-    return key.sign(transcript_statement(session_id, digest))
-
-
-def transcript_signature_ok(key: Ed25519PublicKey, session_id: str, digest: bytes, signature: bytes) -> bool:
-    """Whether ``signature`` is ``key``'s signature over the transcript statement for this session and digest."""
-    try:
-        key.verify(signature, transcript_statement(session_id, digest))
-    except (InvalidSignature, AuditError):
-        return False
-    return True
 
 
 @dataclass

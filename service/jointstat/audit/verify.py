@@ -52,10 +52,10 @@ from jointstat.audit.records import (
     session_id_ok,
     signing_input,
     time_ok,
-    transcript_signature_ok,
     validate_body,
 )
 from jointstat.canonical import CanonicalError, canonicalize, parse
+from jointstat.statements import transcript_signature_ok
 
 _HEX = frozenset("0123456789abcdef")
 

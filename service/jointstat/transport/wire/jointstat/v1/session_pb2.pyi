@@ -74,18 +74,20 @@ REFUSAL_REASON_PROTOCOL_VERSION: RefusalReason
 REFUSAL_REASON_BOTH_INITIATE: RefusalReason
 
 class Hello(_message.Message):
-    __slots__ = ("protocol_version", "manifest_digest", "session_id", "role", "circuit_digest")
+    __slots__ = ("protocol_version", "manifest_digest", "session_id", "role", "circuit_digest", "signature")
     PROTOCOL_VERSION_FIELD_NUMBER: _ClassVar[int]
     MANIFEST_DIGEST_FIELD_NUMBER: _ClassVar[int]
     SESSION_ID_FIELD_NUMBER: _ClassVar[int]
     ROLE_FIELD_NUMBER: _ClassVar[int]
     CIRCUIT_DIGEST_FIELD_NUMBER: _ClassVar[int]
+    SIGNATURE_FIELD_NUMBER: _ClassVar[int]
     protocol_version: int
     manifest_digest: bytes
     session_id: bytes
     role: Role
     circuit_digest: bytes
-    def __init__(self, protocol_version: _Optional[int] = ..., manifest_digest: _Optional[bytes] = ..., session_id: _Optional[bytes] = ..., role: _Optional[_Union[Role, str]] = ..., circuit_digest: _Optional[bytes] = ...) -> None: ...
+    signature: bytes
+    def __init__(self, protocol_version: _Optional[int] = ..., manifest_digest: _Optional[bytes] = ..., session_id: _Optional[bytes] = ..., role: _Optional[_Union[Role, str]] = ..., circuit_digest: _Optional[bytes] = ..., signature: _Optional[bytes] = ...) -> None: ...
 
 class BaseOT(_message.Message):
     __slots__ = ("payload",)
