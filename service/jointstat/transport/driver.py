@@ -15,9 +15,13 @@ Four activities share one session object (whose lock makes each of its steps ato
 - the *watchdog* (a task) ends the session when nothing has been sent or received for ``idle_timeout_s``; the whole
   session is also bounded by ``deadline_s``.
 
-The session ends when it is done, fails (a bad frame, the peer's abort) or a limit passes. On a local failure the
-abort frame jumps the queue (frames still waiting are dropped), is given ``abort_grace_s`` to leave, then the
-stream is closed. A lost stream (end of stream, a transport error) fails the session with ``connection lost``.
+The session ends when it is done, fails (a bad frame, the peer's abort) or a limit passes. When it is done, every
+frame it produced leaves before the stream closes: the garbler's session can be completed by the evaluator's
+finish while its producer still holds its own last frames (the decoding information and the finish come out of
+``produce()`` after the last table), so the driver waits for the producer to hand out everything (up to
+``idle_timeout_s``) before it queues the end of the outbox, and the producer never drops a frame of a session
+that is done. On a local failure the abort frame jumps the queue (frames still waiting are dropped), is given
+``abort_grace_s`` to leave, then the stream is closed. A lost stream (end of stream, a transport error) fails the session with ``connection lost``.
 Cancelling the task that runs ``drive`` fails the session with ``cancelled``, sends the abort if it can and
 cancels the stream, so the peer ends too. The result carries this side's own outputs only when it completed.
 
@@ -156,6 +160,7 @@ class _Driver:
         self._slots = threading.Semaphore(limits.send_window)
         self._stop = threading.Event()
         self._ended = asyncio.Event()
+        self._produced_all = asyncio.Event()  # the producer has handed everything to the outbox, or given up
         self._last_progress = self._loop.time()
         self._producer: threading.Thread | None = None
 
@@ -250,16 +255,24 @@ class _Driver:
             self._progress()
             self._notify()
 
+    def _dropping(self) -> bool:
+        """Whether the producer should give up its frames: the driver stops and the session is not done."""
+        return self._stop.is_set() and not self.session.done
+
     def _produce(self) -> None:
-        """Producer thread: garble and hand frames to the loop, one send slot each."""
+        """Producer thread: garble and hand frames to the loop, one send slot each.
+
+        Frames of a session that is done are always handed over (they are its last frames); the driver waits for
+        them. Everything posted reaches the loop before ``_produced_all`` is set, in order.
+        """
         assert isinstance(self.session, GarblerSession)
         post: Callable[..., object] = self._loop.call_soon_threadsafe
         try:
             for data in self.session.produce():
                 while not self._slots.acquire(timeout=0.05):
-                    if self._stop.is_set():
+                    if self._dropping():
                         return
-                if self._stop.is_set():
+                if self._dropping():
                     self._slots.release()
                     return
                 post(self._outbox.put_nowait, (data, True))
@@ -268,6 +281,8 @@ class _Driver:
             post(self._after_protocol_error, exc)
         except Exception as exc:
             post(self._local_fail, AbortReason.INTERNAL, f"garbling failed ({type(exc).__name__})")
+        finally:
+            post(self._produced_all.set)
 
     async def _watchdog(self) -> None:
         limit = self.limits.idle_timeout_s
@@ -301,9 +316,17 @@ class _Driver:
             else:
                 self._local_fail(AbortReason.CANCELLED, "the local node cancelled the session")
         finally:
+            completed = self.session.done
+            if completed and self._producer is not None:
+                # The session's last frames may still be in the producer: they must be queued before the end.
+                try:
+                    await asyncio.wait_for(self._produced_all.wait(), timeout=self.limits.idle_timeout_s)
+                except TimeoutError:
+                    pass
+                except asyncio.CancelledError:
+                    cancelled = True
             self._stop.set()
             watchdog.cancel()
-            completed = self.session.done
             self._outbox.put_nowait(None)
             grace = self.limits.idle_timeout_s if completed else self.limits.abort_grace_s
             try:
