@@ -3,7 +3,8 @@
 Specification: every frame a session produced is written before the driver closes its stream — in particular the
 garbler's decoding and finish frames, which come out of its producer thread after the last table, still leave
 when the evaluator's finish has already completed the garbler's session (the interleaving is forced, with no
-timing involved).
+timing involved). A node that shuts down mid-session sends its peer an abort whose reason says so
+(``peer_shutdown``) before it closes the stream.
 """
 
 from __future__ import annotations
@@ -15,12 +16,14 @@ from collections.abc import Callable, Iterator
 
 import numpy as np
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
+from jointstat.bench.garble import wide_circuit
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.layers import LayeredCircuit, schedule
 from jointstat.circuit.model import Party
 from jointstat.protocol import EvaluatorSession, GarblerSession, signer, verifier
 from jointstat.protocol import frames as fr
-from jointstat.transport.driver import Limits, StreamLost, drive
+from jointstat.protocol.frames import AbortReason
+from jointstat.transport.driver import Limits, Shutdown, StreamLost, drive
 
 # Invented scenario: a ferry operator (garbler) and a harbour office (evaluator) count shared sailings.
 MANIFEST = hashlib.sha256(b"invented manifest: ferry operator and harbour office, shared sailings").digest()
@@ -144,3 +147,46 @@ async def test_the_garblers_finish_leaves_even_when_the_evaluators_finish_comple
     assert np.array_equal(e.outputs, (g_bits & e_bits) ^ g_bits)
     assert g_stream.written[-2:] == [fr.EVALUATOR_OUTPUT_DECODING, fr.FINISH]
     assert e.transcript_digest == g.transcript_digest
+
+
+async def test_a_node_shutting_down_tells_its_peer_so_with_an_abort_before_it_closes() -> None:
+    layered = schedule(wide_circuit(1 << 14, 512))
+    sid = b"ferry-harbour-0002"
+    rng = np.random.default_rng(5)
+    garbler = GarblerSession(
+        session_id=sid,
+        layered=layered,
+        manifest_digest=MANIFEST,
+        inputs=rng.integers(0, 2, layered.circuit.n_inputs(Party.GARBLER), dtype=np.uint8),
+        sign=signer(FERRY_KEY),
+        verify=verifier(HARBOUR_KEY.public_key()),
+        chunk_bytes=1 << 12,
+    )
+    evaluator = EvaluatorSession(
+        session_id=sid,
+        layered=layered,
+        manifest_digest=MANIFEST,
+        inputs=rng.integers(0, 2, layered.circuit.n_inputs(Party.EVALUATOR), dtype=np.uint8),
+        sign=signer(HARBOUR_KEY),
+        verify=verifier(FERRY_KEY.public_key()),
+    )
+    g_stream, e_stream = stream_pair()
+    shutdown = Shutdown()
+
+    def evaluator_progress() -> None:
+        if evaluator.and_gates_done > 0:  # tables flow: the garbler's node is asked to stop now
+            shutdown.request()
+
+    g, e = await asyncio.wait_for(
+        asyncio.gather(
+            drive(garbler, g_stream, LIMITS, shutdown=shutdown),
+            drive(evaluator, e_stream, LIMITS, on_progress=evaluator_progress),
+        ),
+        timeout=60,
+    )
+    assert not g.completed and not e.completed
+    assert g.abort is not None and not g.abort.by_peer and g.abort.reason == AbortReason.PEER_SHUTDOWN
+    assert e.abort is not None and e.abort.by_peer and e.abort.reason == AbortReason.PEER_SHUTDOWN
+    assert "this node is shutting down" in e.abort.message
+    assert g_stream.written[-1] == fr.ABORT and g_stream.closed
+    assert await asyncio.wait_for(shutdown.drained(), timeout=5)

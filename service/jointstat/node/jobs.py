@@ -40,8 +40,10 @@ nothing but ``withheld`` when the disclosure rule withheld them), are written as
 ``<job results>/<UTC time>-<session id>.json`` owner-only and atomically (``secrets.write_private_file``). The
 other party's inputs, labels, Δ and results never reach this node's logs or store.
 
-Stopping: a cancelled attempt (SIGTERM) is logged ``session_aborted`` (reason ``cancelled``) and stored
-``aborted``; the transport has already told the peer. Records of an ending session are written in a shielded
+Stopping: the node first asks its running sessions to end (``NodeState.shutdown``, ``transport.driver.Shutdown``):
+each sends its peer an abort frame with the reason ``peer_shutdown``, which the peer logs, and is logged here
+``session_aborted`` (reason ``cancelled``) and stored ``aborted``. Attempts still proposing or waiting are then
+cancelled and recorded the same way. Records of an ending session are written in a shielded
 task, so a cancellation never leaves a session half-recorded.
 """
 
@@ -81,7 +83,7 @@ from jointstat.protocol.frames import AbortReason
 from jointstat.protocol.session import Session, Sign, Verify, new_session
 from jointstat.statements import TRANSCRIPT, Statement
 from jointstat.transport.channel import MESSAGE_OPTIONS, SERVICE_NAME, SessionIds, describe_rpc_error
-from jointstat.transport.driver import Limits, SessionResult
+from jointstat.transport.driver import Limits, SessionResult, Shutdown
 from jointstat.transport.server import SessionServer
 from jointstat.transport.tls import NodeTLS, fingerprint, pinned_certificate
 from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
@@ -353,6 +355,7 @@ class NodeState:
     server: SessionServer | None = None
     sessions: dict[str, SessionTracker] = field(default_factory=dict)
     stopping: bool = False
+    shutdown: Shutdown = field(default_factory=Shutdown)  # ends running sessions with peer_shutdown on stop
 
     def running_sessions(self) -> int:
         return sum(1 for t in self.sessions.values() if not t.ended)
@@ -615,6 +618,7 @@ class JobRunner:
                 session_ids=state.session_ids,
                 counters=tracker.counters,
                 on_progress=tracker.on_progress,
+                shutdown=state.shutdown,
             )
         except asyncio.CancelledError:
             await _finish_despite_cancel(

@@ -15,7 +15,7 @@ import grpc
 
 from jointstat.protocol.session import Session
 from jointstat.transport.channel import MESSAGE_OPTIONS, METHOD_PATH, ClientStream, SessionIds
-from jointstat.transport.driver import Limits, SessionResult, WireCounters, drive
+from jointstat.transport.driver import Limits, SessionResult, Shutdown, WireCounters, drive
 from jointstat.transport.tls import NodeTLS
 
 
@@ -30,13 +30,15 @@ async def run_client(
     session_ids: SessionIds | None = None,
     counters: WireCounters | None = None,
     on_progress: Callable[[], None] | None = None,
+    shutdown: Shutdown | None = None,
 ) -> SessionResult:
     """Run ``session`` against the server at ``target`` (``host:port``); returns this side's result.
 
     ``server_name`` is the name expected in the server's certificate (default: the DNS name of the single pinned
     peer certificate); ``peer_fingerprint`` the SHA-256 of the certificate the server must present (checked against
     the pinned one, ``NodeTLS.channel_credentials``). Raises ``SessionRefused`` if the session id was used before
-    by this node. ``counters`` and ``on_progress`` let the caller follow the session (``driver.drive``).
+    by this node. ``counters`` and ``on_progress`` let the caller follow the session, ``shutdown`` end it when the
+    node stops (``driver.drive``).
     """
     limits = limits or Limits()
     ids = session_ids if session_ids is not None else SessionIds()
@@ -48,4 +50,6 @@ async def run_client(
         method = channel.stream_stream(METHOD_PATH, request_serializer=None, response_deserializer=None)
         call = method(timeout=limits.deadline_s + 2 * limits.abort_grace_s)
         stream = ClientStream(call, grace_s=limits.abort_grace_s)
-        return await drive(session, stream, limits, counters=counters, on_progress=on_progress)
+        return await drive(
+            session, stream, limits, counters=counters, on_progress=on_progress, shutdown=shutdown
+        )

@@ -23,7 +23,9 @@ finish while its producer still holds its own last frames (the decoding informat
 that is done. On a local failure the abort frame jumps the queue (frames still waiting are dropped), is given
 ``abort_grace_s`` to leave, then the stream is closed. A lost stream (end of stream, a transport error) fails the session with ``connection lost``.
 Cancelling the task that runs ``drive`` fails the session with ``cancelled``, sends the abort if it can and
-cancels the stream, so the peer ends too. The result carries this side's own outputs only when it completed.
+cancels the stream, so the peer ends too. A node that stops asks its sessions to end first through a
+``Shutdown``: each fails with ``peer_shutdown`` — the abort frame tells the peer why — and ends as on any local
+failure; ``Shutdown.drained`` says when no session driven with it is left. The result carries this side's own outputs only when it completed.
 
 Bytes on the wire are counted here, in both directions: each frame's length plus the 5-byte gRPC message prefix
 (HTTP/2 frame headers and TLS record overhead below gRPC are not visible to it). An optional ``on_progress``
@@ -66,6 +68,44 @@ class Limits:
                 raise ValueError(f"limits: {name} must be a positive number of seconds, got {value!r}")
         if not isinstance(self.send_window, int) or self.send_window < 1:
             raise ValueError(f"limits: send_window must be a positive integer, got {self.send_window!r}")
+
+
+class Shutdown:
+    """A node's request to its running sessions to end because it is stopping (see the module docstring)."""
+
+    def __init__(self) -> None:
+        self._requested = asyncio.Event()
+        self._idle = asyncio.Event()
+        self._idle.set()
+        self._running = 0
+
+    @property
+    def requested(self) -> bool:
+        return self._requested.is_set()
+
+    def request(self) -> None:
+        """Ask every session driven with this signal, now or later, to abort with ``peer_shutdown``."""
+        self._requested.set()
+
+    async def wait(self) -> None:
+        await self._requested.wait()
+
+    def _enter(self) -> None:
+        self._running += 1
+        self._idle.clear()
+
+    def _leave(self) -> None:
+        self._running -= 1
+        if self._running == 0:
+            self._idle.set()
+
+    async def drained(self, timeout: float | None = None) -> bool:
+        """Wait until no session driven with this signal runs (True), or ``timeout`` seconds pass (False)."""
+        try:
+            await asyncio.wait_for(self._idle.wait(), timeout=timeout)
+        except TimeoutError:
+            return False
+        return True
 
 
 class StreamLost(Exception):
@@ -149,12 +189,14 @@ class _Driver:
         limits: Limits,
         counters: WireCounters,
         on_progress: Callable[[], None] | None = None,
+        shutdown: Shutdown | None = None,
     ) -> None:
         self.session = session
         self.stream = stream
         self.limits = limits
         self.counters = counters
         self._on_progress = on_progress
+        self._shutdown = shutdown
         self._loop = asyncio.get_running_loop()
         self._outbox: asyncio.Queue[_Item] = asyncio.Queue()
         self._slots = threading.Semaphore(limits.send_window)
@@ -284,6 +326,11 @@ class _Driver:
         finally:
             post(self._produced_all.set)
 
+    async def _watch_shutdown(self) -> None:
+        assert self._shutdown is not None
+        await self._shutdown.wait()
+        self._local_fail(AbortReason.PEER_SHUTDOWN, "this node is shutting down")
+
     async def _watchdog(self) -> None:
         limit = self.limits.idle_timeout_s
         while not self._ended.is_set():
@@ -299,6 +346,9 @@ class _Driver:
         writer = asyncio.create_task(self._write_loop(), name="jointstat-writer")
         reader = asyncio.create_task(self._read_loop(first_frame), name="jointstat-reader")
         watchdog = asyncio.create_task(self._watchdog(), name="jointstat-watchdog")
+        watchers = [watchdog]
+        if self._shutdown is not None:
+            watchers.append(asyncio.create_task(self._watch_shutdown(), name="jointstat-shutdown"))
         cancelled = False
         try:
             try:
@@ -326,7 +376,8 @@ class _Driver:
                 except asyncio.CancelledError:
                     cancelled = True
             self._stop.set()
-            watchdog.cancel()
+            for watcher in watchers:
+                watcher.cancel()
             self._outbox.put_nowait(None)
             grace = self.limits.idle_timeout_s if completed else self.limits.abort_grace_s
             try:
@@ -339,7 +390,7 @@ class _Driver:
                 await self.stream.close(completed)
             if cancelled or not completed:
                 self.stream.cancel()
-            for task in (reader, writer, watchdog):
+            for task in (reader, writer, *watchers):
                 with contextlib.suppress(asyncio.CancelledError, Exception):
                     await task
             if self._producer is not None:
@@ -359,17 +410,25 @@ async def drive(
     counters: WireCounters | None = None,
     first_frame: bytes | None = None,
     on_progress: Callable[[], None] | None = None,
+    shutdown: Shutdown | None = None,
 ) -> SessionResult:
     """Run ``session`` over ``stream`` until it completes or fails; ``first_frame`` is a frame already read.
 
     Returns the result in both cases; raises ``asyncio.CancelledError`` if the calling task was cancelled (after
     failing the session, telling the peer when possible and cancelling the stream). ``on_progress`` is called
-    after each frame in or out and once at the end (see the module docstring).
+    after each frame in or out and once at the end (see the module docstring); ``shutdown`` lets the node end
+    the session with ``peer_shutdown``.
     """
     if session.state != "new":
         raise ValueError(f"drive() needs a new session, got one in state {session.state!r}")
-    driver = _Driver(session, stream, limits, counters or WireCounters(), on_progress)
-    return await driver.run(first_frame)
+    driver = _Driver(session, stream, limits, counters or WireCounters(), on_progress, shutdown)
+    if shutdown is None:
+        return await driver.run(first_frame)
+    shutdown._enter()
+    try:
+        return await driver.run(first_frame)
+    finally:
+        shutdown._leave()
 
 
 __all__ = [
@@ -377,6 +436,7 @@ __all__ = [
     "FrameStream",
     "Limits",
     "SessionResult",
+    "Shutdown",
     "StreamLost",
     "WireCounters",
     "drive",

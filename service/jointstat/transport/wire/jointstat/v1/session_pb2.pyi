@@ -29,6 +29,7 @@ class AbortReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     ABORT_REASON_CANCELLED: _ClassVar[AbortReason]
     ABORT_REASON_CONNECTION_LOST: _ClassVar[AbortReason]
     ABORT_REASON_INTERNAL: _ClassVar[AbortReason]
+    ABORT_REASON_PEER_SHUTDOWN: _ClassVar[AbortReason]
 
 class RefusalReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
@@ -61,6 +62,7 @@ ABORT_REASON_DEADLINE: AbortReason
 ABORT_REASON_CANCELLED: AbortReason
 ABORT_REASON_CONNECTION_LOST: AbortReason
 ABORT_REASON_INTERNAL: AbortReason
+ABORT_REASON_PEER_SHUTDOWN: AbortReason
 REFUSAL_REASON_UNSPECIFIED: RefusalReason
 REFUSAL_REASON_JOB_NOT_CONFIGURED: RefusalReason
 REFUSAL_REASON_DIGEST_MISMATCH: RefusalReason
