@@ -138,6 +138,7 @@ class Node:
         from jointstat.node.secrets import ensure_private_dir
 
         ensure_private_dir(node.data_dir)
+        ensure_private_dir(node.session_log.parent)
         self.started_at = self.clock.now()
         self._first_start = self._read_first_start(node.data_dir, self.started_at)
         store = JobStore(node.job_store)
