@@ -128,16 +128,20 @@ def test_sigterm_during_a_session_aborts_and_logs_it_on_both_nodes_and_leaves_no
         codes = {name: proc.wait(timeout=WAIT_S) for name, proc in procs.items()}
         for client in clients.values():
             client.close()
-    assert codes == {BATHS: 0, LIBRARY: 0}
-    assert mine["status"] == "aborted"
+    logs = {name: (tmp_path / f"{name}.log").read_text() for name in procs}
+    assert codes == {BATHS: 0, LIBRARY: 0}, logs
+    assert mine["status"] == "aborted", mine
     for name, by in ((BATHS, "self"), (LIBRARY, "peer")):
-        assert verify_log(pair.log(name).read_bytes()).ok
+        report = verify_log(pair.log(name).read_bytes())
+        assert report.ok, (name, report.problem)
         records = session_records(pair.log(name), sid)
         assert records[-1]["kind"] == "session_aborted", name
         if name == BATHS:
             assert (records[-1]["body"]["reason"], records[-1]["body"]["by"]) == ("cancelled", by)
         else:  # the stopping node told its peer why before it closed the stream
-            assert (records[-1]["body"]["reason"], records[-1]["body"]["by"]) == ("peer_shutdown", by)
+            assert (records[-1]["body"]["reason"], records[-1]["body"]["by"]) == ("peer_shutdown", by), (
+                records[-1]
+            )
         assert not any(r["kind"] == "session_completed" for r in records)
         (row,) = [r for r in pair.store_rows(name) if r.session_id == sid]
         assert row.status == "aborted" and row.result_path is None, name

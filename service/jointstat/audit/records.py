@@ -8,7 +8,9 @@ Theory of operation: a record is one canonical-JSON object (RFC 8785) on one lin
 ``prev`` is :data:`GENESIS` (64 zeros). ``sig`` is an Ed25519 signature (RFC 8032) by the node's signing key over
 ``RECORD_CONTEXT`` followed by the canonical bytes of the record without ``sig``. Chaining every record to its
 predecessor in the manner of RFC 6962's hash chains means no record can be changed, dropped, reordered or
-inserted without breaking every later link; the signatures say who wrote it.
+inserted without breaking every later link; the signatures say who wrote it. ``log_opened`` and ``checkpoint``
+records belong to no session (``session`` is null); a checkpoint states the size and head of the chain before it
+(what it catches and what it does not: ``audit.verify``).
 
 Bodies are pydantic models, one per record kind, strict and closed (no extra fields, no coercion): the writer can
 only pass the whitelisted, typed fields below, which carry identifiers, digests, timings, byte counts and
@@ -71,6 +73,7 @@ class Kind(StrEnum):
     PEER_ATTESTATION = "peer_attestation"
     SESSION_COMPLETED = "session_completed"
     SESSION_ABORTED = "session_aborted"
+    CHECKPOINT = "checkpoint"
 
 
 NodeName = Annotated[str, StringConstraints(pattern=NODE_NAME_PATTERN, max_length=63)]
@@ -153,6 +156,16 @@ class SessionAborted(RecordBody):
         return detail
 
 
+class Checkpoint(RecordBody):
+    """The writer's signed statement of the chain so far: ``records`` before this one, ``head`` the SHA-256 of the
+    last of them (the size and root of RFC 6962's signed tree head, for a hash chain), sessions open, and why."""
+
+    records: Count
+    head: HexDigest
+    open_sessions: Count
+    cause: Literal["opened", "session_ended", "closed", "recovered"]
+
+
 BODIES: dict[Kind, type[RecordBody]] = {
     Kind.LOG_OPENED: LogOpened,
     Kind.SESSION_STARTED: SessionStarted,
@@ -161,6 +174,7 @@ BODIES: dict[Kind, type[RecordBody]] = {
     Kind.PEER_ATTESTATION: PeerAttestation,
     Kind.SESSION_COMPLETED: SessionCompleted,
     Kind.SESSION_ABORTED: SessionAborted,
+    Kind.CHECKPOINT: Checkpoint,
 }
 
 
