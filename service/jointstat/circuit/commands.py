@@ -40,9 +40,19 @@ def _schema(args: argparse.Namespace) -> int:
     return 0
 
 
-def _check(args: argparse.Namespace) -> int:
-    from jointstat.circuit.inputs import expected_false_matches
+def _false_matches_line(manifest) -> str | None:  # type: ignore[no-untyped-def]
+    from jointstat.circuit.manifest import key_matching
 
+    f = key_matching(manifest)
+    if f is None:
+        return None
+    return (
+        f"false key matches: about {f.expected:.2g} expected at full capacity ({f.garbler_rows:,} × "
+        f"{f.evaluator_rows:,} rows, {f.width}-bit key hashes; n_g·n_e/2^w), agreed bound {f.bound:g}"
+    )
+
+
+def _check(args: argparse.Namespace) -> int:
     compiled = _compile(args.file)
     m = compiled.manifest
     c = compiled.circuit
@@ -55,16 +65,9 @@ def _check(args: argparse.Namespace) -> int:
         )
     if m.disclosure.min_count:
         print(f"  disclosure: every result withheld below a count of {m.disclosure.min_count}")
-    keys = []
-    for party, layout in compiled.inputs.items():
-        table = m.table(party)
-        for name in layout.columns:
-            col = table.column(name)
-            if col is not None and col.type == "key":  # type: ignore[attr-defined]
-                keys.append((col.bits, table.capacity))
-    if len(keys) == 2:
-        fm = expected_false_matches(keys[0][1], keys[1][1], keys[0][0])
-        print(f"  key hashes: {keys[0][0]} bits; at full capacity about {fm:.2g} false matches expected")
+    line = _false_matches_line(m)
+    if line is not None:
+        print(f"  {line}")
     return 0
 
 
@@ -81,7 +84,13 @@ def _plan(args: argparse.Namespace) -> int:
         rate = parse_rate(args.bandwidth)
     except ValueError as exc:
         raise UserError(str(exc)) from None
-    figures = plan(_compile(args.file), rate)
+    from jointstat.circuit.manifest import key_matching
+
+    compiled = _compile(args.file)
+    figures = plan(compiled, rate)
+    matching = key_matching(compiled.manifest)
+    figures["expected_false_matches"] = None if matching is None else matching.expected
+    figures["max_false_matches"] = compiled.manifest.matching.max_false_matches
     if args.json:
         json.dump(figures, sys.stdout)
         sys.stdout.write("\n")
@@ -103,6 +112,9 @@ def _plan(args: argparse.Namespace) -> int:
     for key, value in rows:
         print(f"  {key:<{width}}  {value}")
     print(f"  assumes: {figures['assumes']}")
+    line = _false_matches_line(compiled.manifest)
+    if line is not None:
+        print(f"  {line}")
     return 0
 
 

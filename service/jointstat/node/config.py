@@ -22,8 +22,9 @@ Sections and defaults (all paths relative to the config file's directory unless 
   trusts only the pinned peer certificates (``jointstat.transport.tls``), never an issuer.
 * ``signing_key`` (secret), ``key_hashing_secret`` (secret, optional; needed by manifests with identifier keys).
 * ``peers`` — ``name``, ``address`` (host:port), ``certificate`` (the pinned peer certificate, PEM; it is the
-  trust anchor, so it is required), ``certificate_sha256`` (optional: hex SHA-256 of the certificate's DER, checked
-  against the file, for reading aloud when the file is exchanged), ``signing_public_key`` (PEM or base64).
+  trust anchor, so it is required, and must hold that one certificate only — no chain, no CA), ``certificate_sha256``
+  (optional: hex SHA-256 of the certificate's DER, checked against the file, for reading aloud when the file is
+  exchanged), ``signing_public_key`` (PEM or base64).
 * ``jobs`` — ``name``, ``manifest``, ``peer`` (a configured peer), ``input`` (exactly one of ``csv: {path}`` or
   ``sql: {url, query, password_file}``), ``schedule`` (``cron``, ``timezone`` default UTC, ``window_minutes``
   default 120), ``role`` (``garbler`` or ``evaluator``: which of the manifest's two parties this node is for
@@ -731,7 +732,7 @@ class NodeConfig(StrictModel):
         if problem is not None:
             problems.append(Problem("tls.certificate", problem))
         for i, peer in enumerate(self.peers):
-            problem = _certificate_problem(peer.certificate, moment)
+            problem = _certificate_problem(peer.certificate, moment, pinned=True)
             if problem is not None:
                 problems.append(Problem(f"peers[{i}].certificate", problem))
             elif peer.certificate_sha256 is not None:
@@ -786,8 +787,11 @@ def _key_matches(key_pem: bytes, cert: Any) -> bool:
     return bool(key.public_key().public_bytes(*spki) == cert.public_key().public_bytes(*spki))
 
 
-def _certificate_problem(path: Path, now: datetime) -> str | None:
+def _certificate_problem(path: Path, now: datetime, *, pinned: bool = False) -> str | None:
+    """What is wrong with a certificate file, or None; a ``pinned`` peer file must be one non-CA certificate."""
     from cryptography import x509
+
+    from jointstat.transport.tls import pinned_certificate
 
     try:
         data = path.read_bytes()
@@ -801,6 +805,11 @@ def _certificate_problem(path: Path, now: datetime) -> str | None:
         cert = x509.load_pem_x509_certificate(data)
     except ValueError:
         return f"{path}: not a PEM certificate"
+    if pinned:
+        try:
+            cert = pinned_certificate(data, str(path))
+        except ValueError as exc:
+            return str(exc)
     if now < cert.not_valid_before_utc:
         return f"{path}: not valid before {cert.not_valid_before_utc:%Y-%m-%d %H:%M} UTC"
     if now >= cert.not_valid_after_utc:

@@ -22,9 +22,10 @@ one asyncio event loop:
   until the next scheduled time of any initiated job and starts the runs that are due (``schedule.Planner``).
 
 ``Node.stop()`` (SIGTERM or SIGINT in ``run_node``): health turns NOT_SERVING, new proposals are refused, the
-scheduler and the sessions this node initiated are cancelled, the peer server stops at once (so sessions it serves
-are cancelled too); the transport sends each peer an abort frame, and every session is logged ``session_aborted``
-and stored ``aborted`` before the log and the store are closed. A result file is only ever written whole
+scheduler stops; every running session — initiated or served — is asked to end (``NodeState.shutdown``) and
+sends its peer an abort frame with the reason ``peer_shutdown`` before its stream closes; once they have ended
+(or after a few seconds) the remaining job tasks are cancelled and the peer server stops. Every session is logged
+``session_aborted`` and stored ``aborted`` before the log and the store are closed. A result file is only ever written whole
 (atomically), so a stop leaves either a complete result or none. The console, when set, stops first.
 """
 
@@ -70,6 +71,7 @@ log = logging.getLogger("jointstat.node")
 
 FIRST_START_FILE = "first-start"
 STOP_TIMEOUT_S = 30.0
+SHUTDOWN_MARGIN_S = 1.0  # common practice: slack beyond a session's own grace periods when the node stops
 KEEP_ENDED_SESSIONS = 200
 
 
@@ -140,6 +142,7 @@ class Node:
         from jointstat.node.secrets import ensure_private_dir
 
         ensure_private_dir(node.data_dir)
+        ensure_private_dir(node.session_log.parent)
         self.started_at = self.clock.now()
         self._first_start = self._read_first_start(node.data_dir, self.started_at)
         store = JobStore(node.job_store)
@@ -229,6 +232,7 @@ class Node:
             limits=self.state.limits,
             session_ids=self.state.session_ids,
             services=[proposal_service(lambda: runner, keys), add_health],
+            shutdown=self.state.shutdown,
         )
         self.state.server = self._server
         self.peer_port = await self._server.start()
@@ -355,6 +359,11 @@ class Node:
                 background.cancel()
                 with contextlib.suppress(asyncio.CancelledError, Exception):
                     await background
+        if state is not None:
+            # Each running session tells its peer why it ends (peer_shutdown) before its stream closes.
+            state.shutdown.request()
+            # A session gets the abort grace to send its abort and as long again for the peer to end the call.
+            await state.shutdown.drained(timeout=2 * state.limits.abort_grace_s + SHUTDOWN_MARGIN_S)
         for task in list(self._jobs):
             task.cancel()
         if self._server is not None:
@@ -591,9 +600,15 @@ async def _run(config: NodeConfig) -> int:
     return 0
 
 
-def run_node(config: NodeConfig) -> int:
-    """Run the node until SIGTERM or SIGINT; returns the process exit code."""
+def run_node(config: NodeConfig, *, grpc_logs: bool = False) -> int:
+    """Run the node until SIGTERM or SIGINT; returns the process exit code.
+
+    Without ``grpc_logs`` the records of gRPC's Python loggers (``grpc.*``) stay out of the node's log; its C
+    core's lines are kept out by ``node run`` (``GRPC_VERBOSITY``, which gRPC reads when it is first imported).
+    """
     logging.basicConfig(
         level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s: %(message)s", stream=sys.stderr
     )
+    if not grpc_logs:
+        logging.getLogger("grpc").setLevel(logging.CRITICAL + 1)
     return asyncio.run(_run(config))

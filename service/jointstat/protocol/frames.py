@@ -14,11 +14,17 @@ keeps each direction in order but the interleaving of the two directions is seen
 the digest is taken per direction and combined as
 SHA-256("jointstat transcript v1" ‖ len(sid) ‖ sid ‖ H(garbler → evaluator) ‖ H(evaluator → garbler)). Both sides
 therefore compute the same 32 bytes exactly when they sent and received the same frames in the same order.
+
+Hello: each side signs its hello (protocol version 2). The signed digest is
+SHA-256("jointstat hello v1" ‖ version ‖ role ‖ len(sid) ‖ sid ‖ len(m) ‖ m ‖ len(c) ‖ c), with m and c the
+manifest and circuit digests and every number 4 bytes big-endian — every field but the signature, each of fixed
+size or length-prefixed — and the signature is over the ``hello`` statement of ``jointstat.statements`` for it.
 """
 
 from __future__ import annotations
 
 import hashlib
+from collections.abc import Callable
 from dataclasses import dataclass
 from enum import IntEnum
 
@@ -27,7 +33,7 @@ from google.protobuf.message import DecodeError
 from jointstat.circuit.model import Party
 from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
 
-PROTOCOL_VERSION = 1
+PROTOCOL_VERSION = 2  # 2: hellos are signed
 MAX_FRAME_BYTES = 4 * 1024 * 1024
 MAX_PAYLOAD_BYTES = MAX_FRAME_BYTES - 64  # room for the frame's field tags and length prefixes
 MAX_SESSION_ID_BYTES = 64
@@ -66,6 +72,7 @@ PAYLOAD_FIELD = {
 }
 _UNHASHED = frozenset({FINISH, ABORT})
 _TRANSCRIPT_LABEL = b"jointstat transcript v1"
+_HELLO_LABEL = b"jointstat hello v1"
 
 
 class AbortReason(IntEnum):
@@ -86,6 +93,7 @@ class AbortReason(IntEnum):
     CANCELLED = pb.ABORT_REASON_CANCELLED
     CONNECTION_LOST = pb.ABORT_REASON_CONNECTION_LOST
     INTERNAL = pb.ABORT_REASON_INTERNAL
+    PEER_SHUTDOWN = pb.ABORT_REASON_PEER_SHUTDOWN
 
 
 def role_to_wire(party: Party) -> int:
@@ -170,20 +178,52 @@ def chunked_frames(kind: str, payload: bytes, chunk: int = MAX_PAYLOAD_BYTES) ->
     return [payload_frame(kind, payload[i : i + chunk]) for i in range(0, len(payload), chunk)]
 
 
+def hello_digest(
+    *, version: int, role: int, session_id: bytes, manifest_digest: bytes, circuit_digest: bytes
+) -> bytes:
+    """The digest a hello's signature covers: every field of the hello but the signature (module docstring).
+
+    ``role`` is the wire value (``pb.Role``). Each field has a fixed size or a length prefix, so two different
+    hellos never share a digest.
+    """
+    h = hashlib.sha256(_HELLO_LABEL)
+    h.update(int(version).to_bytes(4, "big"))
+    h.update(int(role).to_bytes(4, "big", signed=True))
+    for value in (session_id, manifest_digest, circuit_digest):
+        h.update(len(value).to_bytes(4, "big"))
+        h.update(bytes(value))
+    return h.digest()
+
+
+def hello_digest_of(hello: pb.Hello) -> bytes:
+    """``hello_digest`` of a hello's own fields, as they came."""
+    return hello_digest(
+        version=hello.protocol_version,
+        role=hello.role,
+        session_id=bytes(hello.session_id),
+        manifest_digest=bytes(hello.manifest_digest),
+        circuit_digest=bytes(hello.circuit_digest),
+    )
+
+
 def hello_frame(
     *,
     party: Party,
     session_id: bytes,
     manifest_digest: bytes,
     circuit_digest: bytes,
+    sign: Callable[[bytes], bytes] | None = None,
     version: int = PROTOCOL_VERSION,
 ) -> bytes:
+    """A hello; ``sign(digest) -> signature`` signs its ``hello_digest`` (without it the hello is unsigned)."""
     frame = pb.Frame()
     frame.hello.protocol_version = version
     frame.hello.manifest_digest = manifest_digest
     frame.hello.session_id = session_id
     frame.hello.role = role_to_wire(party)
     frame.hello.circuit_digest = circuit_digest
+    if sign is not None:
+        frame.hello.signature = sign(hello_digest_of(frame.hello))
     return encode(frame)
 
 

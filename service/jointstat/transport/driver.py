@@ -15,11 +15,17 @@ Four activities share one session object (whose lock makes each of its steps ato
 - the *watchdog* (a task) ends the session when nothing has been sent or received for ``idle_timeout_s``; the whole
   session is also bounded by ``deadline_s``.
 
-The session ends when it is done, fails (a bad frame, the peer's abort) or a limit passes. On a local failure the
-abort frame jumps the queue (frames still waiting are dropped), is given ``abort_grace_s`` to leave, then the
-stream is closed. A lost stream (end of stream, a transport error) fails the session with ``connection lost``.
+The session ends when it is done, fails (a bad frame, the peer's abort) or a limit passes. When it is done, every
+frame it produced leaves before the stream closes: the garbler's session can be completed by the evaluator's
+finish while its producer still holds its own last frames (the decoding information and the finish come out of
+``produce()`` after the last table), so the driver waits for the producer to hand out everything (up to
+``idle_timeout_s``) before it queues the end of the outbox, and the producer never drops a frame of a session
+that is done. On a local failure the abort frame jumps the queue (frames still waiting are dropped), is given
+``abort_grace_s`` to leave, then the stream is closed. A lost stream (end of stream, a transport error) fails the session with ``connection lost``.
 Cancelling the task that runs ``drive`` fails the session with ``cancelled``, sends the abort if it can and
-cancels the stream, so the peer ends too. The result carries this side's own outputs only when it completed.
+cancels the stream, so the peer ends too. A node that stops asks its sessions to end first through a
+``Shutdown``: each fails with ``peer_shutdown`` — the abort frame tells the peer why — and ends as on any local
+failure; ``Shutdown.drained`` says when no session driven with it is left. The result carries this side's own outputs only when it completed.
 
 Bytes on the wire are counted here, in both directions: each frame's length plus the 5-byte gRPC message prefix
 (HTTP/2 frame headers and TLS record overhead below gRPC are not visible to it). An optional ``on_progress``
@@ -62,6 +68,44 @@ class Limits:
                 raise ValueError(f"limits: {name} must be a positive number of seconds, got {value!r}")
         if not isinstance(self.send_window, int) or self.send_window < 1:
             raise ValueError(f"limits: send_window must be a positive integer, got {self.send_window!r}")
+
+
+class Shutdown:
+    """A node's request to its running sessions to end because it is stopping (see the module docstring)."""
+
+    def __init__(self) -> None:
+        self._requested = asyncio.Event()
+        self._idle = asyncio.Event()
+        self._idle.set()
+        self._running = 0
+
+    @property
+    def requested(self) -> bool:
+        return self._requested.is_set()
+
+    def request(self) -> None:
+        """Ask every session driven with this signal, now or later, to abort with ``peer_shutdown``."""
+        self._requested.set()
+
+    async def wait(self) -> None:
+        await self._requested.wait()
+
+    def _enter(self) -> None:
+        self._running += 1
+        self._idle.clear()
+
+    def _leave(self) -> None:
+        self._running -= 1
+        if self._running == 0:
+            self._idle.set()
+
+    async def drained(self, timeout: float | None = None) -> bool:
+        """Wait until no session driven with this signal runs (True), or ``timeout`` seconds pass (False)."""
+        try:
+            await asyncio.wait_for(self._idle.wait(), timeout=timeout)
+        except TimeoutError:
+            return False
+        return True
 
 
 class StreamLost(Exception):
@@ -145,17 +189,20 @@ class _Driver:
         limits: Limits,
         counters: WireCounters,
         on_progress: Callable[[], None] | None = None,
+        shutdown: Shutdown | None = None,
     ) -> None:
         self.session = session
         self.stream = stream
         self.limits = limits
         self.counters = counters
         self._on_progress = on_progress
+        self._shutdown = shutdown
         self._loop = asyncio.get_running_loop()
         self._outbox: asyncio.Queue[_Item] = asyncio.Queue()
         self._slots = threading.Semaphore(limits.send_window)
         self._stop = threading.Event()
         self._ended = asyncio.Event()
+        self._produced_all = asyncio.Event()  # the producer has handed everything to the outbox, or given up
         self._last_progress = self._loop.time()
         self._producer: threading.Thread | None = None
 
@@ -250,16 +297,24 @@ class _Driver:
             self._progress()
             self._notify()
 
+    def _dropping(self) -> bool:
+        """Whether the producer should give up its frames: the driver stops and the session is not done."""
+        return self._stop.is_set() and not self.session.done
+
     def _produce(self) -> None:
-        """Producer thread: garble and hand frames to the loop, one send slot each."""
+        """Producer thread: garble and hand frames to the loop, one send slot each.
+
+        Frames of a session that is done are always handed over (they are its last frames); the driver waits for
+        them. Everything posted reaches the loop before ``_produced_all`` is set, in order.
+        """
         assert isinstance(self.session, GarblerSession)
         post: Callable[..., object] = self._loop.call_soon_threadsafe
         try:
             for data in self.session.produce():
                 while not self._slots.acquire(timeout=0.05):
-                    if self._stop.is_set():
+                    if self._dropping():
                         return
-                if self._stop.is_set():
+                if self._dropping():
                     self._slots.release()
                     return
                 post(self._outbox.put_nowait, (data, True))
@@ -268,6 +323,13 @@ class _Driver:
             post(self._after_protocol_error, exc)
         except Exception as exc:
             post(self._local_fail, AbortReason.INTERNAL, f"garbling failed ({type(exc).__name__})")
+        finally:
+            post(self._produced_all.set)
+
+    async def _watch_shutdown(self) -> None:
+        assert self._shutdown is not None
+        await self._shutdown.wait()
+        self._local_fail(AbortReason.PEER_SHUTDOWN, "this node is shutting down")
 
     async def _watchdog(self) -> None:
         limit = self.limits.idle_timeout_s
@@ -284,6 +346,9 @@ class _Driver:
         writer = asyncio.create_task(self._write_loop(), name="jointstat-writer")
         reader = asyncio.create_task(self._read_loop(first_frame), name="jointstat-reader")
         watchdog = asyncio.create_task(self._watchdog(), name="jointstat-watchdog")
+        watchers = [watchdog]
+        if self._shutdown is not None:
+            watchers.append(asyncio.create_task(self._watch_shutdown(), name="jointstat-shutdown"))
         cancelled = False
         try:
             try:
@@ -301,9 +366,18 @@ class _Driver:
             else:
                 self._local_fail(AbortReason.CANCELLED, "the local node cancelled the session")
         finally:
-            self._stop.set()
-            watchdog.cancel()
             completed = self.session.done
+            if completed and self._producer is not None:
+                # The session's last frames may still be in the producer: they must be queued before the end.
+                try:
+                    await asyncio.wait_for(self._produced_all.wait(), timeout=self.limits.idle_timeout_s)
+                except TimeoutError:
+                    pass
+                except asyncio.CancelledError:
+                    cancelled = True
+            self._stop.set()
+            for watcher in watchers:
+                watcher.cancel()
             self._outbox.put_nowait(None)
             grace = self.limits.idle_timeout_s if completed else self.limits.abort_grace_s
             try:
@@ -316,7 +390,7 @@ class _Driver:
                 await self.stream.close(completed)
             if cancelled or not completed:
                 self.stream.cancel()
-            for task in (reader, writer, watchdog):
+            for task in (reader, writer, *watchers):
                 with contextlib.suppress(asyncio.CancelledError, Exception):
                     await task
             if self._producer is not None:
@@ -336,17 +410,25 @@ async def drive(
     counters: WireCounters | None = None,
     first_frame: bytes | None = None,
     on_progress: Callable[[], None] | None = None,
+    shutdown: Shutdown | None = None,
 ) -> SessionResult:
     """Run ``session`` over ``stream`` until it completes or fails; ``first_frame`` is a frame already read.
 
     Returns the result in both cases; raises ``asyncio.CancelledError`` if the calling task was cancelled (after
     failing the session, telling the peer when possible and cancelling the stream). ``on_progress`` is called
-    after each frame in or out and once at the end (see the module docstring).
+    after each frame in or out and once at the end (see the module docstring); ``shutdown`` lets the node end
+    the session with ``peer_shutdown``.
     """
     if session.state != "new":
         raise ValueError(f"drive() needs a new session, got one in state {session.state!r}")
-    driver = _Driver(session, stream, limits, counters or WireCounters(), on_progress)
-    return await driver.run(first_frame)
+    driver = _Driver(session, stream, limits, counters or WireCounters(), on_progress, shutdown)
+    if shutdown is None:
+        return await driver.run(first_frame)
+    shutdown._enter()
+    try:
+        return await driver.run(first_frame)
+    finally:
+        shutdown._leave()
 
 
 __all__ = [
@@ -354,6 +436,7 @@ __all__ = [
     "FrameStream",
     "Limits",
     "SessionResult",
+    "Shutdown",
     "StreamLost",
     "WireCounters",
     "drive",

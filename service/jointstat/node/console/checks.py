@@ -3,7 +3,8 @@
 Theory of operation
 -------------------
 ``LogChecks.own()`` takes the log's bytes from the node (whole records, ``NodeView.session_log``) and verifies
-them with ``audit.verify.verify_log`` under this node's own public key, pinned (so a log re-signed under another
+them with ``audit.verify.verify_log`` (a running node's log may end mid-session, so open sessions are allowed and
+the last signed checkpoint is shown) under this node's own public key, pinned (so a log re-signed under another
 key fails at its first record). Verification runs in a worker thread and its report is kept until the log's
 bytes change (same SHA-256), so reloading the page does not verify again. Each session then gets a verdict:
 
@@ -25,6 +26,7 @@ keys pinned — this node's own and the configured peer's — listing every disa
 from __future__ import annotations
 
 import asyncio
+import functools
 import hashlib
 from dataclasses import dataclass
 from typing import Any
@@ -124,7 +126,7 @@ class LogChecks:
             if self._cached is not None and self._cached[0] == digest:
                 return self._cached[1]
             keys = self._view.log_keys()
-            report = await asyncio.to_thread(verify_log, data, keys.own)
+            report = await asyncio.to_thread(functools.partial(verify_log, data, keys.own, allow_open=True))
             check = OwnLogCheck(report, session_verdicts(report, keys), len(data))
             self._cached = (digest, check)
             return check
@@ -140,7 +142,7 @@ class LogChecks:
         keys = self._view.log_keys()
 
         def work() -> CompareCheck:
-            node = verify_log(theirs).node
+            node = verify_log(theirs, allow_open=True).node
             key = None if node is None else keys.peers.get(node)
             if node is not None and key is None:
                 known = ", ".join(sorted(keys.peers)) or "none"
@@ -150,7 +152,9 @@ class LogChecks:
                     len(theirs),
                 )
             return CompareCheck(
-                compare_logs(mine, theirs, mine_key=keys.own, theirs_key=key), None, len(theirs)
+                compare_logs(mine, theirs, mine_key=keys.own, theirs_key=key, allow_open=True),
+                None,
+                len(theirs),
             )
 
         return await asyncio.to_thread(work)
