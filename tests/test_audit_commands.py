@@ -18,7 +18,7 @@ def test_verify_says_ok_for_a_good_log(tmp_path: Path, capsys: pytest.CaptureFix
     pa, _ = write_pair(tmp_path, ["completed", "aborted"])
     assert main(["audit", "verify", str(pa)]) == 0
     out = capsys.readouterr().out
-    assert "ok — 11 records by node alpha, chain and signatures verify" in out
+    assert "ok — 14 records by node alpha, chain and signatures verify" in out
     assert "sessions: 2 (1 aborted, 1 completed)" in out
 
 
@@ -32,15 +32,16 @@ def test_verify_names_the_first_bad_record_and_exits_1(
     pa.write_bytes(bytes(data))
     assert main(["audit", "verify", str(pa)]) == 1
     out = capsys.readouterr().out
-    assert "first bad record at line 3 (seq 2): signature" in out
-    assert "the 2 records before it verify" in out
+    assert "first bad record at line 4 (seq 3): signature" in out
+    assert "the 3 records before it verify" in out
 
 
 def test_verify_json_output(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     pa, _ = write_pair(tmp_path, ["completed"])
     assert main(["audit", "verify", str(pa), "--json"]) == 0
     report = json.loads(capsys.readouterr().out)
-    assert report["ok"] is True and report["records"] == 8 and report["problem"] is None
+    assert report["ok"] is True and report["records"] == 10 and report["problem"] is None
+    assert report["ends_with_checkpoint"] is True and report["last_checkpoint"] == 10
     assert report["sessions"][0]["outcome"] == "completed"
 
 

@@ -83,8 +83,9 @@ def write_pair(directory: Path, plan: list[str | tuple[str, int]]) -> tuple[Path
     return pa, pb
 
 
-# 1 log_opened + 13 completed x 7 + 1 aborted x 3 + 1 open with 4 phases x 5 = 100 records in each log.
-HUNDRED: list[str | tuple[str, int]] = ["completed"] * 6 + ["aborted"] + ["completed"] * 7 + [("open", 4)]
+# 1 log_opened + its checkpoint + 11 completed x 8 + 1 aborted x 4 (each ends with a checkpoint) + 1 open with
+# 4 phases x 5 + the closing checkpoint = 100 records in each log.
+HUNDRED: list[str | tuple[str, int]] = ["completed"] * 6 + ["aborted"] + ["completed"] * 5 + [("open", 4)]
 
 
 def hundred_record_log(directory: Path) -> Path:
@@ -95,22 +96,25 @@ def hundred_record_log(directory: Path) -> Path:
 def test_a_new_log_is_owner_only_and_opens_with_the_node_and_its_public_key(tmp_path: Path) -> None:
     ka, _ = keys()
     with SessionLog(tmp_path / "a.log", ka, "alpha", clock=FakeClock()) as log:
-        assert log.records == 1
+        assert log.records == 2
     assert os.stat(tmp_path / "a.log").st_mode & 0o777 == 0o600
-    first = parse((tmp_path / "a.log").read_bytes().splitlines()[0])
+    first, second = (parse(line) for line in (tmp_path / "a.log").read_bytes().splitlines())
     assert first["kind"] == "log_opened" and first["seq"] == 0 and first["prev"] == "0" * 64
     assert first["body"]["node"] == "alpha"
     assert first["time"] == "2025-03-01T02:00:01.250000Z"
+    assert second["kind"] == "checkpoint" and second["body"]["cause"] == "opened"
 
 
 def test_a_pair_of_logs_written_by_the_two_nodes_verifies(tmp_path: Path) -> None:
     pa, pb = write_pair(tmp_path, HUNDRED)
     for path, node in ((pa, "alpha"), (pb, "beta")):
-        report = verify_log(path)
+        report = verify_log(path, allow_open=True)
         assert report.ok, report.problem
         assert report.records == 100 and report.node == node
         outcomes = sorted(s.outcome for s in report.sessions.values())
-        assert outcomes == ["aborted"] + ["completed"] * 13 + ["open"]
+        assert outcomes == ["aborted"] + ["completed"] * 11 + ["open"]
+        strict = verify_log(path).problem
+        assert strict is not None and strict.check == "open"
 
 
 def test_each_record_links_to_the_sha256_of_the_previous_line(tmp_path: Path) -> None:
@@ -133,7 +137,7 @@ def test_reopening_continues_the_chain_and_remembers_open_sessions(tmp_path: Pat
             "s-0003", job="shared-donors", manifest_digest=MANIFEST, role="garbler", peer="beta"
         )
         assert a.records == before + 1
-    report = verify_log(pa)
+    report = verify_log(pa, allow_open=True)
     assert report.ok, report.problem
     assert (
         report.sessions["s-0002"].outcome == "aborted"
@@ -338,7 +342,36 @@ def test_appends_from_several_threads_keep_one_valid_chain(tmp_path: Path) -> No
             th.start()
         for th in threads:
             th.join()
-    report = verify_log(tmp_path / "a.log")
+    report = verify_log(tmp_path / "a.log", allow_open=True)
     assert report.ok, report.problem
-    assert report.records == 1 + 4 + 100
+    assert report.records == 2 + 4 + 100 + 1  # log_opened and its checkpoint … the closing checkpoint
     assert all(len(s.phases) == 25 for s in report.sessions.values())
+
+
+def test_a_snapshot_taken_while_records_are_appended_holds_whole_records_only_and_verifies(
+    tmp_path: Path,
+) -> None:
+    ka, _ = keys()
+    snapshots: list[bytes] = []
+    with SessionLog(tmp_path / "a.log", ka, "alpha", clock=FakeClock()) as a:
+        a.session_started("s-1", job="shared-donors", manifest_digest=MANIFEST, role="garbler", peer="beta")
+
+        def work() -> None:
+            for i in range(200):
+                a.phase_finished("s-1", phase="garbling", duration_us=i, bytes_sent=i, bytes_received=0)
+
+        writer = threading.Thread(target=work)
+        writer.start()
+        while writer.is_alive():
+            snapshots.append(a.snapshot())
+        writer.join()
+        snapshots.append(a.snapshot())
+        assert snapshots[-1] == (tmp_path / "a.log").read_bytes()
+    with pytest.raises(AuditError, match="closed"):
+        a.snapshot()
+    assert len(snapshots) > 1
+    for data in snapshots:
+        assert data.endswith(b"\n")
+        report = verify_log(data, allow_open=True)  # a snapshot of a running node's log: a session still open
+        assert report.ok, report.problem
+    assert verify_log(snapshots[-1], allow_open=True).records == 1 + 1 + 1 + 200  # header, checkpoint, start, phases

@@ -18,12 +18,11 @@ from jointstat.circuit.inputs import (
     InputError,
     collision_probability,
     encode_inputs,
-    expected_false_matches,
     hash_key,
     read_csv,
     read_sql,
 )
-from jointstat.circuit.manifest import load_manifest
+from jointstat.circuit.manifest import expected_false_matches, load_manifest
 from jointstat.circuit.model import Party
 
 from tests.test_stat_support import SECRET, manifest, table
@@ -150,6 +149,7 @@ def test_distinct_keys_whose_hashes_collide_are_reported_as_a_collision(tmp_path
         },
         {"name": "keyed_join", "key": "k"},
         {"garbler": ["matches"]},
+        matching={"max_false_matches": 1.0},  # 16-bit keys on purpose: 4 × 4 / 2^16 ≈ 2.4e-4 expected
     )
     rec = read_csv(write(tmp_path, f"k\n{pair[0]}\n{pair[1]}\n"), m.tables.garbler, key_secret=SECRET)
     with pytest.raises(InputError, match="same 16-bit hash; use a wider key"):

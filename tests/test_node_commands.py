@@ -60,6 +60,19 @@ async def test_jobs_run_follows_the_session_and_names_the_result_file(
         assert phase in shown
 
 
+async def test_jobs_run_with_json_prints_only_the_json_document(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    pair = make_pair(tmp_path)
+    async with running(pair):
+        code = await cli("jobs", "run", JOB, "--json", "--config", str(pair.configs[LIBRARY]))
+        out = capsys.readouterr().out
+    assert code == 0, out
+    session = json.loads(out)  # the whole output is one JSON document: no progress lines before it
+    assert (session["job"], session["status"], session["role"]) == (JOB, "completed", "garbler")
+    assert session["and_gates_done"] == session["and_gates_total"] > 0
+
+
 async def test_operator_mistakes_are_user_errors_with_a_clear_message(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

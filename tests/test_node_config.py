@@ -22,7 +22,7 @@ from jointstat.node.config import (
     parse_host_port,
     parse_node_config,
 )
-from jointstat.node.keys import init_trial
+from jointstat.node.keys import CA_CERT, init_trial
 from jointstat.node.schedule import JobTiming
 from jointstat.node.secrets import SecretFileError
 from jointstat.transport.tls import fingerprint
@@ -605,6 +605,27 @@ def test_a_pinned_certificate_fingerprint_is_checked_against_the_certificate_fil
     ).hex()
     (problem,) = load_node_config(write_config(node_dir, data)).file_problems()
     assert problem.path == "peers[0].certificate_sha256" and good in problem.message
+
+
+@pytest.mark.parametrize("pinned", ["leaf and CA", "CA only", "leaf twice"])
+def test_a_pinned_peer_file_with_more_than_the_peers_own_certificate_is_refused(
+    node_dir: Path, pinned: str, capsys: pytest.CaptureFixture[str]
+) -> None:
+    # A "full chain" file would make every certificate its CA issues for the peer's name a trust anchor.
+    leaf = (node_dir / "keys" / "beta.tls.cert.pem").read_bytes()
+    ca = (node_dir / "keys" / CA_CERT).read_bytes()
+    contents = {"leaf and CA": leaf + ca, "CA only": ca, "leaf twice": leaf + leaf}[pinned]
+    (node_dir / "keys" / "chain.pem").write_bytes(contents)
+    data = base_config()
+    data["peers"][0]["certificate"] = "keys/chain.pem"
+    data["peers"][0]["certificate_sha256"] = fingerprint(contents).hex()  # the first certificate's, as before
+    path = write_config(node_dir, data)
+    (problem,) = load_node_config(path).file_problems()
+    assert problem.path == "peers[0].certificate"
+    words = "is a CA certificate" if pinned == "CA only" else "holds 2 certificates"
+    assert words in problem.message and "pin the peer's own certificate" in problem.message
+    assert main(["node", "check", "--config", str(path)]) == 1
+    assert words in capsys.readouterr().err
 
 
 def test_node_check_prints_every_problem_and_exits_1(

@@ -3,32 +3,39 @@
 Specification: ``jointstat demo`` starts two node processes, runs the keyed-join job, prints both parties' results,
 verifies and cross-checks both logs, stops both nodes and exits 0. A node that receives SIGTERM while it serves a
 session aborts that session, logs it (``session_aborted``, reason ``cancelled``) and stores the run as ``aborted``,
-writes no result file and exits 0; the initiating node sees the abort and records it too; both logs still verify.
+writes no result file and exits 0; it tells the initiating node, which records the abort with the reason
+``peer_shutdown``; both logs still verify, and neither node's log holds gRPC's own log lines.
 """
 
 from __future__ import annotations
 
 import os
 import signal
+import socket
+import ssl
 import subprocess
 import sys
 import time
 from pathlib import Path
 from typing import Any
 
+import pytest
 from jointstat.audit.verify import verify_log
 from jointstat.node.admin import AdminClient, AdminError
 from jointstat.node.config import load_node_config
+from jointstat.transport.pki import issue, new_ca
 
 from tests.test_node_daemon import BATHS, DEMO, JOB, LIBRARY, Pair, make_pair, session_records
 
 WAIT_S = 120.0  # liveness bound for process start-up and a session; not a speed claim
 
 
-def start_node(config: Path, log: Path) -> subprocess.Popen[bytes]:
+def start_node(config: Path, log: Path, *options: str) -> subprocess.Popen[bytes]:
+    env = {k: v for k, v in os.environ.items() if not k.startswith("GRPC_")}
     with open(log, "wb") as out:
         return subprocess.Popen(
-            [sys.executable, "-m", "jointstat.cli", "node", "run", "--config", str(config)],
+            [sys.executable, "-m", "jointstat.cli", "node", "run", "--config", str(config), *options],
+            env=env,
             stdout=out,
             stderr=subprocess.STDOUT,
             stdin=subprocess.DEVNULL,
@@ -121,14 +128,20 @@ def test_sigterm_during_a_session_aborts_and_logs_it_on_both_nodes_and_leaves_no
         codes = {name: proc.wait(timeout=WAIT_S) for name, proc in procs.items()}
         for client in clients.values():
             client.close()
-    assert codes == {BATHS: 0, LIBRARY: 0}
-    assert mine["status"] == "aborted"
+    logs = {name: (tmp_path / f"{name}.log").read_text() for name in procs}
+    assert codes == {BATHS: 0, LIBRARY: 0}, logs
+    assert mine["status"] == "aborted", mine
     for name, by in ((BATHS, "self"), (LIBRARY, "peer")):
-        assert verify_log(pair.log(name).read_bytes()).ok
+        report = verify_log(pair.log(name).read_bytes())
+        assert report.ok, (name, report.problem)
         records = session_records(pair.log(name), sid)
         assert records[-1]["kind"] == "session_aborted", name
         if name == BATHS:
             assert (records[-1]["body"]["reason"], records[-1]["body"]["by"]) == ("cancelled", by)
+        else:  # the stopping node told its peer why before it closed the stream
+            assert (records[-1]["body"]["reason"], records[-1]["body"]["by"]) == ("peer_shutdown", by), (
+                records[-1]
+            )
         assert not any(r["kind"] == "session_completed" for r in records)
         (row,) = [r for r in pair.store_rows(name) if r.session_id == sid]
         assert row.status == "aborted" and row.result_path is None, name
@@ -137,4 +150,54 @@ def test_sigterm_during_a_session_aborts_and_logs_it_on_both_nodes_and_leaves_no
     assert (
         "stopped (1 session(s) were running and have been aborted)" in (tmp_path / f"{BATHS}.log").read_text()
     )
+    for name in procs:  # the nodes' own lines only: gRPC's internal log lines stay out unless asked for
+        lines = (tmp_path / f"{name}.log").read_text().splitlines()
+        assert lines and all(" jointstat." in line or line.startswith("node ") for line in lines), lines
     assert os.path.exists(pair.log(LIBRARY))
+
+
+def present_an_unpinned_certificate(port: int, root: Path) -> None:
+    """A TLS client with a certificate from a CA of its own: the node refuses it in the handshake."""
+    stranger = issue(new_ca("a stranger's CA"), "stranger.test")
+    cert, key = root / "stranger.pem", root / "stranger.key"
+    cert.write_bytes(stranger.certificate)
+    key.write_bytes(stranger.private_key)
+    ctx = ssl.SSLContext(ssl.PROTOCOL_TLS_CLIENT)
+    ctx.check_hostname = False
+    ctx.verify_mode = ssl.CERT_NONE
+    ctx.load_cert_chain(cert, key)
+    ctx.set_alpn_protocols(["h2"])
+    with socket.create_connection(("127.0.0.1", port), timeout=10) as raw:
+        try:
+            with ctx.wrap_socket(raw) as tls:
+                tls.recv(
+                    1
+                )  # TLS 1.3: the server's refusal of the client certificate arrives after the handshake
+        except (ssl.SSLError, OSError):
+            pass
+
+
+@pytest.mark.parametrize("asked", [False, True])
+def test_grpcs_own_log_lines_stay_out_of_the_node_log_unless_asked_for(tmp_path: Path, asked: bool) -> None:
+    pair = make_pair(tmp_path)
+    config = load_node_config(pair.configs[BATHS])
+    log = tmp_path / "node.log"
+    proc = start_node(pair.configs[BATHS], log, *(["--grpc-logs"] if asked else []))
+    client = AdminClient(str(config.node.admin))
+    try:
+        wait_until(lambda: answering(client), "the node to start")
+        present_an_unpinned_certificate(config.node.listen.port, tmp_path)
+        assert answering(client)
+    finally:
+        client.close()
+        proc.send_signal(signal.SIGTERM)
+        assert proc.wait(timeout=WAIT_S) == 0
+    lines = log.read_text().splitlines()
+    grpc_lines = [line for line in lines if "ssl_transport_security" in line]
+    assert any(" jointstat.node: node riverside-baths: stopped" in line for line in lines)
+    if asked:
+        assert grpc_lines, lines  # the refused handshake, in gRPC's words
+    else:
+        assert grpc_lines == [] and all(
+            " jointstat." in line or line.startswith("node ") for line in lines
+        ), lines

@@ -185,6 +185,19 @@ def test_unexpected_messages_and_calls() -> None:
         BaseOTReceiver(SID, random_choice_bits(2)).receive(b"not a message")  # type: ignore[arg-type]
 
 
+def test_an_error_names_the_state_the_party_was_in_not_failed() -> None:
+    receiver = BaseOTReceiver(SID, random_choice_bits(2))
+    with pytest.raises(OTError, match="in state 'new': expected an OTMessage"):
+        receiver.receive(b"not a message")  # type: ignore[arg-type]
+    assert receiver.state == "failed"
+    sender = BaseOTSender(SID)
+    sender.start()
+    with pytest.raises(OTError, match="in state 'awaiting base OT points': expected an OTMessage"):
+        sender.receive("not a message either")  # type: ignore[arg-type]
+    with pytest.raises(OTError, match="in state 'failed': refusing"):
+        sender.receive(OTMessage(BASE_OT_RECEIVER_POINTS, bytes(4096)))
+
+
 @pytest.mark.parametrize(
     "choices",
     [np.array([0, 2, 1]), np.array([[0, 1]]), np.array([0.0, 1.0]), np.array([-1, 0]), np.zeros(0, np.uint8)],

@@ -14,15 +14,54 @@ from jointstat.protocol.frames import AbortReason, ProtocolError, Transcript
 SID = b"transcript-test"
 
 
-def test_a_hello_round_trips_with_every_field() -> None:
+def test_a_hello_round_trips_with_every_field_and_its_signature_covers_them() -> None:
+    signed: list[bytes] = []
+
+    def sign(digest: bytes) -> bytes:
+        signed.append(digest)
+        return b"s" * 64
+
     data = fr.hello_frame(
-        party=Party.EVALUATOR, session_id=SID, manifest_digest=bytes(range(32)), circuit_digest=bytes(32)
+        party=Party.EVALUATOR,
+        session_id=SID,
+        manifest_digest=bytes(range(32)),
+        circuit_digest=bytes(32),
+        sign=sign,
     )
     kind, frame = fr.decode(data)
     assert kind == fr.HELLO
-    assert frame.hello.protocol_version == fr.PROTOCOL_VERSION == 1
+    assert frame.hello.protocol_version == fr.PROTOCOL_VERSION == 2
     assert frame.hello.session_id == SID and frame.hello.manifest_digest == bytes(range(32))
     assert frame.hello.role == fr.role_to_wire(Party.EVALUATOR)
+    assert frame.hello.signature == b"s" * 64
+    assert signed == [fr.hello_digest_of(frame.hello)]
+
+
+def test_the_hello_digest_is_a_sha256_of_every_field_but_the_signature() -> None:
+    # Recomputed with hashlib from the encoding the frames module documents (4-byte big-endian numbers).
+    def n(value: int) -> bytes:
+        return value.to_bytes(4, "big")
+
+    expected = hashlib.sha256(
+        b"jointstat hello v1" + n(2) + n(2) + n(len(SID)) + SID + n(32) + bytes(range(32)) + n(32) + bytes(32)
+    ).digest()
+    got = fr.hello_digest(
+        version=2,
+        role=fr.role_to_wire(Party.EVALUATOR),
+        session_id=SID,
+        manifest_digest=bytes(range(32)),
+        circuit_digest=bytes(32),
+    )
+    assert got == expected
+    # Moving a byte from one field to the next changes the digest: every field is length-prefixed.
+    moved = fr.hello_digest(
+        version=2,
+        role=fr.role_to_wire(Party.EVALUATOR),
+        session_id=SID + b"\x00",
+        manifest_digest=bytes(range(1, 32)),
+        circuit_digest=bytes(32),
+    )
+    assert moved != got
 
 
 @given(st.sampled_from(sorted(fr.PAYLOAD_FIELD)), st.binary(max_size=300))

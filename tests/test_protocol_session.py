@@ -33,6 +33,7 @@ from jointstat.protocol import (
 from jointstat.protocol import frames as fr
 from jointstat.protocol import session as sm
 from jointstat.protocol.pipe import run_in_memory
+from jointstat.statements import transcript_signature_ok
 from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
 
 from tests.circuits import random_bits, random_circuits, reference_eval
@@ -158,8 +159,12 @@ def test_both_sides_sign_the_same_transcript_digest(wide: LayeredCircuit) -> Non
     garbler, evaluator = make_pair(wide, *random_inputs(wide.circuit, 1))
     run_in_memory(garbler, evaluator)
     assert garbler.transcript_digest == evaluator.transcript_digest
-    assert verifier(G_KEY.public_key())(evaluator.peer_signature, evaluator.transcript_digest)
-    assert verifier(E_KEY.public_key())(garbler.peer_signature, garbler.transcript_digest)
+    assert transcript_signature_ok(
+        G_KEY.public_key(), SID.hex(), evaluator.transcript_digest, evaluator.peer_signature
+    )
+    assert transcript_signature_ok(
+        E_KEY.public_key(), SID.hex(), garbler.transcript_digest, garbler.peer_signature
+    )
 
 
 def test_two_sessions_of_the_same_circuit_and_inputs_have_different_transcripts(wide: LayeredCircuit) -> None:
@@ -230,19 +235,20 @@ def test_different_session_ids_abort(wide: LayeredCircuit) -> None:
     assert evaluator.abort is not None and evaluator.abort.reason == AbortReason.SESSION_MISMATCH
 
 
-def test_another_protocol_version_aborts(wide: LayeredCircuit) -> None:
-    def newer_hello(to: Party, data: bytes) -> list[bytes]:
+@pytest.mark.parametrize("version", [1, fr.PROTOCOL_VERSION + 1])
+def test_another_protocol_version_aborts(wide: LayeredCircuit, version: int) -> None:
+    def other_hello(to: Party, data: bytes) -> list[bytes]:
         kind, frame = fr.decode(data)
         if kind == fr.HELLO and to == Party.EVALUATOR:
-            frame.hello.protocol_version = 2
+            frame.hello.protocol_version = version
             return [fr.encode(frame)]
         return [data]
 
     garbler, evaluator = make_pair(wide, *random_inputs(wide.circuit, 7))
-    run_in_memory(garbler, evaluator, intercept=newer_hello)
+    run_in_memory(garbler, evaluator, intercept=other_hello)
     assert_no_output(garbler, evaluator)
     assert evaluator.abort is not None and evaluator.abort.reason == AbortReason.PROTOCOL_VERSION
-    assert "version 2" in evaluator.abort.message
+    assert f"peer speaks protocol version {version}, this node speaks 2" in evaluator.abort.message
 
 
 def test_two_garblers_refuse_each_other(wide: LayeredCircuit) -> None:
@@ -404,12 +410,60 @@ def test_corrupted_garbled_tables_release_no_output_anywhere(wide: LayeredCircui
     assert garbler.abort is not None and garbler.abort.reason == AbortReason.INVALID_OUTPUT
 
 
-def test_a_signature_that_does_not_verify_aborts_that_side(wide: LayeredCircuit) -> None:
+def test_a_transcript_signature_that_does_not_verify_aborts_that_side(wide: LayeredCircuit) -> None:
     garbler, evaluator = make_pair(wide, *random_inputs(wide.circuit, 19))
-    evaluator._verify = verifier(Ed25519PrivateKey.generate().public_key())  # expects another garbler key
+    honest, other = verifier(G_KEY.public_key()), verifier(Ed25519PrivateKey.generate().public_key())
+    # The garbler's hello verifies; its transcript signature is checked against another key.
+    evaluator._verify = lambda sig, st: (honest if st.kind == "hello" else other)(sig, st)
     run_in_memory(garbler, evaluator)
     assert_no_output(evaluator)
     assert evaluator.abort is not None and evaluator.abort.reason == AbortReason.BAD_SIGNATURE
+    assert "signature over the transcript" in evaluator.abort.message
+
+
+@pytest.mark.parametrize("impostor", [Party.GARBLER, Party.EVALUATOR])
+def test_a_peer_without_the_configured_signing_key_is_refused_at_its_hello_before_any_ot(
+    wide: LayeredCircuit, impostor: Party
+) -> None:
+    garbler, evaluator = make_pair(wide, *random_inputs(wide.circuit, 23))
+    # The impostor signs with a key of its own; the honest side has the real peer's key configured.
+    (garbler if impostor == Party.GARBLER else evaluator)._sign = signer(Ed25519PrivateKey.generate())
+    seen = Recorder()
+    run_in_memory(garbler, evaluator, intercept=seen)
+    honest = evaluator if impostor == Party.GARBLER else garbler
+    assert_no_output(garbler, evaluator)
+    assert honest.abort is not None and not honest.abort.by_peer
+    assert honest.abort.reason == AbortReason.BAD_SIGNATURE
+    assert (
+        "in state 'awaiting hello'" in honest.abort.message and "hello is not signed" in honest.abort.message
+    )
+    # The honest side sent its hello and its abort, nothing else: no OT, no labels, no tables, no decoding.
+    assert seen.kinds[impostor] == [fr.HELLO, fr.ABORT]
+
+
+def test_an_unsigned_hello_or_one_whose_fields_were_changed_after_signing_is_refused(
+    wide: LayeredCircuit,
+) -> None:
+    def strip_signature(to: Party, data: bytes) -> list[bytes]:
+        kind, frame = fr.decode(data)
+        if kind == fr.HELLO and to == Party.EVALUATOR:
+            frame.hello.ClearField("signature")
+            return [frame.SerializeToString()]
+        return [data]
+
+    def change_manifest(to: Party, data: bytes) -> list[bytes]:
+        kind, frame = fr.decode(data)
+        if kind == fr.HELLO and to == Party.EVALUATOR:
+            frame.hello.manifest_digest = OTHER_MANIFEST
+            return [frame.SerializeToString()]
+        return [data]
+
+    for intercept, words in ((strip_signature, "no signature"), (change_manifest, "does not verify")):
+        garbler, evaluator = make_pair(wide, *random_inputs(wide.circuit, 29))
+        run_in_memory(garbler, evaluator, intercept=intercept)
+        assert_no_output(garbler, evaluator)
+        assert evaluator.abort is not None and evaluator.abort.reason == AbortReason.BAD_SIGNATURE
+        assert words in evaluator.abort.message
 
 
 def test_a_frame_altered_in_transit_shows_as_a_transcript_mismatch(wide: LayeredCircuit) -> None:

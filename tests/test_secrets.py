@@ -117,6 +117,24 @@ def test_writing_into_a_missing_directory_is_a_clear_error(tmp_path: Path) -> No
 def test_private_directories_are_made_0700_and_a_file_in_the_way_is_refused(tmp_path: Path) -> None:
     made = ensure_private_dir(tmp_path / "a" / "keys")
     assert made.stat().st_mode & 0o777 == 0o700
+    assert (tmp_path / "a").stat().st_mode & 0o777 == 0o700  # a parent it had to create too
     (tmp_path / "file").write_bytes(b"")
     with pytest.raises(SecretFileError, match="exists and is not a directory"):
         ensure_private_dir(tmp_path / "file")
+
+
+@pytest.mark.parametrize("umask", [0o000, 0o022, 0o277])
+def test_every_directory_it_creates_is_0700_whatever_the_umask_and_existing_ones_are_left_alone(
+    tmp_path: Path, umask: int
+) -> None:
+    os.chmod(tmp_path, 0o755)  # an existing parent (think /var/lib) keeps its mode
+    old = os.umask(umask)
+    try:
+        ensure_private_dir(tmp_path / "data" / "results" / "weekly")
+    finally:
+        os.umask(old)
+    modes = {
+        p.name: p.stat().st_mode & 0o777 for p in (tmp_path, tmp_path / "data", tmp_path / "data" / "results")
+    }
+    assert modes == {tmp_path.name: 0o755, "data": 0o700, "results": 0o700}
+    assert (tmp_path / "data" / "results" / "weekly").stat().st_mode & 0o777 == 0o700

@@ -25,6 +25,7 @@ from jointstat.circuit.reference import aes128
 from jointstat.protocol import AbortReason, EvaluatorSession, GarblerSession, signer, verifier
 from jointstat.protocol import frames as fr
 from jointstat.protocol.session import Session
+from jointstat.statements import transcript_signature_ok
 from jointstat.transport import Limits, SessionIds, SessionRefused, SessionServer, run_client
 from jointstat.transport.channel import MESSAGE_OPTIONS, METHOD_PATH, ClientStream
 from jointstat.transport.driver import SessionResult, drive
@@ -107,6 +108,20 @@ async def serve_and_connect(
     return server_result, client_result
 
 
+async def frames_sent(session: Session, count: int, within_s: float = 20.0) -> None:
+    """Wait until ``session`` has sent ``count`` frames; fail at once if it ends first, or after ``within_s``."""
+    loop = asyncio.get_running_loop()
+    deadline = loop.time() + within_s
+    while session.frames_sent < count:
+        if session.ended:
+            raise AssertionError(f"the session ended ({session.state}) after {session.frames_sent} frames")
+        if loop.time() > deadline:
+            raise AssertionError(
+                f"the session sent {session.frames_sent} frames in {within_s:g} s, not {count}"
+            )
+        await asyncio.sleep(0.001)
+
+
 def assert_nothing_released(*results: SessionResult) -> None:
     for r in results:
         assert not r.completed and r.outputs is None and r.transcript_digest is None
@@ -127,7 +142,9 @@ async def test_aes128_gives_the_evaluator_the_fips197_ciphertext_and_the_garbler
     assert aes128.bits_to_block(e.outputs) == FIPS197_C1_CIPHERTEXT
     assert g.outputs is not None and g.outputs.size == 0  # the ciphertext goes to the evaluator only
     assert g.transcript_digest == e.transcript_digest
-    assert verifier(nodes.bakery_key.public_key())(e.peer_signature, e.transcript_digest)
+    assert transcript_signature_ok(
+        nodes.bakery_key.public_key(), b"aes-fips197-c1".hex(), e.transcript_digest, e.peer_signature
+    )
     # Table bytes dominate what crossed the wire: 32 bytes for each of the 6,400 AND gates, both directions counted.
     assert g.bytes_on_wire == e.bytes_on_wire >= 32 * layered.n_and
     assert g.counters.bytes_sent == e.counters.bytes_received
@@ -288,8 +305,7 @@ async def test_cancelling_the_client_aborts_the_server_side_too(nodes: Nodes, wi
         client = asyncio.create_task(
             run_client(evaluator, f"127.0.0.1:{server.port}", nodes.mill_tls, limits=LIMITS)
         )
-        while garbler.frames_sent < 20:  # wait until tables flow
-            await asyncio.sleep(0.001)
+        await frames_sent(garbler, 20)  # wait until tables flow
         client.cancel()
         with pytest.raises(asyncio.CancelledError):
             await client
@@ -315,8 +331,7 @@ async def test_stopping_the_server_mid_session_aborts_the_client(nodes: Nodes, w
     client = asyncio.create_task(
         run_client(evaluator, f"127.0.0.1:{server.port}", nodes.mill_tls, limits=LIMITS)
     )
-    while garbler.frames_sent < 20:
-        await asyncio.sleep(0.001)
+    await frames_sent(garbler, 20)
     await server.stop(0)
     e = await asyncio.wait_for(client, timeout=LIMITS.idle_timeout_s + 5)
     g = await asyncio.wait_for(expected, timeout=5)

@@ -170,6 +170,61 @@ def test_check_peer_refuses_tls_below_1_3_plaintext_and_missing_certificates(pki
         check_peer({"transport_security_type": [b"ssl"], "ssl_tls_version": [b"TLSv1.3"]}, pinned)
 
 
+def test_a_pinned_file_must_hold_the_peers_own_certificate_only(pki: PKI) -> None:
+    # A leaf + CA "full chain" would make the CA a trust anchor: any certificate it issues for the peer's name would
+    # pass the client's TLS check. A CA alone, or two certificates of any kind, are refused likewise.
+    for pinned, words in (
+        (pki.north.certificate + pki.ca.certificate, "holds 2 certificates"),
+        (pki.ca.certificate, "is a CA certificate"),
+        (pki.north.certificate + pki.north_twin.certificate, "holds 2 certificates"),
+    ):
+        with pytest.raises(
+            ValueError, match=f"pinned peer certificate 0: {words}.*pin the peer's own certificate"
+        ):
+            node_tls(pki.south, pinned)
+
+
+async def test_a_client_connects_only_to_the_server_whose_fingerprint_it_was_given(
+    pki: PKI, tiny: LayeredCircuit
+) -> None:
+    client_tls = node_tls(pki.south, pki.north)
+    assert client_tls.channel_credentials(fingerprint(pki.north.certificate)) is not None
+    with pytest.raises(ValueError, match="the pinned server certificate is not the one expected"):
+        client_tls.channel_credentials(fingerprint(pki.north_twin.certificate))
+    with pytest.raises(ValueError, match="a client pins exactly one server certificate"):
+        node_tls(pki.south, pki.north, pki.north_twin).channel_credentials()
+    garbler, evaluator = pair(tiny, b"tls-expected-fingerprint")
+    async with SessionServer(node_tls(pki.north, pki.south), limits=LIMITS) as server:
+        expected = server.expect(garbler)
+        result = await run_client(
+            evaluator,
+            f"127.0.0.1:{server.port}",
+            client_tls,
+            limits=LIMITS,
+            peer_fingerprint=fingerprint(pki.north.certificate),
+        )
+        assert result.completed and (await expected).completed
+
+
+async def test_a_server_with_the_pinned_certificate_but_not_the_peers_signing_key_is_refused_at_its_hello(
+    pki: PKI, tiny: LayeredCircuit
+) -> None:
+    garbler, evaluator = pair(tiny, b"tls-impostor-signing-key")
+    garbler._sign = signer(Ed25519PrivateKey.generate())  # its TLS key leaked, the peer's signing key did not
+    async with SessionServer(node_tls(pki.north, pki.south), limits=LIMITS) as server:
+        server.expect(garbler)
+        result = await run_client(
+            evaluator,
+            f"127.0.0.1:{server.port}",
+            node_tls(pki.south, pki.north),
+            limits=LIMITS,
+            peer_fingerprint=fingerprint(pki.north.certificate),
+        )
+    assert not result.completed and result.abort is not None and not result.abort.by_peer
+    assert result.abort.reason.name == "BAD_SIGNATURE" and "hello is not signed" in result.abort.message
+    assert result.counters.frames_sent == 2  # its hello and its abort: no OT, nothing of its inputs
+
+
 def test_node_tls_checks_its_material_and_names_what_is_wrong(pki: PKI) -> None:
     with pytest.raises(ValueError, match="pinned_peers: at least one"):
         NodeTLS(pki.north.certificate, pki.north.private_key, ())

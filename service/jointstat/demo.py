@@ -303,7 +303,9 @@ def run_nodes(work: Path | None = None) -> int:
     work = work or REPO / "var" / "demo"
     if work.exists():
         shutil.rmtree(work)
-    work.mkdir(parents=True, mode=0o700)
+    from jointstat.node.secrets import ensure_private_dir
+
+    ensure_private_dir(work)
     _say("jointstat demo: two nodes on this machine compute a keyed-join statistic over invented records")
     _say()
     _say(

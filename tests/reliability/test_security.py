@@ -218,7 +218,8 @@ async def test_logs_job_store_results_keys_and_config_are_owner_only_even_under_
                 tmp_path / f"{faults.NODE_NAME}.yaml",
                 c.peer_log,
             ]
-            directories = [Path(node.data_dir), result, c.keys.directory]
+            directories = [Path(node.data_dir), result.parent, result, c.keys.directory]
+            directories += [p for p in Path(node.data_dir).rglob("*") if p.is_dir()]
     finally:
         os.umask(old)
     assert served.node.outputs == faults.expected_result()

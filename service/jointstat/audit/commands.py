@@ -41,13 +41,17 @@ def _verify(args: argparse.Namespace) -> int:
     from jointstat.audit.verify import verify_log
 
     key = _key(args.key)
-    report = verify_log(_read(args.log), key)
+    report = verify_log(_read(args.log), key, allow_open=args.allow_open)
     if args.json:
         print(json.dumps({"log": args.log, **report.to_dict()}, indent=2))
         return 0 if report.ok else 1
     if report.problem is not None:
-        print(f"{args.log}: first bad record at {report.problem}")
-        print(f"{args.log}: the {report.records} records before it verify")
+        if report.problem.check in ("unclosed", "open"):
+            print(f"{args.log}: the log's end is not closed: {report.problem}")
+            print(f"{args.log}: its {report.records} records verify")
+        else:
+            print(f"{args.log}: first bad record at {report.problem}")
+            print(f"{args.log}: the {report.records} records before it verify")
         return 1
     outcomes = Counter(s.outcome for s in report.sessions.values())
     summary = ", ".join(f"{n} {what}" for what, n in sorted(outcomes.items())) or "none"
@@ -57,6 +61,21 @@ def _verify(args: argparse.Namespace) -> int:
     )
     print(f"  public key {report.public_key}")
     print(f"  sessions: {len(report.sessions)} ({summary})")
+    if report.ends_with_checkpoint:
+        print(
+            f"  ends with a signed checkpoint: {report.records - 1} records before it, head {report.last_hash}"
+            " (note both: a later copy of this log must contain them)"
+        )
+    else:
+        since = f"line {report.last_checkpoint}" if report.last_checkpoint is not None else "none"
+        print(f"  does not end with a checkpoint (allowed by --allow-open; the last is at {since}):")
+        print("  records after the last checkpoint are not protected against removal")
+    if report.recovered:
+        lines = ", ".join(str(n) for n in report.recovered)
+        print(
+            f"  reopened after it was not closed at line(s) {lines}: records written just before may have been lost"
+            " (a crash) or removed"
+        )
     return 0
 
 
@@ -64,7 +83,13 @@ def _compare(args: argparse.Namespace) -> int:
     from jointstat.audit.verify import compare_logs
 
     mine_key, theirs_key = _key(args.my_key), _key(args.their_key)
-    report = compare_logs(_read(args.mine), _read(args.theirs), mine_key=mine_key, theirs_key=theirs_key)
+    report = compare_logs(
+        _read(args.mine),
+        _read(args.theirs),
+        mine_key=mine_key,
+        theirs_key=theirs_key,
+        allow_open=args.allow_open,
+    )
     if args.json:
         print(json.dumps(report.to_dict(), indent=2))
         return 0 if report.ok else 1
@@ -93,6 +118,11 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     verify.add_argument("log", metavar="LOG", help="session log (JSON Lines)")
     verify.add_argument("--key", metavar="FILE", help="the node's public key (PEM); default: the log's own")
     verify.add_argument("--json", action="store_true", help="print one JSON object")
+    verify.add_argument(
+        "--allow-open",
+        action="store_true",
+        help="accept a log that does not end with a checkpoint or leaves a session open (a running node's)",
+    )
     verify.set_defaults(handler=_verify)
 
     compare = which.add_parser("compare", help="check that two nodes' logs attest to the same sessions")
@@ -101,4 +131,9 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     compare.add_argument("--my-key", metavar="FILE", help="pin this node's public key (PEM)")
     compare.add_argument("--their-key", metavar="FILE", help="pin the peer's public key (PEM)")
     compare.add_argument("--json", action="store_true", help="print one JSON object")
+    compare.add_argument(
+        "--allow-open",
+        action="store_true",
+        help="accept logs of running nodes (see audit verify --allow-open)",
+    )
     compare.set_defaults(handler=_compare)

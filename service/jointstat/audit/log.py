@@ -6,6 +6,12 @@ a log that does not verify, or that belongs to another node or key, is refused w
 the chain is never continued from a broken or foreign log. A new (or empty) log starts with a ``log_opened``
 record naming the node and its public key.
 
+Checkpoints (``records.Checkpoint``; what they catch: ``audit.verify``): the writer signs one right after
+``log_opened`` (cause ``opened``), after every ``session_completed`` or ``session_aborted`` (``session_ended``),
+when it closes the log (``closed``, unless the last record is a checkpoint already — a node closes its log when
+it stops) and when it opens a log whose last record is not a checkpoint (``recovered``: the previous writer did
+not close it — a crash — or records were removed; the place stays visible to an auditor).
+
 Each append builds the record (``seq``, ``time`` from the injected clock, ``kind``, ``session``, ``body``,
 ``prev`` = SHA-256 of the previous line), signs it with Ed25519 (RFC 8032) over the canonical JSON (RFC 8785) of
 everything but ``sig``, and writes the canonical line plus newline with one ``write`` on an ``O_APPEND``
@@ -37,6 +43,7 @@ from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey,
 from jointstat.audit.records import (
     FORMAT,
     AuditError,
+    Checkpoint,
     Kind,
     LogOpened,
     RecordBody,
@@ -46,12 +53,12 @@ from jointstat.audit.records import (
     node_name_ok,
     public_key_text,
     session_id_ok,
-    sign_transcript,
     signing_input,
     validate_body,
 )
 from jointstat.audit.verify import LogVerifier
 from jointstat.canonical import canonicalize
+from jointstat.statements import sign_transcript
 
 Clock = Callable[[], datetime]
 
@@ -89,6 +96,7 @@ class SessionLog:
         self._clock = clock
         self._lock = threading.Lock()
         self._broken = False
+        self._last_kind: Kind | None = None
         self._fd = self._open()
         try:
             self._load()
@@ -137,14 +145,18 @@ class SessionLog:
             self._seq, self._prev = 0, verifier.last_hash
             body = LogOpened(format=FORMAT, node=self.node_id, public_key=public_key_text(self._public))
             self._append(Kind.LOG_OPENED, None, body)
+            self._checkpoint("opened")
             return
-        report = verifier.finish()
+        report = verifier.finish(allow_open=True)
         if report.problem is not None:
             raise AuditError(f"audit log {self.path} does not verify, refusing to append: {report.problem}")
         if report.node != self.node_id:
             raise AuditError(f"audit log {self.path} belongs to node {report.node}, not {self.node_id}")
         self._rules = verifier.rules
         self._seq, self._prev = verifier.next_seq, verifier.last_hash
+        self._last_kind = verifier.last_kind
+        if self._last_kind is not Kind.CHECKPOINT:
+            self._checkpoint("recovered")
 
     # -- public API ------------------------------------------------------------------------------------------
 
@@ -161,6 +173,21 @@ class SessionLog:
         """Sessions started but neither completed nor aborted (e.g. cut short by a restart)."""
         with self._lock:
             return self._rules.open_sessions()
+
+    def snapshot(self) -> bytes:
+        """The log's bytes as written so far, read under the writer's lock: whole records only, never a record
+        half-way through its write (for verifying a log while its node runs). Blocks like an append."""
+        with self._lock:
+            if self._fd < 0:
+                raise AuditError(f"audit log {self.path} is closed")
+            chunks = []
+            offset = 0
+            while True:
+                chunk = os.pread(self._fd, 1 << 20, offset)
+                if not chunk:
+                    return b"".join(chunks)
+                chunks.append(chunk)
+                offset += len(chunk)
 
     def session_started(
         self,
@@ -201,9 +228,13 @@ class SessionLog:
     def transcript(self, session_id: str, digest: bytes) -> bytes:
         """Record the transcript digest with this node's signature over it; returns that 64-byte signature.
 
-        The returned signature is what goes to the peer in the finish frame (``records.sign_transcript``).
+        The returned signature is what goes to the peer in the finish frame (``statements.sign_transcript``).
         """
         hexdigest = _digest_hex(digest, "transcript digest")
+        if not isinstance(session_id, str) or not session_id_ok(session_id):
+            raise AuditError(
+                "session id: must be 1–128 characters of letters, digits and . _ : - (not first)"
+            )
         signature = sign_transcript(self._key, session_id, digest)
         self._typed(Kind.TRANSCRIPT, session_id, {"digest": hexdigest, "signature": encode_b64(signature)})
         return signature
@@ -236,10 +267,15 @@ class SessionLog:
         return self._typed(Kind.SESSION_ABORTED, session_id, body)
 
     def close(self) -> None:
+        """Sign a closing checkpoint (unless the last record is one) and close the file."""
         with self._lock:
             if self._fd >= 0:
-                os.close(self._fd)
-                self._fd = -1
+                try:
+                    if not self._broken and self._last_kind is not Kind.CHECKPOINT:
+                        self._checkpoint("closed")
+                finally:
+                    os.close(self._fd)
+                    self._fd = -1
 
     def __enter__(self) -> SessionLog:
         return self
@@ -261,7 +297,16 @@ class SessionLog:
             self._rules.check(kind, session_id, typed, self._public)
             seq = self._append(kind, session_id, typed)
             self._rules.apply(kind, session_id, typed, self._public, line=seq + 1)
+            if kind in (Kind.SESSION_COMPLETED, Kind.SESSION_ABORTED):
+                self._checkpoint("session_ended")
             return seq
+
+    def _checkpoint(self, cause: str) -> int:
+        """Append a checkpoint of the chain so far (the caller holds the lock, or is the constructor)."""
+        body = Checkpoint(
+            records=self._seq, head=self._prev, open_sessions=len(self._rules.open_sessions()), cause=cause
+        )
+        return self._append(Kind.CHECKPOINT, None, body)
 
     def _append(self, kind: Kind, session_id: str | None, body: RecordBody) -> int:
         if self._fd < 0:
@@ -287,6 +332,7 @@ class SessionLog:
         seq = self._seq
         self._prev = hashlib.sha256(line).hexdigest()
         self._seq += 1
+        self._last_kind = kind
         return seq
 
 

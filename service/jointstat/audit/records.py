@@ -8,7 +8,9 @@ Theory of operation: a record is one canonical-JSON object (RFC 8785) on one lin
 ``prev`` is :data:`GENESIS` (64 zeros). ``sig`` is an Ed25519 signature (RFC 8032) by the node's signing key over
 ``RECORD_CONTEXT`` followed by the canonical bytes of the record without ``sig``. Chaining every record to its
 predecessor in the manner of RFC 6962's hash chains means no record can be changed, dropped, reordered or
-inserted without breaking every later link; the signatures say who wrote it.
+inserted without breaking every later link; the signatures say who wrote it. ``log_opened`` and ``checkpoint``
+records belong to no session (``session`` is null); a checkpoint states the size and head of the chain before it
+(what it catches and what it does not: ``audit.verify``).
 
 Bodies are pydantic models, one per record kind, strict and closed (no extra fields, no coercion): the writer can
 only pass the whitelisted, typed fields below, which carry identifiers, digests, timings, byte counts and
@@ -21,9 +23,9 @@ digest and its signature over it); then one ``peer_attestation`` (the peer's sig
 the finish frame); then ``session_completed``. ``session_aborted`` may end a session at any point before that.
 Nothing follows a session's end.
 
-The transcript statement both nodes sign is ``TRANSCRIPT_CONTEXT`` followed by the canonical bytes of
-``{"session": id, "transcript": hex digest}``; :func:`sign_transcript` / :func:`transcript_signature_ok` are the
-one definition of it, used by the protocol when it builds and checks the finish frame.
+The transcript statement both nodes sign (and send in their finish frames) is defined once, in
+``jointstat.statements``, which the protocol and this package both use (``statements.sign_transcript`` and
+``statements.transcript_signature_ok``).
 """
 
 from __future__ import annotations
@@ -36,17 +38,16 @@ from datetime import UTC, datetime
 from enum import StrEnum
 from typing import Annotated, Any, Literal
 
-from cryptography.exceptions import InvalidSignature
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 from cryptography.hazmat.primitives.serialization import Encoding, PublicFormat
 from pydantic import BaseModel, ConfigDict, Field, StringConstraints, ValidationError, field_validator
 
 from jointstat.canonical import MAX_SAFE_INTEGER, canonicalize
+from jointstat.statements import transcript_signature_ok
 
 FORMAT = "jointstat-audit/1"
 GENESIS = "0" * 64
 RECORD_CONTEXT = b"jointstat audit record v1\x00"
-TRANSCRIPT_CONTEXT = b"jointstat transcript v1\x00"
 ENVELOPE_FIELDS = frozenset({"seq", "time", "kind", "session", "body", "prev", "sig"})
 MAX_DETAIL = 300
 
@@ -72,6 +73,7 @@ class Kind(StrEnum):
     PEER_ATTESTATION = "peer_attestation"
     SESSION_COMPLETED = "session_completed"
     SESSION_ABORTED = "session_aborted"
+    CHECKPOINT = "checkpoint"
 
 
 NodeName = Annotated[str, StringConstraints(pattern=NODE_NAME_PATTERN, max_length=63)]
@@ -154,6 +156,16 @@ class SessionAborted(RecordBody):
         return detail
 
 
+class Checkpoint(RecordBody):
+    """The writer's signed statement of the chain so far: ``records`` before this one, ``head`` the SHA-256 of the
+    last of them (the size and root of RFC 6962's signed tree head, for a hash chain), sessions open, and why."""
+
+    records: Count
+    head: HexDigest
+    open_sessions: Count
+    cause: Literal["opened", "session_ended", "closed", "recovered"]
+
+
 BODIES: dict[Kind, type[RecordBody]] = {
     Kind.LOG_OPENED: LogOpened,
     Kind.SESSION_STARTED: SessionStarted,
@@ -162,6 +174,7 @@ BODIES: dict[Kind, type[RecordBody]] = {
     Kind.PEER_ATTESTATION: PeerAttestation,
     Kind.SESSION_COMPLETED: SessionCompleted,
     Kind.SESSION_ABORTED: SessionAborted,
+    Kind.CHECKPOINT: Checkpoint,
 }
 
 
@@ -246,29 +259,6 @@ def public_key_from_text(text: str) -> Ed25519PublicKey | None:
 
 def signing_input(record_without_sig: dict[str, Any]) -> bytes:
     return RECORD_CONTEXT + canonicalize(record_without_sig)
-
-
-def transcript_statement(session_id: str, digest: bytes) -> bytes:
-    """The bytes both nodes sign to attest a session's transcript digest."""
-    if not session_id_ok(session_id):
-        raise AuditError("session id: must be 1–128 characters of letters, digits and . _ : - (not first)")
-    if len(digest) != 32:
-        raise AuditError(f"transcript digest: must be 32 bytes (SHA-256), got {len(digest)}")
-    return TRANSCRIPT_CONTEXT + canonicalize({"session": session_id, "transcript": digest.hex()})
-
-
-def sign_transcript(key: Ed25519PrivateKey, session_id: str, digest: bytes) -> bytes:
-    """This node's 64-byte signature over the transcript statement (sent to the peer in the finish frame)."""
-    return key.sign(transcript_statement(session_id, digest))
-
-
-def transcript_signature_ok(key: Ed25519PublicKey, session_id: str, digest: bytes, signature: bytes) -> bool:
-    """Whether ``signature`` is ``key``'s signature over the transcript statement for this session and digest."""
-    try:
-        key.verify(signature, transcript_statement(session_id, digest))
-    except (InvalidSignature, AuditError):
-        return False
-    return True
 
 
 @dataclass

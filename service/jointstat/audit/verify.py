@@ -12,12 +12,38 @@ names by line number, sequence number and the check that failed, in this order:
 ``signature``  the Ed25519 signature (RFC 8032) does not verify under the node's key;
 ``session``    the record breaks the per-session rules (see ``records.SessionRules``), including a transcript or
                peer signature that does not verify;
-``truncated``  the file ends in the middle of a line.
+``checkpoint`` a checkpoint misstates the chain before it (its size, its head or the number of open sessions);
+``truncated``  the file ends in the middle of a line;
+``unclosed``   the last record is not a checkpoint (unless ``allow_open``);
+``open``       a session was started and never ended (unless ``allow_open``).
 
 Because every line must be the canonical form of its value, every value has one accepted spelling, and every
 field but ``sig`` is signed while ``sig`` itself must verify: any change to any byte of a record is caught at that
 record (or, for the newline between two records, as a JSON error where they merge). The hash chain additionally
-catches records removed, reordered or inserted whole.
+catches records removed, reordered or inserted whole — anywhere but at the end.
+
+What the chain and its checkpoints catch, and what they do not
+---------------------------------------------------------------
+Removing records from the *end* of a log leaves a shorter log whose links and signatures all verify: a hash
+chain alone cannot show it. So the writer signs a ``checkpoint`` — the number of records before it and the
+SHA-256 of the last of them (the size and head of the chain, as RFC 6962 §3.5's signed tree head gives the size
+and root of a Merkle tree), and how many sessions are open — when it creates a log, when a session ends, when it
+closes the log, and when it reopens a log that was not closed (cause ``recovered``). A log must end with a
+checkpoint and leave no session open, so removing the last records of a session, or anything written after the
+last checkpoint, is caught (``unclosed`` or ``open``); ``allow_open`` waives both for the log of a running node,
+whose tail is legitimately unfinished, and then nothing after the last checkpoint is protected.
+
+Not caught by a log on its own:
+
+- cutting it back to an earlier checkpoint, i.e. removing whole ended sessions together with their checkpoints:
+  the shorter log is a valid log. It is caught against something kept elsewhere — the peer's log (``audit
+  compare`` names a session with a transcript on one side only) or a checkpoint noted earlier (its ``records``
+  and ``head``: a later log must have that head at that size, the check an RFC 6962 client makes against tree
+  heads it has seen);
+- records lost or removed at a ``recovered`` checkpoint: the writer found the log not closed (a crash, or records
+  removed while the node was down) and cannot tell which; the report lists those lines;
+- anything done by whoever holds the node's signing key, who can write and sign any log; pinning the public key
+  (``--key``) only stops a log re-signed under another key.
 
 Without ``public_key`` the key is taken from the log's own first record (trust on first use); an auditor who has
 the node's public key from elsewhere pins it, and a log re-signed end to end under another key then fails.
@@ -42,6 +68,7 @@ from jointstat.audit.records import (
     ENVELOPE_FIELDS,
     GENESIS,
     AuditError,
+    Checkpoint,
     Kind,
     LogOpened,
     SessionRules,
@@ -52,10 +79,10 @@ from jointstat.audit.records import (
     session_id_ok,
     signing_input,
     time_ok,
-    transcript_signature_ok,
     validate_body,
 )
 from jointstat.canonical import CanonicalError, canonicalize, parse
+from jointstat.statements import transcript_signature_ok
 
 _HEX = frozenset("0123456789abcdef")
 
@@ -87,6 +114,9 @@ class VerifyReport:
     last_hash: str
     problem: Problem | None
     sessions: dict[str, SessionState] = field(default_factory=dict)
+    last_checkpoint: int | None = None  # line of the last checkpoint record
+    ends_with_checkpoint: bool = False
+    recovered: list[int] = field(default_factory=list)  # lines of ``recovered`` checkpoints
 
     @property
     def ok(self) -> bool:
@@ -101,6 +131,9 @@ class VerifyReport:
             "last_hash": self.last_hash,
             "problem": None if self.problem is None else self.problem.to_dict(),
             "sessions": [s.to_dict() for s in self.sessions.values()],
+            "last_checkpoint": self.last_checkpoint,
+            "ends_with_checkpoint": self.ends_with_checkpoint,
+            "recovered": self.recovered,
         }
 
 
@@ -126,6 +159,9 @@ class LogVerifier:
         self.next_seq = 0
         self.last_hash = GENESIS
         self.rules = SessionRules()
+        self.last_kind: Kind | None = None
+        self.last_checkpoint: int | None = None
+        self.recovered: list[int] = []
         self._buffer = b""
         self._problem: Problem | None = None
 
@@ -133,6 +169,7 @@ class LogVerifier:
         twin = LogVerifier.__new__(LogVerifier)
         twin.__dict__.update(self.__dict__)
         twin.rules = self.rules.copy()
+        twin.recovered = list(self.recovered)
         return twin
 
     @property
@@ -159,24 +196,45 @@ class LogVerifier:
                 return
         self._buffer = buf[start:]
 
-    def finish(self) -> VerifyReport:
-        if self._problem is None:
+    def finish(self, allow_open: bool = False) -> VerifyReport:
+        """The report; unless ``allow_open``, a log must end with a checkpoint and leave no session open."""
+        problem = self._problem
+        if problem is None:
+            last = self.next_seq
             if self._buffer:
-                self._problem = Problem(
-                    self.next_seq + 1,
-                    None,
-                    "truncated",
-                    "the last line has no newline (an incomplete record)",
+                problem = Problem(
+                    last + 1, None, "truncated", "the last line has no newline (an incomplete record)"
                 )
-            elif self.next_seq == 0:
-                self._problem = Problem(1, None, "record", "the log is empty (no log_opened record)")
+            elif last == 0:
+                problem = Problem(1, None, "record", "the log is empty (no log_opened record)")
+            elif not allow_open and self.last_kind is not Kind.CHECKPOINT:
+                since = f"line {self.last_checkpoint}" if self.last_checkpoint is not None else "the start"
+                problem = Problem(
+                    last,
+                    last - 1,
+                    "unclosed",
+                    f"the log does not end with a signed checkpoint (the last is at {since}): records after it "
+                    "may have been removed; the log of a running node ends so (verify it with --allow-open)",
+                )
+            elif not allow_open and self.rules.open_sessions():
+                first = self.rules.sessions[self.rules.open_sessions()[0]]
+                problem = Problem(
+                    last,
+                    last - 1,
+                    "open",
+                    f"session {first.session_id} (line {first.line}) was started and never ended: its last records "
+                    "may have been removed; a node that stops ends its sessions (--allow-open for a running node)",
+                )
         return VerifyReport(
             records=self.next_seq,
             node=self.node,
             public_key=self._key_text,
             last_hash=self.last_hash,
-            problem=self._problem,
+            problem=problem,
             sessions=dict(self.rules.sessions),
+            last_checkpoint=self.last_checkpoint,
+            ends_with_checkpoint=self.last_kind is Kind.CHECKPOINT,
+            recovered=list(self.recovered),
         )
 
     def _line(self, line: bytes) -> None:
@@ -225,9 +283,9 @@ class LogVerifier:
             kind = Kind(kind_text)
         except ValueError:
             raise _Bad("record", f"unknown kind {str(kind_text)[:40]!r}") from None
-        if kind is Kind.LOG_OPENED:
+        if kind in (Kind.LOG_OPENED, Kind.CHECKPOINT):
             if session is not None:
-                raise _Bad("record", "log_opened has no session")
+                raise _Bad("record", f"{kind.value} has no session")
         elif not isinstance(session, str) or not session_id_ok(session):
             raise _Bad("record", "session must be an id of letters, digits and . _ : - (1–128 characters)")
         if seq != self.next_seq:
@@ -265,13 +323,29 @@ class LogVerifier:
             self._key.verify(signature, signing_input(unsigned))
         except InvalidSignature:
             raise _Bad("signature", "the signature does not verify under the node's key") from None
-        if kind is not Kind.LOG_OPENED:
+        if kind is Kind.CHECKPOINT:
+            assert isinstance(typed, Checkpoint)
+            self._check_checkpoint(typed, seq, prev)
+        elif kind is not Kind.LOG_OPENED:
             try:
                 self.rules.apply(kind, session, typed, self._key, line=self.next_seq + 1)
             except AuditError as exc:
                 raise _Bad("session", str(exc)) from None
         self.last_hash = hashlib.sha256(line).hexdigest()
         self.next_seq += 1
+        self.last_kind = kind
+
+    def _check_checkpoint(self, body: Checkpoint, seq: int, prev: str) -> None:
+        if body.records != seq:
+            raise _Bad("checkpoint", f"it states {body.records} records before it; there are {seq}")
+        if body.head != prev:
+            raise _Bad("checkpoint", "its head is not the SHA-256 of the record before it")
+        open_now = len(self.rules.open_sessions())
+        if body.open_sessions != open_now:
+            raise _Bad("checkpoint", f"it states {body.open_sessions} open sessions; the log has {open_now}")
+        self.last_checkpoint = seq + 1
+        if body.cause == "recovered":
+            self.recovered.append(seq + 1)
 
 
 LogSource = bytes | str | PathLike[str]
@@ -283,11 +357,14 @@ def _read(source: LogSource) -> bytes:
     return Path(source).read_bytes()
 
 
-def verify_log(source: LogSource, public_key: Ed25519PublicKey | None = None) -> VerifyReport:
-    """Verify a whole log given as bytes or a path (``OSError`` if it cannot be read)."""
+def verify_log(
+    source: LogSource, public_key: Ed25519PublicKey | None = None, *, allow_open: bool = False
+) -> VerifyReport:
+    """Verify a whole log given as bytes or a path (``OSError`` if it cannot be read); ``allow_open`` accepts
+    a log that does not end with a checkpoint or leaves sessions open (a running node's)."""
     verifier = LogVerifier(public_key)
     verifier.feed(_read(source))
-    return verifier.finish()
+    return verifier.finish(allow_open=allow_open)
 
 
 @dataclass(frozen=True)
@@ -378,9 +455,11 @@ def compare_logs(
     *,
     mine_key: Ed25519PublicKey | None = None,
     theirs_key: Ed25519PublicKey | None = None,
+    allow_open: bool = False,
 ) -> CompareReport:
     """Verify both logs, match their sessions by id and check that each pair attests to the same run."""
-    a, b = verify_log(mine, mine_key), verify_log(theirs, theirs_key)
+    a = verify_log(mine, mine_key, allow_open=allow_open)
+    b = verify_log(theirs, theirs_key, allow_open=allow_open)
     problems: list[str] = []
     notes: list[str] = []
     if not a.ok:

@@ -29,6 +29,24 @@ def _faults(args: argparse.Namespace) -> int:
     return run(sessions=args.sessions, frames=args.frames, as_json=args.json)
 
 
+def _link(args: argparse.Namespace) -> int:
+    from jointstat.bench.link import run
+
+    return run(rate=args.rate, rtt=args.rtt, bulk=args.bytes, buffer=args.buffer, as_json=args.json)
+
+
+def _noise(args: argparse.Namespace) -> int:
+    from jointstat.bench.noise import run
+
+    return run(
+        epsilon=args.epsilon,
+        sensitivity=args.sensitivity,
+        samples=args.samples,
+        as_json=args.json,
+        lanes=args.lanes,
+    )
+
+
 def add_commands(sub: argparse._SubParsersAction) -> None:
     bench = sub.add_parser("bench", help="measure this machine (prints JSON with --json)")
     which = bench.add_subparsers(dest="what", required=True, metavar="WHAT")
@@ -62,3 +80,25 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     faults.add_argument("--frames", type=int, default=10_000, help="mutated frames to send (default 10,000)")
     faults.add_argument("--json", action="store_true", help="print one JSON object")
     faults.set_defaults(handler=_faults)
+
+    link = which.add_parser(
+        "link", help="the link emulator's rate, delay and ceiling on this machine (harness/link.py)"
+    )
+    link.add_argument("--rate", default="100Mbit/s", help="the rate each way (default 100Mbit/s)")
+    link.add_argument("--rtt", default="40ms", help="the round-trip time, half each way (default 40ms)")
+    link.add_argument("--bytes", help="bytes per bulk transfer (default: two seconds at the rate)")
+    link.add_argument("--buffer", help="each direction's buffer (default: rate × delay + 20 ms of queue)")
+    link.add_argument("--json", action="store_true", help="print one JSON object")
+    link.set_defaults(handler=_link)
+    noise = which.add_parser(
+        "noise",
+        help="discrete Laplace noise drawn through the garbled circuit, checked against its exact law",
+    )
+    noise.add_argument("--epsilon", default="0.5", help="privacy parameter ε, a decimal (default 0.5)")
+    noise.add_argument(
+        "--sensitivity", type=int, default=1, help="sensitivity Δ, a positive integer (default 1)"
+    )
+    noise.add_argument("--samples", type=int, default=200_000, help="samples to draw (default 200,000)")
+    noise.add_argument("--lanes", type=int, default=4096, help="samples per garbled circuit (default 4096)")
+    noise.add_argument("--json", action="store_true", help="print one JSON object")
+    noise.set_defaults(handler=_noise)

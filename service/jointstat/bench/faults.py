@@ -91,7 +91,7 @@ import grpc
 import numpy as np
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 
-from jointstat.audit import SessionLog, compare_logs, transcript_signature_ok, verify_log
+from jointstat.audit import SessionLog, compare_logs, verify_log
 from jointstat.bench.report import emit
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.compile import CompiledStatistic
@@ -578,14 +578,10 @@ class LoggedNode:
 
     def session(self, party: Party, sid: bytes, job: PeerJob) -> Session:
         assert self.log is not None
+        from jointstat.node.jobs import session_signing
+
         log, text, node_key = self.log, sid.hex(), self.keys.node_key
-
-        def sign(digest: bytes) -> bytes:
-            return log.transcript(text, digest)
-
-        def verify(signature: bytes, digest: bytes) -> bool:
-            return transcript_signature_ok(node_key, text, digest, signature)
-
+        sign, verify = session_signing(log, self.keys.signing_key, node_key, text)
         make = recording_session(self.secrets, CHUNK_BYTES)
         session = make(
             party,

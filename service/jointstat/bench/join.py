@@ -55,6 +55,9 @@ def join_manifest(rows: int) -> str:
         },
         "statistic": {"name": "keyed_join", "key": "key", "value": {"party": "evaluator", "column": "value"}},
         "outputs": {"evaluator": ["sum"]},
+        # A circuit built to be measured, never run: 32-bit keys at up to 2^20 rows expect up to 256 false
+        # matches, far above the default bound a job must meet, so the bound is lifted for it.
+        "matching": {"max_false_matches": 1000.0},
     }
     return yaml.safe_dump(data)
 

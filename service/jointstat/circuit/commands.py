@@ -40,8 +40,19 @@ def _schema(args: argparse.Namespace) -> int:
     return 0
 
 
+def _false_matches_line(manifest) -> str | None:  # type: ignore[no-untyped-def]
+    from jointstat.circuit.manifest import key_matching
+
+    f = key_matching(manifest)
+    if f is None:
+        return None
+    return (
+        f"false key matches: about {f.expected:.2g} expected at full capacity ({f.garbler_rows:,} × "
+        f"{f.evaluator_rows:,} rows, {f.width}-bit key hashes; n_g·n_e/2^w), agreed bound {f.bound:g}"
+    )
+
+
 def _check(args: argparse.Namespace) -> int:
-    from jointstat.circuit.inputs import expected_false_matches
     from jointstat.circuit.plan import LimitError, check_limits, memory_bytes
     from jointstat.cli import UserError
 
@@ -60,16 +71,9 @@ def _check(args: argparse.Namespace) -> int:
         )
     if m.disclosure.min_count:
         print(f"  disclosure: every result withheld below a count of {m.disclosure.min_count}")
-    keys = []
-    for party, layout in compiled.inputs.items():
-        table = m.table(party)
-        for name in layout.columns:
-            col = table.column(name)
-            if col is not None and col.type == "key":  # type: ignore[attr-defined]
-                keys.append((col.bits, table.capacity))
-    if len(keys) == 2:
-        fm = expected_false_matches(keys[0][1], keys[1][1], keys[0][0])
-        print(f"  key hashes: {keys[0][0]} bits; at full capacity about {fm:.2g} false matches expected")
+    line = _false_matches_line(m)
+    if line is not None:
+        print(f"  {line}")
     try:
         check_limits(compiled)
     except LimitError as exc:
@@ -91,8 +95,13 @@ def _plan(args: argparse.Namespace) -> int:
         rate = parse_rate(args.bandwidth)
     except ValueError as exc:
         raise UserError(str(exc)) from None
+    from jointstat.circuit.manifest import key_matching
+
     compiled = _compile(args.file)
     figures = plan(compiled, rate, measured_speed())
+    matching = key_matching(compiled.manifest)
+    figures["expected_false_matches"] = None if matching is None else matching.expected
+    figures["max_false_matches"] = compiled.manifest.matching.max_false_matches
     refused = None
     try:
         check_limits(compiled, est_seconds=float(figures["est_seconds"]))  # type: ignore[arg-type]
@@ -124,6 +133,9 @@ def _plan(args: argparse.Namespace) -> int:
     for key, value in rows:
         print(f"  {key:<{width}}  {value}")
     print(f"  assumes: {figures['assumes']}")
+    line = _false_matches_line(compiled.manifest)
+    if line is not None:
+        print(f"  {line}")
     if refused:
         raise UserError(refused)
     return 0

@@ -18,7 +18,8 @@ manifest); without it the hashed keys cannot be linked to identifiers. Collision
 a w-bit hash with probability 2^-w. Within one table of n keys some pair collides with probability about
 n(n − 1)/2^(w+1) (a collision makes two rows look like a duplicate key, which is reported); across the tables a
 keyed join counts about n_g·n_e/2^w false matches in expectation — at 32 bits with 65,536 rows on each side that
-is about 1, at 48 bits about 2^-16. ``expected_false_matches`` and ``collision_probability`` compute these.
+is about 1, at 48 bits about 2^-16. ``collision_probability`` computes the first; ``manifest.expected_false_matches``
+the second, and a manifest bounds it (``matching.max_false_matches``).
 
 Any problem raises ``InputError`` naming the file (or the query, with the URL's password hidden), the row and the
 column — never the value, which is private — and nothing is encoded, so nothing reaches the peer.
@@ -104,11 +105,6 @@ def collision_probability(n: int, width: int) -> float:
     if n < 2:
         return 0.0
     return -math.expm1(-n * (n - 1) / 2.0 / 2.0**width)
-
-
-def expected_false_matches(n_garbler: int, n_evaluator: int, width: int) -> float:
-    """Expected count of distinct identifiers across the two tables whose hashes collide."""
-    return n_garbler * n_evaluator / 2.0**width
 
 
 def check_secret(secret: bytes | None, source: str) -> bytes:

@@ -17,6 +17,14 @@ The ``statistic`` section is one of the registered statistics (``library.registr
 read. Errors name the field path and say what is wrong, e.g. ``tables.evaluator.columns[2].width: must be between
 1 and 64``; a YAML key given twice is an error too (a silently dropped key could hide a typo).
 
+False key matches: a ``key`` column keeps ``width`` bits of a MAC, so two different identifiers, one in each table,
+share a hash with probability 2^-w, and a statistic that matches keys across the tables expects
+n_g·n_e/2^w false matches at full capacity (n_g, n_e the tables' capacities; an upper bound, as pairs of equal
+identifiers cannot match falsely). ``expected_false_matches`` and ``width_for_false_matches`` compute it and the
+narrowest width that keeps it within a bound; ``key_matching`` gives a manifest's figures. The bound is
+``matching.max_false_matches`` (default 10^-6, common practice); a manifest above it is refused with the width
+that meets it. It is part of the manifest, hence of its digest: both organisations agree on it.
+
 Identity: ``canonical_json`` serialises the validated manifest (defaults filled in) in the style of RFC 8785 —
 object keys sorted, no whitespace, UTF-8, integers as digits and other numbers in the shortest round-trip form
 with ECMAScript exponent rules — so two files that differ only in layout, comments or key order have the same
@@ -26,15 +34,18 @@ canonical form. The manifest digest (``jointstat.circuit.compile``) hashes this 
 from __future__ import annotations
 
 import importlib.util
+import math
 import re
 import sys
 from collections.abc import Iterable
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Annotated, Any, ClassVar, Literal, Union
 
 from pydantic import (
     AfterValidator,
     BaseModel,
+    BeforeValidator,
     ConfigDict,
     Field,
     ValidationError,
@@ -49,6 +60,8 @@ MAX_CAPACITY = (
     1 << 24
 )  # rows per party table (what fits is decided by the memory and time limits, see circuit.plan)
 MAX_WIDTH = 64
+MIN_KEY_WIDTH = 16
+DEFAULT_MAX_FALSE_MATCHES = 1e-6  # common practice: a false match in about one job in a million
 
 # -- errors ------------------------------------------------------------------------------------------------------------
 
@@ -167,7 +180,7 @@ class KeyColumn(_Column):
     """An identifier, hashed to ``width`` bits with HMAC-SHA-256 (see ``jointstat.circuit.inputs``)."""
 
     type: Literal["key"]
-    width: Annotated[int, _between(16, MAX_WIDTH)] = 32
+    width: Annotated[int, _between(MIN_KEY_WIDTH, MAX_WIDTH)] = 32
     fold_case: bool = False
 
     numeric: ClassVar[bool] = False
@@ -239,6 +252,63 @@ class Disclosure(StrictModel):
     min_count: Annotated[int, _between(0, 2 * MAX_CAPACITY)] = 0
 
 
+def _number(value: Any) -> Any:
+    """A YAML number as a float; also the text of one, as YAML 1.1 reads ``1e-6`` (no dot) as a string."""
+    if isinstance(value, bool):
+        raise ValueError("must be a number, not true or false")
+    if isinstance(value, int):
+        return float(value)
+    if isinstance(value, str):
+        try:
+            return float(value.strip())
+        except ValueError:
+            raise ValueError("must be a number, e.g. 1.0e-6") from None
+    return value
+
+
+def _positive_finite(value: float) -> float:
+    if not math.isfinite(value) or value <= 0:
+        raise ValueError("must be a positive number, e.g. 1.0e-6")
+    return value
+
+
+class Matching(StrictModel):
+    """The false key matches (two different identifiers whose hashes collide) both parties accept in expectation."""
+
+    max_false_matches: Annotated[float, BeforeValidator(_number), AfterValidator(_positive_finite)] = (
+        DEFAULT_MAX_FALSE_MATCHES
+    )
+
+
+def expected_false_matches(n_garbler: int, n_evaluator: int, width: int) -> float:
+    """Expected false matches between tables of these sizes with ``width``-bit key hashes: n_g·n_e/2^w."""
+    return n_garbler * n_evaluator / 2.0**width
+
+
+def width_for_false_matches(n_garbler: int, n_evaluator: int, bound: float) -> int | None:
+    """The narrowest key width (16 to 64 bits) whose expected false matches are at most ``bound``, else None."""
+    for width in range(MIN_KEY_WIDTH, MAX_WIDTH + 1):
+        if expected_false_matches(n_garbler, n_evaluator, width) <= bound:
+            return width
+    return None
+
+
+@dataclass(frozen=True)
+class KeyMatching:
+    """A manifest's false-match figures at full capacity (see the module docstring)."""
+
+    width: int
+    garbler_rows: int
+    evaluator_rows: int
+    expected: float
+    bound: float
+    width_needed: int | None  # the narrowest width within the bound (None: no width up to 64 bits is)
+
+    @property
+    def within_bound(self) -> bool:
+        return self.expected <= self.bound
+
+
 class Job(StrictModel):
     name: JobName
     version: Annotated[int, _between(1, 2**31 - 1)]
@@ -270,6 +340,7 @@ class Manifest(StrictModel):
     statistic: StatisticParameters
     outputs: Outputs
     disclosure: Disclosure = Disclosure()
+    matching: Matching = Matching()
     plugins: list[str] = []
 
     def table(self, party: Any) -> Table:
@@ -407,7 +478,48 @@ def cross_check(manifest: Manifest) -> list[Problem]:
                 problems.append(Problem(f"outputs.{role}[{i}]", f"{name!r} is listed twice"))
     if not manifest.outputs.garbler and not manifest.outputs.evaluator:
         problems.append(Problem("outputs", "no party receives any output"))
+    figures = key_matching(manifest)
+    if figures is not None and not figures.within_bound:
+        problems.append(Problem("matching.max_false_matches", _over_bound(figures)))
     return problems
+
+
+def key_matching(manifest: Manifest) -> KeyMatching | None:
+    """The false-match figures of a manifest whose statistic matches key columns across the two tables (the
+    column each side needs unique, when both are keys), or None."""
+    from jointstat.circuit.library.registry import statistic_for
+    from jointstat.circuit.model import Party
+
+    needs = statistic_for(manifest).needs()
+    tables = [manifest.table(party) for party in Party]
+    columns = [table.column(needs[party].unique or "") for party, table in zip(Party, tables, strict=True)]
+    if any(col is None or getattr(col, "type", None) != "key" for col in columns):
+        return None
+    width = min(col.bits for col in columns if col is not None)
+    rows = [table.capacity for table in tables]
+    bound = manifest.matching.max_false_matches
+    return KeyMatching(
+        width=width,
+        garbler_rows=rows[0],
+        evaluator_rows=rows[1],
+        expected=expected_false_matches(rows[0], rows[1], width),
+        bound=bound,
+        width_needed=width_for_false_matches(rows[0], rows[1], bound),
+    )
+
+
+def _over_bound(f: KeyMatching) -> str:
+    what = (
+        f"identifiers hashed to {f.width}-bit keys give about {f.expected:.3g} false matches in expectation at full "
+        f"capacity ({f.garbler_rows:,} × {f.evaluator_rows:,} rows: n_g·n_e/2^w), above the agreed bound of "
+        f"{f.bound:g}"
+    )
+    if f.width_needed is None:
+        return f"{what}; no key width up to {MAX_WIDTH} bits meets it at these capacities: lower them or agree a larger bound"
+    return (
+        f"{what}; key columns of {f.width_needed} bits or more meet it (both tables' key column width), or the "
+        "parties may agree a larger bound"
+    )
 
 
 # -- canonical JSON ----------------------------------------------------------------------------------------------

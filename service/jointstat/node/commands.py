@@ -1,12 +1,14 @@
 """``jointstat node check`` validates a node config and the files it names; ``jointstat node run`` runs the node.
 
 ``node run`` performs the same checks first and refuses to start on any problem (exit code 1); it then runs the
-daemon (``jointstat.node.daemon``) until SIGTERM or SIGINT, aborts and logs running sessions, and exits 0.
+daemon (``jointstat.node.daemon``) until SIGTERM or SIGINT, aborts and logs running sessions, and exits 0. gRPC's
+own log lines are kept out of the node's log unless ``--grpc-logs`` is given.
 """
 
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 
 
@@ -39,6 +41,9 @@ def _check(args: argparse.Namespace) -> int:
 
 
 def _run(args: argparse.Namespace) -> int:
+    if not args.grpc_logs and "grpc" not in sys.modules:
+        # gRPC's C core reads its log level once, when gRPC is first imported; an operator's own setting is kept.
+        os.environ.setdefault("GRPC_VERBOSITY", "NONE")
     from jointstat.node.config import ConfigError, load_node_config
     from jointstat.node.daemon import run_node
 
@@ -47,7 +52,7 @@ def _run(args: argparse.Namespace) -> int:
     except ConfigError as exc:
         print(exc, file=sys.stderr)
         return 1
-    return run_node(config)
+    return run_node(config, grpc_logs=args.grpc_logs)
 
 
 def add_commands(sub: argparse._SubParsersAction) -> None:
@@ -64,4 +69,9 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
         help="run the node: peer service (mutual TLS), health, metrics, admin API and the job scheduler",
     )
     run.add_argument("--config", required=True, metavar="FILE", help="the node config (YAML)")
+    run.add_argument(
+        "--grpc-logs",
+        action="store_true",
+        help="let gRPC's own log lines through to the node's log (left out by default; GRPC_VERBOSITY applies)",
+    )
     run.set_defaults(handler=_run)

@@ -16,13 +16,17 @@ Sections and defaults (all paths relative to the config file's directory unless 
   ``data_dir``, ``job_store`` (default ``<data_dir>/jobs.sqlite3``), ``session_log`` (default
   ``<data_dir>/sessions.jsonl``), ``results_dir`` (default ``<data_dir>/results``), ``max_sessions`` (default 4),
   ``session_deadline_seconds`` (default 3600), ``session_memory_mib`` (default 8192: a job whose program would
-  need more memory per party, as ``jointstat plan`` estimates it, is refused before its input is read).
+  need more memory per party, as ``jointstat plan`` estimates it, is refused before its input is read),
+  ``console`` (host:port of the operator console in the browser; off when absent; loopback only unless
+  ``console_behind_proxy`` is true), ``console_token_file`` (the console's login token, secret; default
+  ``<data_dir>/console.token``, made at the console's first start).
 * ``tls`` — ``certificate`` (this node's, PEM) and ``private_key`` (secret). There is no CA setting: the transport
   trusts only the pinned peer certificates (``jointstat.transport.tls``), never an issuer.
 * ``signing_key`` (secret), ``key_hashing_secret`` (secret, optional; needed by manifests with identifier keys).
 * ``peers`` — ``name``, ``address`` (host:port), ``certificate`` (the pinned peer certificate, PEM; it is the
-  trust anchor, so it is required), ``certificate_sha256`` (optional: hex SHA-256 of the certificate's DER, checked
-  against the file, for reading aloud when the file is exchanged), ``signing_public_key`` (PEM or base64).
+  trust anchor, so it is required, and must hold that one certificate only — no chain, no CA), ``certificate_sha256``
+  (optional: hex SHA-256 of the certificate's DER, checked against the file, for reading aloud when the file is
+  exchanged), ``signing_public_key`` (PEM or base64).
 * ``jobs`` — ``name``, ``manifest``, ``peer`` (a configured peer), ``input`` (exactly one of ``csv: {path}`` or
   ``sql: {url, query, password_file}``), ``schedule`` (``cron``, ``timezone`` default UTC, ``window_minutes``
   default 120), ``role`` (``garbler`` or ``evaluator``: which of the manifest's two parties this node is for
@@ -75,6 +79,8 @@ UNIX_PREFIX = "unix:"
 MAX_UNIX_PATH_BYTES = 107  # sun_path is 108 bytes on Linux, one of them the terminating NUL
 MIN_KEY_SECRET_BYTES = 16  # the rule jointstat.circuit.inputs applies to the key-hashing secret
 DEFAULT_METRICS = "127.0.0.1:7303"
+CONSOLE_TOKEN_FILE = "console.token"
+MIN_CONSOLE_TOKEN_CHARS = 32
 JOB_NAME = re.compile(r"[a-z0-9][a-z0-9._-]{0,63}")
 _HOST_LABEL = re.compile(r"(?!-)[A-Za-z0-9-]{1,63}(?<!-)")
 
@@ -348,6 +354,9 @@ class NodeSection(StrictModel):
     max_sessions: Annotated[int, _between(1, 64)] = 4
     session_deadline_seconds: Annotated[int, _between(1, 86400)] = 3600
     session_memory_mib: Annotated[int, _between(64, 1 << 22)] = 8192
+    console: BindAddress | None = None
+    console_behind_proxy: bool = False
+    console_token_file: ConfigPath | None = None
 
     @property
     def session_memory_bytes(self) -> int:
@@ -373,7 +382,45 @@ class NodeSection(StrictModel):
         out["metrics"] = self.metrics
         if self.health is not None:
             out["health"] = self.health
+        if self.console is not None:
+            out["console"] = self.console
         return out
+
+    def console_token_path(self) -> Path:
+        """The console's login token file: ``console_token_file``, else ``<data_dir>/console.token``."""
+        return self.console_token_file or self.data_dir / CONSOLE_TOKEN_FILE
+
+    def console_problems(self) -> list[Problem]:
+        """The console is off unless ``console`` is set; it binds to loopback unless ``console_behind_proxy``."""
+        problems = []
+        if self.console is None:
+            if self.console_behind_proxy:
+                problems.append(
+                    Problem("node.console_behind_proxy", "applies only to the console; set node.console")
+                )
+            if self.console_token_file is not None:
+                problems.append(
+                    Problem("node.console_token_file", "applies only to the console; set node.console")
+                )
+            return problems
+        if not self.console.is_loopback and not self.console_behind_proxy:
+            problems.append(
+                Problem(
+                    "node.console",
+                    f"{self.console} is not a loopback address; the console speaks plain HTTP, so it listens "
+                    "only on 127.0.0.1, [::1] or localhost unless node.console_behind_proxy is true (you serve "
+                    "it to others only through your own TLS-terminating proxy)",
+                )
+            )
+        if self.console_behind_proxy and self.console.is_loopback:
+            problems.append(
+                Problem(
+                    "node.console_behind_proxy",
+                    "the console address is loopback; set this only when a TLS-terminating proxy serves the "
+                    "console (the login cookie is then marked Secure and works over HTTPS only)",
+                )
+            )
+        return problems
 
 
 class TlsSection(StrictModel):
@@ -585,6 +632,7 @@ class NodeConfig(StrictModel):
             except ScheduleError as exc:  # the field validators apply the same rules; kept as a guarantee
                 problems.append(Problem(f"jobs[{i}].schedule", str(exc)))
         problems += self._address_problems()
+        problems += self.node.console_problems()
         if self.node.job_store == self.node.session_log:
             problems.append(Problem("node.session_log", "must be a different file from node.job_store"))
         return problems
@@ -643,6 +691,7 @@ class NodeConfig(StrictModel):
                             f"{self.key_hashing_secret}: must hold at least {MIN_KEY_SECRET_BYTES} bytes",
                         )
                     )
+        problems += self._console_token_problems()
         for i, job in enumerate(self.jobs):
             sql = job.input.sql
             if sql is not None and sql.password_file is not None:
@@ -654,6 +703,24 @@ class NodeConfig(StrictModel):
                 except SecretFileError as exc:
                     problems.append(Problem(f"jobs[{i}].input.sql.password_file", str(exc)))
         return problems
+
+    def _console_token_problems(self) -> list[Problem]:
+        """A configured console token file must exist; the default one is made at first start if missing."""
+        from jointstat.node.secrets import SecretFileError, read_secret_file
+
+        node = self.node
+        if node.console is None:
+            return []
+        path = node.console_token_path()
+        field = "node.console_token_file" if node.console_token_file is not None else "node.console"
+        if node.console_token_file is None and not path.exists():
+            return []
+        try:
+            data = read_secret_file(path, "console login token")
+        except SecretFileError as exc:
+            return [Problem(field, str(exc))]
+        problem = console_token_problem(data)
+        return [] if problem is None else [Problem(field, f"{path}: {problem}")]
 
     def check_secrets(self) -> None:
         """Raise ``ConfigError`` listing every secret-file problem (none: return)."""
@@ -673,7 +740,7 @@ class NodeConfig(StrictModel):
         if problem is not None:
             problems.append(Problem("tls.certificate", problem))
         for i, peer in enumerate(self.peers):
-            problem = _certificate_problem(peer.certificate, moment)
+            problem = _certificate_problem(peer.certificate, moment, pinned=True)
             if problem is not None:
                 problems.append(Problem(f"peers[{i}].certificate", problem))
             elif peer.certificate_sha256 is not None:
@@ -699,6 +766,19 @@ class NodeConfig(StrictModel):
         return problems
 
 
+def console_token_problem(data: bytes) -> str | None:
+    """What is wrong with a console token file's content (one line of printable ASCII, long enough), or None."""
+    try:
+        text = data.decode("ascii").removesuffix("\n")
+    except UnicodeDecodeError:
+        return "the login token must be printable ASCII text"
+    if not text.isprintable() or any(c.isspace() for c in text):
+        return "the login token must be one line of printable ASCII without spaces"
+    if len(text) < MIN_CONSOLE_TOKEN_CHARS:
+        return f"the login token must be at least {MIN_CONSOLE_TOKEN_CHARS} characters long"
+    return None
+
+
 def _clash(a: HostPort | UnixSocket, b: HostPort | UnixSocket) -> bool:
     if isinstance(a, UnixSocket) or isinstance(b, UnixSocket):
         return a == b
@@ -715,8 +795,11 @@ def _key_matches(key_pem: bytes, cert: Any) -> bool:
     return bool(key.public_key().public_bytes(*spki) == cert.public_key().public_bytes(*spki))
 
 
-def _certificate_problem(path: Path, now: datetime) -> str | None:
+def _certificate_problem(path: Path, now: datetime, *, pinned: bool = False) -> str | None:
+    """What is wrong with a certificate file, or None; a ``pinned`` peer file must be one non-CA certificate."""
     from cryptography import x509
+
+    from jointstat.transport.tls import pinned_certificate
 
     try:
         data = path.read_bytes()
@@ -730,6 +813,11 @@ def _certificate_problem(path: Path, now: datetime) -> str | None:
         cert = x509.load_pem_x509_certificate(data)
     except ValueError:
         return f"{path}: not a PEM certificate"
+    if pinned:
+        try:
+            cert = pinned_certificate(data, str(path))
+        except ValueError as exc:
+            return str(exc)
     if now < cert.not_valid_before_utc:
         return f"{path}: not valid before {cert.not_valid_before_utc:%Y-%m-%d %H:%M} UTC"
     if now >= cert.not_valid_after_utc:

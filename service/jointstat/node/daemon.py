@@ -14,16 +14,19 @@ one asyncio event loop:
   probes that hold no client certificate;
 - the Prometheus endpoint on ``node.metrics`` (``node.metrics``);
 - the admin API on ``node.admin`` (``node.admin``);
+- the operator console in the browser on ``node.console`` when set (``node.console``, seeing the node only
+  through ``node.nodeview.DaemonView``);
 - the scheduler: once at start-up, each initiated job's latest scheduled time whose window is still open and which
   the store has no run for — if it fell after this node's first start (``<data_dir>/first-start``), since a node
   that did not exist missed nothing — is run (catch-up); then it sleeps on the injected clock (``node.clock``)
   until the next scheduled time of any initiated job and starts the runs that are due (``schedule.Planner``).
 
 ``Node.stop()`` (SIGTERM or SIGINT in ``run_node``): health turns NOT_SERVING, new proposals are refused, the
-scheduler and the sessions this node initiated are cancelled, the peer server stops at once (so sessions it serves
-are cancelled too); the transport sends each peer an abort frame, and every session is logged ``session_aborted``
-and stored ``aborted`` before the log and the store are closed. A result file is only ever written whole
-(atomically), so a stop leaves either a complete result or none.
+scheduler stops; every running session — initiated or served — is asked to end (``NodeState.shutdown``) and
+sends its peer an abort frame with the reason ``peer_shutdown`` before its stream closes; once they have ended
+(or after a few seconds) the remaining job tasks are cancelled and the peer server stops. Every session is logged
+``session_aborted`` and stored ``aborted`` before the log and the store are closed. A result file is only ever written whole
+(atomically), so a stop leaves either a complete result or none. The console, when set, stops first.
 """
 
 from __future__ import annotations
@@ -68,6 +71,7 @@ log = logging.getLogger("jointstat.node")
 
 FIRST_START_FILE = "first-start"
 STOP_TIMEOUT_S = 30.0
+SHUTDOWN_MARGIN_S = 1.0  # common practice: slack beyond a session's own grace periods when the node stops
 KEEP_ENDED_SESSIONS = 200
 
 
@@ -114,10 +118,12 @@ class Node:
         self.peer_port: int | None = None
         self.health_port: int | None = None
         self.metrics_port: int | None = None
+        self.console_port: int | None = None
         self.started_at: datetime | None = None
         self._server: SessionServer | None = None
         self._health_server: grpc.aio.Server | None = None
         self._admin_server: grpc.aio.Server | None = None
+        self._console: Any = None  # console.Console when node.console is set
         self._scheduler: asyncio.Task[None] | None = None
         self._warm: asyncio.Task[None] | None = None
         self._jobs: set[asyncio.Task[Any]] = set()
@@ -136,6 +142,7 @@ class Node:
         from jointstat.node.secrets import ensure_private_dir
 
         ensure_private_dir(node.data_dir)
+        ensure_private_dir(node.session_log.parent)
         self.started_at = self.clock.now()
         self._first_start = self._read_first_start(node.data_dir, self.started_at)
         store = JobStore(node.job_store)
@@ -225,6 +232,7 @@ class Node:
             limits=self.state.limits,
             session_ids=self.state.session_ids,
             services=[proposal_service(lambda: runner, keys), add_health],
+            shutdown=self.state.shutdown,
         )
         self.state.server = self._server
         self.peer_port = await self._server.start()
@@ -247,7 +255,27 @@ class Node:
         if isinstance(node.admin, UnixSocket):
             os.chmod(node.admin.path, 0o600)
         self._admin_server = admin
+        if node.console is not None:
+            await self._start_console()
         await self.health.set("", health_pb2.HealthCheckResponse.SERVING)
+
+    async def _start_console(self) -> None:
+        """The operator console in the browser (``node.console``), seeing the node only through ``DaemonView``."""
+        from jointstat.node.console import Console
+        from jointstat.node.nodeview import DaemonView
+
+        node = self.config.node
+        assert node.console is not None
+        console = Console(
+            DaemonView(self),
+            host=node.console.host,
+            port=node.console.port,
+            behind_proxy=node.console_behind_proxy,
+            token_file=node.console_token_path(),
+            make_token=node.console_token_file is None,
+        )
+        self.console_port = await console.start()
+        self._console = console
 
     # -- scheduling ----------------------------------------------------------------------------------------------
 
@@ -325,11 +353,17 @@ class Node:
             state.stopping = True
         with contextlib.suppress(Exception):
             await self.health.enter_graceful_shutdown()
+        await self._stop_console()
         for background in (self._scheduler, self._warm):
             if background is not None:
                 background.cancel()
                 with contextlib.suppress(asyncio.CancelledError, Exception):
                     await background
+        if state is not None:
+            # Each running session tells its peer why it ends (peer_shutdown) before its stream closes.
+            state.shutdown.request()
+            # A session gets the abort grace to send its abort and as long again for the peer to end the call.
+            await state.shutdown.drained(timeout=2 * state.limits.abort_grace_s + SHUTDOWN_MARGIN_S)
         for task in list(self._jobs):
             task.cancel()
         if self._server is not None:
@@ -347,7 +381,14 @@ class Node:
             running,
         )
 
+    async def _stop_console(self) -> None:
+        console, self._console = self._console, None
+        if console is not None:
+            with contextlib.suppress(Exception):
+                await console.stop()
+
     async def _close_everything(self) -> None:
+        await self._stop_console()
         if self._server is not None:
             with contextlib.suppress(Exception):
                 await self._server.stop(None)
@@ -517,6 +558,10 @@ def _clear_stale_socket(path: Path) -> None:
     path.unlink()
 
 
+def _url_host(host: str) -> str:
+    return f"[{host}]" if ":" in host else host
+
+
 def _problem(message: str) -> list[Any]:
     from jointstat.problems import Problem
 
@@ -538,6 +583,8 @@ async def _run(config: NodeConfig) -> int:
         loop.add_signal_handler(sig, node.request_stop)
     n = config.node
     extra = f", health {n.health.host}:{node.health_port}" if n.health is not None else ""
+    if n.console is not None:
+        extra += f", console http://{_url_host(n.console.host)}:{node.console_port}/"
     jobs = "; ".join(f"{job.name} ({job_summary(job)})" for job in config.jobs)
     print(
         f"node {n.name}: serving peers on {n.listen.host}:{node.peer_port}, admin {n.admin}, "
@@ -553,9 +600,15 @@ async def _run(config: NodeConfig) -> int:
     return 0
 
 
-def run_node(config: NodeConfig) -> int:
-    """Run the node until SIGTERM or SIGINT; returns the process exit code."""
+def run_node(config: NodeConfig, *, grpc_logs: bool = False) -> int:
+    """Run the node until SIGTERM or SIGINT; returns the process exit code.
+
+    Without ``grpc_logs`` the records of gRPC's Python loggers (``grpc.*``) stay out of the node's log; its C
+    core's lines are kept out by ``node run`` (``GRPC_VERBOSITY``, which gRPC reads when it is first imported).
+    """
     logging.basicConfig(
         level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s: %(message)s", stream=sys.stderr
     )
+    if not grpc_logs:
+        logging.getLogger("grpc").setLevel(logging.CRITICAL + 1)
     return asyncio.run(_run(config))

@@ -17,9 +17,9 @@ thread; write ``session_started`` to the session log; call ``Session/Propose`` o
 with the job, the manifest digest, the session id, the scheduled time and the role. A refusal is logged
 (``session_aborted`` with the peer's reason code, e.g. ``outside_window``) and stored (``refused``). Once
 accepted, the session runs over ``Session/Exchange``; its ``sign`` callback is the session log's ``transcript``
-(so the log records the transcript digest and this node's signature over it as the finish frame is made) and
-``verify`` checks the peer's signature over the same statement (``audit.records``). Afterwards the phases go to
-the log, then either the peer's attestation, the result file and ``session_completed`` — or
+(so the log records the transcript digest and this node's signature over it as the finish frame is made; the
+hello is signed with the same key) and ``verify`` checks the peer's signatures (``session_signing``). Afterwards
+the phases go to the log, then either the peer's attestation, the result file and ``session_completed`` — or
 ``session_aborted`` with the abort's reason — and the store row is closed. ``run_job`` repeats failed attempts
 after the configured backoff (``schedule.Planner.retry_at``) while the window is open; refusals that retrying
 cannot cure (job not configured, digest mismatch, outside the window, role mismatch, malformed) are not retried.
@@ -40,8 +40,10 @@ nothing but ``withheld`` when the disclosure rule withheld them), are written as
 ``<job results>/<UTC time>-<session id>.json`` owner-only and atomically (``secrets.write_private_file``). The
 other party's inputs, labels, Δ and results never reach this node's logs or store.
 
-Stopping: a cancelled attempt (SIGTERM) is logged ``session_aborted`` (reason ``cancelled``) and stored
-``aborted``; the transport has already told the peer. Records of an ending session are written in a shielded
+Stopping: the node first asks its running sessions to end (``NodeState.shutdown``, ``transport.driver.Shutdown``):
+each sends its peer an abort frame with the reason ``peer_shutdown``, which the peer logs, and is logged here
+``session_aborted`` (reason ``cancelled``) and stored ``aborted``. Attempts still proposing or waiting are then
+cancelled and recorded the same way. Records of an ending session are written in a shielded
 task, so a cancellation never leaves a session half-recorded.
 """
 
@@ -63,26 +65,28 @@ from typing import Any, TypeVar
 
 import grpc
 import numpy as np
-from cryptography import x509
 from cryptography.hazmat.primitives import serialization
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 
+from jointstat import statements
 from jointstat.audit.log import SessionLog
-from jointstat.audit.records import AuditError, transcript_signature_ok
+from jointstat.audit.records import AuditError
 from jointstat.circuit.compile import CompiledStatistic
 from jointstat.circuit.model import Party
 from jointstat.node.clock import Clock
 from jointstat.node.config import JOB_NAME, JobConfig, NodeConfig
 from jointstat.node.metrics import NodeMetrics
 from jointstat.node.progress import ABORTED, COMPLETED, FAILED, PROPOSING, REFUSED, SessionTracker
+from jointstat.node.results import RESULT_FORMAT
 from jointstat.node.schedule import Planner
 from jointstat.node.store import JobStore
 from jointstat.protocol.frames import AbortReason
-from jointstat.protocol.session import Session, new_session
+from jointstat.protocol.session import Session, Sign, Verify, new_session
+from jointstat.statements import TRANSCRIPT, Statement
 from jointstat.transport.channel import MESSAGE_OPTIONS, SERVICE_NAME, SessionIds, describe_rpc_error
-from jointstat.transport.driver import Limits, SessionResult
+from jointstat.transport.driver import Limits, SessionResult, Shutdown
 from jointstat.transport.server import SessionServer
-from jointstat.transport.tls import NodeTLS, fingerprint
+from jointstat.transport.tls import NodeTLS, fingerprint, pinned_certificate
 from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
 
 log = logging.getLogger("jointstat.node")
@@ -93,7 +97,6 @@ PROPOSE_PATH = f"/{SERVICE_NAME}/{PROPOSE_METHOD}"
 PROPOSAL_TIMEOUT_S = 300.0  # the peer may compile the manifest before it answers
 CONNECT_TIMEOUT_S = 60.0
 SESSION_ID_BYTES = 16
-RESULT_FORMAT = "jointstat-result/1"
 MAX_MESSAGE = 300
 
 # Refusal codes: the wire enum's names in snake case are the reasons in logs, the store and metrics.
@@ -189,7 +192,9 @@ def load_node_keys(config: NodeConfig) -> NodeKeys:
     peers = {}
     for p in config.peers:
         pem = peer_certs[p.name]
-        cert = x509.load_pem_x509_certificate(pem)
+        cert = pinned_certificate(pem, f"peer {p.name}: {p.certificate}")
+        if p.certificate_sha256 is not None and fingerprint(cert).hex() != p.certificate_sha256:
+            raise ValueError(f"peer {p.name}: {p.certificate} is not the certificate of certificate_sha256")
         peers[p.name] = PeerIdentity(
             name=p.name,
             address=str(p.address),
@@ -207,6 +212,26 @@ def load_node_keys(config: NodeConfig) -> NodeKeys:
         peers=peers,
         key_secret=secret,
     )
+
+
+def session_signing(
+    session_log: SessionLog, key: Ed25519PrivateKey, peer_key: Ed25519PublicKey, sid: str
+) -> tuple[Sign, Verify]:
+    """A session's ``sign`` and ``verify`` on a node: its hello signed with the node's key, its transcript signed by
+    the session log (which records the digest and the signature as the finish frame is made), the peer's checked
+    against ``peer_key``; both refuse statements of any session but ``sid`` (``jointstat.statements``)."""
+
+    def sign(statement: Statement) -> bytes:
+        if statement.session != sid:
+            raise ValueError("asked to sign a statement of another session")
+        if statement.kind == TRANSCRIPT:
+            return session_log.transcript(sid, statement.digest)
+        return statements.sign(key, statement)
+
+    def verify(signature: bytes, statement: Statement) -> bool:
+        return statement.session == sid and statements.signature_ok(peer_key, statement, signature)
+
+    return sign, verify
 
 
 # -- preparing a job ------------------------------------------------------------------------------------------------
@@ -337,6 +362,7 @@ class NodeState:
     server: SessionServer | None = None
     sessions: dict[str, SessionTracker] = field(default_factory=dict)
     stopping: bool = False
+    shutdown: Shutdown = field(default_factory=Shutdown)  # ends running sessions with peer_shutdown on stop
 
     def running_sessions(self) -> int:
         return sum(1 for t in self.sessions.values() if not t.ended)
@@ -395,18 +421,8 @@ class JobRunner:
         self.state.sessions[a.sid] = tracker
         return tracker
 
-    def _sign_verify(
-        self, sid: str, peer: PeerIdentity
-    ) -> tuple[Callable[[bytes], bytes], Callable[[bytes, bytes], bool]]:
-        session_log = self.state.session_log
-
-        def sign(digest: bytes) -> bytes:
-            return session_log.transcript(sid, digest)
-
-        def verify(signature: bytes, digest: bytes) -> bool:
-            return transcript_signature_ok(peer.signing_key, sid, digest, signature)
-
-        return sign, verify
+    def _sign_verify(self, sid: str, peer: PeerIdentity) -> tuple[Sign, Verify]:
+        return session_signing(self.state.session_log, self.state.keys.signing_key, peer.signing_key, sid)
 
     async def _log_start(self, a: Attempt, party: Party, peer: PeerIdentity, digest: bytes) -> None:
         await _to_thread(
@@ -604,10 +620,12 @@ class JobRunner:
                 session,
                 peer.address,
                 peer.tls,
+                peer_fingerprint=peer.fingerprint,
                 limits=state.limits,
                 session_ids=state.session_ids,
                 counters=tracker.counters,
                 on_progress=tracker.on_progress,
+                shutdown=state.shutdown,
             )
         except asyncio.CancelledError:
             await _finish_despite_cancel(
@@ -911,7 +929,7 @@ async def propose(peer: PeerIdentity, proposal: pb.RunProposal) -> pb.RunAnswer:
     """Send a proposal to the peer over pinned mutual TLS; raises ``grpc.aio.AioRpcError`` if it does not arrive."""
     options = [*MESSAGE_OPTIONS, ("grpc.ssl_target_name_override", peer.tls.server_name())]
     async with grpc.aio.secure_channel(
-        peer.address, peer.tls.channel_credentials(), options=options
+        peer.address, peer.tls.channel_credentials(peer.fingerprint), options=options
     ) as channel:
         call = channel.unary_unary(
             PROPOSE_PATH,
@@ -970,5 +988,6 @@ __all__ = [
     "propose",
     "role_name",
     "role_of",
+    "session_signing",
     "write_result",
 ]

@@ -5,7 +5,8 @@ Each command reads the node config given by ``--config`` (default ``$JOINTSTAT_C
 address, and calls the admin API there (``node.admin``). ``jobs run NAME`` asks the node to run an initiated job
 now and follows its session; ``sessions show ID`` shows one session and, for a running session on a terminal,
 follows it with a progress bar (AND gates done of total, bytes, rate, time left); when the output is not a
-terminal it prints plain lines instead. ``--json`` prints the admin API's answer as it is.
+terminal it prints plain lines instead. ``--json`` prints the admin API's answer as it is, and nothing else (``jobs
+run --json`` waits without progress lines and prints the session's last state).
 
 Exit codes: 0 done (for ``jobs run``: the session completed); 1 the run or session did not complete; 2 a usage,
 config or connection problem.
@@ -97,9 +98,19 @@ def progress_line(s: dict[str, Any]) -> str:
     return ", ".join(p for p in parts if p)
 
 
-def follow(client: Any, session_id: str, *, tty: bool, prefix: str = "") -> dict[str, Any]:
-    """Show a session until it ends: a rich progress bar on a terminal, plain lines otherwise."""
+def follow(
+    client: Any, session_id: str, *, tty: bool, prefix: str = "", quiet: bool = False
+) -> dict[str, Any]:
+    """Show a session until it ends: a rich progress bar on a terminal, plain lines otherwise, nothing if ``quiet``.
+
+    Returns the session's last snapshot (the admin API's answer).
+    """
     snap = _call(client.session, session_id)
+    if quiet:
+        while snap.get("status") not in ENDED:
+            time.sleep(POLL_S)
+            snap = _call(client.session, session_id)
+        return snap
     if tty:
         from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
 
@@ -208,7 +219,7 @@ def _jobs_run(args: argparse.Namespace) -> int:
             print(f"job {args.name}: run requested, this node the {role}; first session {sid}")
         if args.detach:
             return 0
-        snap = follow(client, sid, tty=sys.stdout.isatty() and not args.json)
+        snap = follow(client, sid, tty=sys.stdout.isatty(), quiet=args.json)
     if args.json:
         print(json.dumps(snap, indent=2))
     elif snap.get("status") == "completed":

@@ -9,7 +9,9 @@ Symbolic links are followed (secret mounts often use them); the check is on the 
 :func:`write_private_file` writes a temporary file in the same directory (``O_CREAT | O_EXCL``, mode 0600, then
 ``fchmod`` to 0600 whatever the umask), fsyncs it, and moves it into place: by ``link`` when it must not overwrite
 (atomic: fails if the name exists), by ``rename`` otherwise; then fsyncs the directory. A reader sees either no
-file or the whole file, and never a moment where the file is readable by others.
+file or the whole file, and never a moment where the file is readable by others. :func:`ensure_private_dir`
+creates every missing directory of a path with mode 0700 (set explicitly, whatever the umask), and leaves
+directories that already exist as they are.
 """
 
 from __future__ import annotations
@@ -22,6 +24,7 @@ from pathlib import Path
 
 MAX_SECRET_BYTES = 1 << 20
 PRIVATE_MODE = 0o600
+PRIVATE_DIR_MODE = 0o700
 
 
 class SecretFileError(Exception):
@@ -127,12 +130,23 @@ def write_private_file(path: str | os.PathLike[str], data: bytes, *, overwrite: 
 
 
 def ensure_private_dir(path: str | os.PathLike[str]) -> Path:
-    """Create ``path`` (and parents) if missing, the leaf with mode 0700; an existing directory is kept as is."""
+    """Create ``path`` and any missing parents, each with mode 0700 whatever the umask; existing ones are kept."""
     p = Path(path)
     if p.exists() and not p.is_dir():
         raise SecretFileError(f"{p}: exists and is not a directory")
-    try:
-        p.mkdir(mode=0o700, parents=True, exist_ok=True)
-    except OSError as exc:
-        raise SecretFileError(f"{p}: cannot create directory ({exc.strerror})") from None
+    missing = []
+    for directory in (p, *p.parents):
+        if directory.exists():
+            break
+        missing.append(directory)
+    for directory in reversed(missing):  # outermost first
+        try:
+            os.mkdir(directory, PRIVATE_DIR_MODE)
+        except FileExistsError:
+            if not directory.is_dir():
+                raise SecretFileError(f"{directory}: exists and is not a directory") from None
+            continue  # made meanwhile by someone else: not ours to change
+        except OSError as exc:
+            raise SecretFileError(f"{directory}: cannot create directory ({exc.strerror})") from None
+        os.chmod(directory, PRIVATE_DIR_MODE)  # mkdir's mode is filtered by the umask
     return p

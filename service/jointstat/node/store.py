@@ -20,6 +20,8 @@ from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 
+from jointstat.node.secrets import SecretFileError, ensure_private_dir
+
 SCHEMA = """
 CREATE TABLE IF NOT EXISTS runs (
     id INTEGER PRIMARY KEY AUTOINCREMENT,
@@ -81,7 +83,7 @@ class JobStore:
     def __init__(self, path: str | Path) -> None:
         self.path = Path(path)
         try:
-            self.path.parent.mkdir(parents=True, exist_ok=True, mode=0o700)
+            ensure_private_dir(self.path.parent)
             fd = os.open(self.path, os.O_CREAT | os.O_RDWR, 0o600)
             os.close(fd)
             mode = self.path.stat().st_mode & 0o777
@@ -98,6 +100,8 @@ class JobStore:
                 self._db.execute("ALTER TABLE runs ADD COLUMN role TEXT")
         except sqlite3.Error as exc:
             raise StoreError(f"job store {self.path}: {exc}") from exc
+        except SecretFileError as exc:
+            raise StoreError(f"job store {self.path}: {exc}") from None
         for suffix in ("-wal", "-shm"):
             side = Path(str(self.path) + suffix)
             if side.exists():

@@ -54,8 +54,9 @@ class StateMachine:
     def receive(self, message: OTMessage) -> list[OTMessage]:
         """Take one message from the peer; return the messages to send in reply (possibly none)."""
         if not isinstance(message, OTMessage):
+            error = OTError(f"{self.role} in state {self._state!r}: expected an OTMessage")
             self._state = FAILED
-            raise OTError(f"{self.role} in state {self._state!r}: expected an OTMessage")
+            raise error
         return self._dispatch(message.kind, message)
 
     def _dispatch(self, event: str, message: OTMessage | None) -> list[OTMessage]:

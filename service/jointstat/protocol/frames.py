@@ -21,6 +21,11 @@ keeps each direction in order but the interleaving of the two directions is seen
 the digest is taken per direction and combined as
 SHA-256("jointstat transcript v1" ‖ len(sid) ‖ sid ‖ H(garbler → evaluator) ‖ H(evaluator → garbler)). Both sides
 therefore compute the same 32 bytes exactly when they sent and received the same frames in the same order.
+
+Hello: each side signs its hello (protocol version 2). The signed digest is
+SHA-256("jointstat hello v1" ‖ version ‖ role ‖ len(sid) ‖ sid ‖ len(m) ‖ m ‖ len(c) ‖ c), with m and c the
+manifest and circuit digests and every number 4 bytes big-endian — every field but the signature, each of fixed
+size or length-prefixed — and the signature is over the ``hello`` statement of ``jointstat.statements`` for it.
 """
 
 from __future__ import annotations
@@ -36,7 +41,7 @@ from google.protobuf.message import DecodeError
 from jointstat.circuit.model import Party
 from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
 
-PROTOCOL_VERSION = 2  # 2: programs instead of circuit lists (program digest, no constant labels)
+PROTOCOL_VERSION = 3  # 2: hellos are signed; 3: programs instead of circuit lists (program digest, no constants)
 MAX_FRAME_BYTES = 4 * 1024 * 1024
 MAX_PAYLOAD_BYTES = MAX_FRAME_BYTES - 64  # room for the frame's field tags and length prefixes
 MAX_SESSION_ID_BYTES = 64
@@ -131,6 +136,7 @@ def _tables_payload(data: memoryview) -> memoryview | None:
 
 
 _TRANSCRIPT_LABEL = b"jointstat transcript v1"
+_HELLO_LABEL = b"jointstat hello v1"
 
 
 class AbortReason(IntEnum):
@@ -151,6 +157,7 @@ class AbortReason(IntEnum):
     CANCELLED = pb.ABORT_REASON_CANCELLED
     CONNECTION_LOST = pb.ABORT_REASON_CONNECTION_LOST
     INTERNAL = pb.ABORT_REASON_INTERNAL
+    PEER_SHUTDOWN = pb.ABORT_REASON_PEER_SHUTDOWN
 
 
 def role_to_wire(party: Party) -> int:
@@ -248,20 +255,52 @@ def chunked_frames(kind: str, payload: bytes, chunk: int = MAX_PAYLOAD_BYTES) ->
     return [payload_frame(kind, payload[i : i + chunk]) for i in range(0, len(payload), chunk)]
 
 
+def hello_digest(
+    *, version: int, role: int, session_id: bytes, manifest_digest: bytes, program_digest: bytes
+) -> bytes:
+    """The digest a hello's signature covers: every field of the hello but the signature (module docstring).
+
+    ``role`` is the wire value (``pb.Role``). Each field has a fixed size or a length prefix, so two different
+    hellos never share a digest.
+    """
+    h = hashlib.sha256(_HELLO_LABEL)
+    h.update(int(version).to_bytes(4, "big"))
+    h.update(int(role).to_bytes(4, "big", signed=True))
+    for value in (session_id, manifest_digest, program_digest):
+        h.update(len(value).to_bytes(4, "big"))
+        h.update(bytes(value))
+    return h.digest()
+
+
+def hello_digest_of(hello: pb.Hello) -> bytes:
+    """``hello_digest`` of a hello's own fields, as they came."""
+    return hello_digest(
+        version=hello.protocol_version,
+        role=hello.role,
+        session_id=bytes(hello.session_id),
+        manifest_digest=bytes(hello.manifest_digest),
+        program_digest=bytes(hello.program_digest),
+    )
+
+
 def hello_frame(
     *,
     party: Party,
     session_id: bytes,
     manifest_digest: bytes,
     program_digest: bytes,
+    sign: Callable[[bytes], bytes] | None = None,
     version: int = PROTOCOL_VERSION,
 ) -> bytes:
+    """A hello; ``sign(digest) -> signature`` signs its ``hello_digest`` (without it the hello is unsigned)."""
     frame = pb.Frame()
     frame.hello.protocol_version = version
     frame.hello.manifest_digest = manifest_digest
     frame.hello.session_id = session_id
     frame.hello.role = role_to_wire(party)
     frame.hello.program_digest = program_digest
+    if sign is not None:
+        frame.hello.signature = sign(hello_digest_of(frame.hello))
     return encode(frame)
 
 

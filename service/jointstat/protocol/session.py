@@ -13,8 +13,12 @@ list, as wire bytes). The transport only moves the bytes.
 
 Flow (G garbler, E evaluator; every arrow is one or more frames, see ``proto/jointstat/v1/session.proto``):
 
-1. Both send ``hello`` at ``start()``. Each checks the peer's protocol version, role, session id, manifest digest
-   and program digest (the structure digest of ``Program``); any difference aborts before anything secret moves.
+1. Both send ``hello`` at ``start()``, signed with the node's Ed25519 key (the ``hello`` statement of
+   ``jointstat.statements``). Each checks the peer's protocol version, role and session id, then the signature
+   against the key it has configured for the peer (so an impostor, even one holding a TLS certificate the
+   transport accepted, is refused before any OT and before any decoding information moves), then the manifest
+   digest and the program digest (the structure digest of ``Program``); any difference aborts before anything
+   secret moves.
 2. OT: E → G ``base_ot`` (point A), G → E ``base_ot`` (128 points), then E → G ``ot_extension`` columns and
    G → E ``ot_extension`` corrections, batch by batch (E keeps a bounded window of batches in flight). G ends with
    the zero labels K of E's input wires, E with K ⊕ x·Δ for its input bits x.
@@ -27,8 +31,9 @@ Flow (G garbler, E evaluator; every arrow is one or more frames, see ``proto/joi
 4. E returns the labels of G's output wires (``garbler_output_labels``); G checks each is one of its two valid
    labels (else it aborts) and decodes them. G then sends the decoding bits and check tags of E's outputs only
    (``evaluator_output_decoding``); E checks every tag and decodes.
-5. Each side sends ``finish`` with its transcript digest (``frames.Transcript``) and its signature over it, and
-   checks the peer's: same digest, valid signature. Only then is the output released (``outputs``).
+5. Each side sends ``finish`` with its transcript digest (``frames.Transcript``) and its signature over it (the
+   ``transcript`` statement), and checks the peer's: same digest, valid signature. Only then is the output
+   released (``outputs``).
 
 Any error — an unexpected frame, a malformed one, an OT or output check that fails, a local failure reported by
 ``fail()`` — moves the session to ``failed``, raises ``ProtocolError`` whose ``frame`` is the abort frame for the
@@ -94,10 +99,13 @@ from jointstat.ot import (
 from jointstat.primitives.blocks import BLOCK_BYTES, BLOCK_DTYPE
 from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import AbortInfo, AbortReason, ProtocolError, Transcript
+from jointstat.statements import HELLO, TRANSCRIPT, Statement, session_text
 from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
 
-Sign = Callable[[bytes], bytes]
-Verify = Callable[[bytes, bytes], bool]
+# ``sign(statement) -> signature`` with this node's key; ``verify(signature, statement)`` against the peer's key
+# (``protocol.signing`` builds both from keys; the node plugs in its own, which also logs the transcript).
+Sign = Callable[[Statement], bytes]
+Verify = Callable[[bytes, Statement], bool]
 RandomBytes = Callable[[int], bytes]
 
 START = "start()"
@@ -429,12 +437,28 @@ class _Session:
     def _emit_payload(self, kind: str, payload: bytes) -> list[bytes]:
         return [self._emit(kind, f) for f in fr.chunked_frames(kind, payload)]
 
+    def _signature(self, kind: str, digest: bytes) -> bytes:
+        signature = self._sign(Statement(kind, session_text(self.session_id), digest))  # type: ignore[arg-type]
+        if not isinstance(signature, bytes | bytearray):
+            raise ProtocolError(
+                AbortReason.INTERNAL, f"sign() returned {type(signature).__name__}, not bytes"
+            )
+        return bytes(signature)
+
+    def _signature_ok(self, kind: str, signature: bytes, digest: bytes) -> bool:
+        try:
+            statement = Statement(kind, session_text(self.session_id), digest)  # type: ignore[arg-type]
+            return self._verify(bytes(signature), statement) is True
+        except Exception:
+            return False
+
     def _on_start(self, _frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
         hello = fr.hello_frame(
             party=self.PARTY,
             session_id=self.session_id,
             manifest_digest=self.manifest_digest,
             program_digest=self.program_digest,
+            sign=lambda digest: self._signature(HELLO, digest),
         )
         return AWAITING_HELLO, [self._emit(fr.HELLO, hello)]
 
@@ -454,6 +478,15 @@ class _Session:
             )
         if hello.session_id != self.session_id:
             raise ProtocolError(AbortReason.SESSION_MISMATCH, "peer's hello names another session id")
+        # Before the digests are compared and anything else moves: the hello must be signed by the key configured for
+        # the peer (the version, role and session id checked above are public and only ever end the session).
+        if not self._signature_ok(HELLO, bytes(hello.signature), fr.hello_digest_of(hello)):
+            raise ProtocolError(
+                AbortReason.BAD_SIGNATURE,
+                "the peer's hello is not signed by the signing key configured for the peer "
+                f"({'no signature' if not hello.signature else 'the signature does not verify'}): "
+                "it is not the peer it claims to be, or the two nodes have different keys configured",
+            )
         if hello.manifest_digest != self.manifest_digest:
             raise ProtocolError(
                 AbortReason.MANIFEST_MISMATCH,
@@ -470,13 +503,9 @@ class _Session:
 
     def _finish_frame(self) -> bytes:
         digest = self._transcript.digest()
-        signature = self._sign(digest)
-        if not isinstance(signature, bytes | bytearray):
-            raise ProtocolError(
-                AbortReason.INTERNAL, f"sign() returned {type(signature).__name__}, not bytes"
-            )
+        signature = self._signature(TRANSCRIPT, digest)
         self._digest = digest
-        return self._emit(fr.FINISH, fr.finish_frame(digest, bytes(signature)))
+        return self._emit(fr.FINISH, fr.finish_frame(digest, signature))
 
     def _on_finish(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
         assert frame is not None and self._digest is not None
@@ -486,11 +515,7 @@ class _Session:
                 AbortReason.TRANSCRIPT_MISMATCH,
                 "the peer's transcript digest differs from this node's: the two sides saw different frames",
             )
-        try:
-            valid = self._verify(bytes(finish.signature), self._digest) is True
-        except Exception:
-            valid = False
-        if not valid:
+        if not self._signature_ok(TRANSCRIPT, bytes(finish.signature), self._digest):
             raise ProtocolError(
                 AbortReason.BAD_SIGNATURE, "the peer's signature over the transcript does not verify"
             )

@@ -94,9 +94,9 @@ class ClientStream:
             await self._call.done_writing()
         except (grpc.aio.AioRpcError, asyncio.InvalidStateError, grpc.aio.UsageError):
             return
-        if completed:
-            # Wait for the server to end the call, so the last frames are through before the channel closes.
-            await asyncio.wait_for(self._call.code(), timeout=self._grace_s)
+        # Wait for the server to end the call, so the last frames (the finish, or an abort) are through before the
+        # channel closes or the call is cancelled; a server that has gone quiet gets ``grace_s``.
+        await asyncio.wait_for(self._call.code(), timeout=self._grace_s)
 
     def cancel(self) -> None:
         self._call.cancel()

@@ -1,8 +1,8 @@
 """The session client: opens the stream to the peer's server over mutual TLS and runs one session on it.
 
 Theory of operation: the client claims the session id in its ``SessionIds`` (a second use is refused before any
-connection), opens a TLS channel whose only trust anchors are the pinned peer certificates (so any other server
-certificate fails the handshake and no frame is ever sent), calls ``jointstat.v1.Session/Exchange`` with a gRPC
+connection), opens a TLS channel whose only trust anchor is the pinned peer certificate, checked against the fingerprint
+the caller expects (so any other server certificate fails the handshake and no frame is ever sent), calls ``jointstat.v1.Session/Exchange`` with a gRPC
 deadline a little beyond the session's own, and lets the driver run the session. A handshake that fails shows as
 a stream lost before the first frame: the result has no output and its abort says what gRPC reported.
 """
@@ -15,7 +15,7 @@ import grpc
 
 from jointstat.protocol.session import Session
 from jointstat.transport.channel import MESSAGE_OPTIONS, METHOD_PATH, ClientStream, SessionIds
-from jointstat.transport.driver import Limits, SessionResult, WireCounters, drive
+from jointstat.transport.driver import Limits, SessionResult, Shutdown, WireCounters, drive
 from jointstat.transport.tls import NodeTLS
 
 
@@ -26,23 +26,30 @@ async def run_client(
     *,
     limits: Limits | None = None,
     server_name: str | None = None,
+    peer_fingerprint: bytes | None = None,
     session_ids: SessionIds | None = None,
     counters: WireCounters | None = None,
     on_progress: Callable[[], None] | None = None,
+    shutdown: Shutdown | None = None,
 ) -> SessionResult:
     """Run ``session`` against the server at ``target`` (``host:port``); returns this side's result.
 
     ``server_name`` is the name expected in the server's certificate (default: the DNS name of the single pinned
-    peer certificate). Raises ``SessionRefused`` if the session id was used before by this node. ``counters`` and
-    ``on_progress`` let the caller follow the session (``driver.drive``).
+    peer certificate); ``peer_fingerprint`` the SHA-256 of the certificate the server must present (checked against
+    the pinned one, ``NodeTLS.channel_credentials``). Raises ``SessionRefused`` if the session id was used before
+    by this node. ``counters`` and ``on_progress`` let the caller follow the session, ``shutdown`` end it when the
+    node stops (``driver.drive``).
     """
     limits = limits or Limits()
     ids = session_ids if session_ids is not None else SessionIds()
+    credentials = tls.channel_credentials(peer_fingerprint)
     ids.claim(session.session_id)
     name = server_name or tls.server_name()
     options = [*MESSAGE_OPTIONS, ("grpc.ssl_target_name_override", name)]
-    async with grpc.aio.secure_channel(target, tls.channel_credentials(), options=options) as channel:
+    async with grpc.aio.secure_channel(target, credentials, options=options) as channel:
         method = channel.stream_stream(METHOD_PATH, request_serializer=None, response_deserializer=None)
         call = method(timeout=limits.deadline_s + 2 * limits.abort_grace_s)
         stream = ClientStream(call, grace_s=limits.abort_grace_s)
-        return await drive(session, stream, limits, counters=counters, on_progress=on_progress)
+        return await drive(
+            session, stream, limits, counters=counters, on_progress=on_progress, shutdown=shutdown
+        )

@@ -24,11 +24,17 @@ overlaps with the network. Four tasks on the event loop share the session:
 The session's transcript is hashed on a thread of its own (``BackgroundHasher``): SHA-256 of every table byte is
 off the critical path, and the digest waits for the hashing to catch up only at ``finish``.
 
-The session ends when it is done, fails (a bad frame, the peer's abort) or a limit passes. On a local failure the
-abort frame jumps the queue (frames still waiting are dropped), is given ``abort_grace_s`` to leave, then the
-stream is closed. A lost stream (end of stream, a transport error) fails the session with ``connection lost``.
+The session ends when it is done, fails (a bad frame, the peer's abort) or a limit passes. When it is done, every
+frame it produced leaves before the stream closes: the garbler's session can be completed by the evaluator's
+finish while its producer still holds its own last frames (the decoding information and the finish come out of
+``produce()`` after the last table), so the driver waits for the producer to pull everything (up to
+``idle_timeout_s``) before it queues the end of the outbox. On a local failure the abort frame jumps the queue
+(frames still waiting are dropped), is given ``abort_grace_s`` to leave, then the stream is closed. A lost stream
+(end of stream, a transport error) fails the session with ``connection lost``.
 Cancelling the task that runs ``drive`` fails the session with ``cancelled``, sends the abort if it can and
-cancels the stream, so the peer ends too. The result carries this side's own outputs only when it completed.
+cancels the stream, so the peer ends too. A node that stops asks its sessions to end first through a
+``Shutdown``: each fails with ``peer_shutdown`` — the abort frame tells the peer why — and ends as on any local
+failure; ``Shutdown.drained`` says when no session driven with it is left. The result carries this side's own outputs only when it completed.
 
 Bytes on the wire are counted here, in both directions: each frame's length plus the 5-byte gRPC message prefix
 (HTTP/2 frame headers and TLS record overhead below gRPC are not visible to it). An optional ``on_progress``
@@ -75,6 +81,44 @@ class Limits:
                 raise ValueError(f"limits: {name} must be a positive number of seconds, got {value!r}")
         if not isinstance(self.send_window, int) or self.send_window < 1:
             raise ValueError(f"limits: send_window must be a positive integer, got {self.send_window!r}")
+
+
+class Shutdown:
+    """A node's request to its running sessions to end because it is stopping (see the module docstring)."""
+
+    def __init__(self) -> None:
+        self._requested = asyncio.Event()
+        self._idle = asyncio.Event()
+        self._idle.set()
+        self._running = 0
+
+    @property
+    def requested(self) -> bool:
+        return self._requested.is_set()
+
+    def request(self) -> None:
+        """Ask every session driven with this signal, now or later, to abort with ``peer_shutdown``."""
+        self._requested.set()
+
+    async def wait(self) -> None:
+        await self._requested.wait()
+
+    def _enter(self) -> None:
+        self._running += 1
+        self._idle.clear()
+
+    def _leave(self) -> None:
+        self._running -= 1
+        if self._running == 0:
+            self._idle.set()
+
+    async def drained(self, timeout: float | None = None) -> bool:
+        """Wait until no session driven with this signal runs (True), or ``timeout`` seconds pass (False)."""
+        try:
+            await asyncio.wait_for(self._idle.wait(), timeout=timeout)
+        except TimeoutError:
+            return False
+        return True
 
 
 class StreamLost(Exception):
@@ -203,12 +247,14 @@ class _Driver:
         limits: Limits,
         counters: WireCounters,
         on_progress: Callable[[], None] | None = None,
+        shutdown: Shutdown | None = None,
     ) -> None:
         self.session = session
         self.stream = stream
         self.limits = limits
         self.counters = counters
         self._on_progress = on_progress
+        self._shutdown = shutdown
         self._loop = asyncio.get_running_loop()
         self._outbox: asyncio.Queue[_Item] = asyncio.Queue()
         self._inbox: asyncio.Queue[bytes | StreamLost | None] = asyncio.Queue(maxsize=READ_AHEAD)
@@ -347,6 +393,11 @@ class _Driver:
         except Exception as exc:
             await self._local_fail(AbortReason.INTERNAL, f"garbling failed ({type(exc).__name__})")
 
+    async def _watch_shutdown(self) -> None:
+        assert self._shutdown is not None
+        await self._shutdown.wait()
+        await self._local_fail(AbortReason.PEER_SHUTDOWN, "this node is shutting down")
+
     async def _watchdog(self) -> None:
         limit = self.limits.idle_timeout_s
         while not self._ended.is_set():
@@ -370,6 +421,9 @@ class _Driver:
         reader = asyncio.create_task(self._read_loop(), name="jointstat-reader")
         processor = asyncio.create_task(self._process_loop(first_frame), name="jointstat-processor")
         watchdog = asyncio.create_task(self._watchdog(), name="jointstat-watchdog")
+        watchers = [watchdog]
+        if self._shutdown is not None:
+            watchers.append(asyncio.create_task(self._watch_shutdown(), name="jointstat-shutdown"))
         cancelled = False
         try:
             try:
@@ -395,11 +449,16 @@ class _Driver:
             producer = self._producer
             if producer is not None and not producer.done():
                 if completed:  # the last streamed frames (decoding, finish) are still to be pulled and sent
-                    with contextlib.suppress(TimeoutError, asyncio.CancelledError, Exception):
-                        await asyncio.wait_for(asyncio.shield(producer), timeout=self.limits.abort_grace_s)
+                    try:
+                        await asyncio.wait_for(asyncio.shield(producer), timeout=self.limits.idle_timeout_s)
+                    except asyncio.CancelledError:
+                        cancelled = True
+                    except (TimeoutError, Exception):
+                        pass
                 producer.cancel()
             self._stop.set()
-            watchdog.cancel()
+            for watcher in watchers:
+                watcher.cancel()
             self._outbox.put_nowait(None)
             grace = self.limits.idle_timeout_s if completed else self.limits.abort_grace_s
             try:
@@ -413,7 +472,7 @@ class _Driver:
                 await self.stream.close(completed)
             if cancelled or not completed:
                 self.stream.cancel()
-            for task in (reader, processor, writer, watchdog, *([producer] if producer is not None else [])):
+            for task in (reader, processor, writer, *watchers, *([producer] if producer is not None else [])):
                 with contextlib.suppress(asyncio.CancelledError, Exception):
                     await task
             with contextlib.suppress(Exception):
@@ -433,17 +492,25 @@ async def drive(
     counters: WireCounters | None = None,
     first_frame: bytes | None = None,
     on_progress: Callable[[], None] | None = None,
+    shutdown: Shutdown | None = None,
 ) -> SessionResult:
     """Run ``session`` over ``stream`` until it completes or fails; ``first_frame`` is a frame already read.
 
     Returns the result in both cases; raises ``asyncio.CancelledError`` if the calling task was cancelled (after
     failing the session, telling the peer when possible and cancelling the stream). ``on_progress`` is called
-    after each frame in or out and once at the end (see the module docstring).
+    after each frame in or out and once at the end (see the module docstring); ``shutdown`` lets the node end
+    the session with ``peer_shutdown``.
     """
     if session.state != "new":
         raise ValueError(f"drive() needs a new session, got one in state {session.state!r}")
-    driver = _Driver(session, stream, limits, counters or WireCounters(), on_progress)
-    return await driver.run(first_frame)
+    driver = _Driver(session, stream, limits, counters or WireCounters(), on_progress, shutdown)
+    if shutdown is None:
+        return await driver.run(first_frame)
+    shutdown._enter()
+    try:
+        return await driver.run(first_frame)
+    finally:
+        shutdown._leave()
 
 
 __all__ = [
@@ -451,6 +518,7 @@ __all__ = [
     "FrameStream",
     "Limits",
     "SessionResult",
+    "Shutdown",
     "StreamLost",
     "WireCounters",
     "drive",

@@ -9,7 +9,8 @@ one nobody expects, is refused with an abort frame; a session expected from anot
 Otherwise the id is claimed (it can never run again) and the driver runs the session to its end; the future gets
 the result, including when the stream is cancelled under it.
 
-``services`` lets the node register more services on the same port before it starts (its run proposals and the
+``shutdown`` (``driver.Shutdown``) lets the node end the sessions it serves with ``peer_shutdown`` before it stops
+the server. ``services`` lets the node register more services on the same port before it starts (its run proposals and the
 standard health service): each is called with the ``grpc.aio.Server``. ``expect`` takes the ``counters`` and the
 ``on_progress`` callback of ``driver.drive``, so the node can follow a session it serves.
 """
@@ -35,7 +36,15 @@ from jointstat.transport.channel import (
     SessionIds,
     SessionRefused,
 )
-from jointstat.transport.driver import Limits, SessionResult, StreamLost, WireCounters, drive, result_of
+from jointstat.transport.driver import (
+    Limits,
+    SessionResult,
+    Shutdown,
+    StreamLost,
+    WireCounters,
+    drive,
+    result_of,
+)
 from jointstat.transport.tls import NodeTLS, PeerRefused, check_peer
 
 REFUSALS_KEPT = 1000
@@ -62,8 +71,10 @@ class SessionServer:
         limits: Limits | None = None,
         session_ids: SessionIds | None = None,
         services: Sequence[Callable[[grpc.aio.Server], None]] = (),
+        shutdown: Shutdown | None = None,
     ) -> None:
         self._tls = tls
+        self._shutdown = shutdown
         self._services = tuple(services)
         self._address = address
         self._limits = limits or Limits()
@@ -215,6 +226,7 @@ class SessionServer:
                 counters=counters,
                 first_frame=first,
                 on_progress=entry.on_progress,
+                shutdown=self._shutdown,
             )
         except BaseException:  # cancelled (the driver has failed the session) or a transport failure
             entry.session.fail(AbortReason.INTERNAL, "the session transport failed")

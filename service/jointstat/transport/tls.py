@@ -10,12 +10,25 @@ CA but not pinned — does not verify, so the TLS handshake fails and no stream 
 exists. A CA that issued the node certificates is therefore not trusted by itself: pinning the peer's own
 certificate is stricter than trusting its issuer.
 
+That holds only if a pinned file is the peer's own certificate and nothing else (``pinned_certificate``): every
+certificate in a file given to TLS becomes a trust anchor, so a "full chain" file (leaf and CA) would trust every
+certificate the CA issues for the peer's name, and a CA certificate pinned alone likewise. A pinned file holding
+more than one certificate, or a certificate that can sign certificates (basic constraints CA, the key-cert-sign
+key usage, or an X.509 version 1 certificate, which has no extensions to say it cannot), is refused here and by
+``node check``.
+
 The server checks each stream once more before reading any frame (``check_peer``): the connection must be TLS,
 must have negotiated TLS 1.3 (RFC 8446; gRPC reports it in the auth context as ``ssl_tls_version``) and the client
 certificate's SHA-256 fingerprint must be one of the pinned fingerprints. gRPC Python offers no option to set a
 minimum TLS version; gRPC negotiates TLS 1.3 whenever both ends support it, the server refuses any stream that
 negotiated less, and a client cannot read the negotiated version (gRPC Python exposes no client auth context) —
 but its server is authenticated by the pinned certificate whatever the version.
+
+The client side has no auth context to read the server's certificate from, so it checks the fingerprint where it
+can: its credentials (``channel_credentials``) are built from exactly one pinned certificate — one certificate,
+not a CA — and, given the fingerprint the node expects for that peer, only if the pinned certificate is that one.
+The handshake then succeeds only with a server presenting exactly that certificate. The peer's hello, signed with
+its Ed25519 key (``protocol.session``), is the second, independent check of who the peer is.
 
 The client names the server by the DNS name in its pinned certificate (``grpc.ssl_target_name_override``), so the
 address may be an IP address or a name that is not in the certificate.
@@ -49,6 +62,37 @@ def _load_certificates(pem: bytes, what: str) -> list[x509.Certificate]:
     if not certs:
         raise ValueError(f"{what}: no certificate found")
     return certs
+
+
+def can_sign_certificates(cert: x509.Certificate) -> bool:
+    """Whether TLS could take ``cert`` as an issuer: basic constraints CA, key usage key-cert-sign, or X.509 v1."""
+    if cert.version == x509.Version.v1:
+        return True
+    try:
+        if cert.extensions.get_extension_for_class(x509.BasicConstraints).value.ca:
+            return True
+    except x509.ExtensionNotFound:
+        pass
+    try:
+        return bool(cert.extensions.get_extension_for_class(x509.KeyUsage).value.key_cert_sign)
+    except x509.ExtensionNotFound:
+        return False
+
+
+def pinned_certificate(pem: bytes, what: str) -> x509.Certificate:
+    """The peer certificate of a pinned file; ``ValueError`` unless it is exactly one certificate that is no CA."""
+    certs = _load_certificates(pem, what)
+    if len(certs) != 1:
+        raise ValueError(
+            f"{what}: holds {len(certs)} certificates; pin the peer's own certificate only (every certificate "
+            "in the file would be trusted, so a chain or a CA there would let others pass as the peer)"
+        )
+    if can_sign_certificates(certs[0]):
+        raise ValueError(
+            f"{what}: is a CA certificate (it can sign certificates); pin the peer's own certificate, not its "
+            "issuer (everything the CA signs for the peer's name would be trusted)"
+        )
+    return certs[0]
 
 
 def fingerprint(certificate: bytes | x509.Certificate) -> bytes:
@@ -103,8 +147,7 @@ class NodeTLS:
             raise ValueError("pinned_peers: at least one peer certificate must be pinned")
         prints = set()
         for i, pem in enumerate(peers):
-            for cert in _load_certificates(pem, f"pinned peer certificate {i}"):
-                prints.add(fingerprint(cert))
+            prints.add(fingerprint(pinned_certificate(pem, f"pinned peer certificate {i}")))
         object.__setattr__(self, "pinned_peers", peers)
         object.__setattr__(self, "_fingerprints", frozenset(prints))
 
@@ -123,8 +166,20 @@ class NodeTLS:
             require_client_auth=True,
         )
 
-    def channel_credentials(self) -> grpc.ChannelCredentials:
-        """Client side: verify the server against the pinned certificates only, present this node's certificate."""
+    def channel_credentials(self, peer_fingerprint: bytes | None = None) -> grpc.ChannelCredentials:
+        """Client side: verify the server against the one pinned certificate, present this node's certificate.
+
+        ``peer_fingerprint`` (SHA-256 of the DER) is the certificate the caller expects the server to present; the
+        credentials are refused (``ValueError``) if the pinned certificate is another one.
+        """
+        if len(self.pinned_peers) != 1:
+            raise ValueError(
+                f"a client pins exactly one server certificate; this NodeTLS pins {len(self.pinned_peers)}"
+            )
+        if peer_fingerprint is not None and peer_fingerprint not in self._fingerprints:
+            raise ValueError(
+                f"the pinned server certificate is not the one expected (SHA-256 {peer_fingerprint.hex()[:16]}…)"
+            )
         return grpc.ssl_channel_credentials(
             root_certificates=self._trust_anchors(),
             private_key=self.private_key,

@@ -29,6 +29,7 @@ class AbortReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     ABORT_REASON_CANCELLED: _ClassVar[AbortReason]
     ABORT_REASON_CONNECTION_LOST: _ClassVar[AbortReason]
     ABORT_REASON_INTERNAL: _ClassVar[AbortReason]
+    ABORT_REASON_PEER_SHUTDOWN: _ClassVar[AbortReason]
 
 class RefusalReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
@@ -61,6 +62,7 @@ ABORT_REASON_DEADLINE: AbortReason
 ABORT_REASON_CANCELLED: AbortReason
 ABORT_REASON_CONNECTION_LOST: AbortReason
 ABORT_REASON_INTERNAL: AbortReason
+ABORT_REASON_PEER_SHUTDOWN: AbortReason
 REFUSAL_REASON_UNSPECIFIED: RefusalReason
 REFUSAL_REASON_JOB_NOT_CONFIGURED: RefusalReason
 REFUSAL_REASON_DIGEST_MISMATCH: RefusalReason
@@ -74,18 +76,20 @@ REFUSAL_REASON_PROTOCOL_VERSION: RefusalReason
 REFUSAL_REASON_BOTH_INITIATE: RefusalReason
 
 class Hello(_message.Message):
-    __slots__ = ("protocol_version", "manifest_digest", "session_id", "role", "program_digest")
+    __slots__ = ("protocol_version", "manifest_digest", "session_id", "role", "program_digest", "signature")
     PROTOCOL_VERSION_FIELD_NUMBER: _ClassVar[int]
     MANIFEST_DIGEST_FIELD_NUMBER: _ClassVar[int]
     SESSION_ID_FIELD_NUMBER: _ClassVar[int]
     ROLE_FIELD_NUMBER: _ClassVar[int]
     PROGRAM_DIGEST_FIELD_NUMBER: _ClassVar[int]
+    SIGNATURE_FIELD_NUMBER: _ClassVar[int]
     protocol_version: int
     manifest_digest: bytes
     session_id: bytes
     role: Role
     program_digest: bytes
-    def __init__(self, protocol_version: _Optional[int] = ..., manifest_digest: _Optional[bytes] = ..., session_id: _Optional[bytes] = ..., role: _Optional[_Union[Role, str]] = ..., program_digest: _Optional[bytes] = ...) -> None: ...
+    signature: bytes
+    def __init__(self, protocol_version: _Optional[int] = ..., manifest_digest: _Optional[bytes] = ..., session_id: _Optional[bytes] = ..., role: _Optional[_Union[Role, str]] = ..., program_digest: _Optional[bytes] = ..., signature: _Optional[bytes] = ...) -> None: ...
 
 class BaseOT(_message.Message):
     __slots__ = ("payload",)

@@ -1,0 +1,125 @@
+"""Reading back a job's result files: this node's own outputs of each completed run, oldest first.
+
+Theory of operation
+-------------------
+The node writes one JSON file per completed run (``jobs.write_result``, format ``jointstat-result/1``) into the
+job's result directory, named ``<UTC time>-<session id>.json`` so that names sort by time. ``read_result`` parses
+one file strictly: the format tag, the job, the session, the role, the times, the ``withheld`` flag and the named
+outputs; anything else is a ``ResultFileError`` naming the file and the field (never a value). ``job_results``
+lists the newest ``limit`` files of a directory and reads each, giving them oldest first by their finish time
+(names carry whole seconds only); a file that cannot be read is returned as a ``ResultFileError`` after them, so
+one damaged file does not hide the others.
+
+Only this node's own results are in these files; the other party's never reach this node.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from dataclasses import dataclass
+from datetime import datetime
+from pathlib import Path
+from typing import Any
+
+RESULT_FORMAT = "jointstat-result/1"  # the tag jobs.write_result writes
+MAX_RESULT_BYTES = 1 << 20
+RESULT_NAME = re.compile(r"\d{8}T\d{6}Z-[A-Za-z0-9][A-Za-z0-9._:-]{0,127}\.json")
+OutputValue = int | float | bool | str | list[Any] | None
+
+
+class ResultFileError(Exception):
+    """A result file that cannot be read; the message names the file and what is wrong, never a value."""
+
+    def __init__(self, path: Path, message: str) -> None:
+        super().__init__(f"{path}: {message}")
+        self.path = path
+
+
+@dataclass(frozen=True)
+class ResultRecord:
+    """One completed run's result as this node received it."""
+
+    path: Path
+    job: str
+    session: str
+    role: str
+    scheduled_for: datetime
+    finished_at: datetime
+    withheld: bool | None  # None: this node receives no output of the job (only the peer does)
+    outputs: dict[str, OutputValue]
+
+
+def _time(path: Path, body: dict[str, Any], key: str) -> datetime:
+    value = body.get(key)
+    try:
+        parsed = datetime.fromisoformat(value) if isinstance(value, str) else None
+    except ValueError:
+        parsed = None
+    if parsed is None or parsed.tzinfo is None:
+        raise ResultFileError(path, f"{key} is not an ISO 8601 time with a time zone")
+    return parsed
+
+
+def _text(path: Path, body: dict[str, Any], key: str) -> str:
+    value = body.get(key)
+    if not isinstance(value, str) or not value:
+        raise ResultFileError(path, f"{key} is missing or not text")
+    return value
+
+
+def read_result(path: str | Path) -> ResultRecord:
+    """Parse one result file (see the module docstring)."""
+    p = Path(path)
+    try:
+        with p.open("rb") as f:
+            data = f.read(MAX_RESULT_BYTES + 1)
+    except OSError as exc:
+        raise ResultFileError(p, f"cannot read ({exc.strerror})") from None
+    if len(data) > MAX_RESULT_BYTES:
+        raise ResultFileError(p, f"larger than {MAX_RESULT_BYTES} bytes, not a result file")
+    try:
+        body = json.loads(data.decode("utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError):
+        raise ResultFileError(p, "not UTF-8 JSON") from None
+    if not isinstance(body, dict) or body.get("format") != RESULT_FORMAT:
+        raise ResultFileError(p, f"not a result file (format is not {RESULT_FORMAT})")
+    role = _text(p, body, "role")
+    if role not in ("garbler", "evaluator"):
+        raise ResultFileError(p, "role is neither garbler nor evaluator")
+    withheld = body.get("withheld")
+    if withheld is not None and not isinstance(withheld, bool):
+        raise ResultFileError(p, "withheld is neither true, false nor null")
+    outputs = body.get("outputs")
+    if not isinstance(outputs, dict) or not all(isinstance(k, str) for k in outputs):
+        raise ResultFileError(p, "outputs is not an object of named values")
+    return ResultRecord(
+        path=p,
+        job=_text(p, body, "job"),
+        session=_text(p, body, "session"),
+        role=role,
+        scheduled_for=_time(p, body, "scheduled_for"),
+        finished_at=_time(p, body, "finished_at"),
+        withheld=withheld,
+        outputs=dict(outputs),
+    )
+
+
+def job_results(directory: str | Path, limit: int = 100) -> list[ResultRecord | ResultFileError]:
+    """The newest ``limit`` result files of a job's directory, oldest first (none if it does not exist yet)."""
+    d = Path(directory)
+    try:
+        names = sorted(entry.name for entry in d.iterdir() if RESULT_NAME.fullmatch(entry.name))
+    except FileNotFoundError:
+        return []
+    except OSError as exc:
+        return [ResultFileError(d, f"cannot list the directory ({exc.strerror})")]
+    good: list[ResultRecord] = []
+    bad: list[ResultFileError] = []
+    for name in names[-limit:] if limit > 0 else []:
+        try:
+            good.append(read_result(d / name))
+        except ResultFileError as exc:
+            bad.append(exc)
+    good.sort(key=lambda r: r.finished_at)  # names carry whole seconds only
+    return [*good, *bad]
