@@ -91,7 +91,7 @@ from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
 
 log = logging.getLogger("jointstat.node")
 
-PROTOCOL_VERSION = 2
+PROTOCOL_VERSION = 1  # of run proposals (unchanged since version 1 of the wire format)
 PROPOSE_METHOD = pb.DESCRIPTOR.services_by_name["Session"].methods_by_name["Propose"].name
 PROPOSE_PATH = f"/{SERVICE_NAME}/{PROPOSE_METHOD}"
 PROPOSAL_TIMEOUT_S = 300.0  # the peer may compile the manifest before it answers
