@@ -414,6 +414,19 @@ def test_a_frame_over_four_mebibytes_is_refused(wide: Program) -> None:
     assert err.value.reason == AbortReason.MALFORMED_FRAME and "exceeds the limit" in str(err.value)
 
 
+def test_an_empty_garbled_tables_frame_aborts_the_evaluator(wide: Program) -> None:
+    garbler, evaluator = make_pair(wide, *inputs_for(wide, 13))
+    run_in_memory(
+        garbler, evaluator, intercept=tamper(fr.GARBLED_TABLES, Party.EVALUATOR, lambda p: b"", index=2)
+    )
+    assert_no_output(garbler, evaluator)
+    assert evaluator.abort is not None and evaluator.abort.reason == AbortReason.MALFORMED_FRAME
+    assert (
+        "empty garbled_tables frame" in evaluator.abort.message and "'evaluating'" in evaluator.abort.message
+    )
+    assert garbler.abort is not None and garbler.abort.by_peer
+
+
 @pytest.mark.parametrize("extra", [1, 32, 4000])
 def test_more_table_bytes_than_the_program_needs_abort_naming_the_excess(wide: Program, extra: int) -> None:
     # An extra byte mid-stream shifts every later table; the stream is refused once it passes the program's total.
@@ -636,6 +649,22 @@ def paused_program(and_gates: int, width: int, unwound: list[str]) -> Program:
             unwound.append(type(bld.backend).__name__)
 
     return Program(run, inner.size, inner.name)
+
+
+def test_a_garbler_that_fails_while_its_program_is_paused_unwinds_the_program() -> None:
+    unwound: list[str] = []
+    program = paused_program(1 << 12, 256, unwound)
+    garbler, evaluator = make_pair(program, *inputs_for(program, 29), chunk_bytes=TABLE_BYTES * 64)
+    drive_to_streaming(garbler, evaluator)
+    stream = garbler.produce()
+    for _ in range(4):  # the input labels and three of the 64 table frames
+        next(stream)
+    assert 0 < garbler.and_gates_done < program.size.and_gates
+    unwound.clear()  # the count backend's run, when the program was measured
+    assert garbler.fail(AbortReason.CANCELLED, "the node is stopping") is not None
+    assert unwound == ["GarblerBackend"]  # the paused program's stack unwound, its labels let go
+    assert next(stream, None) is None
+    assert_no_output(garbler)
 
 
 def test_an_evaluator_aborted_while_its_program_waits_for_tables_unwinds_the_program() -> None:

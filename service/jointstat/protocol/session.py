@@ -687,6 +687,8 @@ class GarblerSession(_Session):
             if chunk is None:
                 break
             yield fr.GARBLED_TABLES, chunk
+        if self.ended:  # the session ended meanwhile and stopped the program: nothing more to stream
+            return
         backend = producer.result
         if backend.and_gates != self.and_gates_total:
             raise GarbleError(
