@@ -210,6 +210,26 @@ def test_aes128_through_a_session_gives_the_evaluator_the_fips197_ciphertext(aes
     assert garbler.outputs.size == 0  # the ciphertext goes to the evaluator only
 
 
+def test_both_sides_count_every_and_gate_as_done_once_the_session_is_done(aes: Program) -> None:
+    garbler, evaluator = make_pair(aes, aes128.key_bits(bytes(16)), aes128.block_bits(bytes(16)))
+    assert garbler.and_gates_done == evaluator.and_gates_done == 0
+    run_in_memory(garbler, evaluator)
+    assert garbler.done and evaluator.done
+    assert garbler.and_gates_done == evaluator.and_gates_done == garbler.and_gates_total == 6400
+
+
+def test_a_garbler_that_fails_mid_stream_still_counts_the_gates_it_garbled(wide: Program) -> None:
+    garbler, evaluator = make_pair(wide, *inputs_for(wide, 31), chunk_bytes=TABLE_BYTES * 64)
+    drive_to_streaming(garbler, evaluator)
+    stream = garbler.produce()
+    for _ in range(4):
+        next(stream)
+    garbled = garbler.and_gates_done
+    assert 0 < garbled < wide.size.and_gates
+    garbler.fail(AbortReason.CANCELLED, "the node is stopping")
+    assert garbler.and_gates_done == garbled  # the progress of the failed session shows how far it got
+
+
 def test_sha256_through_a_session_gives_the_fips180_digest_of_abc() -> None:
     assert hashlib.sha256(b"abc").digest() == FIPS180_ABC_DIGEST  # the known answer, against hashlib
     program = Program.of(sha256.sha256_compress_program, name="SHA-256 compression")

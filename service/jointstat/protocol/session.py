@@ -565,6 +565,8 @@ class GarblerSession(_Session):
 
     def _release_engines(self) -> None:
         self._ot = None
+        if self._backend is not None:  # how far the program got, for the progress of a failed session
+            self._gates_garbled = self._backend.next_gate
         self._backend = None
         self._delta = None
         self._evaluator_zero = None
