@@ -463,6 +463,48 @@ def test_more_table_bytes_than_the_program_needs_abort_naming_the_excess(wide: P
     assert "'evaluating'" in evaluator.abort.message
 
 
+def test_a_table_frame_after_the_last_table_aborts_naming_it(aes: Program) -> None:
+    # The evaluator of AES has every table; a further frame of tables is refused, saying the tables were all in.
+    garbler, evaluator = make_pair(aes, aes128.key_bits(bytes(16)), aes128.block_bits(bytes(16)))
+    last = table_frames(aes, 1 << 12) - 1
+    duplicate = tamper(fr.GARBLED_TABLES, Party.EVALUATOR, lambda p: p, index=last)
+
+    def twice(to: Party, data: bytes) -> list[bytes]:
+        out = duplicate(to, data)
+        if out and out[0] is not data:  # the last table frame: deliver it, then the same again
+            return [data, data]
+        return out
+
+    run_in_memory(garbler, evaluator, intercept=twice)
+    assert_no_output(evaluator)
+    assert evaluator.abort is not None and evaluator.abort.reason == AbortReason.UNEXPECTED_FRAME
+    assert "'garbled_tables'" in evaluator.abort.message
+    assert f"all {TABLE_BYTES * 6400} bytes of garbled tables" in evaluator.abort.message
+
+
+@pytest.mark.parametrize(("how", "short"), [("drop the last frame", None), ("cut one byte", 1)])
+def test_fewer_table_bytes_than_the_program_needs_abort_when_the_next_frame_type_comes(
+    aes: Program, how: str, short: int | None
+) -> None:
+    # The garbler of AES has no outputs, so its decoding frame follows its last table frame at once.
+    chunk = 1 << 12
+    garbler, evaluator = make_pair(
+        aes, aes128.key_bits(bytes(16)), aes128.block_bits(bytes(16)), chunk_bytes=chunk
+    )
+    last = table_frames(aes, chunk) - 1
+    change = (lambda p: None) if short is None else (lambda p: p[:-short])
+    run_in_memory(
+        garbler, evaluator, intercept=tamper(fr.GARBLED_TABLES, Party.EVALUATOR, change, index=last)
+    )
+    assert_no_output(garbler, evaluator)
+    missing = chunk if short is None else short
+    assert evaluator.abort is not None and evaluator.abort.reason == AbortReason.UNEXPECTED_FRAME, how
+    message = evaluator.abort.message
+    assert "'evaluating'" in message and "'evaluator_output_decoding'" in message
+    assert f"the garbled tables stopped {missing} bytes short of the {TABLE_BYTES * 6400}" in message
+    assert garbler.abort is not None and garbler.abort.by_peer
+
+
 @pytest.mark.parametrize(
     ("kind", "to", "change", "reason"),
     [
