@@ -337,6 +337,7 @@ class NodeState:
     server: SessionServer | None = None
     sessions: dict[str, SessionTracker] = field(default_factory=dict)
     stopping: bool = False
+    new_session: Callable[..., Session] = new_session  # makes each session (``protocol.session.new_session``)
 
     def running_sessions(self) -> int:
         return sum(1 for t in self.sessions.values() if not t.ended)
@@ -587,7 +588,7 @@ class JobRunner:
             )
             return REFUSED, code
         sign, verify = self._sign_verify(a.sid, peer)
-        session = new_session(
+        session = state.new_session(
             prepared.party,
             session_id=a.session_id,
             program=prepared.compiled.as_program(),
@@ -831,7 +832,7 @@ class JobRunner:
             await self._store_finish(run_id, "refused", "malformed: this session id has been used before")
             return _refusal(pb.REFUSAL_REASON_MALFORMED, "this session id has been used before")
         sign, verify = self._sign_verify(sid, peer)
-        session = new_session(
+        session = state.new_session(
             own_role,
             session_id=sid_bytes,
             program=compiled.as_program(),
