@@ -38,15 +38,8 @@ HUGE_LENGTHS = (2**31 - 1, 2**32 + 5, 2**63 - 1, 2**64 - 1)
 
 
 def varint(value: int) -> bytes:
-    out = bytearray()
-    while True:
-        byte = value & 0x7F
-        value >>= 7
-        if value:
-            out.append(byte | 0x80)
-        else:
-            out.append(byte)
-            return bytes(out)
+    """``value`` as a protobuf varint (the encoder the frames module writes table frames with)."""
+    return fr._varint(value)
 
 
 def read_varint(data: bytes, at: int) -> tuple[int, int] | None:
