@@ -42,7 +42,7 @@ from jointstat.protocol import session as sm
 from jointstat.protocol.pipe import run_in_memory
 from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
 
-from tests.random_programs import Recipe, program_of, random_inputs, random_recipes, reference_outputs
+from tests.circuits import RandomProgram, random_bits, random_programs, reference_eval
 
 # Invented scenario: two clinics comparing visit counts; the digest stands for their agreed manifest.
 MANIFEST = hashlib.sha256(b"invented manifest: two clinics compare weekly visit counts").digest()
@@ -99,8 +99,10 @@ def make_pair(
 
 
 def inputs_for(program: Program, seed: int) -> tuple[np.ndarray, np.ndarray]:
-    bits = random_inputs(program, seed)
-    return bits[Party.GARBLER], bits[Party.EVALUATOR]
+    rng = np.random.default_rng(seed)
+    return random_bits(rng, program.n_inputs(Party.GARBLER)), random_bits(
+        rng, program.n_inputs(Party.EVALUATOR)
+    )
 
 
 def plain_outputs(program: Program, g_bits: np.ndarray, e_bits: np.ndarray) -> dict[Party, np.ndarray]:
@@ -174,16 +176,14 @@ def table_frames(program: Program, chunk_bytes: int) -> int:
 
 
 @settings(max_examples=25)
-@given(random_recipes(max_steps=40), st.integers(0, 2**32 - 1))
-def test_random_programs_give_each_side_exactly_its_own_outputs(recipe: Recipe, seed: int) -> None:
-    program = program_of(recipe)
+@given(random_programs(max_gates=150), st.integers(0, 2**32 - 1))
+def test_random_programs_give_each_side_exactly_its_own_outputs(random: RandomProgram, seed: int) -> None:
+    program = Program.of(random.run)
     g_bits, e_bits = inputs_for(program, seed)
     garbler, evaluator = make_pair(program, g_bits, e_bits, chunk_bytes=TABLE_BYTES * 3)
     seen = Recorder()
     run_in_memory(garbler, evaluator, intercept=seen)
-    expected = reference_outputs(
-        recipe, {Party.GARBLER: g_bits, Party.EVALUATOR: e_bits}
-    )  # numpy, step by step
+    expected = reference_eval(random, g_bits, e_bits)  # gate by gate on Python integers
     assert garbler.done and evaluator.done
     assert np.array_equal(garbler.outputs, expected[Party.GARBLER])
     assert np.array_equal(evaluator.outputs, expected[Party.EVALUATOR])

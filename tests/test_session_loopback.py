@@ -34,7 +34,7 @@ from jointstat.transport.driver import SessionResult, drive
 from jointstat.transport.pki import issue, new_ca, node_tls
 from jointstat.transport.tls import NodeTLS
 
-from tests.random_programs import Recipe, program_of, random_inputs, random_recipes, reference_outputs
+from tests.circuits import RandomProgram, random_bits, random_programs, reference_eval
 
 # Invented scenario: a regional bakery co-operative (garbler) and a flour mill (evaluator) compare figures.
 MANIFEST = hashlib.sha256(b"invented manifest: bakery co-operative and flour mill, weekly tonnage").digest()
@@ -88,8 +88,10 @@ def wide() -> Program:
 
 
 def inputs_for(program: Program, seed: int) -> tuple[np.ndarray, np.ndarray]:
-    bits = random_inputs(program, seed)
-    return bits[Party.GARBLER], bits[Party.EVALUATOR]
+    rng = np.random.default_rng(seed)
+    return random_bits(rng, program.n_inputs(Party.GARBLER)), random_bits(
+        rng, program.n_inputs(Party.EVALUATOR)
+    )
 
 
 def plain_outputs(program: Program, g_bits: np.ndarray, e_bits: np.ndarray) -> dict[Party, np.ndarray]:
@@ -161,11 +163,11 @@ async def test_sha256_over_tls_gives_the_evaluator_the_fips180_digest_of_abc(nod
 
 
 @settings(max_examples=6)
-@given(random_recipes(max_steps=40), st.integers(0, 2**32 - 1), st.booleans())
+@given(random_programs(max_gates=200), st.integers(0, 2**32 - 1), st.booleans())
 def test_random_programs_over_tls_give_each_side_only_its_own_outputs(
-    nodes: Nodes, recipe: Recipe, seed: int, garbler_serves: bool
+    nodes: Nodes, random: RandomProgram, seed: int, garbler_serves: bool
 ) -> None:
-    program = program_of(recipe)
+    program = Program.of(random.run)
     g_bits, e_bits = inputs_for(program, seed)
     sid = hashlib.sha256(seed.to_bytes(4, "big") + program.digest).digest()[:16]
     garbler, evaluator = nodes.garbler(program, sid, g_bits), nodes.evaluator(program, sid, e_bits)
@@ -173,7 +175,7 @@ def test_random_programs_over_tls_give_each_side_only_its_own_outputs(
         g, e = asyncio.run(serve_and_connect(nodes.bakery_tls, nodes.mill_tls, garbler, evaluator))
     else:
         e, g = asyncio.run(serve_and_connect(nodes.mill_tls, nodes.bakery_tls, evaluator, garbler))
-    expected = reference_outputs(recipe, {Party.GARBLER: g_bits, Party.EVALUATOR: e_bits})  # numpy
+    expected = reference_eval(random, g_bits, e_bits)  # gate by gate on Python integers
     assert g.party == Party.GARBLER and e.party == Party.EVALUATOR
     assert np.array_equal(g.outputs, expected[Party.GARBLER])
     assert np.array_equal(e.outputs, expected[Party.EVALUATOR])

@@ -34,7 +34,7 @@ from jointstat.protocol.frames import Transcript
 from jointstat.protocol.session import Session
 from jointstat.transport.driver import BackgroundHasher, Limits, SessionResult, StreamLost, drive
 
-from tests.random_programs import random_inputs
+from tests.circuits import random_bits
 
 # Invented scenario: two ferry operators compare passenger counts; the digest stands for their agreed manifest.
 MANIFEST = hashlib.sha256(b"invented manifest: two ferry operators compare passenger counts").digest()
@@ -86,6 +86,11 @@ class MemoryStream:
 
     def peer_gone(self) -> bool:
         return False
+
+
+def inputs_of(program: Program, seed: int) -> dict[Party, np.ndarray]:
+    rng = np.random.default_rng(seed)
+    return {p: random_bits(rng, program.n_inputs(p)) for p in Party}
 
 
 def kinds(frames: list[bytes]) -> list[str]:
@@ -166,7 +171,7 @@ def test_the_transcript_hashed_on_the_background_thread_equals_the_plain_hashlib
 
 async def test_a_garbler_hashing_on_the_background_thread_agrees_with_an_evaluator_hashing_in_line() -> None:
     program = wide_program(1 << 12, 256)
-    bits = random_inputs(program, 1)
+    bits = inputs_of(program, 1)
     garbler, evaluator = pair_of(program, bits)
     g_stream, e_stream = MemoryStream.pair()
     # The driver hashes the garbler's transcript in the background; the evaluator is played in line, hashing with
@@ -259,7 +264,7 @@ async def test_every_call_of_a_session_and_its_paused_program_runs_on_one_worker
     notes = ThreadNotes()
     calls, width = 64, 256
     program = noting_program(notes, calls, width)
-    bits = random_inputs(program, 2)
+    bits = inputs_of(program, 2)
     g_class, e_class = noting_sessions(notes)
     # 32 tables per frame: each AND call of 256 gates spans 8 frames, so both programs pause mid-call again and
     # again, resumed each time by a later call from the driver.
@@ -370,7 +375,7 @@ class AbortAfterTables(MemoryStream):
 
 async def test_a_peers_abort_mid_stream_ends_the_garbler_with_the_peers_reason() -> None:
     program = wide_program(1 << 14, 512)
-    garbler, evaluator = pair_of(program, random_inputs(program, 3), chunk_bytes=TABLE_BYTES * 16)
+    garbler, evaluator = pair_of(program, inputs_of(program, 3), chunk_bytes=TABLE_BYTES * 16)
     stream = AbortAfterTables(evaluator, tables=20)
     for data in evaluator.start():
         stream.inbox.put_nowait(data)
@@ -387,7 +392,7 @@ async def test_a_garbler_that_stops_its_table_stream_short_leaves_both_sides_end
     # The garbler of the wide program has outputs, so after its last table frame it waits for its output labels,
     # while the evaluator waits for the rest of the tables: nothing tells either side, until the idle limit.
     program = wide_program(1 << 12, 256)
-    garbler, evaluator = pair_of(program, random_inputs(program, 4), chunk_bytes=1 << 12)
+    garbler, evaluator = pair_of(program, inputs_of(program, 4), chunk_bytes=1 << 12)
     table_frames = TABLE_BYTES * program.size.and_gates // (1 << 12)
     written: list[str] = []
 
