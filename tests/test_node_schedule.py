@@ -109,6 +109,24 @@ def test_the_store_records_which_manifest_party_this_node_played_in_each_run(tmp
         store.start("nightly", t, 4, started_at=t, role="initiator")
 
 
+def test_the_store_finds_the_latest_run_of_a_session_id(tmp_path: Path) -> None:
+    store = JobStore(tmp_path / "jobs.sqlite3")
+    t = utc(2026, 12, 2, 0, 30)
+    first = store.start("nightly", t, 1, started_at=t, session_id="5e55")
+    store.finish(first, "refused", finished_at=t, reason="busy: 16 sessions running")
+    store.start("weekly", t, 1, started_at=t, session_id="0ther")
+    again = store.start("nightly", t, 2, started_at=t, session_id="5e55")
+    store.finish(again, "completed", finished_at=t, result_path="/r/2.json")
+    found = store.run_of_session("5e55")
+    assert found is not None and (found.id, found.status, found.result_path) == (
+        again,
+        "completed",
+        "/r/2.json",
+    )
+    assert store.run_of_session("0ther").job == "weekly"  # type: ignore[union-attr]
+    assert store.run_of_session("nobody") is None
+
+
 def test_a_store_written_before_runs_had_a_role_gains_the_column_and_keeps_its_rows(tmp_path: Path) -> None:
     import sqlite3
 

@@ -10,6 +10,7 @@ from hypothesis import strategies as st
 from jointstat.circuit.model import Party
 from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import AbortReason, ProtocolError, Transcript
+from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
 
 SID = b"transcript-test"
 
@@ -21,17 +22,19 @@ def test_a_hello_round_trips_with_every_field_and_its_signature_covers_them() ->
         signed.append(digest)
         return b"s" * 64
 
+    program_digest = hashlib.sha256(b"a program").digest()
     data = fr.hello_frame(
         party=Party.EVALUATOR,
         session_id=SID,
         manifest_digest=bytes(range(32)),
-        circuit_digest=bytes(32),
+        program_digest=program_digest,
         sign=sign,
     )
     kind, frame = fr.decode(data)
     assert kind == fr.HELLO
-    assert frame.hello.protocol_version == fr.PROTOCOL_VERSION == 2
+    assert frame.hello.protocol_version == fr.PROTOCOL_VERSION == 3  # 2: signed hellos; 3: programs and their digest
     assert frame.hello.session_id == SID and frame.hello.manifest_digest == bytes(range(32))
+    assert frame.hello.program_digest == program_digest
     assert frame.hello.role == fr.role_to_wire(Party.EVALUATOR)
     assert frame.hello.signature == b"s" * 64
     assert signed == [fr.hello_digest_of(frame.hello)]
@@ -50,7 +53,7 @@ def test_the_hello_digest_is_a_sha256_of_every_field_but_the_signature() -> None
         role=fr.role_to_wire(Party.EVALUATOR),
         session_id=SID,
         manifest_digest=bytes(range(32)),
-        circuit_digest=bytes(32),
+        program_digest=bytes(32),
     )
     assert got == expected
     # Moving a byte from one field to the next changes the digest: every field is length-prefixed.
@@ -59,7 +62,7 @@ def test_the_hello_digest_is_a_sha256_of_every_field_but_the_signature() -> None
         role=fr.role_to_wire(Party.EVALUATOR),
         session_id=SID + b"\x00",
         manifest_digest=bytes(range(1, 32)),
-        circuit_digest=bytes(32),
+        program_digest=bytes(32),
     )
     assert moved != got
 
@@ -68,6 +71,87 @@ def test_the_hello_digest_is_a_sha256_of_every_field_but_the_signature() -> None
 def test_payload_frames_round_trip(kind: str, payload: bytes) -> None:
     got_kind, frame = fr.decode(fr.payload_frame(kind, payload))
     assert got_kind == kind and fr.payload_of(kind, frame) == payload
+
+
+# -- garbled tables: the direct encoding and the protobuf library agree, both ways ------------------------------------
+
+
+@given(st.binary(min_size=1, max_size=3000))
+def test_a_tables_frame_written_directly_is_the_protobuf_librarys_own_encoding(tables: bytes) -> None:
+    direct = fr.payload_frame(fr.GARBLED_TABLES, tables)
+    library = pb.Frame(garbled_tables=pb.GarbledTables(tables=tables)).SerializeToString()
+    assert direct == library  # so the library reads what the direct encoder writes, and the reverse
+    assert pb.Frame.FromString(direct).garbled_tables.tables == tables
+
+
+@given(st.binary(min_size=1, max_size=3000))
+def test_a_tables_frame_the_library_wrote_decodes_without_a_copy(tables: bytes) -> None:
+    data = pb.Frame(garbled_tables=pb.GarbledTables(tables=tables)).SerializeToString()
+    kind, frame = fr.decode(data)
+    assert kind == fr.GARBLED_TABLES and isinstance(frame, fr.TablesFrame)  # the direct path
+    assert frame.payload.obj is data and bytes(fr.payload_of(kind, frame)) == tables  # a view, no copy
+
+
+def _varint(value: int, extra: int = 0) -> bytes:
+    """``value`` as a protobuf varint, padded with ``extra`` redundant bytes (still valid: protobuf encoding guide)."""
+    out = bytearray(fr._varint(value))
+    for _ in range(extra):
+        out[-1] |= 0x80
+        out.append(0)
+    return bytes(out)
+
+
+def _other_encodings(tables: bytes, rnd: st.DataObject) -> bytes:
+    """A valid encoding of Frame{garbled_tables{tables}} that is not the one ``payload_frame`` writes."""
+    how = rnd.draw(
+        st.sampled_from(["padded lengths", "unknown field inside", "unknown field after", "two halves"])
+    )
+    if how == "padded lengths":
+        inner = b"\x0a" + _varint(len(tables), rnd.draw(st.integers(0, 4))) + tables
+        return b"\x2a" + _varint(len(inner), rnd.draw(st.integers(1, 4))) + inner
+    if how == "unknown field inside":  # field 7 (varint) before the tables: unknown fields are skipped
+        inner = b"\x38\x01\x0a" + _varint(len(tables)) + tables
+        return b"\x2a" + _varint(len(inner)) + inner
+    if how == "unknown field after":  # field 100 (varint) after the garbled_tables field, in the frame itself
+        return fr.payload_frame(fr.GARBLED_TABLES, tables) + bytes([0xA0, 0x06, 0x01])
+    # The message in two parts: protobuf merges repeated occurrences of a message field, and for a bytes field the
+    # last value wins, so the first part's tables are replaced by the second's.
+    decoy = b"\x2a\x05\x0a\x03abc"
+    return decoy + fr.payload_frame(fr.GARBLED_TABLES, tables)
+
+
+@given(st.binary(min_size=1, max_size=3000), st.data())
+def test_a_tables_frame_in_another_valid_protobuf_encoding_decodes_as_the_library_reads_it(
+    tables: bytes, rnd: st.DataObject
+) -> None:
+    data = _other_encodings(tables, rnd)
+    expected = pb.Frame.FromString(data).garbled_tables.tables
+    assert expected == tables
+    kind, frame = fr.decode(data)
+    assert kind == fr.GARBLED_TABLES and bytes(fr.payload_of(kind, frame)) == expected
+
+
+def test_a_frame_whose_first_bytes_look_like_tables_but_is_another_type_decodes_as_that_type() -> None:
+    # garbled_tables then a hello: the last field of a oneof wins (protobuf encoding guide), so it is a hello.
+    hello = fr.hello_frame(
+        party=Party.GARBLER, session_id=SID, manifest_digest=bytes(32), program_digest=bytes(32)
+    )
+    kind, frame = fr.decode(fr.payload_frame(fr.GARBLED_TABLES, bytes(64)) + hello)
+    assert kind == fr.HELLO and frame.hello.session_id == SID
+
+
+@pytest.mark.parametrize(
+    "data",
+    [
+        b"\x2a\x05\x0a\x07abc",  # the inner length runs past the frame
+        b"\x2a\x09\x0a\x03abc",  # the outer length runs past the frame
+        b"\x2a" + b"\xff" * 10 + b"\x01",  # a length of more than ten varint bytes
+    ],
+)
+def test_a_truncated_tables_frame_is_malformed_on_either_path(data: bytes) -> None:
+    with pytest.raises(ProtocolError) as info:
+        fr.decode(data)
+    assert info.value.reason == AbortReason.MALFORMED_FRAME
 
 
 @given(st.integers(0, 5000), st.integers(1, 700))

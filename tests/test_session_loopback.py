@@ -1,7 +1,8 @@
 """Two nodes on loopback over gRPC with mutual TLS (certificates made in the test): the whole session, end to end.
 
 Specification: AES-128 with the garbler's key and the evaluator's plaintext gives the FIPS 197 C.1 ciphertext to
-the evaluator only; random circuits give each side exactly its own outputs, whichever side serves; a manifest
+the evaluator only, and the SHA-256 compression of the padded "abc" block the FIPS 180-4 digest; random programs
+give each side exactly its own outputs, whichever side serves; a program digest mismatch aborts both at hello; a manifest
 mismatch aborts both with no output; a peer that vanishes, goes silent or is cancelled makes the other side abort
 within its limits and release nothing; malformed or replayed streams are refused with a clear reason; a slow
 evaluator holds the garbler back instead of making it buffer.
@@ -18,10 +19,12 @@ import pytest
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from jointstat.bench.garble import wide_circuit
-from jointstat.circuit.layers import LayeredCircuit, evaluate_plain, schedule
-from jointstat.circuit.model import Circuit, Party
-from jointstat.circuit.reference import aes128
+from jointstat.bench.garble import wide_program
+from jointstat.circuit.backend import PlainBackend
+from jointstat.circuit.builder import Builder
+from jointstat.circuit.model import Party
+from jointstat.circuit.program import Program
+from jointstat.circuit.reference import aes128, sha256
 from jointstat.protocol import AbortReason, EvaluatorSession, GarblerSession, signer, verifier
 from jointstat.protocol import frames as fr
 from jointstat.protocol.session import Session
@@ -32,7 +35,7 @@ from jointstat.transport.driver import SessionResult, drive
 from jointstat.transport.pki import issue, new_ca, node_tls
 from jointstat.transport.tls import NodeTLS
 
-from tests.circuits import random_bits, random_circuits, reference_eval
+from tests.circuits import RandomProgram, random_bits, random_programs, reference_eval
 
 # Invented scenario: a regional bakery co-operative (garbler) and a flour mill (evaluator) compare figures.
 MANIFEST = hashlib.sha256(b"invented manifest: bakery co-operative and flour mill, weekly tonnage").digest()
@@ -40,6 +43,8 @@ LIMITS = Limits(deadline_s=30, idle_timeout_s=10, abort_grace_s=1)
 FIPS197_C1_KEY = bytes.fromhex("000102030405060708090a0b0c0d0e0f")  # FIPS 197 Appendix C.1
 FIPS197_C1_PLAINTEXT = bytes.fromhex("00112233445566778899aabbccddeeff")  # FIPS 197 Appendix C.1
 FIPS197_C1_CIPHERTEXT = bytes.fromhex("69c4e0d86a7b0430d8cdb78070b4c55a")  # FIPS 197 Appendix C.1
+# FIPS 180-4 example "abc" (one block), SHA-256 digest, from memory; checked against `hashlib` in the test.
+FIPS180_ABC_DIGEST = bytes.fromhex("ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad")
 
 
 class Nodes:
@@ -51,10 +56,10 @@ class Nodes:
         self.bakery_key = Ed25519PrivateKey.generate()
         self.mill_key = Ed25519PrivateKey.generate()
 
-    def garbler(self, layered: LayeredCircuit, sid: bytes, bits: np.ndarray, **kw: object) -> GarblerSession:
+    def garbler(self, program: Program, sid: bytes, bits: np.ndarray, **kw: object) -> GarblerSession:
         return GarblerSession(
             session_id=sid,
-            layered=layered,
+            program=program,
             manifest_digest=kw.pop("manifest", MANIFEST),  # type: ignore[arg-type]
             inputs=bits,
             sign=signer(self.bakery_key),
@@ -62,12 +67,10 @@ class Nodes:
             **kw,  # type: ignore[arg-type]
         )
 
-    def evaluator(
-        self, layered: LayeredCircuit, sid: bytes, bits: np.ndarray, **kw: object
-    ) -> EvaluatorSession:
+    def evaluator(self, program: Program, sid: bytes, bits: np.ndarray, **kw: object) -> EvaluatorSession:
         return EvaluatorSession(
             session_id=sid,
-            layered=layered,
+            program=kw.pop("other_program", program),  # type: ignore[arg-type]
             manifest_digest=kw.pop("manifest", MANIFEST),  # type: ignore[arg-type]
             inputs=bits,
             sign=signer(self.mill_key),
@@ -81,15 +84,26 @@ def nodes() -> Nodes:
 
 
 @pytest.fixture(scope="module")
-def wide() -> LayeredCircuit:
-    return schedule(wide_circuit(1 << 15, 1024))
+def wide() -> Program:
+    return wide_program(1 << 15, 1024)
 
 
-def inputs_for(circuit: Circuit, seed: int) -> tuple[np.ndarray, np.ndarray]:
+def inputs_for(program: Program, seed: int) -> tuple[np.ndarray, np.ndarray]:
     rng = np.random.default_rng(seed)
-    return random_bits(rng, circuit.n_inputs(Party.GARBLER)), random_bits(
-        rng, circuit.n_inputs(Party.EVALUATOR)
+    return random_bits(rng, program.n_inputs(Party.GARBLER)), random_bits(
+        rng, program.n_inputs(Party.EVALUATOR)
     )
+
+
+def plain_outputs(program: Program, g_bits: np.ndarray, e_bits: np.ndarray) -> dict[Party, np.ndarray]:
+    backend = PlainBackend({Party.GARBLER: g_bits, Party.EVALUATOR: e_bits})
+    program.run(Builder(backend))
+    return {p: backend.outputs(p) for p in Party}
+
+
+def sha256_pad(message: bytes) -> bytes:
+    """FIPS 180-4 §5.1.1 padding: 0x80, zeros to 56 mod 64, then the bit length as a 64-bit big-endian integer."""
+    return message + b"\x80" + bytes((55 - len(message)) % 64) + (8 * len(message)).to_bytes(8, "big")
 
 
 async def serve_and_connect(
@@ -134,9 +148,9 @@ def assert_nothing_released(*results: SessionResult) -> None:
 async def test_aes128_gives_the_evaluator_the_fips197_ciphertext_and_the_garbler_nothing(
     nodes: Nodes,
 ) -> None:
-    layered = schedule(aes128.aes128_circuit())
-    garbler = nodes.garbler(layered, b"aes-fips197-c1", aes128.key_bits(FIPS197_C1_KEY))
-    evaluator = nodes.evaluator(layered, b"aes-fips197-c1", aes128.block_bits(FIPS197_C1_PLAINTEXT))
+    program = Program.of(aes128.aes128_program)
+    garbler = nodes.garbler(program, b"aes-fips197-c1", aes128.key_bits(FIPS197_C1_KEY))
+    evaluator = nodes.evaluator(program, b"aes-fips197-c1", aes128.block_bits(FIPS197_C1_PLAINTEXT))
     g, e = await serve_and_connect(nodes.bakery_tls, nodes.mill_tls, garbler, evaluator)
     assert e.completed and g.completed
     assert aes128.bits_to_block(e.outputs) == FIPS197_C1_CIPHERTEXT
@@ -146,35 +160,50 @@ async def test_aes128_gives_the_evaluator_the_fips197_ciphertext_and_the_garbler
         nodes.bakery_key.public_key(), b"aes-fips197-c1".hex(), e.transcript_digest, e.peer_signature
     )
     # Table bytes dominate what crossed the wire: 32 bytes for each of the 6,400 AND gates, both directions counted.
-    assert g.bytes_on_wire == e.bytes_on_wire >= 32 * layered.n_and
+    assert g.bytes_on_wire == e.bytes_on_wire >= 32 * program.size.and_gates
     assert g.counters.bytes_sent == e.counters.bytes_received
 
 
+async def test_sha256_over_tls_gives_the_evaluator_the_fips180_digest_of_abc(nodes: Nodes) -> None:
+    assert hashlib.sha256(b"abc").digest() == FIPS180_ABC_DIGEST  # the known answer, against hashlib
+    program = Program.of(sha256.sha256_compress_program)
+    garbler = nodes.garbler(
+        program, b"sha256-abc", sha256.block_bits(sha256_pad(b"abc")), chunk_bytes=1 << 16
+    )
+    evaluator = nodes.evaluator(program, b"sha256-abc", sha256.chaining_bits(sha256.INITIAL_HASH))
+    # The evaluator serves this time: the garbler connects and streams its tables up the client stream.
+    e, g = await serve_and_connect(nodes.mill_tls, nodes.bakery_tls, evaluator, garbler)
+    assert e.completed and g.completed
+    assert sha256.bits_to_chaining(e.outputs) == FIPS180_ABC_DIGEST  # FIPS 180-4, one block
+    assert g.transcript_digest == e.transcript_digest
+    assert g.counters.bytes_sent >= 32 * program.size.and_gates
+
+
 @settings(max_examples=6)
-@given(random_circuits(max_gates=200), st.integers(0, 2**32 - 1), st.booleans())
-def test_random_circuits_over_tls_give_each_side_only_its_own_outputs(
-    nodes: Nodes, circuit: Circuit, seed: int, garbler_serves: bool
+@given(random_programs(max_gates=200), st.integers(0, 2**32 - 1), st.booleans())
+def test_random_programs_over_tls_give_each_side_only_its_own_outputs(
+    nodes: Nodes, random: RandomProgram, seed: int, garbler_serves: bool
 ) -> None:
-    layered = schedule(circuit)
-    g_bits, e_bits = inputs_for(circuit, seed)
-    sid = hashlib.sha256(seed.to_bytes(4, "big") + circuit.digest()).digest()[:16]
-    garbler, evaluator = nodes.garbler(layered, sid, g_bits), nodes.evaluator(layered, sid, e_bits)
+    program = Program.of(random.run)
+    g_bits, e_bits = inputs_for(program, seed)
+    sid = hashlib.sha256(seed.to_bytes(4, "big") + program.digest).digest()[:16]
+    garbler, evaluator = nodes.garbler(program, sid, g_bits), nodes.evaluator(program, sid, e_bits)
     if garbler_serves:
         g, e = asyncio.run(serve_and_connect(nodes.bakery_tls, nodes.mill_tls, garbler, evaluator))
     else:
         e, g = asyncio.run(serve_and_connect(nodes.mill_tls, nodes.bakery_tls, evaluator, garbler))
-    expected = reference_eval(circuit, g_bits, e_bits)
+    expected = reference_eval(random, g_bits, e_bits)  # gate by gate on Python integers
     assert g.party == Party.GARBLER and e.party == Party.EVALUATOR
     assert np.array_equal(g.outputs, expected[Party.GARBLER])
     assert np.array_equal(e.outputs, expected[Party.EVALUATOR])
 
 
-async def test_a_wide_circuit_streams_many_frames_and_completes(nodes: Nodes, wide: LayeredCircuit) -> None:
-    g_bits, e_bits = inputs_for(wide.circuit, 1)
+async def test_a_wide_program_streams_many_frames_and_completes(nodes: Nodes, wide: Program) -> None:
+    g_bits, e_bits = inputs_for(wide, 1)
     garbler = nodes.garbler(wide, b"wide-1", g_bits, chunk_bytes=1 << 14)
     evaluator = nodes.evaluator(wide, b"wide-1", e_bits)
     g, e = await serve_and_connect(nodes.bakery_tls, nodes.mill_tls, garbler, evaluator)
-    expected = evaluate_plain(wide, {Party.GARBLER: g_bits, Party.EVALUATOR: e_bits})
+    expected = plain_outputs(wide, g_bits, e_bits)
     assert np.array_equal(g.outputs, expected[Party.GARBLER]) and np.array_equal(
         e.outputs, expected[Party.EVALUATOR]
     )
@@ -185,9 +214,9 @@ async def test_a_wide_circuit_streams_many_frames_and_completes(nodes: Nodes, wi
 
 
 async def test_mismatched_manifest_digests_abort_both_nodes_with_no_output(
-    nodes: Nodes, wide: LayeredCircuit
+    nodes: Nodes, wide: Program
 ) -> None:
-    g_bits, e_bits = inputs_for(wide.circuit, 2)
+    g_bits, e_bits = inputs_for(wide, 2)
     other = hashlib.sha256(b"invented manifest: another week").digest()
     garbler = nodes.garbler(wide, b"mismatch", g_bits)
     evaluator = nodes.evaluator(wide, b"mismatch", e_bits, manifest=other)
@@ -195,6 +224,20 @@ async def test_mismatched_manifest_digests_abort_both_nodes_with_no_output(
     assert_nothing_released(g, e)
     assert g.abort.reason == e.abort.reason == AbortReason.MANIFEST_MISMATCH
     assert g.counters.bytes_sent < 1000 and e.counters.bytes_sent < 1000  # hellos and aborts only
+
+
+async def test_different_programs_abort_both_nodes_at_hello_with_no_output(
+    nodes: Nodes, wide: Program
+) -> None:
+    g_bits, e_bits = inputs_for(wide, 15)
+    other = wide_program((1 << 15) + 1024, 1024)  # same inputs, one round more: another program digest
+    garbler = nodes.garbler(wide, b"other-program", g_bits)
+    evaluator = nodes.evaluator(wide, b"other-program", e_bits, other_program=other)
+    g, e = await serve_and_connect(nodes.bakery_tls, nodes.mill_tls, garbler, evaluator)
+    assert_nothing_released(g, e)
+    assert g.abort.reason == e.abort.reason == AbortReason.MANIFEST_MISMATCH
+    assert "program digests differ" in g.abort.message and "program digests differ" in e.abort.message
+    assert g.counters.frames_sent == e.counters.frames_sent == 2  # hello and abort: nothing secret moved
 
 
 # -- vanishing, silent and cancelled peers -----------------------------------------------------------------------------
@@ -207,9 +250,9 @@ async def open_raw(tls: NodeTLS, port: int) -> tuple[grpc.aio.Channel, grpc.aio.
 
 
 async def test_an_evaluator_that_vanishes_mid_stream_makes_the_garbler_abort(
-    nodes: Nodes, wide: LayeredCircuit
+    nodes: Nodes, wide: Program
 ) -> None:
-    g_bits, e_bits = inputs_for(wide.circuit, 3)
+    g_bits, e_bits = inputs_for(wide, 3)
     garbler = nodes.garbler(wide, b"vanish-e", g_bits, chunk_bytes=1 << 12)
     evaluator = nodes.evaluator(wide, b"vanish-e", e_bits)
     async with SessionServer(nodes.bakery_tls, limits=LIMITS) as server:
@@ -228,13 +271,13 @@ async def test_an_evaluator_that_vanishes_mid_stream_makes_the_garbler_abort(
         g = await asyncio.wait_for(expected, timeout=LIMITS.idle_timeout_s + 5)
     assert_nothing_released(g)
     assert g.abort.reason == AbortReason.CONNECTION_LOST
-    assert g.counters.bytes_sent < 32 * wide.n_and  # it stopped before sending the whole circuit
+    assert g.counters.bytes_sent < 32 * wide.size.and_gates  # it stopped before sending the whole circuit
 
 
 async def test_a_garbler_that_vanishes_mid_stream_makes_the_evaluator_abort(
-    nodes: Nodes, wide: LayeredCircuit
+    nodes: Nodes, wide: Program
 ) -> None:
-    g_bits, e_bits = inputs_for(wide.circuit, 4)
+    g_bits, e_bits = inputs_for(wide, 4)
     garbler = nodes.garbler(wide, b"vanish-g", g_bits, chunk_bytes=1 << 12)
     evaluator = nodes.evaluator(wide, b"vanish-g", e_bits)
     server = SessionServer(nodes.mill_tls, limits=LIMITS)
@@ -261,16 +304,14 @@ async def test_a_garbler_that_vanishes_mid_stream_makes_the_evaluator_abort(
     assert e.abort.reason == AbortReason.CONNECTION_LOST
 
 
-async def test_a_peer_that_goes_silent_is_aborted_after_the_idle_timeout(
-    nodes: Nodes, wide: LayeredCircuit
-) -> None:
-    g_bits, _ = inputs_for(wide.circuit, 5)
+async def test_a_peer_that_goes_silent_is_aborted_after_the_idle_timeout(nodes: Nodes, wide: Program) -> None:
+    g_bits, _ = inputs_for(wide, 5)
     garbler = nodes.garbler(wide, b"silent", g_bits)
     quick = Limits(deadline_s=30, idle_timeout_s=0.5, abort_grace_s=0.5)
     async with SessionServer(nodes.bakery_tls, limits=quick) as server:
         expected = server.expect(garbler)
         channel, call = await open_raw(nodes.mill_tls, server.port)
-        evaluator = nodes.evaluator(wide, b"silent", inputs_for(wide.circuit, 5)[1])
+        evaluator = nodes.evaluator(wide, b"silent", inputs_for(wide, 5)[1])
         await call.write(evaluator.start()[0])  # hello, then nothing more
         g = await asyncio.wait_for(expected, timeout=10)
         # The garbler told the silent peer why it gave up.
@@ -283,21 +324,21 @@ async def test_a_peer_that_goes_silent_is_aborted_after_the_idle_timeout(
     assert frames[-1][0] == fr.ABORT and frames[-1][1].abort.reason == int(AbortReason.DEADLINE)
 
 
-async def test_a_session_that_overruns_its_deadline_is_aborted(nodes: Nodes, wide: LayeredCircuit) -> None:
-    garbler = nodes.garbler(wide, b"deadline", inputs_for(wide.circuit, 14)[0])
+async def test_a_session_that_overruns_its_deadline_is_aborted(nodes: Nodes, wide: Program) -> None:
+    garbler = nodes.garbler(wide, b"deadline", inputs_for(wide, 14)[0])
     short = Limits(deadline_s=0.3, idle_timeout_s=30, abort_grace_s=0.5)
     async with SessionServer(nodes.bakery_tls, limits=short) as server:
         expected = server.expect(garbler)
         channel, call = await open_raw(nodes.mill_tls, server.port)
-        await call.write(nodes.evaluator(wide, b"deadline", inputs_for(wide.circuit, 14)[1]).start()[0])
+        await call.write(nodes.evaluator(wide, b"deadline", inputs_for(wide, 14)[1]).start()[0])
         g = await asyncio.wait_for(expected, timeout=10)
         await channel.close()
     assert_nothing_released(g)
     assert g.abort.reason == AbortReason.DEADLINE and "session deadline of 0.3 s passed" in g.abort.message
 
 
-async def test_cancelling_the_client_aborts_the_server_side_too(nodes: Nodes, wide: LayeredCircuit) -> None:
-    g_bits, e_bits = inputs_for(wide.circuit, 6)
+async def test_cancelling_the_client_aborts_the_server_side_too(nodes: Nodes, wide: Program) -> None:
+    g_bits, e_bits = inputs_for(wide, 6)
     garbler = nodes.garbler(wide, b"cancel", g_bits, chunk_bytes=1 << 12)
     evaluator = nodes.evaluator(wide, b"cancel", e_bits)
     async with SessionServer(nodes.bakery_tls, limits=LIMITS) as server:
@@ -321,8 +362,8 @@ async def test_cancelling_the_client_aborts_the_server_side_too(nodes: Nodes, wi
     }
 
 
-async def test_stopping_the_server_mid_session_aborts_the_client(nodes: Nodes, wide: LayeredCircuit) -> None:
-    g_bits, e_bits = inputs_for(wide.circuit, 7)
+async def test_stopping_the_server_mid_session_aborts_the_client(nodes: Nodes, wide: Program) -> None:
+    g_bits, e_bits = inputs_for(wide, 7)
     garbler = nodes.garbler(wide, b"server-stop", g_bits, chunk_bytes=1 << 12)
     evaluator = nodes.evaluator(wide, b"server-stop", e_bits)
     server = SessionServer(nodes.bakery_tls, limits=LIMITS)
@@ -341,8 +382,8 @@ async def test_stopping_the_server_mid_session_aborts_the_client(nodes: Nodes, w
 # -- refused streams ---------------------------------------------------------------------------------------------------
 
 
-async def test_a_session_id_seen_before_is_refused(nodes: Nodes, wide: LayeredCircuit) -> None:
-    g_bits, e_bits = inputs_for(wide.circuit, 8)
+async def test_a_session_id_seen_before_is_refused(nodes: Nodes, wide: Program) -> None:
+    g_bits, e_bits = inputs_for(wide, 8)
     ids = SessionIds()
     async with SessionServer(nodes.bakery_tls, limits=LIMITS) as server:
         expected = server.expect(nodes.garbler(wide, b"once", g_bits))
@@ -373,10 +414,10 @@ async def test_a_session_id_seen_before_is_refused(nodes: Nodes, wide: LayeredCi
     assert "used before" in frame.abort.message
 
 
-async def test_a_session_nobody_expects_is_refused(nodes: Nodes, wide: LayeredCircuit) -> None:
+async def test_a_session_nobody_expects_is_refused(nodes: Nodes, wide: Program) -> None:
     async with SessionServer(nodes.bakery_tls, limits=LIMITS) as server:
         e = await run_client(
-            nodes.evaluator(wide, b"unknown", inputs_for(wide.circuit, 9)[1]),
+            nodes.evaluator(wide, b"unknown", inputs_for(wide, 9)[1]),
             f"127.0.0.1:{server.port}",
             nodes.mill_tls,
             limits=LIMITS,
@@ -394,10 +435,10 @@ async def test_a_session_nobody_expects_is_refused(nodes: Nodes, wide: LayeredCi
     ],
 )
 async def test_a_malformed_first_frame_is_refused_with_a_reason(
-    nodes: Nodes, wide: LayeredCircuit, frames: list[bytes], reason: AbortReason, text: str
+    nodes: Nodes, wide: Program, frames: list[bytes], reason: AbortReason, text: str
 ) -> None:
     async with SessionServer(nodes.bakery_tls, limits=LIMITS) as server:
-        garbler = nodes.garbler(wide, b"malformed-first", inputs_for(wide.circuit, 10)[0])
+        garbler = nodes.garbler(wide, b"malformed-first", inputs_for(wide, 10)[0])
         server.expect(garbler)
         channel, call = await open_raw(nodes.mill_tls, server.port)
         for data in frames:
@@ -418,9 +459,9 @@ async def test_a_malformed_first_frame_is_refused_with_a_reason(
     ],
 )
 async def test_a_malformed_frame_mid_session_aborts_the_session_with_a_reason(
-    nodes: Nodes, wide: LayeredCircuit, bad: bytes, reason: AbortReason, text: str
+    nodes: Nodes, wide: Program, bad: bytes, reason: AbortReason, text: str
 ) -> None:
-    g_bits, e_bits = inputs_for(wide.circuit, 11)
+    g_bits, e_bits = inputs_for(wide, 11)
     garbler = nodes.garbler(wide, b"malformed-mid", g_bits)
     async with SessionServer(nodes.bakery_tls, limits=LIMITS) as server:
         expected = server.expect(garbler)
@@ -438,10 +479,8 @@ async def test_a_malformed_frame_mid_session_aborts_the_session_with_a_reason(
     assert frames[-1][1].abort.reason == int(reason)
 
 
-async def test_a_frame_over_four_mebibytes_never_reaches_the_session(
-    nodes: Nodes, wide: LayeredCircuit
-) -> None:
-    g_bits, e_bits = inputs_for(wide.circuit, 12)
+async def test_a_frame_over_four_mebibytes_never_reaches_the_session(nodes: Nodes, wide: Program) -> None:
+    g_bits, e_bits = inputs_for(wide, 12)
     garbler = nodes.garbler(wide, b"oversize", g_bits)
     async with SessionServer(nodes.bakery_tls, limits=LIMITS) as server:
         expected = server.expect(garbler)
@@ -486,11 +525,11 @@ class PausedReads(ClientStream):
 
 
 async def test_a_slow_evaluator_holds_the_garbler_back_instead_of_making_it_buffer(nodes: Nodes) -> None:
-    layered = schedule(wide_circuit(1 << 20, 8192))  # 32 MiB of tables
-    g_bits, e_bits = inputs_for(layered.circuit, 13)
+    program = wide_program(1 << 20, 8192)  # 32 MiB of tables
+    g_bits, e_bits = inputs_for(program, 13)
     chunk = 1 << 14
-    garbler = nodes.garbler(layered, b"slow-evaluator", g_bits, chunk_bytes=chunk)
-    evaluator = nodes.evaluator(layered, b"slow-evaluator", e_bits)
+    garbler = nodes.garbler(program, b"slow-evaluator", g_bits, chunk_bytes=chunk)
+    evaluator = nodes.evaluator(program, b"slow-evaluator", e_bits)
     async with SessionServer(nodes.bakery_tls, limits=LIMITS) as server:
         expected = server.expect(garbler)
         channel, call = await open_raw(nodes.mill_tls, server.port)
@@ -508,7 +547,7 @@ async def test_a_slow_evaluator_holds_the_garbler_back_instead_of_making_it_buff
         g = await expected
         await channel.close()
     assert e.completed and g.completed
-    expected_out = evaluate_plain(layered, {Party.GARBLER: g_bits, Party.EVALUATOR: e_bits})
+    expected_out = plain_outputs(program, g_bits, e_bits)
     assert np.array_equal(e.outputs, expected_out[Party.EVALUATOR])
     # It stalled well short of the 32 MiB of tables: a send window of frames plus gRPC's bounded buffers.
     assert ahead_bytes < 16 * 1024 * 1024

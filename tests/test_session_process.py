@@ -15,9 +15,8 @@ import signal
 import grpc
 import numpy as np
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
-from jointstat.bench.garble import wide_circuit
+from jointstat.bench.garble import wide_program
 from jointstat.bench.session import SESSION_ID, node_process, node_specs
-from jointstat.circuit.layers import schedule
 from jointstat.circuit.model import Party
 from jointstat.protocol import AbortReason, EvaluatorSession, signer, verifier
 from jointstat.protocol import frames as fr
@@ -54,12 +53,12 @@ async def test_killing_the_garbler_process_mid_stream_aborts_the_evaluator_with_
     try:
         assert parent.poll(120), "the garbler process did not start"
         port = parent.recv()["port"]
-        layered = schedule(wide_circuit(1 << 18, 4096))
+        program = wide_program(1 << 18, 4096)  # the program the garbler process measures and runs
         evaluator = EvaluatorSession(
             session_id=SESSION_ID,
-            layered=layered,
+            program=program,
             manifest_digest=e_spec["manifest_digest"],
-            inputs=np.zeros(layered.circuit.n_inputs(Party.EVALUATOR), dtype=np.uint8),
+            inputs=np.zeros(program.n_inputs(Party.EVALUATOR), dtype=np.uint8),
             sign=signer(Ed25519PrivateKey.from_private_bytes(e_spec["signing_key"])),
             verify=verifier(Ed25519PublicKey.from_public_bytes(e_spec["peer_public_key"])),
         )
@@ -78,4 +77,5 @@ async def test_killing_the_garbler_process_mid_stream_aborts_the_evaluator_with_
     assert stream.killed and garbler.exitcode == -signal.SIGKILL
     assert not result.completed and result.outputs is None and evaluator.failed
     assert result.abort is not None and result.abort.reason == AbortReason.CONNECTION_LOST
-    assert result.counters.bytes_received < 32 * layered.n_and  # it never got the whole circuit
+    assert result.counters.bytes_received < 32 * program.size.and_gates  # it never got the whole circuit
+    assert 0 < evaluator.and_gates_done < program.size.and_gates  # it was evaluating when the garbler died

@@ -11,8 +11,8 @@ import numpy as np
 import pytest
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 from jointstat.circuit.builder import Builder
-from jointstat.circuit.layers import LayeredCircuit, schedule
 from jointstat.circuit.model import Party
+from jointstat.circuit.program import Program
 from jointstat.protocol import EvaluatorSession, GarblerSession, signer, verifier
 from jointstat.transport import Limits, SessionServer, run_client
 from jointstat.transport.pki import Issued, issue, new_ca, node_tls
@@ -38,21 +38,23 @@ def pki() -> PKI:
     return PKI()
 
 
-@pytest.fixture(scope="module")
-def tiny() -> LayeredCircuit:
-    bld = Builder()
+def tiny_program(bld: Builder) -> None:
     g = bld.input(Party.GARBLER, 4)
     e = bld.input(Party.EVALUATOR, 4)
     bld.output(Party.EVALUATOR, bld.and_(g, e))
     bld.output(Party.GARBLER, bld.xor(g, e))
-    return schedule(bld.build())
 
 
-def pair(layered: LayeredCircuit, sid: bytes) -> tuple[GarblerSession, EvaluatorSession]:
+@pytest.fixture(scope="module")
+def tiny() -> Program:
+    return Program.of(tiny_program)
+
+
+def pair(program: Program, sid: bytes) -> tuple[GarblerSession, EvaluatorSession]:
     gk, ek = Ed25519PrivateKey.generate(), Ed25519PrivateKey.generate()
     g = GarblerSession(
         session_id=sid,
-        layered=layered,
+        program=program,
         manifest_digest=MANIFEST,
         inputs=np.array([1, 0, 1, 1]),
         sign=signer(gk),
@@ -60,7 +62,7 @@ def pair(layered: LayeredCircuit, sid: bytes) -> tuple[GarblerSession, Evaluator
     )
     e = EvaluatorSession(
         session_id=sid,
-        layered=layered,
+        program=program,
         manifest_digest=MANIFEST,
         inputs=np.array([1, 1, 0, 1]),
         sign=signer(ek),
@@ -70,9 +72,9 @@ def pair(layered: LayeredCircuit, sid: bytes) -> tuple[GarblerSession, Evaluator
 
 
 async def attempt(
-    layered: LayeredCircuit, server_tls: NodeTLS, client_tls: NodeTLS, sid: bytes
+    program: Program, server_tls: NodeTLS, client_tls: NodeTLS, sid: bytes
 ) -> tuple[GarblerSession, EvaluatorSession, object, object]:
-    garbler, evaluator = pair(layered, sid)
+    garbler, evaluator = pair(program, sid)
     server = SessionServer(server_tls, limits=LIMITS)
     port = await server.start()
     try:
@@ -85,7 +87,7 @@ async def attempt(
     return garbler, evaluator, result, expected
 
 
-async def test_the_pinned_peers_complete_a_session_over_tls_1_3(pki: PKI, tiny: LayeredCircuit) -> None:
+async def test_the_pinned_peers_complete_a_session_over_tls_1_3(pki: PKI, tiny: Program) -> None:
     garbler, _evaluator, result, _ = await attempt(
         tiny, node_tls(pki.north, pki.south), node_tls(pki.south, pki.north), b"tls-ok"
     )
@@ -96,7 +98,7 @@ async def test_the_pinned_peers_complete_a_session_over_tls_1_3(pki: PKI, tiny: 
 
 @pytest.mark.parametrize("client", ["stranger", "south_twin"])
 async def test_a_client_certificate_that_is_not_pinned_is_refused(
-    pki: PKI, tiny: LayeredCircuit, client: str
+    pki: PKI, tiny: Program, client: str
 ) -> None:
     # "stranger": issued by another CA; "south_twin": issued by the right CA for the right name, but not pinned.
     presented: Issued = getattr(pki, client)
@@ -113,7 +115,7 @@ async def test_a_client_certificate_that_is_not_pinned_is_refused(
 
 @pytest.mark.parametrize("server", ["north_twin", "stranger"])
 async def test_a_server_certificate_that_is_not_pinned_is_refused(
-    pki: PKI, tiny: LayeredCircuit, server: str
+    pki: PKI, tiny: Program, server: str
 ) -> None:
     presented: Issued = getattr(pki, server)
     garbler, evaluator, result, _ = await attempt(

@@ -19,7 +19,11 @@ import numpy as np
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
-from jointstat.bench import faults
+from jointstat.circuit.model import Party
+from jointstat.harness import mutations
+from jointstat.harness.fuzzer import FUZZ_LIMITS, WIRE_SAMPLE, Fuzzer, FuzzReport, MemoryContext
+from jointstat.harness.identities import Pair
+from jointstat.harness.mutations import MUTATIONS, mutate
 from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import AbortReason, ProtocolError
 from jointstat.transport.server import REFUSALS_KEPT, SessionServer
@@ -30,7 +34,7 @@ CLEAR_REASONS = {r.name.lower() for r in AbortReason} - {"unspecified", "interna
 
 
 def test_ten_thousand_mutated_frames_are_each_rejected_with_a_clear_reason(
-    fuzzing: faults.FuzzReport,
+    fuzzing: FuzzReport,
 ) -> None:
     assert fuzzing.figures["frames_fuzzed"] == len(fuzzing.outcomes) == FUZZ_FRAMES >= 10_000
     verdicts = Counter(o.verdict for o in fuzzing.outcomes)
@@ -43,18 +47,18 @@ def test_ten_thousand_mutated_frames_are_each_rejected_with_a_clear_reason(
         assert o.reason in CLEAR_REASONS | {"transport"} or not own, o
 
 
-def test_every_mutation_is_sent_two_thousand_times_some_over_the_wire(fuzzing: faults.FuzzReport) -> None:
+def test_every_mutation_is_sent_two_thousand_times_some_over_the_wire(fuzzing: FuzzReport) -> None:
     by_kind = Counter(o.case.mutation for o in fuzzing.outcomes)
-    assert by_kind == {m: FUZZ_FRAMES // len(faults.MUTATIONS) for m in faults.MUTATIONS}
-    assert sum(o.case.wire for o in fuzzing.outcomes) == faults.WIRE_SAMPLE
-    # Both roles, both circuits, and first frames (refused by the server before any session) as well as later ones.
-    assert {(o.case.node_role, o.case.circuit) for o in fuzzing.outcomes} == {
-        (r, c) for r in faults.Party for c in ("plain", "ot")
+    assert by_kind == {m: FUZZ_FRAMES // len(MUTATIONS) for m in MUTATIONS}
+    assert sum(o.case.wire for o in fuzzing.outcomes) == WIRE_SAMPLE
+    # Both roles, both programs, and first frames (refused by the server before any session) as well as later ones.
+    assert {(o.case.node_role, o.case.program) for o in fuzzing.outcomes} == {
+        (r, c) for r in Party for c in ("plain", "ot")
     }
     assert 0 < sum(o.refused_first_frame for o in fuzzing.outcomes) < FUZZ_FRAMES // 2
 
 
-def test_the_node_names_the_damage_it_finds(fuzzing: faults.FuzzReport) -> None:
+def test_the_node_names_the_damage_it_finds(fuzzing: FuzzReport) -> None:
     reasons = Counter(o.reason for o in fuzzing.outcomes if not o.by_peer)
     for reason in (
         "malformed_frame",
@@ -66,7 +70,7 @@ def test_the_node_names_the_damage_it_finds(fuzzing: faults.FuzzReport) -> None:
         assert reasons[reason] > 0, reasons
 
 
-def test_nothing_crashes_or_hangs_and_memory_stays_bounded(fuzzing: faults.FuzzReport) -> None:
+def test_nothing_crashes_or_hangs_and_memory_stays_bounded(fuzzing: FuzzReport) -> None:
     f = fuzzing.figures
     assert fuzzing.crashes == [] and f["fuzz_crashes"] == 0 and f["fuzz_hung"] == 0
     # Resident memory after a warm-up tenth and at the end; what the node's code still holds per case, traced.
@@ -74,11 +78,11 @@ def test_nothing_crashes_or_hangs_and_memory_stays_bounded(fuzzing: faults.FuzzR
     assert f["fuzz_node_retained_bytes_per_case"] is not None and f["fuzz_node_retained_bytes_per_case"] < 256
 
 
-def test_the_node_serves_an_honest_session_after_the_fuzzing(fuzzing: faults.FuzzReport) -> None:
+def test_the_node_serves_an_honest_session_after_the_fuzzing(fuzzing: FuzzReport) -> None:
     assert fuzzing.figures["node_serves_after_fuzzing"] is True
 
 
-def test_no_abort_message_of_the_fuzzing_holds_a_secret(fuzzing: faults.FuzzReport) -> None:
+def test_no_abort_message_of_the_fuzzing_holds_a_secret(fuzzing: FuzzReport) -> None:
     assert fuzzing.findings == []
     assert fuzzing.figures["log_lines_scanned"] > 0
 
@@ -91,12 +95,12 @@ def session_frames() -> tuple[list[bytes], list[bytes]]:
     """(the frames of one honest session, the fuzzer's reference frames of another session)."""
     from jointstat.protocol.pipe import run_in_memory
 
-    fuzzer = faults.Fuzzer(seed=3)
-    node, peer = fuzzer._sessions("ot", faults.Party.GARBLER, b"a live session", 8)
+    fuzzer = Fuzzer(seed=3)
+    node, peer = fuzzer.sessions("ot", Party.GARBLER, b"a live session", 8)
     seen: list[bytes] = []
     run_in_memory(node, peer, intercept=lambda _to, data: (seen.append(data), [data])[1])  # type: ignore[arg-type]
     assert node.done and peer.done
-    return seen, fuzzer.references[("ot", faults.Party.GARBLER)]
+    return seen, fuzzer.references[("ot", Party.GARBLER)]
 
 
 @pytest.fixture(scope="module")
@@ -108,8 +112,8 @@ def frames() -> list[bytes]:
 def test_every_mutation_changes_the_frame(seed: int, data: st.DataObject) -> None:
     live, references = session_frames()
     frame = data.draw(st.sampled_from(live))
-    how = data.draw(st.sampled_from(faults.MUTATIONS))
-    out = faults.mutate(frame, how, np.random.default_rng(seed), references, previous=live[0])
+    how = data.draw(st.sampled_from(MUTATIONS))
+    out = mutate(frame, how, np.random.default_rng(seed), references, previous=live[0])
     assert out and out != [frame]
 
 
@@ -117,7 +121,7 @@ def test_every_mutation_changes_the_frame(seed: int, data: st.DataObject) -> Non
 def test_an_oversized_length_prefix_never_decodes(seed: int) -> None:
     rng = np.random.default_rng(seed)
     for frame in session_frames()[0]:
-        (mutated,) = faults.mutate(frame, faults.OVERSIZED, rng, [])
+        (mutated,) = mutate(frame, mutations.OVERSIZED, rng, [])
         with pytest.raises(ProtocolError) as info:
             fr.decode(mutated)
         assert info.value.reason == AbortReason.MALFORMED_FRAME
@@ -127,7 +131,7 @@ def test_an_unknown_frame_type_is_named_as_such(frames: list[bytes]) -> None:
     rng = np.random.default_rng(11)
     seen = Counter()
     for frame in frames * 20:
-        (mutated,) = faults.mutate(frame, faults.UNKNOWN_TYPE, rng, [])
+        (mutated,) = mutate(frame, mutations.UNKNOWN_TYPE, rng, [])
         with pytest.raises(ProtocolError) as info:
             fr.decode(mutated)
         seen["unknown frame type" in str(info.value)] += 1
@@ -138,7 +142,7 @@ def test_frames_out_of_order_are_valid_frames(frames: list[bytes]) -> None:
     rng = np.random.default_rng(5)
     references = session_frames()[1]
     for frame in frames:
-        for sent in faults.mutate(frame, faults.OUT_OF_ORDER, rng, references, previous=frames[0]):
+        for sent in mutate(frame, mutations.OUT_OF_ORDER, rng, references, previous=frames[0]):
             kind, _ = fr.decode(sent)  # every one decodes: only its place is wrong
             assert kind in fr.FRAME_TYPES
 
@@ -147,20 +151,20 @@ def test_frames_out_of_order_are_valid_frames(frames: list[bytes]) -> None:
 
 
 async def test_a_server_keeps_only_the_latest_refusal_messages_however_many_streams_it_refuses() -> None:
-    pair = faults.Pair.fresh()
-    server = SessionServer(pair.node_tls(), limits=faults.FUZZ_LIMITS)
+    pair = Pair.fresh()
+    server = SessionServer(pair.node_tls(), limits=FUZZ_LIMITS)
     refused = REFUSALS_KEPT + 250
     for i in range(refused):
-        ctx = faults._FakeContext(pair.peer.issued.certificate)
+        ctx = MemoryContext(pair.peer.issued.certificate)
         # A valid hello of a session nobody expects: refused with an abort frame, before any session runs.
         hello = fr.hello_frame(
-            party=faults.Party.GARBLER,
+            party=Party.GARBLER,
             session_id=b"nobody expects %d" % i,
             manifest_digest=bytes(32),
-            circuit_digest=bytes(32),
+            program_digest=bytes(32),
         )
         ctx.to_node.put_nowait(hello)
-        await asyncio.wait_for(server._exchange(None, ctx), timeout=5)
+        await asyncio.wait_for(server._exchange(None, ctx), timeout=5)  # type: ignore[arg-type]
         kind, frame = fr.decode(ctx.written[-1])
         assert kind == fr.ABORT and frame.abort.reason == AbortReason.SESSION_REFUSED
     assert len(server.refused) == REFUSALS_KEPT

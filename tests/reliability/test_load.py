@@ -12,7 +12,10 @@ import asyncio
 import os
 from pathlib import Path
 
-from jointstat.bench import faults
+from jointstat.circuit.model import Party
+from jointstat.harness.campaign import NodeCampaign
+from jointstat.harness.peer import play_initiated, propose_run
+from jointstat.harness.scenario import expected_result
 from jointstat.transport.driver import Limits
 from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
 
@@ -23,10 +26,10 @@ ROOMY = Limits(deadline_s=120.0, idle_timeout_s=60.0, abort_grace_s=1.0)  # live
 async def test_sixteen_concurrent_sessions_complete_and_one_more_is_refused_busy_at_once(
     tmp_path: Path,
 ) -> None:
-    async with faults.NodeCampaign(tmp_path, limits=ROOMY, max_sessions=CONCURRENT, node_deadline_s=120) as c:
+    async with NodeCampaign(tmp_path, limits=ROOMY, max_sessions=CONCURRENT, node_deadline_s=120) as c:
 
         async def propose(attempt: int) -> tuple[object, pb.RunAnswer]:
-            return await faults.propose_run(
+            return await propose_run(
                 c.keys, c.job, c.logged, node_port=c.node_port, session_id=os.urandom(16), attempt=attempt
             )
 
@@ -43,7 +46,7 @@ async def test_sixteen_concurrent_sessions_complete_and_one_more_is_refused_busy
 
         played = await asyncio.gather(
             *(
-                faults.play_initiated(
+                play_initiated(
                     session,
                     c.keys,
                     c.logged,
@@ -56,21 +59,20 @@ async def test_sixteen_concurrent_sessions_complete_and_one_more_is_refused_busy
                 for session, _ in proposed
             )
         )
-        expected = faults.expected_result()
+        expected = expected_result()
         for (session, _), (peer, _fired) in zip(proposed, played, strict=True):
             assert peer.outputs is not None, peer.message
             decoded = c.job.compiled.decode(peer.party, peer.outputs)
             assert {k: decoded[k] for k in expected} == expected
             node = await c.node_side(
-                session.session_id.hex(), faults.Party.EVALUATOR, asyncio.get_running_loop().time()
+                session.session_id.hex(), Party.EVALUATOR, asyncio.get_running_loop().time()
             )
             assert node.store_status == "completed" and node.outputs == expected
 
         # The refused one is in both logs as refused; the node's slots are free again and a new run completes.
-        busy = c._row(extra.session_id.hex())  # type: ignore[attr-defined]
-        assert (
-            busy is not None and busy[0] == "refused" and busy[1] is not None and busy[1].startswith("busy")
-        )
+        busy = c.run_of(extra.session_id.hex())  # type: ignore[attr-defined]
+        assert busy is not None and busy.status == "refused"
+        assert busy.reason is not None and busy.reason.startswith("busy")
         assert c.node.state.running_sessions() == 0
         after = await c.run_accepted(None)
         assert after.node.outputs == expected

@@ -20,11 +20,14 @@ from pathlib import Path
 import grpc
 import numpy as np
 import pytest
-from jointstat.bench import faults
 from jointstat.circuit.builder import Builder
-from jointstat.circuit.layers import LayeredCircuit, schedule
 from jointstat.circuit.model import Party
-from jointstat.node.jobs import PROPOSE_PATH, propose
+from jointstat.circuit.program import Program
+from jointstat.harness.campaign import CampaignReport, NodeCampaign
+from jointstat.harness.faultpoint import FaultPlan
+from jointstat.harness.scanner import Secrets, scan_for_secrets, secret_forms
+from jointstat.harness.scenario import JOB_ACCEPTED, NODE_METRES, NODE_NAME, TABLES, expected_result
+from jointstat.node.jobs import PROPOSE_PATH, PROTOCOL_VERSION, propose
 from jointstat.protocol import EvaluatorSession, GarblerSession, signer, verifier
 from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import AbortReason
@@ -45,12 +48,12 @@ HTTP2_PREFACE = b"PRI * HTTP/2.0\r\n\r\nSM\r\n\r\n" + bytes.fromhex(
 async def test_a_plaintext_connection_to_a_node_is_refused_before_any_frame_and_the_node_keeps_serving(
     tmp_path: Path,
 ) -> None:
-    async with faults.NodeCampaign(tmp_path) as c:
+    async with NodeCampaign(tmp_path) as c:
         hello = fr.hello_frame(
             party=Party.GARBLER,
             session_id=os.urandom(16),
             manifest_digest=c.job.digest,
-            circuit_digest=c.job.layered.circuit.digest(),
+            program_digest=c.job.program.digest,
         )
         async with grpc.aio.insecure_channel(f"127.0.0.1:{c.node_port}") as channel:
             call = channel.stream_stream(METHOD_PATH)(timeout=10)
@@ -63,7 +66,9 @@ async def test_a_plaintext_connection_to_a_node_is_refused_before_any_frame_and_
                 response_deserializer=pb.RunAnswer.FromString,
             )
             with pytest.raises(grpc.aio.AioRpcError) as proposal_error:
-                await proposal(pb.RunProposal(protocol_version=1, job=faults.JOB_ACCEPTED), timeout=10)
+                await proposal(
+                    pb.RunProposal(protocol_version=PROTOCOL_VERSION, job=JOB_ACCEPTED), timeout=10
+                )
         assert stream_error.value.code() == grpc.StatusCode.UNAVAILABLE
         assert proposal_error.value.code() == grpc.StatusCode.UNAVAILABLE
         # Cleartext HTTP/2 bytes on the raw socket: the node answers with no HTTP/2 at all (at most a TLS alert).
@@ -75,26 +80,28 @@ async def test_a_plaintext_connection_to_a_node_is_refused_before_any_frame_and_
         assert answer == b"" or answer[0] == 0x15  # 0x15: a TLS alert record (RFC 8446 §5.1)
         assert c.node.state.sessions == {}  # nothing reached the node's jobs
         served = await c.run_accepted(None)
-    assert served.node.outputs == faults.expected_result()
+    assert served.node.outputs == expected_result()
 
 
 # -- certificates --------------------------------------------------------------------------------------------------
 
 
-@pytest.fixture(scope="module")
-def tiny() -> LayeredCircuit:
-    bld = Builder()
+def tiny_program(bld: Builder) -> None:
     a = bld.input(Party.GARBLER, 4)
     b = bld.input(Party.EVALUATOR, 4)
     bld.output(Party.EVALUATOR, bld.and_(a, b))
-    return schedule(bld.build())
 
 
-def sessions(layered: LayeredCircuit, sid: bytes) -> tuple[GarblerSession, EvaluatorSession]:
+@pytest.fixture(scope="module")
+def tiny() -> Program:
+    return Program.of(tiny_program)
+
+
+def sessions(program: Program, sid: bytes) -> tuple[GarblerSession, EvaluatorSession]:
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 
     gk, ek = Ed25519PrivateKey.generate(), Ed25519PrivateKey.generate()
-    common = {"session_id": sid, "layered": layered, "manifest_digest": bytes(32)}
+    common = {"session_id": sid, "program": program, "manifest_digest": bytes(32)}
     g = GarblerSession(
         inputs=np.ones(4, dtype=np.uint8), sign=signer(gk), verify=verifier(ek.public_key()), **common
     )  # type: ignore[arg-type]
@@ -122,7 +129,7 @@ def bad_certificate(problem: str, ca: Issued, other_ca: Issued, name: str) -> tu
 @pytest.mark.parametrize("side", ["client", "server"])
 @pytest.mark.parametrize("problem", PROBLEMS)
 async def test_a_bad_certificate_is_refused_in_the_handshake_and_the_expected_session_is_untouched(
-    tiny: LayeredCircuit, problem: str, side: str
+    tiny: Program, problem: str, side: str
 ) -> None:
     ca, other_ca = new_ca("bike schemes trial CA"), new_ca("someone else's CA")
     server_good, client_good = issue(ca, "riverside.bikes.test"), issue(ca, "hillside.bikes.test")
@@ -150,9 +157,9 @@ async def test_a_bad_certificate_is_refused_in_the_handshake_and_the_expected_se
 async def test_a_session_id_used_before_is_refused_proposed_again_or_replayed_on_the_wire(
     tmp_path: Path,
 ) -> None:
-    async with faults.NodeCampaign(tmp_path) as c:
+    async with NodeCampaign(tmp_path) as c:
         completed = await c.run_accepted(None)
-        aborted = await c.run_accepted(faults.FaultPlan("cut", faults.TABLES, 2, Party.EVALUATOR))
+        aborted = await c.run_accepted(FaultPlan("cut", TABLES, 2, Party.EVALUATOR))
         assert completed.node.store_status == "completed"
         assert aborted.node.store_status == "aborted"
         tls = c.keys.tls()
@@ -160,8 +167,8 @@ async def test_a_session_id_used_before_is_refused_proposed_again_or_replayed_on
         for record in (completed, aborted):
             sid = bytes.fromhex(record.session_id)
             proposal = pb.RunProposal(
-                protocol_version=1,
-                job=faults.JOB_ACCEPTED,
+                protocol_version=PROTOCOL_VERSION,
+                job=JOB_ACCEPTED,
                 manifest_digest=c.job.digest,
                 session_id=sid,
                 scheduled_for_us=1,
@@ -175,7 +182,7 @@ async def test_a_session_id_used_before_is_refused_proposed_again_or_replayed_on
                 party=Party.GARBLER,
                 session_id=sid,
                 manifest_digest=c.job.digest,
-                circuit_digest=c.job.layered.circuit.digest(),
+                program_digest=c.job.program.digest,
             )
             async with grpc.aio.secure_channel(
                 f"127.0.0.1:{c.node_port}", tls.channel_credentials(), options=options
@@ -201,10 +208,10 @@ async def test_logs_job_store_results_keys_and_config_are_owner_only_even_under_
 ) -> None:
     old = os.umask(0)
     try:
-        async with faults.NodeCampaign(tmp_path) as c:
+        async with NodeCampaign(tmp_path) as c:
             served = await c.run_accepted(None)
             node = c.node.config.node
-            result = Path(c.node.config.job(faults.JOB_ACCEPTED).results)
+            result = Path(c.node.config.job(JOB_ACCEPTED).results)
             files = [
                 Path(node.session_log),
                 Path(node.job_store),
@@ -215,17 +222,21 @@ async def test_logs_job_store_results_keys_and_config_are_owner_only_even_under_
                 ),
                 *result.iterdir(),
                 *c.keys.directory.iterdir(),
-                tmp_path / f"{faults.NODE_NAME}.yaml",
+                tmp_path / f"{NODE_NAME}.yaml",
                 c.peer_log,
             ]
             directories = [Path(node.data_dir), result.parent, result, c.keys.directory]
             directories += [p for p in Path(node.data_dir).rglob("*") if p.is_dir()]
+            # Checked while the node runs: its store's write-ahead log and shared memory exist only until it closes.
+            loose_files = [p for p in files if loose(p)]
+            loose_directories = [d for d in directories if loose(d)]
     finally:
         os.umask(old)
-    assert served.node.outputs == faults.expected_result()
+    assert served.node.outputs == expected_result()
     assert any(p.suffix == ".json" for p in result.iterdir())  # a result file was written
-    assert [p for p in files if loose(p)] == []
-    assert [d for d in directories if loose(d)] == []
+    assert any(p.name.endswith("-wal") for p in files)  # the store's write-ahead log was among those checked
+    assert loose_files == []
+    assert loose_directories == []
 
 
 # -- the log scan --------------------------------------------------------------------------------------------------
@@ -234,33 +245,33 @@ async def test_logs_job_store_results_keys_and_config_are_owner_only_even_under_
 def test_the_log_scan_finds_a_label_a_delta_or_an_input_value_in_every_form_and_never_prints_it(
     tmp_path: Path,
 ) -> None:
-    secrets = faults.Secrets()
+    secrets = Secrets()
     rng = np.random.default_rng(17)
     delta, label = rng.bytes(16), rng.bytes(16)
     secrets.add_delta("s1", delta)
     secrets.add_labels("s1", label)
-    secrets.add_value(faults.NODE_METRES[0])
-    forms = faults.secret_forms(secrets)
+    secrets.add_value(NODE_METRES[0])
+    forms = secret_forms(secrets)
     kinds = " | ".join(forms.values())
     for kind in ("as hex", "upper-case hex", "base64", "decimal", "bytes literal", "bit string", "bit array"):
         assert kind in kinds
     for form, what in forms.items():
         log = tmp_path / "planted.jsonl"
         log.write_text(f'{{"seq":1,"detail":"the peer said {form} and left"}}\n', encoding="utf-8")
-        found = faults.scan_for_secrets(secrets, [log])
+        found = scan_for_secrets(secrets, [log])
         assert what in {f.what for f in found}, what
         assert all(form not in f.what for f in found)  # a finding names the secret, never shows it
     # Base64 inside a longer base64 string, at every alignment, is found too.
     for prefix in (b"", b"x", b"xy"):
         blob = base64.b64encode(prefix + delta + b"tail").decode()
-        assert faults.scan_for_secrets(secrets, texts=[("blob", blob)])
+        assert scan_for_secrets(secrets, texts=[("blob", blob)])
 
 
 def test_no_line_written_during_the_fault_campaign_holds_a_label_a_delta_or_an_input_value(
-    campaign: faults.CampaignReport,
+    campaign: CampaignReport,
 ) -> None:
     assert campaign.findings == []
     # What was searched for, and where: every session's Δ and labels, both schemes' figures, thousands of lines.
     assert len(campaign.secrets.deltas) >= len(campaign.records) // 2
-    assert len(campaign.secrets.blocks) > 1000 and campaign.secrets.values >= set(faults.NODE_METRES)
+    assert len(campaign.secrets.blocks) > 1000 and campaign.secrets.values >= set(NODE_METRES)
     assert campaign.figures["log_lines_scanned"] >= 10 * len(campaign.records)

@@ -43,7 +43,6 @@ class TableProducer:
     def __init__(self, run: Callable[[Sink], Any]) -> None:
         self._run = run
         self._glet: greenlet | None = None
-        self._caller: greenlet | None = None
         self.finished = False
         self.result: Any = None
         self.bytes_out = 0
@@ -52,10 +51,9 @@ class TableProducer:
         self.result = self._run(self._sink)
 
     def _sink(self, chunk: memoryview) -> None:
-        assert self._caller is not None
         data = bytes(chunk)  # the backend reuses its chunk buffer once this returns
         self.bytes_out += len(data)
-        self._caller.switch(data)
+        getcurrent().parent.switch(data)  # back to the caller of next_chunk
 
     def close(self) -> None:
         """Stop a program paused mid-way (its stack unwinds now, freeing its labels); call on the owning thread."""
@@ -72,8 +70,7 @@ class TableProducer:
             return None
         if self._glet is None:
             self._glet = greenlet(self._body)
-        self._caller = getcurrent()
-        self._glet.parent = self._caller
+        self._glet.parent = getcurrent()  # the program switches back to its parent: this caller
         try:
             out = self._glet.switch()
         except BaseException:
@@ -98,7 +95,6 @@ class TableConsumer:
         self._available = 0
         self._closed = False
         self._glet: greenlet | None = None
-        self._caller: greenlet | None = None
         self.finished = False
         self.result: Any = None
         self.bytes_in = 0
@@ -115,8 +111,7 @@ class TableConsumer:
                     f"table stream ended early: the program needs {n - self._available} more bytes of tables"
                     f" after {self.bytes_taken}"
                 )
-            assert self._caller is not None
-            self._caller.switch()
+            getcurrent().parent.switch()  # back to the caller of start/feed/close until more arrive
         self._available -= n
         self.bytes_taken += n
         head = self._pieces[0]
@@ -146,8 +141,7 @@ class TableConsumer:
             return
         if self._glet is None:
             self._glet = greenlet(self._body)
-        self._caller = getcurrent()
-        self._glet.parent = self._caller
+        self._glet.parent = getcurrent()  # the program switches back to its parent: this caller
         try:
             self._glet.switch()
         except BaseException:

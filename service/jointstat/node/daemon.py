@@ -38,6 +38,7 @@ import os
 import signal
 import stat
 import sys
+from collections.abc import Callable
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -64,6 +65,7 @@ from jointstat.node.metrics import NodeMetrics
 from jointstat.node.progress import SessionTracker
 from jointstat.node.secrets import SecretFileError
 from jointstat.node.store import JobStore, RunRecord, StoreError
+from jointstat.protocol.session import Session, new_session
 from jointstat.transport.driver import Limits
 from jointstat.transport.server import SessionServer
 
@@ -108,9 +110,18 @@ def next_fire(job: JobConfig, now: datetime) -> datetime:
 class Node:
     """One running node; see the module docstring. Not started until ``await start()``."""
 
-    def __init__(self, config: NodeConfig, *, clock: Clock | None = None) -> None:
+    def __init__(
+        self,
+        config: NodeConfig,
+        *,
+        clock: Clock | None = None,
+        session_factory: Callable[..., Session] | None = None,
+    ) -> None:
+        """``session_factory`` makes each session (default ``protocol.session.new_session``; a test harness passes
+        one whose sessions record their secrets, to search the logs for them)."""
         self.config = config
         self.clock: Clock = clock or SystemClock()
+        self._session_factory = session_factory or new_session
         self.metrics = NodeMetrics()
         self.state: NodeState | None = None
         self.runner: JobRunner | None = None
@@ -159,6 +170,7 @@ class Node:
             clock=self.clock,
             metrics=self.metrics,
             limits=Limits(deadline_s=float(node.session_deadline_seconds)),
+            new_session=self._session_factory,
         )
         try:
             await self._recover()

@@ -363,6 +363,7 @@ class NodeState:
     sessions: dict[str, SessionTracker] = field(default_factory=dict)
     stopping: bool = False
     shutdown: Shutdown = field(default_factory=Shutdown)  # ends running sessions with peer_shutdown on stop
+    new_session: Callable[..., Session] = new_session  # makes each session (``protocol.session.new_session``)
 
     def running_sessions(self) -> int:
         return sum(1 for t in self.sessions.values() if not t.ended)
@@ -603,7 +604,7 @@ class JobRunner:
             )
             return REFUSED, code
         sign, verify = self._sign_verify(a.sid, peer)
-        session = new_session(
+        session = state.new_session(
             prepared.party,
             session_id=a.session_id,
             program=prepared.compiled.as_program(),
@@ -849,7 +850,7 @@ class JobRunner:
             await self._store_finish(run_id, "refused", "malformed: this session id has been used before")
             return _refusal(pb.REFUSAL_REASON_MALFORMED, "this session id has been used before")
         sign, verify = self._sign_verify(sid, peer)
-        session = new_session(
+        session = state.new_session(
             own_role,
             session_id=sid_bytes,
             program=compiled.as_program(),

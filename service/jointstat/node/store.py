@@ -19,6 +19,7 @@ import threading
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
+from typing import Any
 
 from jointstat.node.secrets import SecretFileError, ensure_private_dir
 
@@ -75,6 +76,23 @@ def _iso(t: datetime) -> str:
 
 def _parse(s: str | None) -> datetime | None:
     return datetime.fromisoformat(s) if s else None
+
+
+def _record(r: tuple[Any, ...]) -> RunRecord:
+    return RunRecord(
+        id=r[0],
+        job=r[1],
+        scheduled_for=_parse(r[2]),  # type: ignore[arg-type]
+        attempt=r[3],
+        trigger=r[4],
+        session_id=r[5],
+        status=r[6],
+        started_at=_parse(r[7]),  # type: ignore[arg-type]
+        finished_at=_parse(r[8]),
+        reason=r[9],
+        result_path=r[10],
+        role=r[11],
+    )
 
 
 class JobStore:
@@ -182,23 +200,14 @@ class JobStore:
         )
         with self._lock:
             rows = self._db.execute(sql, (job, limit) if job else (limit,)).fetchall()
-        return [
-            RunRecord(
-                id=r[0],
-                job=r[1],
-                scheduled_for=_parse(r[2]),  # type: ignore[arg-type]
-                attempt=r[3],
-                trigger=r[4],
-                session_id=r[5],
-                status=r[6],
-                started_at=_parse(r[7]),  # type: ignore[arg-type]
-                finished_at=_parse(r[8]),
-                reason=r[9],
-                result_path=r[10],
-                role=r[11],
-            )
-            for r in rows
-        ]
+        return [_record(r) for r in rows]
+
+    def run_of_session(self, session_id: str) -> RunRecord | None:
+        """The latest run recorded with this session id (hex), or None."""
+        sql = f"SELECT {RUN_COLUMNS} FROM runs WHERE session_id = ? ORDER BY id DESC LIMIT 1"
+        with self._lock:
+            row = self._db.execute(sql, (session_id,)).fetchone()
+        return None if row is None else _record(row)
 
     def scheduled_done(self) -> set[tuple[str, datetime]]:
         """(job, scheduled time) pairs that have at least one run, of any outcome."""

@@ -388,6 +388,10 @@ class _Session:
     def _release_engines(self) -> None:
         """Drop garbling, evaluation and OT state (overridden by each session)."""
 
+    def _unexpected_note(self, event: str) -> str:
+        """More about an unexpected frame, for its message (the evaluator's says where the table stream stood)."""
+        return ""
+
     def _dispatch(self, event: str, frame: fr.AnyFrame | None) -> list[bytes]:
         state = self._state
         if state in (DONE, FAILED):
@@ -400,7 +404,8 @@ class _Session:
             what = f"{event} called" if event in (START, TABLES_SENT) else f"unexpected {event!r} frame"
             raise self._failure(
                 AbortReason.UNEXPECTED_FRAME,
-                f"{self._who} in state {state!r}: {what}; this state accepts {', '.join(accepted) or 'nothing'}",
+                f"{self._who} in state {state!r}: {what}; this state accepts {', '.join(accepted) or 'nothing'}"
+                + self._unexpected_note(event),
             )
         handler_name, allowed = transition
         handler: Handler = getattr(self, handler_name)
@@ -590,6 +595,8 @@ class GarblerSession(_Session):
 
     def _release_engines(self) -> None:
         self._ot = None
+        if self._backend is not None:  # how far the program got, for the progress of a failed session
+            self._gates_garbled = self._backend.next_gate
         self._backend = None
         self._delta = None
         self._evaluator_zero = None
@@ -712,6 +719,8 @@ class GarblerSession(_Session):
             if chunk is None:
                 break
             yield fr.GARBLED_TABLES, chunk
+        if self.ended:  # the session ended meanwhile and stopped the program: nothing more to stream
+            return
         backend = producer.result
         if backend.and_gates != self.and_gates_total:
             raise GarbleError(
@@ -801,6 +810,14 @@ class EvaluatorSession(_Session):
         if backend is not None:
             return backend.next_gate
         return (self._table_bytes_total - self._table_bytes_left) // TABLE_BYTES
+
+    def _unexpected_note(self, event: str) -> str:
+        total, left = self._table_bytes_total, self._table_bytes_left
+        if self._state == EVALUATING:  # another frame type while tables are still due: the stream ended short
+            return f"; the garbled tables stopped {left} bytes short of the {total} bytes the program needs"
+        if event == fr.GARBLED_TABLES and total and not left:
+            return f"; all {total} bytes of garbled tables the program needs had already arrived"
+        return ""
 
     def _release_engines(self) -> None:
         self._ot = None
