@@ -374,4 +374,6 @@ def test_a_snapshot_taken_while_records_are_appended_holds_whole_records_only_an
         assert data.endswith(b"\n")
         report = verify_log(data, allow_open=True)  # a snapshot of a running node's log: a session still open
         assert report.ok, report.problem
-    assert verify_log(snapshots[-1], allow_open=True).records == 1 + 1 + 1 + 200  # header, checkpoint, start, phases
+    assert (
+        verify_log(snapshots[-1], allow_open=True).records == 1 + 1 + 1 + 200
+    )  # header, checkpoint, start, phases

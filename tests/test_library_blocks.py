@@ -118,7 +118,7 @@ def test_merging_two_sorted_lists_sorts_their_union_and_routes_bits_back(a: list
     marks = np.zeros(layout.size, dtype=np.uint8)
     marks[0] = 1  # mark the smallest merged element and carry the mark back to where it came from
     before = bld.and_gates
-    back = blocks.route_back(bld, bld.constant(marks), merged)
+    back = blocks.route_back(bld, bld.constant(marks), merged.swaps)
     assert bld.and_gates - before <= merged.comparators
     assert ints(merged.keys) == sorted(a + b) + [63] * (layout.size - len(a) - len(b))  # sorted(): Python
     where = bit_list(back)

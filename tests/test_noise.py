@@ -14,11 +14,12 @@ import numpy as np
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
+from jointstat.circuit.backend import PlainBackend
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.encode import bits_to_int, int_to_bits
-from jointstat.circuit.layers import evaluate_plain, schedule
 from jointstat.circuit.library import noise
 from jointstat.circuit.model import Party
+from jointstat.circuit.program import Program
 from scipy import stats
 
 SETTINGS = [("0.5", 1), ("2", 3), ("1", 2), ("0.1", 1), ("50", 1)]
@@ -229,18 +230,26 @@ def test_random_bits_from_the_operating_system_are_bits() -> None:
 # -- the circuit -----------------------------------------------------------------------------------------------------
 
 
-def noise_circuit(p: noise.NoiseParameters, lanes: int) -> tuple[object, int]:
-    bld = Builder()
-    g = bld.input(Party.GARBLER, (lanes, p.bits_per_sample))
-    e = bld.input(Party.EVALUATOR, (lanes, p.bits_per_sample))
-    bld.output(Party.EVALUATOR, noise.draw_noise(bld, p, g, e))
-    return schedule(bld.build()), bld.and_gates
+def noise_program(p: noise.NoiseParameters, lanes: int) -> Program:
+    def run(bld: Builder) -> None:
+        g = bld.input(Party.GARBLER, (lanes, p.bits_per_sample))
+        e = bld.input(Party.EVALUATOR, (lanes, p.bits_per_sample))
+        bld.output(Party.EVALUATOR, noise.draw_noise(bld, p, g, e))
+
+    return Program.of(run)
+
+
+def evaluate(program: Program, inputs: dict[Party, np.ndarray]) -> np.ndarray:
+    """The program on the plain backend: the evaluator's output bits."""
+    plain = PlainBackend({party: bits.reshape(-1) for party, bits in inputs.items()})
+    program.run(Builder(plain))
+    plain.check_inputs_used()
+    return plain.outputs(Party.EVALUATOR)
 
 
 def run_circuit(p: noise.NoiseParameters, g: np.ndarray, e: np.ndarray) -> np.ndarray:
-    layered, _ = noise_circuit(p, g.shape[0])
-    out = evaluate_plain(layered, {Party.GARBLER: g.reshape(-1), Party.EVALUATOR: e.reshape(-1)})
-    return bits_to_int(out[Party.EVALUATOR].reshape(g.shape[0], p.noise_width), signed=True)
+    out = evaluate(noise_program(p, g.shape[0]), {Party.GARBLER: g, Party.EVALUATOR: e})
+    return bits_to_int(out.reshape(g.shape[0], p.noise_width), signed=True)
 
 
 def boundary_bits(p: noise.NoiseParameters) -> np.ndarray:
@@ -292,14 +301,13 @@ def test_a_word_equal_to_the_threshold_gives_0_and_one_below_gives_1() -> None:
 @pytest.mark.parametrize("fixed", [Party.GARBLER, Party.EVALUATOR])
 def test_with_one_partys_bits_fixed_the_other_partys_bits_alone_give_the_full_noise_law(fixed: Party) -> None:
     p = params("0.5", 1)
-    layered, _ = noise_circuit(p, 1)
     rng = np.random.default_rng(99 + int(fixed))
     runs = 6000
     fixed_bits = noise.random_bits(1, p.bits_per_sample, rng)[0]
-    varied = noise.random_bits(runs, p.bits_per_sample, rng).T  # (inputs, runs): one circuit, many runs
-    inputs = {fixed: fixed_bits, Party(1 - int(fixed)): varied}
-    out = evaluate_plain(layered, inputs)[Party.EVALUATOR]
-    samples = bits_to_int(out.T, signed=True)
+    varied = noise.random_bits(runs, p.bits_per_sample, rng)  # one lane per run
+    inputs = {fixed: np.tile(fixed_bits, (runs, 1)), Party(1 - int(fixed)): varied}
+    out = evaluate(noise_program(p, runs), inputs)
+    samples = bits_to_int(out.reshape(runs, p.noise_width), signed=True)
     assert chi2_pvalue(samples, pmf("0.5", 1)) >= 1e-3
     # and the fixed party's bits do not decide the value: the same fixed bits give many different noises
     assert len(set(samples.tolist())) > 20
@@ -325,22 +333,24 @@ def test_adding_noise_cannot_overflow_at_the_extremes(signed: bool) -> None:
     values = [-(1 << (width - 1)), (1 << (width - 1)) - 1] if signed else [0, (1 << width) - 1]
     edges = boundary_bits(p)[4:6]  # all-zero then all-one words for geometric 1: noise +T, then −T
     lanes = len(values) * 2
-    bld = Builder()
-    v = bld.input(Party.GARBLER, (lanes, width))
-    g = bld.input(Party.GARBLER, (lanes, p.bits_per_sample))
-    e = bld.input(Party.EVALUATOR, (lanes, p.bits_per_sample))
-    total = noise.add_noise(bld, p, v, g, e, signed=signed)
-    assert total.shape == (lanes, noise.noisy_width(width, signed, p))
-    bld.output(Party.EVALUATOR, total)
+
+    def run(bld: Builder) -> None:
+        v = bld.input(Party.GARBLER, (lanes, width))
+        g = bld.input(Party.GARBLER, (lanes, p.bits_per_sample))
+        e = bld.input(Party.EVALUATOR, (lanes, p.bits_per_sample))
+        total = noise.add_noise(bld, p, v, g, e, signed=signed)
+        assert total.shape == (lanes, noise.noisy_width(width, signed, p))
+        bld.output(Party.EVALUATOR, total)
+
     value_bits = np.repeat(int_to_bits(values, width), 2, axis=0)
     g_bits = np.tile(edges, (len(values), 1))
-    out = evaluate_plain(
-        schedule(bld.build()),
+    out = evaluate(
+        Program.of(run),
         {
             Party.GARBLER: np.concatenate([value_bits.reshape(-1), g_bits.reshape(-1)]),
             Party.EVALUATOR: np.zeros(lanes * p.bits_per_sample, dtype=np.uint8),
         },
-    )[Party.EVALUATOR]
+    )
     got = bits_to_int(out.reshape(lanes, -1), signed=True)
     expected = [x + s * p.bound for x in values for s in (1, -1)]
     assert got.tolist() == expected
@@ -354,8 +364,7 @@ def test_and_gates_per_sample_are_one_per_compared_bit_after_the_folded_ones(
     trailing = sum((b.threshold & -b.threshold).bit_length() - 1 for b in p.bits)
     expected = 2 * (p.bits_per_geometric - p.noise_bits - trailing) + p.noise_bits
     assert noise.and_gates_per_sample(p) == expected
-    _, gates = noise_circuit(p, 5)
-    assert gates == 5 * expected
+    assert noise_program(p, 5).size.and_gates == 5 * expected
     assert p.bits_per_sample == 2 * sum(b.width for b in p.bits)
 
 

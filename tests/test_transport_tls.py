@@ -187,7 +187,7 @@ def test_a_pinned_file_must_hold_the_peers_own_certificate_only(pki: PKI) -> Non
 
 
 async def test_a_client_connects_only_to_the_server_whose_fingerprint_it_was_given(
-    pki: PKI, tiny: LayeredCircuit
+    pki: PKI, tiny: Program
 ) -> None:
     client_tls = node_tls(pki.south, pki.north)
     assert client_tls.channel_credentials(fingerprint(pki.north.certificate)) is not None
@@ -209,7 +209,7 @@ async def test_a_client_connects_only_to_the_server_whose_fingerprint_it_was_giv
 
 
 async def test_a_server_with_the_pinned_certificate_but_not_the_peers_signing_key_is_refused_at_its_hello(
-    pki: PKI, tiny: LayeredCircuit
+    pki: PKI, tiny: Program
 ) -> None:
     garbler, evaluator = pair(tiny, b"tls-impostor-signing-key")
     garbler._sign = signer(Ed25519PrivateKey.generate())  # its TLS key leaked, the peer's signing key did not

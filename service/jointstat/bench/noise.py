@@ -1,7 +1,7 @@
 """``jointstat bench noise``: discrete Laplace samples drawn through the garbled circuit, checked against their law.
 
-One circuit of ``lanes`` samples (``library.noise.draw_noise``) is built and scheduled once, then garbled and
-evaluated again for every batch (garbler and evaluator in one process, ``garble.local``), each time with fresh Δ
+One program of ``lanes`` samples (``library.noise.draw_noise``) is measured once, then garbled and evaluated
+again for every batch (garbler and evaluator in one process, ``garble.local``), each time with fresh Δ
 and labels and with fresh random bits from the operating system for both parties, until ``samples`` samples are
 drawn. The first batch is also computed by the plain sampler and must agree bit for bit. Figures:
 
@@ -9,7 +9,7 @@ drawn. The first batch is also computed by the plain sampler and must agree bit 
   (``noise_pmf``), values whose expected count is below 5 merged into the two tail bins;
 * ``mean``, ``variance`` (sample variance) and ``variance_ratio`` — measured variance ÷ 2α/(1 − α)², the variance
   of the ideal discrete Laplace law at α = e^(−ε/Δ);
-* ``and_gates_per_sample`` — AND gates of the circuit ÷ lanes (measured by the builder);
+* ``and_gates_per_sample`` — AND gates of the program ÷ lanes (counted on the count backend);
 * ``random_bits_per_party_per_sample``, ``noise_bits``, and the base-2 logarithms of the guarantee's bounds
   (δ, the dropped tail, the distance from the ideal law), from ``NoiseParameters.describe``;
 * ``garble_s``, ``evaluate_s``, ``seconds`` — wall times of the garbler's and evaluator's work and of the whole run.
@@ -26,23 +26,24 @@ import numpy as np
 from jointstat.bench.report import emit, peak_rss_mib
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.encode import bits_to_int
-from jointstat.circuit.layers import LayeredCircuit, schedule
 from jointstat.circuit.library import noise
 from jointstat.circuit.model import Party
+from jointstat.circuit.program import Program
 from jointstat.garble.local import run_locally
 
 DEFAULT_LANES = 4096
 MIN_EXPECTED = 5.0  # chi-square bins with fewer expected samples are merged into the tails (common practice)
 
 
-def noise_circuit(params: noise.NoiseParameters, lanes: int) -> tuple[LayeredCircuit, int]:
-    """The sampler for ``lanes`` samples, noise words to the evaluator; returns it scheduled and its AND count."""
-    bld = Builder()
-    g = bld.input(Party.GARBLER, (lanes, params.bits_per_sample))
-    e = bld.input(Party.EVALUATOR, (lanes, params.bits_per_sample))
-    bld.output(Party.EVALUATOR, noise.draw_noise(bld, params, g, e))
-    and_gates = bld.and_gates
-    return schedule(bld.build()), and_gates
+def noise_program(params: noise.NoiseParameters, lanes: int) -> Program:
+    """The sampler for ``lanes`` samples, noise words to the evaluator, measured."""
+
+    def run(bld: Builder) -> None:
+        g = bld.input(Party.GARBLER, (lanes, params.bits_per_sample))
+        e = bld.input(Party.EVALUATOR, (lanes, params.bits_per_sample))
+        bld.output(Party.EVALUATOR, noise.draw_noise(bld, params, g, e))
+
+    return Program.of(run, name="noise sampler")
 
 
 def goodness_of_fit(samples: np.ndarray, law: dict[int, Fraction]) -> tuple[float, int]:
@@ -86,7 +87,8 @@ def run(epsilon: str, sensitivity: int, samples: int, as_json: bool, lanes: int 
         print(f"jointstat bench noise: {exc}", file=sys.stderr)
         return 2
     lanes = min(lanes, samples)
-    layered, and_gates = noise_circuit(params, lanes)
+    program = noise_program(params, lanes)
+    and_gates = program.size.and_gates
     width = params.noise_width
     drawn: list[np.ndarray] = []
     garble_s = evaluate_s = 0.0
@@ -95,7 +97,7 @@ def run(epsilon: str, sensitivity: int, samples: int, as_json: bool, lanes: int 
     while left > 0:
         g = noise.random_bits(lanes, params.bits_per_sample)  # fresh bits from os.urandom for each party
         e = noise.random_bits(lanes, params.bits_per_sample)
-        result = run_locally(layered, g.reshape(-1), e.reshape(-1))
+        result = run_locally(program.run, {Party.GARBLER: g.reshape(-1), Party.EVALUATOR: e.reshape(-1)})
         garble_s += result.garble_seconds
         evaluate_s += result.evaluate_seconds
         values = bits_to_int(result.outputs[Party.EVALUATOR].reshape(lanes, width), signed=True)

@@ -41,7 +41,9 @@ from google.protobuf.message import DecodeError
 from jointstat.circuit.model import Party
 from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
 
-PROTOCOL_VERSION = 3  # 2: hellos are signed; 3: programs instead of circuit lists (program digest, no constants)
+PROTOCOL_VERSION = (
+    3  # 2: hellos are signed; 3: programs instead of circuit lists (program digest, no constants)
+)
 MAX_FRAME_BYTES = 4 * 1024 * 1024
 MAX_PAYLOAD_BYTES = MAX_FRAME_BYTES - 64  # room for the frame's field tags and length prefixes
 MAX_SESSION_ID_BYTES = 64

@@ -75,7 +75,9 @@ from fractions import Fraction
 
 import numpy as np
 
-from jointstat.circuit.builder import Builder, Wires
+from jointstat.circuit.backend import CountBackend
+from jointstat.circuit.bits import Bits, stack
+from jointstat.circuit.builder import Builder
 from jointstat.circuit.model import Party
 from jointstat.exact import ExactNumberError, decimal_text, positive_number
 
@@ -398,10 +400,9 @@ def _plan(eps: Fraction, sens: int, precision: int, field: str) -> NoiseParamete
 # -- the circuit -----------------------------------------------------------------------------------------------------
 
 
-def draw_noise(bld: Builder, params: NoiseParameters, garbler_bits: Wires, evaluator_bits: Wires) -> Wires:
-    """Signed noise words (lanes…, n + 1) from each party's (lanes…, ``bits_per_sample``) random input wires."""
-    g = np.asarray(garbler_bits, dtype=np.int64)
-    e = np.asarray(evaluator_bits, dtype=np.int64)
+def draw_noise(bld: Builder, params: NoiseParameters, garbler_bits: Bits, evaluator_bits: Bits) -> Bits:
+    """Signed noise words (lanes…, n + 1) from each party's (lanes…, ``bits_per_sample``) random input bits."""
+    g, e = garbler_bits, evaluator_bits
     b = params.bits_per_sample
     if g.shape != e.shape or g.ndim < 1 or g.shape[-1] != b:
         raise NoiseError(
@@ -412,11 +413,12 @@ def draw_noise(bld: Builder, params: NoiseParameters, garbler_bits: Wires, evalu
     at = 0
     for bit in params.bits:
         words = uniform[..., at : at + bit.width]  # (lanes…, 2, w_i): this bit of both geometrics
-        digits.append(bld.less_than(words, bld.constant_word(bit.threshold, bit.width)))
+        threshold = bld.constant_word(bit.threshold, bit.width).broadcast_to(words.shape)
+        digits.append(bld.less_than(words, threshold))
         at += bit.width
-    geometric = np.stack(digits, axis=-1)  # (lanes…, 2, n)
+    geometric = stack(digits, axis=-1)  # (lanes…, 2, n)
     width = params.noise_width
-    return bld.sub(Builder.extend(geometric[..., 0, :], width), Builder.extend(geometric[..., 1, :], width))
+    return bld.sub(bld.extend(geometric[..., 0, :], width), bld.extend(geometric[..., 1, :], width))
 
 
 def noisy_width(value_width: int, signed: bool, params: NoiseParameters) -> int:
@@ -427,24 +429,24 @@ def noisy_width(value_width: int, signed: bool, params: NoiseParameters) -> int:
 def add_noise(
     bld: Builder,
     params: NoiseParameters,
-    value: Wires,
-    garbler_bits: Wires,
-    evaluator_bits: Wires,
+    value: Bits,
+    garbler_bits: Bits,
+    evaluator_bits: Bits,
     *,
     signed: bool,
-) -> Wires:
+) -> Bits:
     """value + noise per lane as signed words of ``noisy_width`` bits (no overflow: see the module docstring)."""
-    v = np.asarray(value, dtype=np.int64)
+    v = value
     noise = draw_noise(bld, params, garbler_bits, evaluator_bits)
     if noise.shape[:-1] != v.shape[:-1]:
         raise NoiseError(f"noise: {v.shape[:-1]} value lanes but {noise.shape[:-1]} noise lanes")
     width = noisy_width(v.shape[-1], signed, params)
-    return bld.add(Builder.extend(v, width, signed=signed), Builder.extend(noise, width, signed=True))
+    return bld.add(bld.extend(v, width, signed=signed), bld.extend(noise, width, signed=True))
 
 
 def and_gates_per_sample(params: NoiseParameters) -> int:
-    """AND gates of one noise sample, measured on a fresh builder (every lane costs the same)."""
-    bld = Builder()
+    """AND gates of one noise sample, counted on a fresh count backend (every lane costs the same)."""
+    bld = Builder(CountBackend())
     g = bld.input(Party.GARBLER, (1, params.bits_per_sample))
     e = bld.input(Party.EVALUATOR, (1, params.bits_per_sample))
     draw_noise(bld, params, g, e)
