@@ -815,23 +815,24 @@ def test_bench_link_refuses_a_rate_it_cannot_read(capsys: pytest.CaptureFixture[
 async def test_a_garbled_session_over_grpc_and_mutual_tls_completes_through_the_link() -> None:
     import numpy as np
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
-    from jointstat.bench.garble import wide_circuit
-    from jointstat.circuit.layers import evaluate_plain, schedule
+    from jointstat.bench.garble import wide_program
+    from jointstat.circuit.backend import PlainBackend
+    from jointstat.circuit.builder import Builder
     from jointstat.circuit.model import Party
     from jointstat.protocol import EvaluatorSession, GarblerSession, signer, verifier
     from jointstat.transport import Limits, SessionServer, run_client
     from jointstat.transport.pki import issue, new_ca, node_tls
 
     # Invented scenario: two orchards add up their crates; any circuit will do, the link is what is tested.
-    layered = schedule(wide_circuit(1 << 13, 512))
+    program = wide_program(1 << 13, 512)
     rng = np.random.default_rng(11)
-    bits = {p: rng.integers(0, 2, layered.circuit.n_inputs(p), dtype=np.uint8) for p in Party}
+    bits = {p: rng.integers(0, 2, program.n_inputs(p), dtype=np.uint8) for p in Party}
     ca = new_ca("orchard test CA")
     north, south = issue(ca, "north.orchard.test"), issue(ca, "south.orchard.test")
     north_key, south_key = Ed25519PrivateKey.generate(), Ed25519PrivateKey.generate()
     common = {
         "session_id": b"through-the-link",
-        "layered": layered,
+        "program": program,
         "manifest_digest": hashlib.sha256(b"invented manifest: orchard crates").digest(),
     }
     garbler = GarblerSession(
@@ -851,10 +852,11 @@ async def test_a_garbled_session_over_grpc_and_mutual_tls_completes_through_the_
             e = await run_client(evaluator, f"127.0.0.1:{link.port}", node_tls(south, north), limits=limits)
             g = await asyncio.wait_for(expected, TEST_TIMEOUT_S)
             counters = link.counters()
-    reference = evaluate_plain(layered, bits)
+    plain = PlainBackend(bits)
+    program.run(Builder(plain))
     assert g.completed and e.completed
-    assert np.array_equal(g.outputs, reference[Party.GARBLER])
-    assert np.array_equal(e.outputs, reference[Party.EVALUATOR])
+    assert np.array_equal(g.outputs, plain.outputs(Party.GARBLER))
+    assert np.array_equal(e.outputs, plain.outputs(Party.EVALUATOR))
     # The link carried every frame byte the transport counted, and TLS and HTTP/2 framing on top.
     assert counters.to_client_bytes >= g.counters.bytes_sent > 32 * (1 << 13)
     assert counters.to_server_bytes >= g.counters.bytes_received

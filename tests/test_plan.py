@@ -102,7 +102,9 @@ def join_of(rows: int) -> CompiledStatistic:
             {"garbler": table(rows, key), "evaluator": table(rows, key)},
             {"name": "keyed_join", "key": "k"},
             {"evaluator": ["matches"]},
-            matching={"max_false_matches": 1e4},  # plans only: 32-bit keys keep them quick (2^22 rows: 4,096 expected)
+            matching={
+                "max_false_matches": 1e4
+            },  # plans only: 32-bit keys keep them quick (2^22 rows: 4,096 expected)
         )
     )
 

@@ -14,8 +14,8 @@ import numpy as np
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 from jointstat.audit import SessionLog, transcript_signature_ok, verify_log
 from jointstat.circuit.builder import Builder
-from jointstat.circuit.layers import schedule
 from jointstat.circuit.model import Party
+from jointstat.circuit.program import Program
 from jointstat.protocol import EvaluatorSession, GarblerSession, signer, verifier
 from jointstat.protocol.pipe import run_in_memory
 
@@ -26,13 +26,14 @@ GARDENS_KEY = Ed25519PrivateKey.generate()
 MEADOW_KEY = Ed25519PrivateKey.generate()
 
 
-def sessions() -> tuple[GarblerSession, EvaluatorSession]:
-    bld = Builder()
+def both_and(bld: Builder) -> None:
     a = bld.input(Party.GARBLER, 4)
     b = bld.input(Party.EVALUATOR, 4)
     bld.output(Party.EVALUATOR, bld.and_(a, b))
-    layered = schedule(bld.build())
-    common = {"session_id": SID, "layered": layered, "manifest_digest": MANIFEST}
+
+
+def sessions() -> tuple[GarblerSession, EvaluatorSession]:
+    common = {"session_id": SID, "program": Program.of(both_and), "manifest_digest": MANIFEST}
     garbler = GarblerSession(
         inputs=np.ones(4, np.uint8),
         sign=signer(GARDENS_KEY),
