@@ -20,13 +20,15 @@ import socket
 import stat
 from collections.abc import AsyncIterator
 from pathlib import Path
+from typing import Any
 
 import httpx
 import pytest
 from cryptography.hazmat.primitives import serialization
 from jointstat.audit.records import public_key_text
-from jointstat.bench import faults
-from jointstat.node import jobs
+from jointstat.harness import scenario
+from jointstat.harness.recording import recording_session
+from jointstat.harness.scanner import Secrets, scan_for_secrets
 from jointstat.node.config import load_node_config
 from jointstat.node.daemon import Node
 from jointstat.node.keys import load_signing_key, signing_key_file, tls_key_file
@@ -49,7 +51,7 @@ WAIT_S = 60.0  # a liveness bound for runs that take well under a second each; n
 
 def fleet_jobs(root: Path) -> dict[str, list[dict[str, object]]]:
     """The bicycle-share job of ``bench faults`` (invented 12-digit figures), the library garbling and starting."""
-    files = faults.write_job_files(root / "fleet")
+    files = scenario.write_job_files(root / "fleet")
     common = {"name": FLEET_JOB, "manifest": files.manifest, "timezone": "UTC"}
     return {
         LIBRARY: [job_entry(**common, peer=BATHS, csv=files.node_csv, initiate=True, role="garbler")],  # type: ignore[arg-type]
@@ -58,11 +60,11 @@ def fleet_jobs(root: Path) -> dict[str, list[dict[str, object]]]:
 
 
 @contextlib.asynccontextmanager
-async def running(pair: ConsolePair) -> AsyncIterator[dict[str, Node]]:
+async def running(pair: ConsolePair, session_factory: Any = None) -> AsyncIterator[dict[str, Node]]:
     nodes: dict[str, Node] = {}
     try:
         for name in (BATHS, LIBRARY):
-            node = Node(load_node_config(pair.configs[name]))
+            node = Node(load_node_config(pair.configs[name]), session_factory=session_factory)
             await node.start()
             nodes[name] = node
         yield nodes
@@ -124,12 +126,11 @@ async def every_page(client: httpx.AsyncClient, sessions: list[str], peer_log: P
 async def test_runs_started_from_the_console_complete_and_no_page_of_either_node_holds_a_secret(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    secrets = faults.Secrets()
-    for value in faults.NODE_METRES + faults.PEER_METRES:
+    secrets = Secrets()
+    for value in scenario.NODE_METRES + scenario.PEER_METRES:
         secrets.add_value(value)
-    monkeypatch.setattr(jobs, "new_session", faults.recording_session(secrets))
     pair = console_pair(tmp_path, consoles=(LIBRARY, BATHS), extra_jobs=fleet_jobs(tmp_path))
-    async with running(pair) as nodes:
+    async with running(pair, session_factory=recording_session(secrets)) as nodes:
         clients = {n: httpx.AsyncClient(base_url=pair.url(n), follow_redirects=False) for n in nodes}
         try:
             for name, client in clients.items():
@@ -171,7 +172,7 @@ async def test_runs_started_from_the_console_complete_and_no_page_of_either_node
         assert (
             keys[name] in shown["/audit"] and keys[LIBRARY if name == BATHS else BATHS] not in shown["/audit"]
         )
-    expected = faults.expected_result()
+    expected = scenario.expected_result()
     fleet_results = dict(pages[LIBRARY])["/results"].split(f'id="job-{FLEET_JOB}"')[1]
     assert f"{expected['sum']:,}" in fleet_results and ">6<" in fleet_results.replace(" ", "")
     baths_results = dict(pages[BATHS])["/results"].split(f'id="job-{SMALL_JOB}"')[1].split("</section>")[0]
@@ -181,7 +182,7 @@ async def test_runs_started_from_the_console_complete_and_no_page_of_either_node
     # What they never show.
     assert len(secrets.deltas) == 3 and len(secrets.blocks) > 1000
     texts = [(f"{name} {path}", text) for name in pages for path, text in pages[name]]
-    assert faults.scan_for_secrets(secrets, texts=texts) == []
+    assert scan_for_secrets(secrets, texts=texts) == []
     forbidden = {**key_material(pair), **{f"input identifier #{i}": v for i, v in enumerate(csv_secrets())}}
     for where, text in texts:
         assert [what for what, value in forbidden.items() if value in text] == [], where

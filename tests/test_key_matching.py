@@ -121,9 +121,10 @@ def test_manifest_check_and_plan_print_the_expected_false_matches(
         "false key matches: about 9.1e-13 expected at full capacity (16 × 16 rows, 48-bit key hashes;" in out
     )
     assert "agreed bound 1e-06" in out
-    from jointstat.circuit import plan as plan_module
+    from jointstat.bench import garble as garble_bench
+    from jointstat.circuit.plan import Speed
 
-    monkeypatch.setattr(plan_module, "measure_speed", lambda: plan_module.Speed(1e6, 2e6))
+    monkeypatch.setattr(garble_bench, "measured_speed", lambda: Speed(1e6, 2e6))
     assert main(["plan", str(JOIN)]) == 0
     assert "false key matches" in capsys.readouterr().out
     assert main(["plan", str(JOIN), "--json"]) == 0

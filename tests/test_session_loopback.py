@@ -237,7 +237,8 @@ async def test_different_programs_abort_both_nodes_at_hello_with_no_output(
     assert_nothing_released(g, e)
     assert g.abort.reason == e.abort.reason == AbortReason.MANIFEST_MISMATCH
     assert "program digests differ" in g.abort.message and "program digests differ" in e.abort.message
-    assert g.counters.frames_sent == e.counters.frames_sent == 2  # hello and abort: nothing secret moved
+    # Each sent its hello and, unless the peer's own abort ended the stream first, its abort: nothing secret moved.
+    assert 1 <= g.counters.frames_sent <= 2 and 1 <= e.counters.frames_sent <= 2
 
 
 # -- vanishing, silent and cancelled peers -----------------------------------------------------------------------------
