@@ -100,7 +100,7 @@ from jointstat.primitives.blocks import BLOCK_BYTES, BLOCK_DTYPE
 from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import AbortInfo, AbortReason, ProtocolError, Transcript
 from jointstat.statements import HELLO, TRANSCRIPT, Statement, session_text
-from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
+from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
 # ``sign(statement) -> signature`` with this node's key; ``verify(signature, statement)`` against the peer's key
 # (``protocol.signing`` builds both from keys; the node plugs in its own, which also logs the transcript).
