@@ -105,7 +105,7 @@ def run() -> int:
 
 # -- the two-node demonstration ------------------------------------------------------------------------------------
 
-REPO = Path(__file__).resolve().parents[2]
+REPO = Path(__file__).resolve().parents[3]
 SCENARIO = REPO / "configs" / "demo"
 JOB = "shared-members"
 LIBRARY, BATHS = "millbrook-library", "riverside-baths"
@@ -289,9 +289,9 @@ def _stop(procs: dict[str, subprocess.Popen[bytes]]) -> dict[str, int | None]:
 def run_nodes(work: Path | None = None) -> int:
     """The two-node demonstration (module docstring); 0 only if every check passed."""
     from jointstat.audit.verify import compare_logs, verify_log
+    from jointstat.commands.ops import follow
     from jointstat.node.admin import AdminClient
     from jointstat.node.config import load_node_config
-    from jointstat.node.opscommands import follow
 
     t_start = time.monotonic()
     if not (SCENARIO / "manifest.yaml").is_file():
