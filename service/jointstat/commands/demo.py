@@ -41,10 +41,10 @@ from typing import Any
 
 from cryptography.hazmat.primitives.ciphers import Cipher, algorithms, modes
 
+from jointstat.bench.garble import timed_run
 from jointstat.circuit.model import Party
 from jointstat.circuit.program import Program
 from jointstat.circuit.reference.aes128 import aes128_program, bits_to_block, block_bits, key_bits
-from jointstat.garble.local import run_locally
 
 CHUNK_BYTES = 16 * 1024
 
@@ -65,18 +65,14 @@ def run() -> int:
     program = Program.of(aes128_program, name="AES-128")
     t_build = time.perf_counter() - t0
 
-    run = run_locally(
-        program.run,
+    timed = timed_run(
+        program,
         {Party.GARBLER: key_bits(LIBRARY_KEY), Party.EVALUATOR: block_bits(MEMBER_RECORD)},
         chunk_bytes=CHUNK_BYTES,
     )
+    run = timed.run
     garbled = bits_to_block(run.outputs[Party.EVALUATOR])
-    table_bytes, chunks, t_garble, t_eval = (
-        run.table_bytes,
-        run.chunks,
-        run.garble_seconds,
-        run.evaluate_seconds,
-    )
+    table_bytes, chunks, t_garble, t_eval = run.table_bytes, run.chunks, timed.garble_s, timed.evaluate_s
     expected = reference_aes128(LIBRARY_KEY, MEMBER_RECORD)
     match = garbled == expected
 
