@@ -88,7 +88,7 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     faults.set_defaults(handler=_faults)
 
     link = which.add_parser(
-        "link", help="the link emulator's rate, delay and ceiling on this machine (harness/link.py)"
+        "link", help="the link emulator's rate, delay and ceiling on this machine (harness/link/)"
     )
     link.add_argument("--rate", default="100Mbit/s", help="the rate each way (default 100Mbit/s)")
     link.add_argument("--rtt", default="40ms", help="the round-trip time, half each way (default 40ms)")
