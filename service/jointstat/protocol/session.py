@@ -46,7 +46,12 @@ a node to show how far a session is.
 Threads: none here. A session, and the greenlet its program runs in, must be driven from one thread at a time —
 the same thread for its whole life (the transport gives each session one worker thread). The state moves past
 ``streaming`` before the last streamed frame is handed out, so the evaluator's reply can never find the garbler
-still in ``streaming``.
+still in ``streaming``. No lock either: the driver that owns the worker thread serialises the calls.
+
+Randomness: every random draw — Δ and the garbler's input labels, the base-OT scalars of both sides and the
+garbler's base-OT choice bits (the IKNP seeds follow from them) — comes from the ``random_bytes`` given to the
+session, the operating system's CSPRNG by default. Replaying the bytes one run drew gives the same session byte for
+byte (``tests/test_session_replay.py``): a recorded session is a test vector. A node never injects anything else.
 
 States and transitions (the two ``TABLE`` dictionaries below are the single source, run by the table dispatch of
 ``jointstat.machine``, and ``tests/test_machine.py`` checks this table against them: "next" lists every state the
