@@ -2,9 +2,8 @@
 
 Specification, read from the source of ``service/jointstat`` with ``ast``: the core rooms (primitives, garble, ot,
 protocol, circuit, and the shared modules below them) and audit import none of transport, node, harness, bench,
-commands or the CLI; only ``cli`` and ``__main__`` import
-``jointstat.cli``, and no room but the CLI imports ``jointstat.commands``; the generated wire code imports nothing
-of jointstat. The sans-I/O core (primitives, garble, ot, protocol, machine) imports no module that reaches a socket,
+commands or the CLI; only ``cli`` and ``__main__`` import ``jointstat.cli``, and no room but the CLI imports
+``jointstat.commands``; the generated wire code imports nothing of jointstat. The sans-I/O core (primitives, garble, ot, protocol, machine) imports no module that reaches a socket,
 a clock, a thread, a process or a file, and calls no ``open``. No hand-written module is longer than 1,000 lines.
 """
 
