@@ -13,6 +13,7 @@ import re
 from collections.abc import Mapping
 from pathlib import Path
 from types import ModuleType
+from typing import NoReturn
 
 import pytest
 from jointstat import machine
@@ -57,6 +58,25 @@ class Turnstile(TableMachine[str | None, list[str]]):
     def _on_jam(self, _message: str | None) -> tuple[str, list[str]]:
         return "broken", []  # not in the table: a bug the machine must catch
 
+    # How a turnstile fails: a plain RuntimeError, and it stays failed.
+    def _refuse_ended(self, state: str, event: str) -> Exception:
+        return RuntimeError(f"turnstile in state {state!r}: {event!r} refused, it has ended")
+
+    def _refuse_unexpected(self, state: str, event: str) -> Exception:
+        self._state = FAILED
+        accepted = ", ".join(self.accepted_events(state)) or "nothing"
+        return RuntimeError(
+            f"turnstile in state {state!r}: unexpected {event!r}; this state accepts {accepted}"
+        )
+
+    def _handler_failed(self, state: str, event: str, exc: Exception) -> NoReturn:
+        self._state = FAILED
+        raise exc
+
+    def _refuse_next(self, state: str, event: str, next_state: str) -> Exception:
+        self._state = FAILED
+        return AssertionError(f"turnstile: handler for {state!r}/{event!r} chose {next_state!r}")
+
 
 def test_a_machine_moves_along_its_table_and_returns_what_the_handler_sends() -> None:
     gate = Turnstile()
@@ -69,7 +89,7 @@ def test_a_machine_moves_along_its_table_and_returns_what_the_handler_sends() ->
     assert gate.state == DONE
 
 
-def test_an_event_the_state_does_not_list_is_refused_naming_state_event_and_what_it_accepts() -> None:
+def test_an_event_the_state_does_not_list_is_refused_through_the_hook_with_what_the_state_accepts() -> None:
     gate = Turnstile()
     gate.start()
     with pytest.raises(RuntimeError, match=r"state 'locked': unexpected 'push'; this state accepts coin"):
@@ -77,7 +97,7 @@ def test_an_event_the_state_does_not_list_is_refused_naming_state_event_and_what
     assert gate.state == FAILED
 
 
-def test_a_failed_machine_refuses_everything() -> None:
+def test_a_machine_in_an_ended_state_refuses_everything_before_looking_at_its_table() -> None:
     gate = Turnstile()
     gate.start()
     with pytest.raises(RuntimeError):
@@ -96,7 +116,7 @@ def test_a_handler_that_picks_a_state_outside_its_table_is_caught_and_the_machin
     assert gate.state == FAILED
 
 
-def test_an_error_in_a_handler_goes_through_the_failure_hook_and_leaves_the_machine_failed() -> None:
+def test_an_error_in_a_handler_goes_through_the_failure_hook() -> None:
     class Brittle(Turnstile):
         def _on_coin(self, _message: str | None) -> tuple[str, list[str]]:
             raise ValueError("counterfeit coin")

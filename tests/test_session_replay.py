@@ -14,6 +14,7 @@ import hashlib
 import os
 from collections import deque
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pytest
@@ -65,24 +66,21 @@ class Run:
 def run_session(
     program: Program, inputs: dict[Party, np.ndarray], g_random: RandomSource, e_random: RandomSource
 ) -> Run:
+    common: dict[str, Any] = {"session_id": SID, "program": program, "manifest_digest": MANIFEST}
     garbler = GarblerSession(
-        session_id=SID,
-        program=program,
-        manifest_digest=MANIFEST,
         inputs=inputs[Party.GARBLER],
         sign=signer(G_KEY),
         verify=verifier(E_KEY.public_key()),
         random_bytes=g_random,
         chunk_bytes=1 << 12,
+        **common,
     )
     evaluator = EvaluatorSession(
-        session_id=SID,
-        program=program,
-        manifest_digest=MANIFEST,
         inputs=inputs[Party.EVALUATOR],
         sign=signer(E_KEY),
         verify=verifier(G_KEY.public_key()),
         random_bytes=e_random,
+        **common,
     )
     run = Run(garbler, evaluator)
 

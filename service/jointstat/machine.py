@@ -13,9 +13,10 @@ session's ``tables sent``). ``_dispatch(event, message)`` does, in order:
    and what to send; an exception from it becomes the machine's own error (``_handler_failed``, which raises);
 4. check that the next state is one the table allows (``_refuse_next``), and only then move to it.
 
-The hooks say how a kind of party fails; each returns (or raises) the error, and moves the machine to its failed
-state where that kind of party does so. An OT party raises ``OTError`` and refuses everything afterwards; a
-session raises ``ProtocolError`` carrying the abort frame for its peer. So the table is the one source of every
+The four hooks say how a kind of party fails (every kind defines them); each returns (or raises) the error, and
+moves the machine to its failed state where that kind of party does so. An OT party (``ot.party``) raises
+``OTError`` and refuses everything afterwards; a session (``protocol.session``) raises ``ProtocolError`` carrying
+the abort frame for its peer. So the table is the one source of every
 state and transition of a party: the module docstrings' transition tables are tested against the dictionaries.
 
 Nothing here touches a socket, a clock, a thread or a file, and this module imports nothing of jointstat: it sits
@@ -79,27 +80,19 @@ class TableMachine(Generic[M, R]):
         self._state = next_state
         return out
 
-    # -- how this kind of party fails (overridden) --------------------------------------------------------------------
+    # -- how this kind of party fails: each kind of party says it ----------------------------------------------------
     def _refuse_ended(self, state: str, event: str) -> Exception:
         """The error for an event after the machine has ended (in one of ``ENDED``)."""
-        return RuntimeError(
-            f"{type(self).__name__} in state {state!r}: {event!r} refused, the machine has ended"
-        )
+        raise NotImplementedError
 
     def _refuse_unexpected(self, state: str, event: str) -> Exception:
         """The error for an event the table does not list for ``state``; moves the machine to failed."""
-        self._state = FAILED
-        accepted = ", ".join(self.accepted_events(state)) or "nothing"
-        return RuntimeError(
-            f"{type(self).__name__} in state {state!r}: unexpected {event!r}; this state accepts {accepted}"
-        )
+        raise NotImplementedError
 
     def _handler_failed(self, state: str, event: str, exc: Exception) -> NoReturn:
         """Raise the error for an exception from the handler of ``(state, event)``; moves the machine to failed."""
-        self._state = FAILED
-        raise exc
+        raise NotImplementedError
 
     def _refuse_next(self, state: str, event: str, next_state: str) -> Exception:
-        """The error for a handler that chose a state the table does not allow (a bug); moves to failed."""
-        self._state = FAILED
-        return AssertionError(f"{type(self).__name__}: handler for {state!r}/{event!r} chose {next_state!r}")
+        """The error for a handler that chose a state the table does not allow (a bug); moves the machine to failed."""
+        raise NotImplementedError

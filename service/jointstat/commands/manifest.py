@@ -6,11 +6,16 @@ import argparse
 import json
 import sys
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from jointstat.problems import UserError
 
+if TYPE_CHECKING:
+    from jointstat.circuit.compile import CompiledStatistic
+    from jointstat.circuit.manifest import Manifest
 
-def _load(path: str, plugins: list[str] | None = None):  # type: ignore[no-untyped-def]
+
+def _load(path: str, plugins: list[str] | None = None) -> Manifest:
     from jointstat.circuit.manifest import ManifestError, load_manifest, load_plugins
 
     if plugins:
@@ -23,7 +28,7 @@ def _load(path: str, plugins: list[str] | None = None):  # type: ignore[no-untyp
         raise UserError(str(exc)) from None
 
 
-def _compile(path: str):  # type: ignore[no-untyped-def]
+def _compile(path: str) -> CompiledStatistic:
     from jointstat.circuit.compile import compile_manifest
 
     return compile_manifest(_load(path))
@@ -40,7 +45,7 @@ def _schema(args: argparse.Namespace) -> int:
     return 0
 
 
-def _false_matches_line(manifest) -> str | None:  # type: ignore[no-untyped-def]
+def _false_matches_line(manifest: Manifest) -> str | None:
     from jointstat.circuit.manifest import key_matching
 
     f = key_matching(manifest)
