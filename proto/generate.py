@@ -3,8 +3,8 @@
 Theory of operation: the .proto files are the one source of the wire format. This script runs the protobuf
 compiler bundled with the pinned ``grpcio-tools`` (``python -m grpc_tools.protoc``) with ``proto/`` as the include
 root, so each file keeps its versioned name (``jointstat/v1/session.proto``) in the descriptor pool, and writes the
-message module and its type stub under ``service/jointstat/transport/wire/``. The output is committed; the test
-``tests/test_transport_wire.py`` regenerates into a temporary folder and checks that nothing differs, so a change
+message module and its type stub under ``service/jointstat/wire/``. The output is committed; the test
+``tests/test_wire.py`` regenerates into a temporary folder and checks that nothing differs, so a change
 to a .proto without regenerating fails CI. Only messages are generated: the transport registers the ``Session``
 service with generic handlers whose method path it reads from the generated descriptor, so no generated service
 stub (whose absolute imports would not fit the package) is needed.
@@ -19,7 +19,7 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
 PROTO_ROOT = ROOT / "proto"
-WIRE_DIR = ROOT / "service" / "jointstat" / "transport" / "wire"
+WIRE_DIR = ROOT / "service" / "jointstat" / "wire"
 PROTO_FILES = ("jointstat/v1/session.proto",)
 
 

@@ -17,8 +17,9 @@ from pathlib import Path
 
 import pytest
 from jointstat.cli import main
+from jointstat.commands.ops import progress_line
 from jointstat.node.clock import ManualClock, SystemClock
-from jointstat.node.opscommands import human_bytes, progress_line
+from jointstat.units import human_bytes
 
 from tests.test_node_daemon import BATHS, JOB, LIBRARY, make_pair, operator_run, running
 
@@ -236,4 +237,4 @@ def test_node_run_takes_the_config_option_the_image_and_the_unit_pass() -> None:
     from jointstat.cli import build_parser
 
     args = build_parser().parse_args(["node", "run", "--config", "/etc/jointstat/node.yaml"])
-    assert args.config == "/etc/jointstat/node.yaml" and args.handler.__module__ == "jointstat.node.commands"
+    assert args.config == "/etc/jointstat/node.yaml" and args.handler.__module__ == "jointstat.commands.node"

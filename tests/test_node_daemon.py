@@ -28,7 +28,7 @@ import grpc
 import pytest
 from grpc_health.v1 import health_pb2, health_pb2_grpc
 from jointstat.audit.verify import compare_logs, verify_log
-from jointstat.demo import plain_answer
+from jointstat.commands.demo import plain_answer
 from jointstat.node.clock import Clock, ManualClock
 from jointstat.node.config import ConfigError, load_node_config
 from jointstat.node.daemon import Node

@@ -17,7 +17,6 @@ from jointstat.ot import (
     PipeStats,
     run_pipe,
 )
-from jointstat.ot import base as base_module
 from jointstat.ot.base import random_choice_bits
 from jointstat.primitives import group
 
@@ -96,13 +95,22 @@ def test_session_id_mismatch_breaks_agreement() -> None:
     assert all(got not in pair for pair, got in zip(sender.keys, receiver.keys, strict=True))
 
 
-def test_key_derivation_hashes_session_index_and_transcript(monkeypatch: pytest.MonkeyPatch) -> None:
-    # Fix the scalars, then recompute every key from the documented formula with the group helpers.
-    scalars = [group.scalar_from_int(v) for v in (1234567, *range(1000, 1000 + 8))]
-    feed = iter(scalars)
-    monkeypatch.setattr(base_module.group, "random_scalar", lambda: next(feed))
+def test_key_derivation_hashes_session_index_and_transcript() -> None:
+    # Fix the scalars through the injected random source (64 bytes reduced mod L: a small value is the scalar
+    # itself), then recompute every key from the documented formula with the group helpers.
+    values = (1234567, *range(1000, 1000 + 8))
+    scalars = [group.scalar_from_int(v) for v in values]
+    feed = iter(v.to_bytes(64, "little") for v in values)
+
+    def recorded(n: int) -> bytes:
+        data = next(feed)
+        assert len(data) == n
+        return data
+
     choices = np.array([0, 1, 1, 0, 1, 0, 0, 1], dtype=np.uint8)
-    sender, receiver, _ = run_base(choices)
+    sender = BaseOTSender(SID, len(choices), random_bytes=recorded)
+    receiver = BaseOTReceiver(SID, choices, random_bytes=recorded)
+    run_pipe(sender, receiver)
     a = scalars[0]
     big_a = group.base_mult(a)
     for i, (b, c) in enumerate(zip(scalars[1:], choices, strict=True)):

@@ -10,7 +10,7 @@ from hypothesis import strategies as st
 from jointstat.circuit.model import Party
 from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import AbortReason, ProtocolError, Transcript
-from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
+from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
 SID = b"transcript-test"
 

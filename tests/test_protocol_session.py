@@ -41,7 +41,7 @@ from jointstat.protocol import frames as fr
 from jointstat.protocol import session as sm
 from jointstat.protocol.pipe import run_in_memory
 from jointstat.statements import transcript_signature_ok
-from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
+from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
 from tests.circuits import RandomProgram, random_bits, random_programs, reference_eval
 

@@ -22,7 +22,7 @@ from jointstat.circuit.builder import Builder
 from jointstat.circuit.model import CircuitError, Party
 from jointstat.circuit.program import Program
 from jointstat.circuit.reference import aes128, sha256
-from jointstat.demo import run as run_demo
+from jointstat.commands.demo import run as run_demo
 from jointstat.garble.local import run_locally
 
 G, E = Party.GARBLER, Party.EVALUATOR

@@ -1,7 +1,9 @@
-"""The ``jointstat`` command line: one entry point; each area of the code adds its own subcommands.
+"""The ``jointstat`` command line: one entry point; the command groups live in ``jointstat.commands``.
 
 Every module in ``COMMAND_MODULES`` has ``add_commands(subparsers)``, which adds subcommands whose handlers take the
-parsed arguments and return an exit code. Handlers import their heavy modules lazily so ``--help`` stays fast.
+parsed arguments and return an exit code. Handlers import their heavy modules lazily so ``--help`` stays fast. A
+``UserError`` (``jointstat.problems``) is printed without a traceback and exits with code 2. Nothing but this module
+and ``__main__`` imports ``jointstat.cli``.
 """
 
 from __future__ import annotations
@@ -11,21 +13,21 @@ import importlib
 import sys
 from collections.abc import Callable, Sequence
 
+from jointstat.problems import UserError
+
 Handler = Callable[[argparse.Namespace], int]
 
 COMMAND_MODULES = [
-    "jointstat.demo",
-    "jointstat.bench.commands",
-    "jointstat.audit.commands",
-    "jointstat.node.keycommands",
-    "jointstat.node.commands",
-    "jointstat.node.opscommands",
-    "jointstat.circuit.commands",
+    "jointstat.commands.demo",
+    "jointstat.commands.bench",
+    "jointstat.commands.audit",
+    "jointstat.commands.keys",
+    "jointstat.commands.node",
+    "jointstat.commands.ops",
+    "jointstat.commands.manifest",
 ]
 
-
-class UserError(Exception):
-    """A problem the user can fix (bad file, bad option); printed without a traceback, exit code 2."""
+__all__ = ["COMMAND_MODULES", "UserError", "build_parser", "main"]
 
 
 def build_parser() -> argparse.ArgumentParser:

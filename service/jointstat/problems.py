@@ -4,7 +4,8 @@ Theory of operation: validation collects every ``Problem`` it finds — a dotted
 ``jobs[1].schedule.cron`` and what is wrong there — and raises them together in one ``ProblemError`` naming the
 file, so a person fixes a file in one pass. YAML is read with a safe loader that also refuses a key given twice in
 one mapping (PyYAML would silently keep the last); syntax errors name line and column. Pydantic's error locations
-become field paths, with the union-member tags pydantic inserts dropped.
+become field paths, with the union-member tags pydantic inserts dropped. ``UserError`` is a problem of a command's
+file or option, which the command line prints without a traceback.
 """
 
 from __future__ import annotations
@@ -34,6 +35,14 @@ class ProblemError(ValueError):
         self.source = source
         self.problems = list(problems)
         super().__init__("\n".join(f"{source}: {p}" for p in self.problems))
+
+
+class UserError(Exception):
+    """A problem the user can fix (a bad file, a bad option): the CLI prints it without a traceback, exit code 2.
+
+    Raised by the command-line adapters (``jointstat.commands``) and the benchmarks; it lives here, below every room,
+    so that nothing needs to import ``jointstat.cli`` for it.
+    """
 
 
 class _UniqueKeyLoader(yaml.SafeLoader):

@@ -17,7 +17,7 @@ from jointstat.harness.campaign import NodeCampaign
 from jointstat.harness.peer import play_initiated, propose_run
 from jointstat.harness.scenario import expected_result
 from jointstat.transport.driver import Limits
-from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
+from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
 CONCURRENT = 16
 ROOMY = Limits(deadline_s=120.0, idle_timeout_s=60.0, abort_grace_s=1.0)  # liveness bounds, not speed claims

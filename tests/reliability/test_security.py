@@ -34,7 +34,7 @@ from jointstat.protocol.frames import AbortReason
 from jointstat.transport import Limits, SessionServer, run_client
 from jointstat.transport.channel import MESSAGE_OPTIONS, METHOD_PATH
 from jointstat.transport.pki import Issued, issue, new_ca, node_tls
-from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
+from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
 LIMITS = Limits(deadline_s=10, idle_timeout_s=5, abort_grace_s=0.5)
 HTTP2_PREFACE = b"PRI * HTTP/2.0\r\n\r\nSM\r\n\r\n" + bytes.fromhex(

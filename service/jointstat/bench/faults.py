@@ -85,7 +85,7 @@ def targets_met(figures: dict[str, Any]) -> bool:
 
 
 def run(sessions: int, frames: int, as_json: bool) -> int:
-    from jointstat.cli import UserError
+    from jointstat.problems import UserError
 
     if sessions < 1:
         raise UserError(f"bench faults: --sessions must be at least 1, got {sessions}")

@@ -183,7 +183,7 @@ def measure(config: LinkConfig, bulk_bytes: int) -> dict[str, Any]:
 
 
 def run(rate: str, rtt: str, bulk: str | None, buffer: str | None, as_json: bool) -> int:
-    from jointstat.cli import UserError
+    from jointstat.problems import UserError
 
     try:
         config = LinkConfig.from_words(rate, rtt, buffer=buffer)

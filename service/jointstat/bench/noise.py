@@ -23,13 +23,13 @@ from fractions import Fraction
 
 import numpy as np
 
+from jointstat.bench.garble import timed_run
 from jointstat.bench.report import emit, peak_rss_mib
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.encode import bits_to_int
 from jointstat.circuit.library import noise
 from jointstat.circuit.model import Party
 from jointstat.circuit.program import Program
-from jointstat.garble.local import run_locally
 
 DEFAULT_LANES = 4096
 MIN_EXPECTED = 5.0  # chi-square bins with fewer expected samples are merged into the tails (common practice)
@@ -97,9 +97,10 @@ def run(epsilon: str, sensitivity: int, samples: int, as_json: bool, lanes: int 
     while left > 0:
         g = noise.random_bits(lanes, params.bits_per_sample)  # fresh bits from os.urandom for each party
         e = noise.random_bits(lanes, params.bits_per_sample)
-        result = run_locally(program.run, {Party.GARBLER: g.reshape(-1), Party.EVALUATOR: e.reshape(-1)})
-        garble_s += result.garble_seconds
-        evaluate_s += result.evaluate_seconds
+        timed = timed_run(program, {Party.GARBLER: g.reshape(-1), Party.EVALUATOR: e.reshape(-1)})
+        result = timed.run
+        garble_s += timed.garble_s
+        evaluate_s += timed.evaluate_s
         values = bits_to_int(result.outputs[Party.EVALUATOR].reshape(lanes, width), signed=True)
         if batches == 0 and not np.array_equal(values, noise.plain_noise(params, g, e)):
             raise RuntimeError("garbled noise samples disagree with the plain sampler")

@@ -285,7 +285,7 @@ def _round(value: float | None) -> float | None:
 
 
 def run(and_gates: int, as_json: bool) -> int:
-    from jointstat.cli import UserError
+    from jointstat.problems import UserError
 
     if and_gates < 1:
         raise UserError(f"bench session: --and-gates must be at least 1, got {and_gates}")

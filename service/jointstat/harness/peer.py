@@ -43,7 +43,7 @@ from jointstat.transport.channel import SERVICE_NAME, SessionIds
 from jointstat.transport.driver import Limits, SessionResult
 from jointstat.transport.server import SessionServer
 from jointstat.transport.tls import NodeTLS
-from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
+from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
 
 @dataclass(frozen=True)

@@ -33,7 +33,7 @@ from jointstat.garble.backends import EvaluatorBackend
 from jointstat.harness.scanner import Secrets
 from jointstat.primitives.blocks import BLOCK_DTYPE
 from jointstat.protocol import frames as fr
-from jointstat.protocol.session import EvaluatorSession, GarblerSession, Session
+from jointstat.protocol.session import CorrelatedOT, EvaluatorSession, GarblerSession, Session
 
 
 def sid_text(session_id: bytes) -> str:
@@ -67,10 +67,11 @@ class RecordingGarbler(GarblerSession):
             self.secrets.add_delta(sid_text(self.session_id), _raw(self._delta.reshape(1, 2)))
         return out
 
-    def _ot_finished(self) -> None:
-        super()._ot_finished()
+    def _after_ot(self, ot: CorrelatedOT, replies: list[bytes]) -> tuple[str, list[bytes]]:
+        out = super()._after_ot(ot, replies)
         if self._evaluator_zero is not None:
             self._record(self._evaluator_zero)
+        return out
 
     def _emit(self, kind: str, data: bytes) -> bytes:
         if kind == fr.GARBLER_INPUT_LABELS:

@@ -87,7 +87,7 @@ from jointstat.transport.channel import MESSAGE_OPTIONS, SERVICE_NAME, SessionId
 from jointstat.transport.driver import Limits, SessionResult, Shutdown
 from jointstat.transport.server import SessionServer
 from jointstat.transport.tls import NodeTLS, fingerprint, pinned_certificate
-from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
+from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
 log = logging.getLogger("jointstat.node")
 

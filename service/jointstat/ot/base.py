@@ -23,34 +23,41 @@ index. Hashing the session id, the index and the transcript points separates key
 The receiver computes both [b_i]B and [b_i]B + A for every i and selects one, so its running time does not
 grow with the number of choice bits that are 1.
 
-States and transitions (the ``TABLE`` of each class; every other (state, event) pair raises ``OTError``)
+States and transitions (the ``TABLE`` of each class, run by ``jointstat.machine``; ``tests/test_machine.py``
+checks this table against them; every other (state, event) pair raises ``OTError``, and any error leaves the party
+in ``failed``, which refuses everything)
 
-| party          | state                   | event                            | reply                          |
-|----------------|-------------------------|----------------------------------|--------------------------------|
-| BaseOTSender   | new                     | start()                          | base_ot_sender_point, 32 B     |
-| BaseOTSender   | awaiting base OT points | base_ot_receiver_points, 32·n B  | — (then done)                  |
-| BaseOTReceiver | new                     | start()                          | —                              |
-| BaseOTReceiver | awaiting base OT point  | base_ot_sender_point, 32 B       | base_ot_receiver_points, 32·n B (then done) |
+| party          | state                   | event                            | sends                           | next |
+|----------------|-------------------------|----------------------------------|---------------------------------|------|
+| BaseOTSender   | new                     | start()                          | base_ot_sender_point, 32 B      | awaiting base OT points |
+| BaseOTSender   | awaiting base OT points | base_ot_receiver_points, 32·n B  | —                               | done |
+| BaseOTReceiver | new                     | start()                          | —                               | awaiting base OT point |
+| BaseOTReceiver | awaiting base OT point  | base_ot_sender_point, 32 B       | base_ot_receiver_points, 32·n B | done |
 
-The sender goes new → awaiting base OT points → done; the receiver new → awaiting base OT point → done.
+Randomness (the scalars a and b_i) comes from ``random_bytes``, the operating system's CSPRNG unless the caller
+injects another source (to replay a recorded session in a test).
 """
 
 from __future__ import annotations
 
 import hashlib
 import os
+from collections.abc import Callable
 from typing import ClassVar
 
 import numpy as np
 
-from jointstat.ot.machine import DONE, NEW, START, StateMachine, Transition
+from jointstat.machine import DONE, NEW, START, Transition
 from jointstat.ot.messages import BASE_OT_RECEIVER_POINTS, BASE_OT_SENDER_POINT, OTError, OTMessage
+from jointstat.ot.party import OTMachine
 from jointstat.primitives import group
 
 BASE_OT_COUNT = 128
 KEY_BYTES = 16
 MAX_SESSION_ID_BYTES = 1024
 _KDF_LABEL = b"jointstat base OT key v1"
+
+RandomBytes = Callable[[int], bytes]
 
 AWAITING_RECEIVER_POINTS = "awaiting base OT points"  # the base-OT sender waits for the receiver's 128 points
 AWAITING_SENDER_POINT = "awaiting base OT point"  # the base-OT receiver waits for the sender's point
@@ -94,7 +101,7 @@ def _check_count(count: int) -> int:
     return count
 
 
-class BaseOTSender(StateMachine):
+class BaseOTSender(OTMachine):
     """Chou–Orlandi sender: ends with ``keys``, a list of ``count`` pairs (k^0, k^1) of 16-byte keys."""
 
     ROLE = "base OT sender"
@@ -103,10 +110,18 @@ class BaseOTSender(StateMachine):
         (AWAITING_RECEIVER_POINTS, BASE_OT_RECEIVER_POINTS): ("_on_receiver_points", (DONE,)),
     }
 
-    def __init__(self, session_id: bytes, count: int = BASE_OT_COUNT, *, role: str | None = None) -> None:
+    def __init__(
+        self,
+        session_id: bytes,
+        count: int = BASE_OT_COUNT,
+        *,
+        role: str | None = None,
+        random_bytes: RandomBytes = os.urandom,
+    ) -> None:
         super().__init__(role)
         self._session_id = check_session_id(session_id)
         self._count = _check_count(count)
+        self._random_bytes = random_bytes
         self._scalar: bytes | None = None
         self._point = b""
         self._square = b""
@@ -123,7 +138,7 @@ class BaseOTSender(StateMachine):
         return self._keys
 
     def _on_start(self, _message: OTMessage | None) -> tuple[str, list[OTMessage]]:
-        self._scalar = group.random_scalar()
+        self._scalar = group.random_scalar(self._random_bytes)
         self._point = group.base_mult(self._scalar)
         self._square = group.mult(self._scalar, self._point, what="[a]A")
         return AWAITING_RECEIVER_POINTS, [OTMessage(BASE_OT_SENDER_POINT, self._point)]
@@ -151,7 +166,7 @@ class BaseOTSender(StateMachine):
         return DONE, []
 
 
-class BaseOTReceiver(StateMachine):
+class BaseOTReceiver(OTMachine):
     """Chou–Orlandi receiver with ``choices`` (0/1 per OT): ends with ``keys``, the chosen 16-byte key per OT."""
 
     ROLE = "base OT receiver"
@@ -160,9 +175,17 @@ class BaseOTReceiver(StateMachine):
         (AWAITING_SENDER_POINT, BASE_OT_SENDER_POINT): ("_on_sender_point", (DONE,)),
     }
 
-    def __init__(self, session_id: bytes, choices: np.ndarray, *, role: str | None = None) -> None:
+    def __init__(
+        self,
+        session_id: bytes,
+        choices: np.ndarray,
+        *,
+        role: str | None = None,
+        random_bytes: RandomBytes = os.urandom,
+    ) -> None:
         super().__init__(role)
         self._session_id = check_session_id(session_id)
+        self._random_bytes = random_bytes
         bits = np.asarray(choices)
         check_choice_bits(bits, what="base OT choices")
         self._count = _check_count(int(bits.size))
@@ -189,7 +212,7 @@ class BaseOTReceiver(StateMachine):
         out = bytearray()
         keys = []
         for i in range(self._count):
-            scalar = group.random_scalar()
+            scalar = group.random_scalar(self._random_bytes)
             plain = group.base_mult(scalar)
             shifted = group.add(plain, sender_point)
             point = (plain, shifted)[int(self._choices[i])]
@@ -201,7 +224,7 @@ class BaseOTReceiver(StateMachine):
         return DONE, [OTMessage(BASE_OT_RECEIVER_POINTS, bytes(out))]
 
 
-def random_choice_bits(count: int) -> np.ndarray:
-    """``count`` uniformly random bits (uint8 0/1) from the operating system's CSPRNG."""
-    raw = np.frombuffer(os.urandom((count + 7) // 8), dtype=np.uint8)
+def random_choice_bits(count: int, random_bytes: RandomBytes = os.urandom) -> np.ndarray:
+    """``count`` uniformly random bits (uint8 0/1) from ``random_bytes`` (the operating system's CSPRNG by default)."""
+    raw = np.frombuffer(random_bytes((count + 7) // 8), dtype=np.uint8)
     return np.unpackbits(raw, bitorder="little")[:count].copy()

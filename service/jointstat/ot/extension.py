@@ -29,24 +29,23 @@ Streaming: R sends at most ``window`` batches ahead of the corrections it has re
 is at most 128 · ``batch`` / 8 bytes (1 MiB by default, 4 MiB at the largest batch), and both sides keep
 only O(batch) working memory besides their output arrays.
 
-States and transitions (``TABLE`` of each class; any other (state, event) pair raises ``OTError``; any
-error leaves the party in ``failed``, which refuses everything)
+States and transitions (the ``TABLE`` of each class, run by ``jointstat.machine``; ``tests/test_machine.py``
+checks this table against them; any other (state, event) pair raises ``OTError``; any error leaves the party in
+``failed``, which refuses everything). The garbler's side is ``CorrelatedOTSender`` (``ExtensionSender`` is its
+extension phase alone), the evaluator's ``CorrelatedOTReceiver`` (``ExtensionReceiver``):
 
-Garbler, ``CorrelatedOTSender`` (``ExtensionSender`` is the same from "receiving columns" on):
-
-| state                  | event                          | reply                            | next               |
-|------------------------|--------------------------------|----------------------------------|--------------------|
-| new                    | start()                        | —                                | awaiting base OT point (done if count = 0) |
-| awaiting base OT point | base_ot_sender_point, 32 B     | base_ot_receiver_points, 4096 B  | receiving columns  |
-| receiving columns      | ot_extension_columns, batch b  | ot_extension_corrections, b      | receiving columns; done after the last batch |
-
-Evaluator, ``CorrelatedOTReceiver`` (``ExtensionReceiver``: start() sends the first columns at once):
-
-| state                   | event                             | reply                              | next      |
-|-------------------------|-----------------------------------|------------------------------------|-----------|
-| new                     | start()                           | base_ot_sender_point, 32 B         | awaiting base OT points (done if count = 0) |
-| awaiting base OT points | base_ot_receiver_points, 4096 B   | columns of batches 0 … window − 1  | extending |
-| extending               | ot_extension_corrections, batch b | columns of batch b + window, if any | extending; done after the last batch |
+| party                | state                   | event                             | sends                               | next |
+|----------------------|-------------------------|-----------------------------------|-------------------------------------|------|
+| CorrelatedOTSender   | new                     | start()                           | —                                   | awaiting base OT point, done (count = 0) |
+| CorrelatedOTSender   | awaiting base OT point  | base_ot_sender_point, 32 B        | base_ot_receiver_points, 4096 B     | receiving columns |
+| CorrelatedOTSender   | receiving columns       | ot_extension_columns, batch b     | ot_extension_corrections, b         | receiving columns, done (after the last batch) |
+| ExtensionSender      | new                     | start()                           | —                                   | receiving columns, done (count = 0) |
+| ExtensionSender      | receiving columns       | ot_extension_columns, batch b     | ot_extension_corrections, b         | receiving columns, done (after the last batch) |
+| CorrelatedOTReceiver | new                     | start()                           | base_ot_sender_point, 32 B          | awaiting base OT points, done (count = 0) |
+| CorrelatedOTReceiver | awaiting base OT points | base_ot_receiver_points, 4096 B   | columns of batches 0 … window − 1   | extending |
+| CorrelatedOTReceiver | extending               | ot_extension_corrections, batch b | columns of batch b + window, if any | extending, done (after the last batch) |
+| ExtensionReceiver    | new                     | start()                           | columns of batches 0 … window − 1   | extending, done (count = 0) |
+| ExtensionReceiver    | extending               | ot_extension_corrections, batch b | columns of batch b + window, if any | extending, done (after the last batch) |
 
 ``ExtensionSender``/``ExtensionReceiver`` are the extension phase alone, started from base-OT keys
 obtained elsewhere (the benchmark times the two phases separately with them); the session layer uses the
@@ -55,12 +54,14 @@ obtained elsewhere (the benchmark times the two phases separately with them); th
 
 from __future__ import annotations
 
+import os
 from collections.abc import Sequence
 from typing import ClassVar
 
 import numpy as np
 from cryptography.hazmat.primitives.ciphers import Cipher, algorithms, modes
 
+from jointstat.machine import DONE, NEW, START, Transition
 from jointstat.ot.base import (
     AWAITING_RECEIVER_POINTS,
     AWAITING_SENDER_POINT,
@@ -68,11 +69,11 @@ from jointstat.ot.base import (
     KEY_BYTES,
     BaseOTReceiver,
     BaseOTSender,
+    RandomBytes,
     check_choice_bits,
     check_session_id,
     random_choice_bits,
 )
-from jointstat.ot.machine import DONE, NEW, START, StateMachine, Transition
 from jointstat.ot.messages import (
     BASE_OT_RECEIVER_POINTS,
     BASE_OT_SENDER_POINT,
@@ -82,6 +83,7 @@ from jointstat.ot.messages import (
     OTError,
     OTMessage,
 )
+from jointstat.ot.party import OTMachine
 from jointstat.ot.transpose import transpose_bits
 from jointstat.primitives.aes import FixedKeyAES
 from jointstat.primitives.blocks import BLOCK_BYTES, BLOCK_DTYPE, select_mask
@@ -178,7 +180,7 @@ def _as_choices(choices: np.ndarray) -> np.ndarray:
     return np.array(bits, dtype=np.uint8, copy=True)  # a private copy: the caller may reuse its array
 
 
-class ExtensionSender(StateMachine):
+class ExtensionSender(OTMachine):
     """The OT-extension phase of the garbler, from the 128 base-OT keys k_i^{s_i} and its base choice bits s."""
 
     ROLE = "OT extension sender (garbler)"
@@ -258,7 +260,7 @@ class ExtensionSender(StateMachine):
         self._s_mask = np.zeros((0, 1), dtype=BLOCK_DTYPE)
 
 
-class ExtensionReceiver(StateMachine):
+class ExtensionReceiver(OTMachine):
     """The OT-extension phase of the evaluator, from the 128 base-OT key pairs (k_i^0, k_i^1) it sent."""
 
     ROLE = "OT extension receiver (evaluator)"
@@ -342,11 +344,13 @@ class ExtensionReceiver(StateMachine):
         return EXTENDING, replies
 
 
-class CorrelatedOTSender(StateMachine):
+class CorrelatedOTSender(OTMachine):
     """The garbler's side: ``count`` correlated OTs with offset ``delta``; ends with ``zero_labels`` K.
 
     ``delta`` is the free-XOR Δ, a ``(2,)`` '<u8' block with least significant bit 1. The garbler is the
-    base-OT receiver (128 fresh random choice bits s) and the OT-extension sender.
+    base-OT receiver (128 fresh random choice bits s) and the OT-extension sender. ``random_bytes`` (the OS
+    CSPRNG by default) gives the choice bits s and the base-OT receiver's scalars: the only randomness this side
+    draws (the extension's PRG seeds are the base-OT keys).
     """
 
     ROLE = "correlated OT sender (garbler)"
@@ -357,10 +361,17 @@ class CorrelatedOTSender(StateMachine):
     }
 
     def __init__(
-        self, session_id: bytes, delta: np.ndarray, count: int, *, batch: int = DEFAULT_BATCH
+        self,
+        session_id: bytes,
+        delta: np.ndarray,
+        count: int,
+        *,
+        batch: int = DEFAULT_BATCH,
+        random_bytes: RandomBytes = os.urandom,
     ) -> None:
         super().__init__()
         self._session_id = check_session_id(session_id)
+        self._random_bytes = random_bytes
         self._delta = _check_delta(delta)
         _Batches(count, batch)  # validates count and batch before anything else happens
         self._count = count
@@ -389,8 +400,10 @@ class CorrelatedOTSender(StateMachine):
     def _on_start(self, _message: OTMessage | None) -> tuple[str, list[OTMessage]]:
         if self._count == 0:
             return DONE, []
-        self._base_choices = random_choice_bits(KAPPA)
-        self._base = BaseOTReceiver(self._session_id, self._base_choices, role=self.role)
+        self._base_choices = random_choice_bits(KAPPA, self._random_bytes)
+        self._base = BaseOTReceiver(
+            self._session_id, self._base_choices, role=self.role, random_bytes=self._random_bytes
+        )
         self._base.start()
         return AWAITING_BASE_POINT, []
 
@@ -412,11 +425,13 @@ class CorrelatedOTSender(StateMachine):
         return (DONE if self._extension.done else RECEIVING_COLUMNS), replies
 
 
-class CorrelatedOTReceiver(StateMachine):
+class CorrelatedOTReceiver(OTMachine):
     """The evaluator's side: one correlated OT per choice bit; ends with ``labels`` = K ⊕ choices·Δ.
 
     The evaluator is the base-OT sender (128 random key pairs) and the OT-extension receiver. ``window``
-    batches of columns may be in flight before the corrections of the first come back.
+    batches of columns may be in flight before the corrections of the first come back. ``random_bytes`` (the OS
+    CSPRNG by default) gives the base-OT sender's scalar, from which the 128 key pairs — the extension's PRG
+    seeds — follow; the choice bits are the evaluator's inputs.
     """
 
     ROLE = "correlated OT receiver (evaluator)"
@@ -433,9 +448,11 @@ class CorrelatedOTReceiver(StateMachine):
         *,
         batch: int = DEFAULT_BATCH,
         window: int = DEFAULT_WINDOW,
+        random_bytes: RandomBytes = os.urandom,
     ) -> None:
         super().__init__()
         self._session_id = check_session_id(session_id)
+        self._random_bytes = random_bytes
         self._choices = _as_choices(choices)
         _Batches(int(self._choices.size), batch)
         self._window = _check_window(window)
@@ -463,7 +480,7 @@ class CorrelatedOTReceiver(StateMachine):
     def _on_start(self, _message: OTMessage | None) -> tuple[str, list[OTMessage]]:
         if self._choices.size == 0:
             return DONE, []
-        self._base = BaseOTSender(self._session_id, KAPPA, role=self.role)
+        self._base = BaseOTSender(self._session_id, KAPPA, role=self.role, random_bytes=self._random_bytes)
         return AWAITING_BASE_POINTS, self._base.start()
 
     def _on_base_points(self, message: OTMessage | None) -> tuple[str, list[OTMessage]]:

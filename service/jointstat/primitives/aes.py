@@ -118,20 +118,3 @@ def prg_expand(seed: bytes, nbytes: int, *, nonce: bytes = bytes(16)) -> np.ndar
     out = bytearray(nbytes + BLOCK_BYTES)
     n = enc.update_into(bytes(nbytes), out)
     return np.frombuffer(out, dtype=np.uint8, count=n)
-
-
-def aes_blocks_per_second(batch: int = 1 << 14, seconds: float = 0.3) -> float:
-    """Raw fixed-key AES throughput in this process at the given batch size (the benchmarks' yardstick)."""
-    import time
-
-    perm = FixedKeyAES()
-    x = np.zeros((batch, 2), dtype=BLOCK_DTYPE)
-    out = np.empty_like(x)
-    done = 0
-    start = time.perf_counter()
-    while True:
-        perm.permute(x, out=out)
-        done += batch
-        elapsed = time.perf_counter() - start
-        if elapsed >= seconds:
-            return done / elapsed

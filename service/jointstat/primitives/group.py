@@ -41,6 +41,7 @@ Nothing here is secret except scalars; error messages name the rule that failed,
 from __future__ import annotations
 
 import os
+from collections.abc import Callable
 
 from nacl import bindings as _sodium
 from nacl import exceptions as _sodium_errors
@@ -66,10 +67,11 @@ class PointError(ValueError):
         self.reason = reason
 
 
-def random_scalar() -> bytes:
-    """A uniformly random non-zero scalar modulo L (64 CSPRNG bytes reduced modulo L)."""
+def random_scalar(random_bytes: Callable[[int], bytes] = os.urandom) -> bytes:
+    """A uniformly random non-zero scalar modulo L: 64 bytes of ``random_bytes`` (the OS CSPRNG by default)
+    reduced modulo L. A caller injects ``random_bytes`` to replay a recorded session; never a fixed source."""
     while True:
-        s = _sodium.crypto_core_ed25519_scalar_reduce(os.urandom(64))
+        s = _sodium.crypto_core_ed25519_scalar_reduce(random_bytes(64))
         if any(s):
             return bytes(s)
 

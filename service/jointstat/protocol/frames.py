@@ -39,7 +39,7 @@ from typing import Any, Union
 from google.protobuf.message import DecodeError
 
 from jointstat.circuit.model import Party
-from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
+from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
 PROTOCOL_VERSION = (
     3  # 2: hellos are signed; 3: programs instead of circuit lists (program digest, no constants)

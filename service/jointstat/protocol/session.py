@@ -46,36 +46,43 @@ a node to show how far a session is.
 Threads: none here. A session, and the greenlet its program runs in, must be driven from one thread at a time —
 the same thread for its whole life (the transport gives each session one worker thread). The state moves past
 ``streaming`` before the last streamed frame is handed out, so the evaluator's reply can never find the garbler
-still in ``streaming``.
+still in ``streaming``. No lock either: the driver that owns the worker thread serialises the calls.
 
-States and transitions (the two ``TABLE`` dictionaries below are the single source; every (state, event) pair
-not listed raises ``ProtocolError`` naming the state and the frame; ``abort`` from the peer is accepted in every
-state before ``done``/``failed`` and leads to ``failed``)
+Randomness: every random draw — Δ and the garbler's input labels, the base-OT scalars of both sides and the
+garbler's base-OT choice bits (the IKNP seeds follow from them) — comes from the ``random_bytes`` given to the
+session, the operating system's CSPRNG by default. Replaying the bytes one run drew gives the same session byte for
+byte (``tests/test_session_replay.py``): a recorded session is a test vector. A node never injects anything else.
 
-| session   | state                    | event                       | sends                               | next |
-|-----------|--------------------------|-----------------------------|-------------------------------------|------|
-| garbler   | new                      | start()                     | hello                               | awaiting hello |
-| garbler   | awaiting hello           | hello                       | —                                   | base OT; streaming if E has no inputs |
-| garbler   | base OT                  | base_ot (A)                 | base_ot (128 points)                | OT extension |
-| garbler   | OT extension             | ot_extension (columns)      | ot_extension (corrections)          | OT extension; streaming after the last batch |
-| garbler   | streaming                | tables sent (from produce)  | input labels and tables (produce)   | awaiting output labels; awaiting finish if G has no outputs (then also decoding, finish) |
-| garbler   | awaiting output labels   | garbler_output_labels       | when all arrived: decoding, finish  | awaiting output labels; awaiting finish |
-| garbler   | awaiting finish          | finish                      | —                                   | done |
-| evaluator | new                      | start()                     | hello                               | awaiting hello |
-| evaluator | awaiting hello           | hello                       | base_ot (A)                         | base OT; awaiting input labels if E has no inputs (runs the program if G has none either) |
-| evaluator | base OT                  | base_ot (128 points)        | ot_extension (first window)         | OT extension |
-| evaluator | OT extension             | ot_extension (corrections)  | ot_extension (next batch, if any)   | OT extension; awaiting input labels after the last (runs the program if G has no inputs) |
-| evaluator | awaiting input labels    | garbler_input_labels        | — (after the last: runs the program) | awaiting input labels; evaluating (or as after the last table if no AND gates) |
-| evaluator | evaluating               | garbled_tables              | after the last: garbler_output_labels | evaluating; awaiting decoding; awaiting finish if E has no outputs (then also finish) |
-| evaluator | awaiting decoding        | evaluator_output_decoding   | when all arrived: finish            | awaiting decoding; awaiting finish |
-| evaluator | awaiting finish          | finish                      | —                                   | done |
+States and transitions (the two ``TABLE`` dictionaries below are the single source, run by the table dispatch of
+``jointstat.machine``, and ``tests/test_machine.py`` checks this table against them: "next" lists every state the
+dictionary allows, a parenthesis says when; every (state, event) pair not listed raises ``ProtocolError`` naming the
+state and the frame; ``abort`` from the peer is accepted in every state before ``done``/``failed`` and leads to
+``failed``)
+
+| session   | state                  | event                      | sends                                  | next |
+|-----------|------------------------|----------------------------|----------------------------------------|------|
+| garbler   | new                    | start()                    | hello                                  | awaiting hello |
+| garbler   | awaiting hello         | hello                      | —                                      | base OT, streaming (E has no inputs) |
+| garbler   | base OT                | base_ot (A)                | base_ot (128 points)                   | OT extension |
+| garbler   | OT extension           | ot_extension (columns)     | ot_extension (corrections)             | OT extension, streaming (after the last batch) |
+| garbler   | streaming              | tables sent (from produce) | input labels and tables (produce); decoding and finish if G has no outputs | awaiting output labels, awaiting finish (G has no outputs) |
+| garbler   | awaiting output labels | garbler_output_labels      | when all arrived: decoding, finish     | awaiting output labels, awaiting finish (all arrived) |
+| garbler   | awaiting finish        | finish                     | —                                      | done |
+| evaluator | new                    | start()                    | hello                                  | awaiting hello |
+| evaluator | awaiting hello         | hello                      | base_ot (A)                            | base OT, awaiting input labels, evaluating, awaiting decoding, awaiting finish (all but base OT: E has no inputs, as after the OT) |
+| evaluator | base OT                | base_ot (128 points)       | ot_extension (first window)            | OT extension |
+| evaluator | OT extension           | ot_extension (corrections) | ot_extension (next batch, if any)      | OT extension, awaiting input labels, evaluating, awaiting decoding, awaiting finish (after the last batch; the last three when G has no inputs, as after the input labels) |
+| evaluator | awaiting input labels  | garbler_input_labels       | — (after the last: runs the program)   | awaiting input labels, evaluating, awaiting decoding, awaiting finish (the last two when the program has no AND gates, as after the last table) |
+| evaluator | evaluating             | garbled_tables             | after the last: garbler_output_labels; finish if E has no outputs | evaluating, awaiting decoding, awaiting finish (E has no outputs) |
+| evaluator | awaiting decoding      | evaluator_output_decoding  | when all arrived: finish               | awaiting decoding, awaiting finish (all arrived) |
+| evaluator | awaiting finish        | finish                     | —                                      | done |
 """
 
 from __future__ import annotations
 
 import os
 from collections.abc import Callable, Iterator, Mapping
-from typing import Any, ClassVar
+from typing import Any, ClassVar, NoReturn
 
 import numpy as np
 
@@ -86,6 +93,7 @@ from jointstat.garble.backends import DEFAULT_CHUNK_BYTES, EvaluatorBackend, Gar
 from jointstat.garble.halfgates import TABLE_BYTES, GarbleError, fresh_delta
 from jointstat.garble.outputs import OutputDecoding, decode, decode_returned, make_decoding
 from jointstat.garble.streams import Sink, Source, TableConsumer, TableProducer
+from jointstat.machine import DONE, FAILED, NEW, START, TableMachine, Transition
 from jointstat.ot import (
     BASE_OT_RECEIVER_POINTS,
     BASE_OT_SENDER_POINT,
@@ -100,7 +108,7 @@ from jointstat.primitives.blocks import BLOCK_BYTES, BLOCK_DTYPE
 from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import AbortInfo, AbortReason, ProtocolError, Transcript
 from jointstat.statements import HELLO, TRANSCRIPT, Statement, session_text
-from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
+from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
 # ``sign(statement) -> signature`` with this node's key; ``verify(signature, statement)`` against the peer's key
 # (``protocol.signing`` builds both from keys; the node plugs in its own, which also logs the transcript).
@@ -108,10 +116,8 @@ Sign = Callable[[Statement], bytes]
 Verify = Callable[[bytes, Statement], bool]
 RandomBytes = Callable[[int], bytes]
 
-START = "start()"
 TABLES_SENT = "tables sent"
 
-NEW = "new"
 AWAITING_HELLO = "awaiting hello"
 BASE_OT = "base OT"
 OT_EXTENSION = "OT extension"
@@ -121,10 +127,6 @@ AWAITING_INPUT_LABELS = "awaiting input labels"
 EVALUATING = "evaluating"
 AWAITING_DECODING = "awaiting decoding"
 AWAITING_FINISH = "awaiting finish"
-DONE = "done"
-FAILED = "failed"
-
-Transition = tuple[str, tuple[str, ...]]
 
 
 def _with_abort(table: dict[tuple[str, str], Transition]) -> dict[tuple[str, str], Transition]:
@@ -174,7 +176,15 @@ EVALUATOR_TABLE: Mapping[tuple[str, str], Transition] = _with_abort(
     }
 )
 
-Handler = Callable[[fr.AnyFrame | None], tuple[str, list[bytes]]]
+
+# The OT message each OT frame carries, by the party that receives the frame: the evaluator is the sender of the
+# Chou–Orlandi base OTs and the receiver of the IKNP extension, the garbler the other way round (``ot.messages``).
+OT_MESSAGE_OF: Mapping[Party, Mapping[str, str]] = {
+    Party.GARBLER: {fr.BASE_OT: BASE_OT_SENDER_POINT, fr.OT_EXTENSION: EXTENSION_COLUMNS},
+    Party.EVALUATOR: {fr.BASE_OT: BASE_OT_RECEIVER_POINTS, fr.OT_EXTENSION: EXTENSION_CORRECTIONS},
+}
+
+CorrelatedOT = CorrelatedOTSender | CorrelatedOTReceiver
 
 
 class NoOutputError(RuntimeError):
@@ -226,11 +236,16 @@ def _check_inputs(program: Program, party: Party, inputs: object) -> np.ndarray:
     return np.ascontiguousarray(bits, dtype=np.uint8)
 
 
-class _Session:
-    """What both sessions share: table dispatch, hello checks, transcript, finish, failure and output release."""
+class _Session(TableMachine[fr.AnyFrame | None, list[bytes]]):
+    """What both sessions share: how they fail, hello checks, transcript, finish and output release.
+
+    The table dispatch itself is ``jointstat.machine``'s; the hooks below make every failure a ``ProtocolError``
+    carrying the abort frame for the peer.
+    """
 
     PARTY: ClassVar[Party]
-    TABLE: ClassVar[Mapping[tuple[str, str], Transition]]
+    PEER: ClassVar[Party]
+    ENDED: ClassVar[frozenset[str]] = frozenset({DONE, FAILED})
 
     def __init__(
         self,
@@ -255,8 +270,9 @@ class _Session:
         self._sign = sign
         self._verify = verify
         self._random_bytes = random_bytes
-        self._state = NEW
+        super().__init__()
         self._transcript = Transcript(self.PARTY, self.session_id)
+        self._ot: CorrelatedOT | None = None
         self._result: np.ndarray | None = None  # decoded, held back until the peer's finish verifies
         self._outputs: np.ndarray | None = None
         self._abort: AbortInfo | None = None
@@ -270,10 +286,6 @@ class _Session:
     @property
     def party(self) -> Party:
         return self.PARTY
-
-    @property
-    def state(self) -> str:
-        return self._state
 
     @property
     def done(self) -> bool:
@@ -392,47 +404,41 @@ class _Session:
         """More about an unexpected frame, for its message (the evaluator's says where the table stream stood)."""
         return ""
 
-    def _dispatch(self, event: str, frame: fr.AnyFrame | None) -> list[bytes]:
-        state = self._state
-        if state in (DONE, FAILED):
-            raise ProtocolError(
-                AbortReason.UNEXPECTED_FRAME, f"{self._who} has ended ({state}); {event!r} refused"
-            )
-        transition = self.TABLE.get((state, event))
-        if transition is None:
-            accepted = sorted(ev for (st, ev) in self.TABLE if st == state and ev != fr.ABORT)
-            what = f"{event} called" if event in (START, TABLES_SENT) else f"unexpected {event!r} frame"
-            raise self._failure(
-                AbortReason.UNEXPECTED_FRAME,
-                f"{self._who} in state {state!r}: {what}; this state accepts {', '.join(accepted) or 'nothing'}"
-                + self._unexpected_note(event),
-            )
-        handler_name, allowed = transition
-        handler: Handler = getattr(self, handler_name)
+    # -- how a session fails (jointstat.machine) ----------------------------------------------------------------------
+    def _refuse_ended(self, state: str, event: str) -> Exception:
+        return ProtocolError(
+            AbortReason.UNEXPECTED_FRAME, f"{self._who} has ended ({state}); {event!r} refused"
+        )
+
+    def _refuse_unexpected(self, state: str, event: str) -> Exception:
+        accepted = [ev for ev in self.accepted_events(state) if ev != fr.ABORT]
+        what = f"{event} called" if event in (START, TABLES_SENT) else f"unexpected {event!r} frame"
+        return self._failure(
+            AbortReason.UNEXPECTED_FRAME,
+            f"{self._who} in state {state!r}: {what}; this state accepts {', '.join(accepted) or 'nothing'}"
+            + self._unexpected_note(event),
+        )
+
+    def _handler_failed(self, state: str, event: str, exc: Exception) -> NoReturn:
         where = f"{self._who} in state {state!r}, {event!r}"
-        try:
-            next_state, replies = handler(frame)
-        except ProtocolError as exc:
+        if isinstance(exc, ProtocolError):
             if self._state == FAILED:
-                raise
+                raise exc
             raise self._failure(exc.reason, f"{where}: {exc}") from None
-        except OTError as exc:
+        if isinstance(exc, OTError):
             raise self._failure(
                 AbortReason.OT_FAILURE, f"{where}: oblivious transfer failed: {exc}"
             ) from None
-        except GarbleError as exc:
+        if isinstance(exc, GarbleError):
             reason = AbortReason.MALFORMED_FRAME if event == fr.GARBLED_TABLES else AbortReason.INVALID_OUTPUT
             raise self._failure(reason, f"{where}: {exc}") from None
-        except Exception as exc:
-            raise self._failure(
-                AbortReason.INTERNAL, f"{where}: internal error ({type(exc).__name__})"
-            ) from exc
-        if next_state not in allowed:
-            raise self._failure(
-                AbortReason.INTERNAL, f"{where}: handler chose {next_state!r}, not in the table"
-            )
-        self._state = next_state
-        return replies
+        raise self._failure(AbortReason.INTERNAL, f"{where}: internal error ({type(exc).__name__})") from exc
+
+    def _refuse_next(self, state: str, event: str, next_state: str) -> Exception:
+        return self._failure(
+            AbortReason.INTERNAL,
+            f"{self._who} in state {state!r}, {event!r}: handler chose {next_state!r}, not in the table",
+        )
 
     def _emit(self, kind: str, data: bytes) -> bytes:
         """Record an outgoing frame in the transcript and hand it out."""
@@ -475,7 +481,7 @@ class _Session:
                 AbortReason.PROTOCOL_VERSION,
                 f"peer speaks protocol version {hello.protocol_version}, this node speaks {fr.PROTOCOL_VERSION}",
             )
-        peer = Party.EVALUATOR if self.PARTY == Party.GARBLER else Party.GARBLER
+        peer = self.PEER
         if hello.role != fr.role_to_wire(peer):
             claimed = pb.Role.Name(hello.role) if hello.role in pb.Role.values() else str(hello.role)
             raise ProtocolError(
@@ -505,6 +511,48 @@ class _Session:
                 f"peer {bytes(hello.program_digest).hex()[:16]}…): the nodes run different programs for the"
                 " manifest (different jointstat versions?)",
             )
+
+    # -- oblivious transfer: the same plumbing on both sides ------------------------------------------------------------
+    def _new_ot(self) -> CorrelatedOT:
+        """This side's correlated OT party (overridden: the garbler's sender, the evaluator's receiver)."""
+        raise NotImplementedError
+
+    def _after_ot(self, ot: CorrelatedOT, replies: list[bytes]) -> tuple[str, list[bytes]]:
+        """Take the labels of a finished OT; the next state and the frames to send (overridden)."""
+        raise NotImplementedError
+
+    def _on_hello(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
+        assert frame is not None
+        self._check_hello(frame)
+        ot = self._ot = self._new_ot()
+        return self._ot_replies(ot, ot.start(), BASE_OT)
+
+    def _on_base_ot(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
+        return self._on_ot(fr.BASE_OT, frame)
+
+    def _on_ot_extension(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
+        return self._on_ot(fr.OT_EXTENSION, frame)
+
+    def _on_ot(self, kind: str, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
+        assert frame is not None and self._ot is not None
+        message = OTMessage(OT_MESSAGE_OF[self.PARTY][kind], fr.payload_of(kind, frame))
+        return self._ot_replies(self._ot, self._ot.receive(message), OT_EXTENSION)
+
+    def _ot_replies(
+        self, ot: CorrelatedOT, messages: list[OTMessage], next_state: str
+    ) -> tuple[str, list[bytes]]:
+        """The OT's messages as frames, and ``next_state`` — or, once the OT is done, what ``_after_ot`` says."""
+        frame_of = {message: kind for kind, message in OT_MESSAGE_OF[self.PEER].items()}
+        replies = []
+        for m in messages:
+            kind = frame_of.get(m.kind)
+            if kind is None:
+                raise ProtocolError(AbortReason.INTERNAL, f"the OT party produced a {m.kind!r} message")
+            replies.append(self._emit(kind, fr.payload_frame(kind, m.payload)))
+        if not ot.done:
+            return next_state, replies
+        self._ot = None
+        return self._after_ot(ot, replies)
 
     def _finish_frame(self) -> bytes:
         digest = self._transcript.digest()
@@ -545,6 +593,7 @@ class GarblerSession(_Session):
     """
 
     PARTY = Party.GARBLER
+    PEER = Party.EVALUATOR
     TABLE = GARBLER_TABLE
 
     def __init__(
@@ -572,7 +621,6 @@ class GarblerSession(_Session):
         )
         self._chunk_bytes = chunk_bytes
         self._delta: np.ndarray | None = None
-        self._ot: CorrelatedOTSender | None = None
         self._evaluator_zero: np.ndarray | None = None
         self._backend: GarblerBackend | None = None
         self._producer: TableProducer | None = None
@@ -605,46 +653,15 @@ class GarblerSession(_Session):
             self._producer.close()
             self._producer = None
 
-    def _ot_frames(self, messages: list[OTMessage]) -> list[bytes]:
-        out = []
-        for m in messages:
-            kind = fr.BASE_OT if m.kind == BASE_OT_RECEIVER_POINTS else fr.OT_EXTENSION
-            if m.kind not in (BASE_OT_RECEIVER_POINTS, EXTENSION_CORRECTIONS):
-                raise ProtocolError(AbortReason.INTERNAL, f"OT sender produced a {m.kind!r} message")
-            out.append(self._emit(kind, fr.payload_frame(kind, m.payload)))
-        return out
-
-    def _on_hello(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None
-        self._check_hello(frame)
+    def _new_ot(self) -> CorrelatedOTSender:
         self._delta = fresh_delta(self._random_bytes)
-        self._ot = CorrelatedOTSender(self.session_id, self._delta, self._n_in[Party.EVALUATOR])
-        replies = self._ot_frames(self._ot.start())
-        if self._ot.done:
-            self._ot_finished()
-            return STREAMING, replies
-        return BASE_OT, replies
-
-    def _on_base_ot(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None and self._ot is not None
-        replies = self._ot.receive(OTMessage(BASE_OT_SENDER_POINT, fr.payload_of(fr.BASE_OT, frame)))
-        return OT_EXTENSION, self._ot_frames(replies)
-
-    def _on_ot_extension(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None and self._ot is not None
-        replies = self._ot_frames(
-            self._ot.receive(OTMessage(EXTENSION_COLUMNS, fr.payload_of(fr.OT_EXTENSION, frame)))
-        )
-        if self._ot.done:
-            self._ot_finished()
-            return STREAMING, replies
-        return OT_EXTENSION, replies
-
-    def _ot_finished(self) -> None:
-        assert self._ot is not None
         n = self._n_in[Party.EVALUATOR]
-        self._evaluator_zero = self._ot.zero_labels if n else np.zeros((0, 2), dtype=BLOCK_DTYPE)
-        self._ot = None
+        return CorrelatedOTSender(self.session_id, self._delta, n, random_bytes=self._random_bytes)
+
+    def _after_ot(self, ot: CorrelatedOT, replies: list[bytes]) -> tuple[str, list[bytes]]:
+        assert isinstance(ot, CorrelatedOTSender)
+        self._evaluator_zero = ot.zero_labels  # K of the evaluator's inputs ((0, 2) when it has none)
+        return STREAMING, replies
 
     def produce(self) -> Iterator[bytes]:
         """The streamed frames: the garbler's input labels, then the garbled tables, garbled as they are pulled.
@@ -764,6 +781,7 @@ class EvaluatorSession(_Session):
     """
 
     PARTY = Party.EVALUATOR
+    PEER = Party.GARBLER
     TABLE = EVALUATOR_TABLE
 
     def __init__(
@@ -786,7 +804,6 @@ class EvaluatorSession(_Session):
             verify=verify,
             random_bytes=random_bytes,
         )
-        self._ot: CorrelatedOTReceiver | None = None
         self._own_labels: np.ndarray | None = None
         self._consumer: TableConsumer | None = None
         self._backend: EvaluatorBackend | None = None
@@ -827,43 +844,12 @@ class EvaluatorSession(_Session):
             self._consumer.close_quietly()
             self._consumer = None
 
-    def _ot_frames(self, messages: list[OTMessage]) -> list[bytes]:
-        out = []
-        for m in messages:
-            if m.kind not in (BASE_OT_SENDER_POINT, EXTENSION_COLUMNS):
-                raise ProtocolError(AbortReason.INTERNAL, f"OT receiver produced a {m.kind!r} message")
-            kind = fr.BASE_OT if m.kind == BASE_OT_SENDER_POINT else fr.OT_EXTENSION
-            out.append(self._emit(kind, fr.payload_frame(kind, m.payload)))
-        return out
+    def _new_ot(self) -> CorrelatedOTReceiver:
+        return CorrelatedOTReceiver(self.session_id, self._inputs, random_bytes=self._random_bytes)
 
-    def _on_hello(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None
-        self._check_hello(frame)
-        self._ot = CorrelatedOTReceiver(self.session_id, self._inputs)
-        replies = self._ot_frames(self._ot.start())
-        if self._ot.done:
-            self._own_labels = np.empty((0, 2), dtype=BLOCK_DTYPE)
-            self._ot = None
-            return self._after_ot(replies)
-        return BASE_OT, replies
-
-    def _on_base_ot(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None and self._ot is not None
-        replies = self._ot.receive(OTMessage(BASE_OT_RECEIVER_POINTS, fr.payload_of(fr.BASE_OT, frame)))
-        return OT_EXTENSION, self._ot_frames(replies)
-
-    def _on_ot_extension(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None and self._ot is not None
-        replies = self._ot_frames(
-            self._ot.receive(OTMessage(EXTENSION_CORRECTIONS, fr.payload_of(fr.OT_EXTENSION, frame)))
-        )
-        if self._ot.done:
-            self._own_labels = self._ot.labels
-            self._ot = None
-            return self._after_ot(replies)
-        return OT_EXTENSION, replies
-
-    def _after_ot(self, replies: list[bytes]) -> tuple[str, list[bytes]]:
+    def _after_ot(self, ot: CorrelatedOT, replies: list[bytes]) -> tuple[str, list[bytes]]:
+        assert isinstance(ot, CorrelatedOTReceiver)
+        self._own_labels = ot.labels  # K ⊕ x·Δ of its own inputs ((0, 2) when it has none)
         if self._given.total == 0:  # the garbler has no inputs: nothing to wait for
             state, more = self._start_program(np.zeros((0, 2), dtype=BLOCK_DTYPE))
             return state, replies + more

@@ -2,35 +2,28 @@
 
 ``SessionServer`` serves expected sessions, ``run_client`` runs one session against a server, ``NodeTLS`` holds a
 node's certificate, key and pinned peers, ``Limits`` the deadlines and the send window; see ``driver`` for how a
-session is run on a stream (flow control, garbling off the event loop, deadlines, cancellation).
+session is run on a stream (flow control, garbling off the event loop, deadlines, cancellation). The message code
+of the wire format lives below this room and the protocol, in ``jointstat.wire``.
 """
 
 from __future__ import annotations
 
-from typing import Any
+from jointstat.transport.channel import SessionIds, SessionRefused
+from jointstat.transport.client import run_client
+from jointstat.transport.driver import Limits, SessionResult, WireCounters, drive
+from jointstat.transport.server import SessionServer
+from jointstat.transport.tls import NodeTLS, PeerRefused, fingerprint
 
-_EXPORTS = {
-    "Limits": "jointstat.transport.driver",
-    "SessionResult": "jointstat.transport.driver",
-    "WireCounters": "jointstat.transport.driver",
-    "drive": "jointstat.transport.driver",
-    "SessionIds": "jointstat.transport.channel",
-    "SessionRefused": "jointstat.transport.channel",
-    "SessionServer": "jointstat.transport.server",
-    "run_client": "jointstat.transport.client",
-    "NodeTLS": "jointstat.transport.tls",
-    "PeerRefused": "jointstat.transport.tls",
-    "fingerprint": "jointstat.transport.tls",
-}
-
-__all__ = sorted(_EXPORTS)
-
-
-def __getattr__(name: str) -> Any:
-    # Lazy, so that importing the generated wire module (jointstat.transport.wire) does not import grpc or the
-    # protocol layer, which itself imports the wire module.
-    if name in _EXPORTS:
-        import importlib
-
-        return getattr(importlib.import_module(_EXPORTS[name]), name)
-    raise AttributeError(f"module 'jointstat.transport' has no attribute {name!r}")
+__all__ = [
+    "Limits",
+    "NodeTLS",
+    "PeerRefused",
+    "SessionIds",
+    "SessionRefused",
+    "SessionResult",
+    "SessionServer",
+    "WireCounters",
+    "drive",
+    "fingerprint",
+    "run_client",
+]

@@ -17,7 +17,7 @@ import grpc
 
 from jointstat.protocol.frames import MAX_FRAME_BYTES
 from jointstat.transport.driver import StreamLost
-from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
+from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
 _SERVICE = pb.DESCRIPTOR.services_by_name["Session"]
 SERVICE_NAME = _SERVICE.full_name

@@ -6,7 +6,7 @@ import math
 from datetime import UTC, datetime
 from zoneinfo import ZoneInfo
 
-from jointstat.node.opscommands import human_bytes
+from jointstat.units import human_bytes
 
 DASH = "—"
 

@@ -41,10 +41,10 @@ from typing import Any
 
 from cryptography.hazmat.primitives.ciphers import Cipher, algorithms, modes
 
+from jointstat.bench.garble import timed_run
 from jointstat.circuit.model import Party
 from jointstat.circuit.program import Program
 from jointstat.circuit.reference.aes128 import aes128_program, bits_to_block, block_bits, key_bits
-from jointstat.garble.local import run_locally
 
 CHUNK_BYTES = 16 * 1024
 
@@ -65,18 +65,14 @@ def run() -> int:
     program = Program.of(aes128_program, name="AES-128")
     t_build = time.perf_counter() - t0
 
-    run = run_locally(
-        program.run,
+    timed = timed_run(
+        program,
         {Party.GARBLER: key_bits(LIBRARY_KEY), Party.EVALUATOR: block_bits(MEMBER_RECORD)},
         chunk_bytes=CHUNK_BYTES,
     )
+    run = timed.run
     garbled = bits_to_block(run.outputs[Party.EVALUATOR])
-    table_bytes, chunks, t_garble, t_eval = (
-        run.table_bytes,
-        run.chunks,
-        run.garble_seconds,
-        run.evaluate_seconds,
-    )
+    table_bytes, chunks, t_garble, t_eval = run.table_bytes, run.chunks, timed.garble_s, timed.evaluate_s
     expected = reference_aes128(LIBRARY_KEY, MEMBER_RECORD)
     match = garbled == expected
 
@@ -105,7 +101,7 @@ def run() -> int:
 
 # -- the two-node demonstration ------------------------------------------------------------------------------------
 
-REPO = Path(__file__).resolve().parents[2]
+REPO = Path(__file__).resolve().parents[3]
 SCENARIO = REPO / "configs" / "demo"
 JOB = "shared-members"
 LIBRARY, BATHS = "millbrook-library", "riverside-baths"
@@ -289,9 +285,9 @@ def _stop(procs: dict[str, subprocess.Popen[bytes]]) -> dict[str, int | None]:
 def run_nodes(work: Path | None = None) -> int:
     """The two-node demonstration (module docstring); 0 only if every check passed."""
     from jointstat.audit.verify import compare_logs, verify_log
+    from jointstat.commands.ops import follow
     from jointstat.node.admin import AdminClient
     from jointstat.node.config import load_node_config
-    from jointstat.node.opscommands import follow
 
     t_start = time.monotonic()
     if not (SCENARIO / "manifest.yaml").is_file():

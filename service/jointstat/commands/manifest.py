@@ -6,11 +6,17 @@ import argparse
 import json
 import sys
 from pathlib import Path
+from typing import TYPE_CHECKING
+
+from jointstat.problems import UserError
+
+if TYPE_CHECKING:
+    from jointstat.circuit.compile import CompiledStatistic
+    from jointstat.circuit.manifest import Manifest
 
 
-def _load(path: str, plugins: list[str] | None = None):  # type: ignore[no-untyped-def]
+def _load(path: str, plugins: list[str] | None = None) -> Manifest:
     from jointstat.circuit.manifest import ManifestError, load_manifest, load_plugins
-    from jointstat.cli import UserError
 
     if plugins:
         problems = load_plugins(plugins, Path.cwd(), where="--plugin")
@@ -22,7 +28,7 @@ def _load(path: str, plugins: list[str] | None = None):  # type: ignore[no-untyp
         raise UserError(str(exc)) from None
 
 
-def _compile(path: str):  # type: ignore[no-untyped-def]
+def _compile(path: str) -> CompiledStatistic:
     from jointstat.circuit.compile import compile_manifest
 
     return compile_manifest(_load(path))
@@ -30,7 +36,6 @@ def _compile(path: str):  # type: ignore[no-untyped-def]
 
 def _schema(args: argparse.Namespace) -> int:
     from jointstat.circuit.manifest import load_plugins, schema
-    from jointstat.cli import UserError
 
     problems = load_plugins(args.plugin or [], Path.cwd(), where="--plugin")
     if problems:
@@ -40,7 +45,7 @@ def _schema(args: argparse.Namespace) -> int:
     return 0
 
 
-def _false_matches_line(manifest) -> str | None:  # type: ignore[no-untyped-def]
+def _false_matches_line(manifest: Manifest) -> str | None:
     from jointstat.circuit.manifest import key_matching
 
     f = key_matching(manifest)
@@ -54,7 +59,6 @@ def _false_matches_line(manifest) -> str | None:  # type: ignore[no-untyped-def]
 
 def _check(args: argparse.Namespace) -> int:
     from jointstat.circuit.plan import LimitError, check_limits, memory_bytes
-    from jointstat.cli import UserError
 
     compiled = _compile(args.file)
     m = compiled.manifest
@@ -89,7 +93,6 @@ def _digest(args: argparse.Namespace) -> int:
 def _plan(args: argparse.Namespace) -> int:
     from jointstat.bench.garble import measured_speed
     from jointstat.circuit.plan import LimitError, check_limits, parse_rate, plan
-    from jointstat.cli import UserError
 
     try:
         rate = parse_rate(args.bandwidth)
@@ -148,12 +151,6 @@ def _size(n: int) -> str:
     return f"{n:,} B"
 
 
-def _bench_join(args: argparse.Namespace) -> int:
-    from jointstat.bench.join import run
-
-    return run(rows=args.rows, as_json=args.json, session=args.session)
-
-
 def add_commands(sub: argparse._SubParsersAction) -> None:
     manifest = sub.add_parser("manifest", help="check, pin and describe job manifests")
     which = manifest.add_subparsers(dest="manifest_command", required=True, metavar="ACTION")
@@ -172,22 +169,3 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     plan.add_argument("--bandwidth", default="100Mbit/s", help="link rate, e.g. 100Mbit/s, 1Gbit/s, 50MB/s")
     plan.add_argument("--json", action="store_true", help="print one JSON object")
     plan.set_defaults(handler=_plan)
-
-    # ``jointstat bench join``: added to the bench command's own subcommands when that module came first.
-    bench = sub.choices.get("bench")
-    if bench is not None:
-        for action in bench._actions:
-            if isinstance(action, argparse._SubParsersAction):
-                add_bench_command(action)
-
-
-def add_bench_command(which: argparse._SubParsersAction) -> None:
-    join = which.add_parser(
-        "join", help="the keyed-join sum at a size: counted, or a real session (--session)"
-    )
-    join.add_argument("--rows", type=int, default=1 << 16, help="rows per party (default 2^16)")
-    join.add_argument(
-        "--session", action="store_true", help="run two node processes over loopback TLS on generated data"
-    )
-    join.add_argument("--json", action="store_true", help="print one JSON object")
-    join.set_defaults(handler=_bench_join)

@@ -1,4 +1,4 @@
-"""``jointstat bench …``: each benchmark module adds one subcommand here."""
+"""``jointstat bench …``: one subcommand per benchmark module of ``jointstat.bench``."""
 
 from __future__ import annotations
 
@@ -33,6 +33,12 @@ def _link(args: argparse.Namespace) -> int:
     from jointstat.bench.link import run
 
     return run(rate=args.rate, rtt=args.rtt, bulk=args.bytes, buffer=args.buffer, as_json=args.json)
+
+
+def _join(args: argparse.Namespace) -> int:
+    from jointstat.bench.join import run
+
+    return run(rows=args.rows, as_json=args.json, session=args.session)
 
 
 def _noise(args: argparse.Namespace) -> int:
@@ -82,7 +88,7 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     faults.set_defaults(handler=_faults)
 
     link = which.add_parser(
-        "link", help="the link emulator's rate, delay and ceiling on this machine (harness/link.py)"
+        "link", help="the link emulator's rate, delay and ceiling on this machine (harness/link/)"
     )
     link.add_argument("--rate", default="100Mbit/s", help="the rate each way (default 100Mbit/s)")
     link.add_argument("--rtt", default="40ms", help="the round-trip time, half each way (default 40ms)")
@@ -102,3 +108,13 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     noise.add_argument("--lanes", type=int, default=4096, help="samples per garbled circuit (default 4096)")
     noise.add_argument("--json", action="store_true", help="print one JSON object")
     noise.set_defaults(handler=_noise)
+
+    join = which.add_parser(
+        "join", help="the keyed-join sum at a size: counted, or a real session (--session)"
+    )
+    join.add_argument("--rows", type=int, default=1 << 16, help="rows per party (default 2^16)")
+    join.add_argument(
+        "--session", action="store_true", help="run two node processes over loopback TLS on generated data"
+    )
+    join.add_argument("--json", action="store_true", help="print one JSON object")
+    join.set_defaults(handler=_join)

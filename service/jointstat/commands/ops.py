@@ -21,13 +21,15 @@ import sys
 import time
 from typing import Any
 
+from jointstat.problems import UserError
+from jointstat.units import human_bytes
+
 DEFAULT_CONFIG = "/etc/jointstat/node.yaml"
 POLL_S = 0.25
 ENDED = ("completed", "aborted", "refused", "failed")
 
 
 def _client(args: argparse.Namespace) -> Any:
-    from jointstat.cli import UserError
     from jointstat.node.admin import AdminClient
     from jointstat.node.config import ConfigError, load_node_config
 
@@ -40,7 +42,6 @@ def _client(args: argparse.Namespace) -> Any:
 
 
 def _call(fn: Any, *args: Any) -> Any:
-    from jointstat.cli import UserError
     from jointstat.node.admin import AdminError
 
     try:
@@ -60,17 +61,6 @@ def _when(text: str | None) -> str:
     if not text:
         return "-"
     return text.replace("T", " ")[:19]
-
-
-def human_bytes(n: int | None) -> str:
-    if n is None:
-        return "-"
-    value = float(n)
-    for unit in ("B", "KiB", "MiB", "GiB"):
-        if value < 1024 or unit == "GiB":
-            return f"{value:.0f} {unit}" if unit == "B" else f"{value:.1f} {unit}"
-        value /= 1024
-    raise AssertionError("unreachable")
 
 
 def _table(rows: list[list[str]], header: list[str]) -> None:

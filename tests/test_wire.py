@@ -7,7 +7,7 @@ from pathlib import Path
 
 from jointstat.protocol import frames as fr
 from jointstat.transport import channel
-from jointstat.transport.wire.jointstat.v1 import session_pb2 as pb
+from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
 ROOT = Path(__file__).resolve().parent.parent
 

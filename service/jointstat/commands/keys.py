@@ -6,9 +6,10 @@ import argparse
 import json
 from datetime import UTC, datetime
 
+from jointstat.problems import UserError
+
 
 def _init(args: argparse.Namespace) -> int:
-    from jointstat.cli import UserError
     from jointstat.node.keys import init_node_keys, init_trial
     from jointstat.node.secrets import SecretFileError
 

@@ -11,6 +11,8 @@ from collections import Counter
 from pathlib import Path
 from typing import TYPE_CHECKING
 
+from jointstat.problems import UserError
+
 if TYPE_CHECKING:
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PublicKey
 
@@ -18,7 +20,6 @@ if TYPE_CHECKING:
 def _key(path: str | None) -> Ed25519PublicKey | None:
     if path is None:
         return None
-    from jointstat.cli import UserError
     from jointstat.node.keys import load_public_key
     from jointstat.node.secrets import SecretFileError
 
@@ -29,7 +30,6 @@ def _key(path: str | None) -> Ed25519PublicKey | None:
 
 
 def _read(path: str) -> bytes:
-    from jointstat.cli import UserError
 
     try:
         return Path(path).read_bytes()

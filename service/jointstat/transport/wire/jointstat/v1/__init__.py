@@ -1,1 +1,0 @@
-"""Generated protobuf modules of the wire format (see proto/generate.py); do not edit by hand."""
