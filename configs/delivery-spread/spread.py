@@ -63,7 +63,7 @@ class Spread(ColumnStatistic[SpreadParameters]):
         high = tree_reduce(bld, bld.select(valid, zeros, keys), take_larger=True)
         count = blocks.count_bits(bld, valid)
         return StatisticResult(
-            {"spread": bld.sub(high, low), "count": bld.extend(count, self.outputs()[1].width)},
+            {"spread": bld.sub(high, low), "count": bld.extend(count, self.output_specs()["count"].width)},
             count=count,
             ok=blocks.at_least(bld, count, 1),
         )

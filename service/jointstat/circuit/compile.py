@@ -245,7 +245,7 @@ def compile_manifest(manifest: Manifest) -> CompiledStatistic:
     stat = statistic_for(manifest)
     needs = stat.needs()
     layouts = {party: input_layout(manifest, party, needs[party]) for party in Party}
-    specs = {s.name: s for s in stat.outputs()}
+    specs = stat.output_specs()
     outputs: dict[Party, tuple[OutputField, ...]] = {}
     for party in Party:
         names = manifest.outputs.garbler if party == Party.GARBLER else manifest.outputs.evaluator

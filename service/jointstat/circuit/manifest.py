@@ -37,6 +37,7 @@ from pathlib import Path
 from typing import Annotated, Any, Union
 
 from pydantic import Field, ValidationError, create_model
+from pydantic_core import ErrorDetails
 
 from jointstat.circuit.agreement import MAX_WIDTH, MIN_KEY_WIDTH, Manifest
 from jointstat.circuit.library.registry import parameter_models, statistic_for
@@ -71,7 +72,7 @@ def schema() -> dict[str, Any]:
 # -- loading ------------------------------------------------------------------------------------------------------
 
 
-def _error_path(err: dict[str, Any], data: Any) -> str:
+def _error_path(err: ErrorDetails, data: Any) -> str:
     path = field_path(err["loc"], data)
     if err["type"] in ("union_tag_invalid", "union_tag_not_found"):  # the error is about the tag field itself
         tag = str((err.get("ctx") or {}).get("discriminator", "")).strip("'")
@@ -152,7 +153,7 @@ def cross_check(manifest: Manifest) -> list[Problem]:
     problems = list(stat.problems())
     if problems:
         return problems
-    known = {spec.name for spec in stat.outputs()}
+    known = set(stat.output_specs())
     for role in ("garbler", "evaluator"):
         names = getattr(manifest.outputs, role)
         for i, name in enumerate(names):

@@ -126,7 +126,7 @@ class _Aggregate(Statistic[_AggregateParameters]):
     # -- circuit ------------------------------------------------------------------------------------------------
     def build(self, ctx: BuildContext) -> StatisticResult:
         bld = ctx.builder
-        specs = {s.name: s for s in self.outputs()}
+        specs = self.output_specs()
         counts = []
         for party in Party:
             t = ctx.table(party)

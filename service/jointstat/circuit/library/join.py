@@ -73,14 +73,13 @@ class KeyedJoin(Statistic[JoinParameters]):
             problems.append(
                 Problem("statistic.key", f"the key columns differ in width ({cols[0].bits}, {cols[1].bits})")
             )
-        if self.params.value is not None:
-            party = self.value_party()
-            assert party is not None
-            col = self.manifest.table(party).column(self.params.value.column)
-            if col is None:
-                problems.append(Problem("statistic.value.column", f"tables.{party.role} has no such column"))
-            elif not col.number:
-                problems.append(Problem("statistic.value.column", f"{col.name!r} is not a number column"))
+        vp = self.value_party()
+        if vp is not None and self.params.value is not None:
+            value = self.manifest.table(vp).column(self.params.value.column)
+            if value is None:
+                problems.append(Problem("statistic.value.column", f"tables.{vp.role} has no such column"))
+            elif not value.number:
+                problems.append(Problem("statistic.value.column", f"{value.name!r} is not a number column"))
         if self.params.threshold is not None and self.params.value is None:
             problems.append(Problem("statistic.threshold", "a threshold needs a value column"))
         return problems
@@ -120,7 +119,7 @@ class KeyedJoin(Statistic[JoinParameters]):
 
     def build(self, ctx: BuildContext) -> StatisticResult:
         bld = ctx.builder
-        specs = {s.name: s for s in self.outputs()}
+        specs = self.output_specs()
         names = self.column_names(self.params.key)
         elements = []
         for party in Party:

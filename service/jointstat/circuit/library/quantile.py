@@ -86,7 +86,7 @@ class Quantile(ColumnStatistic[QuantileParameters]):
 
     def build(self, ctx: BuildContext) -> StatisticResult:
         bld = ctx.builder
-        specs = {s.name: s for s in self.outputs()}
+        specs = self.output_specs()
         nums = self.aligned(ctx, self.params.column)
         signed, w = nums[0].signed, nums[0].width
         elements = []

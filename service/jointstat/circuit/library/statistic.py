@@ -132,6 +132,10 @@ class Statistic(ABC, Generic[P]):
     @abstractmethod
     def build(self, ctx: BuildContext) -> StatisticResult: ...
 
+    def output_specs(self) -> dict[str, OutputSpec]:
+        """``outputs()`` by name."""
+        return {spec.name: spec for spec in self.outputs()}
+
     # -- helpers for subclasses -------------------------------------------------------------------------------
     def column_names(self, ref: ColumnPair) -> dict[Party, str]:
         if isinstance(ref, SideColumns):
