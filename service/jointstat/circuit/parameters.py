@@ -4,8 +4,9 @@ Theory of operation: the ``statistic`` section of a manifest is validated by the
 it names (``library.registry``). Every such model derives from ``StatisticParameters`` and fixes ``name`` to a
 ``Literal`` of its statistic's name, so pydantic picks the model by that tag. The types here are the vocabulary
 the models share: a column named the same in both tables or per party (``ColumnPair``), a column of one party's
-table (``PartyColumn``), the parameters of a statistic over one column (``ColumnParameters``) and the extra fraction bits of a division (``PrecisionBits``). They depend on nothing but
-``jointstat.fields``, so both the manifest's model (``circuit.agreement``) and every statistic can use them.
+table (``PartyColumn``), the parameters of a statistic over one column (``ColumnParameters``) and the extra
+fraction bits of a division (``PrecisionBits``). They depend on nothing but ``jointstat.fields``, so both the
+manifest's model (``circuit.agreement``) and every statistic can use them.
 """
 
 from __future__ import annotations
