@@ -234,7 +234,7 @@ def _session(rows: int, as_json: bool) -> int:
 
 
 def run(rows: int, as_json: bool, session: bool = False) -> int:
-    from jointstat.circuit.manifest import MAX_CAPACITY
+    from jointstat.circuit.agreement import MAX_CAPACITY
 
     if not 1 <= rows <= MAX_CAPACITY:
         print(f"jointstat bench join: --rows must be between 1 and {MAX_CAPACITY}", file=sys.stderr)

@@ -19,3 +19,8 @@ class Party(IntEnum):
 
     GARBLER = 0
     EVALUATOR = 1
+
+    @property
+    def role(self) -> str:
+        """``garbler`` or ``evaluator``: how manifests, configurations and messages name the party."""
+        return self.name.lower()

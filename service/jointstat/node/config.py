@@ -60,9 +60,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from pydantic import (
     AfterValidator,
-    BaseModel,
     BeforeValidator,
-    ConfigDict,
     Field,
     PrivateAttr,
     ValidationError,
@@ -72,6 +70,7 @@ from pydantic import (
 from pydantic_core import PydanticCustomError
 
 from jointstat.audit.records import node_name_ok
+from jointstat.fields import StrictModel, between
 from jointstat.node.schedule import JobTiming, ScheduleError
 from jointstat.problems import Problem, ProblemError, field_path, pydantic_message, read_yaml
 
@@ -256,15 +255,6 @@ def _job_name(value: str) -> str:
     return value
 
 
-def _between(lo: float, hi: float) -> AfterValidator:
-    def check(v: float) -> float:
-        if not lo <= v <= hi:
-            raise ValueError(f"must be between {lo} and {hi}")
-        return v
-
-    return AfterValidator(check)
-
-
 def _cron(value: str) -> str:
     from croniter import croniter
 
@@ -329,10 +319,6 @@ Text = Annotated[str, AfterValidator(_non_empty)]
 # -- models ----------------------------------------------------------------------------------------------------------
 
 
-class StrictModel(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True, strict=True)
-
-
 def _derived(data: dict[str, Any], key: str) -> str:
     """A raw path field usable as the base of a derived default, else ``.`` (its own error is reported)."""
     value = data.get(key)
@@ -351,9 +337,9 @@ class NodeSection(StrictModel):
     job_store: ConfigPath
     session_log: ConfigPath
     results_dir: ConfigPath
-    max_sessions: Annotated[int, _between(1, 64)] = 4
-    session_deadline_seconds: Annotated[int, _between(1, 86400)] = 3600
-    session_memory_mib: Annotated[int, _between(64, 1 << 22)] = 8192
+    max_sessions: Annotated[int, between(1, 64)] = 4
+    session_deadline_seconds: Annotated[int, between(1, 86400)] = 3600
+    session_memory_mib: Annotated[int, between(64, 1 << 22)] = 8192
     console: BindAddress | None = None
     console_behind_proxy: bool = False
     console_token_file: ConfigPath | None = None
@@ -489,15 +475,15 @@ class ScheduleConfig(StrictModel):
 
     cron: Annotated[str, AfterValidator(_cron)]
     timezone: Annotated[str, AfterValidator(_timezone)] = "UTC"
-    window_minutes: Annotated[int, _between(1, 7 * 24 * 60)] = 120
+    window_minutes: Annotated[int, between(1, 7 * 24 * 60)] = 120
 
 
 class RetryConfig(StrictModel):
     """How often a failed run is tried again inside its window, waiting backoff · factor^(k−1) after attempt k."""
 
-    attempts: Annotated[int, _between(1, 100)] = 3
-    backoff_seconds: Annotated[float, _between(0, 86400)] = 60.0
-    backoff_factor: Annotated[float, _between(1, 10)] = 2.0
+    attempts: Annotated[int, between(1, 100)] = 3
+    backoff_seconds: Annotated[float, between(0, 86400)] = 60.0
+    backoff_factor: Annotated[float, between(1, 10)] = 2.0
 
 
 class JobConfig(StrictModel):
@@ -537,7 +523,7 @@ class NodeConfig(StrictModel):
     signing_key: ConfigPath
     key_hashing_secret: ConfigPath | None = None
     peers: Annotated[list[PeerConfig], Field(min_length=1)]
-    jobs: list[JobConfig] = []
+    jobs: list[JobConfig] = []  # noqa: RUF012 (pydantic copies a default for each model)
 
     _source: str = PrivateAttr("<node config>")
 
