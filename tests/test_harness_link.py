@@ -1,7 +1,8 @@
 """The link emulator (``jointstat.harness.link``): rate, delay, queue and cuts, measured against their settings.
 
 Here timing is the thing under test — the emulator's own rate and delay — not the speed of the product, so these
-tests measure time. Every tolerance is justified beside it. The timing tests run the emulator as the benchmarks do,
+tests measure time; likewise the memory the emulator holds when a receiver stalls, since a bounded buffer is part
+of what it emulates (a router's queue), is traced in one test. Every tolerance is justified beside it. The timing tests run the emulator as the benchmarks do,
 in a process of its own (``LinkProcess``), with plain blocking sockets on this side; the behaviour tests run
 ``Link`` in the test's event loop. Everything binds to 127.0.0.1, moves at most a few tens of MB, and is bounded
 by a timeout of its own.
