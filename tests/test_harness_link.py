@@ -51,7 +51,6 @@ from jointstat.harness.link import (
 
 LOOPBACK = "127.0.0.1"
 MBIT = 1e6 / 8  # bytes per second in one Mbit/s (SI prefix M = 10^6; 8 bits to a byte)
-GBIT = 1e9 / 8
 TEST_TIMEOUT_S = 20.0  # any one test ends by this, even if the emulator hangs
 
 # A fast link for the behaviour tests: they check what arrives, not when.
