@@ -52,11 +52,11 @@ class FixedKeyAES:
             out = np.empty_like(src)
         flat_in = src.reshape(-1)
         flat_out = out.reshape(-1)
-        whole_out = memoryview(flat_out).cast("B")
-        scratch = memoryview(self._scratch).cast("B")
+        whole_out = flat_out.data.cast("B")
+        scratch = self._scratch.data.cast("B")
         for start in range(0, n, BATCH):
             stop = min(n, start + BATCH)
-            chunk = memoryview(flat_in[2 * start : 2 * stop]).cast("B")
+            chunk = flat_in[2 * start : 2 * stop].data.cast("B")
             if stop < n:
                 # update_into insists on 15 spare bytes past the payload; the rest of ``out`` provides them.
                 self._enc.update_into(chunk, whole_out[16 * start :])
@@ -78,11 +78,11 @@ class FixedKeyAES:
             out = np.empty_like(src)
         low_word_only = tweaks.ndim == 1
         scratch = self._scratch.reshape(-1, 2)
-        scratch_bytes = memoryview(self._scratch).cast("B")
+        scratch_bytes = self._scratch.data.cast("B")
         for start in range(0, n, BATCH):
             stop = min(n, start + BATCH)
             m = stop - start
-            self._enc.update_into(memoryview(src[start:stop].reshape(-1)).cast("B"), scratch_bytes)
+            self._enc.update_into(src[start:stop].reshape(-1).data.cast("B"), scratch_bytes)
             px = scratch[:m]
             out[start:stop] = px
             if low_word_only:
