@@ -196,7 +196,8 @@ def csv_secrets() -> list[str]:
 
 
 def short_tmp() -> Path:
-    """A short directory under /tmp (a Unix socket path must fit in 107 bytes)."""
+    """A short directory under /tmp (a Unix socket path must fit in 107 bytes: unix(7), checked against the kernel in
+    tests/test_node_config.py)."""
     import tempfile
 
     return Path(tempfile.mkdtemp(prefix="jsn-", dir="/tmp"))

@@ -194,7 +194,7 @@ class FaultyContext:
             if isinstance(data, bytes | bytearray):
                 with contextlib.suppress(fr.ProtocolError):
                     kind, frame = fr.decode(bytes(data))
-                    if kind == fr.HELLO:
+                    if kind == fr.HELLO and not isinstance(frame, fr.TablesFrame):
                         self.point = self._points.get(bytes(frame.hello.session_id))
             if (
                 self.point is not None
@@ -225,6 +225,8 @@ async def connect(
         session_ids.claim(session.session_id)
     options = [*MESSAGE_OPTIONS, ("grpc.ssl_target_name_override", tls.server_name())]
     async with grpc.aio.secure_channel(target, tls.channel_credentials(), options=options) as channel:
-        method = channel.stream_stream(METHOD_PATH, request_serializer=None, response_deserializer=None)
+        method: grpc.aio.StreamStreamMultiCallable[bytes, bytes] = channel.stream_stream(
+            METHOD_PATH, request_serializer=None, response_deserializer=None
+        )
         call = method(timeout=limits.deadline_s + 2 * limits.abort_grace_s)
         return await drive(session, FaultyStream(call, limits.abort_grace_s, point), limits)

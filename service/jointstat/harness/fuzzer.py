@@ -282,7 +282,8 @@ class Fuzzer:
             outcome.by_peer = result.abort.by_peer
         else:
             outcome.refused_first_frame = True
-            aborts = [f for k, f in (fr.decode(w) for w in written) if k == fr.ABORT]
+            decoded = (fr.decode(w) for w in written)
+            aborts = [f for k, f in decoded if k == fr.ABORT and not isinstance(f, fr.TablesFrame)]
             if aborts:
                 outcome.reason = AbortReason(aborts[-1].abort.reason).name.lower()
                 outcome.message = aborts[-1].abort.message
@@ -345,7 +346,9 @@ class Fuzzer:
         record = case.index % SECRET_SAMPLE == 0
         node, peer = self.sessions(case.program, case.node_role, sid, case.seed, record)
         future = server.expect(node)
-        call = channel.stream_stream(METHOD_PATH)(timeout=self._bound())
+        call: grpc.aio.StreamStreamCall[bytes, bytes] = channel.stream_stream(METHOD_PATH)(
+            timeout=self._bound()
+        )
         written: list[bytes] = []
         errors: list[str] = []
 
@@ -357,8 +360,9 @@ class Fuzzer:
                 return None
             if data is grpc.aio.EOF:
                 return None
-            written.append(bytes(data))
-            return bytes(data)
+            assert isinstance(data, bytes)  # no deserializer: frames arrive as bytes
+            written.append(data)
+            return data
 
         async def send_frame(data: bytes) -> None:
             with contextlib.suppress(grpc.aio.AioRpcError, asyncio.InvalidStateError, grpc.aio.UsageError):

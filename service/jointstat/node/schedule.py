@@ -71,7 +71,7 @@ class JobTiming:
             it = croniter(self.cron, after.astimezone(self.zone))
         except CroniterBadCronError as exc:  # pragma: no cover - validated in __post_init__
             raise ScheduleError(f"job {self.job!r}: {exc}") from exc
-        times = []
+        times: list[datetime] = []
         while True:
             t = it.get_next(datetime)
             if t > until:
