@@ -19,3 +19,13 @@ class Party(IntEnum):
 
     GARBLER = 0
     EVALUATOR = 1
+
+    @property
+    def other(self) -> Party:
+        """The other party of the protocol."""
+        return Party.EVALUATOR if self is Party.GARBLER else Party.GARBLER
+
+    @property
+    def role_name(self) -> str:
+        """``garbler`` or ``evaluator``: the word node configs, session logs, result files and the job store use."""
+        return self.name.lower()

@@ -84,6 +84,11 @@ class JobTiming:
         it = croniter(self.cron, (now + timedelta(seconds=1)).astimezone(self.zone))
         return it.get_prev(datetime).astimezone(ZoneInfo("UTC"))
 
+    def next_fire(self, now: datetime) -> datetime:
+        """The first scheduled time strictly after ``now`` (UTC)."""
+        _require_aware(now, "now")
+        return croniter(self.cron, now.astimezone(self.zone)).get_next(datetime).astimezone(ZoneInfo("UTC"))
+
     def in_window(self, scheduled_for: datetime, now: datetime) -> bool:
         return scheduled_for <= now < scheduled_for + self.window
 
