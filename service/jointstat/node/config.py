@@ -604,34 +604,20 @@ class NodeConfig(StrictModel):
         for i, peer in enumerate(self.peers):
             if peer.name == self.node.name:
                 problems.append(Problem(f"peers[{i}].name", f"{peer.name!r} is this node's own name"))
-            elif peer.name in seen_peers:
+            elif (first := _seen_before(seen_peers, peer.name, i)) is not None:
                 problems.append(
-                    Problem(
-                        f"peers[{i}].name", f"{peer.name!r} is already used by peers[{seen_peers[peer.name]}]"
-                    )
+                    Problem(f"peers[{i}].name", f"{peer.name!r} is already used by peers[{first}]")
                 )
-            else:
-                seen_peers[peer.name] = i
         seen_jobs: dict[str, int] = {}
         seen_results: dict[Path, int] = {}
         known = ", ".join(seen_peers) or "none"
         for i, job in enumerate(self.jobs):
-            if job.name in seen_jobs:
-                problems.append(
-                    Problem(f"jobs[{i}].name", f"{job.name!r} is already used by jobs[{seen_jobs[job.name]}]")
-                )
-            else:
-                seen_jobs[job.name] = i
+            if (first := _seen_before(seen_jobs, job.name, i)) is not None:
+                problems.append(Problem(f"jobs[{i}].name", f"{job.name!r} is already used by jobs[{first}]"))
             if job.peer not in seen_peers:
                 problems.append(Problem(f"jobs[{i}].peer", f"no peer named {job.peer!r} (peers: {known})"))
-            if job.results in seen_results:
-                problems.append(
-                    Problem(
-                        f"jobs[{i}].results", f"same directory as jobs[{seen_results[job.results]}].results"
-                    )
-                )
-            else:
-                seen_results[job.results] = i
+            if (first := _seen_before(seen_results, job.results, i)) is not None:
+                problems.append(Problem(f"jobs[{i}].results", f"same directory as jobs[{first}].results"))
             try:
                 job.timing()
             except ScheduleError as exc:  # the field validators apply the same rules; kept as a guarantee
@@ -672,6 +658,12 @@ class NodeConfig(StrictModel):
         from jointstat.node.keys import file_problems
 
         return file_problems(self, now)
+
+
+def _seen_before(seen: dict[Any, int], key: Any, index: int) -> int | None:
+    """The index ``key`` was first seen at, or None when it is new (then it is noted as seen at ``index``)."""
+    first = seen.setdefault(key, index)
+    return None if first == index else first
 
 
 def _clash(a: HostPort | UnixSocket, b: HostPort | UnixSocket) -> bool:

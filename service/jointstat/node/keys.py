@@ -32,7 +32,7 @@ import base64
 import hashlib
 import os
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import TYPE_CHECKING
@@ -286,17 +286,7 @@ def init_trial(
         cert_path = write_private_file(
             directory / tls_cert_file(node), tls_cert.public_bytes(pem), overwrite=force
         )
-        written.append(
-            NodeKeyFiles(
-                node=files.node,
-                signing_key=files.signing_key,
-                signing_public=files.signing_public,
-                public_key=files.public_key,
-                fingerprint=files.fingerprint,
-                tls_key=key_path,
-                tls_cert=cert_path,
-            )
-        )
+        written.append(replace(files, tls_key=key_path, tls_cert=cert_path))
     return KeySet(nodes=written, ca_cert=ca_cert_path, ca_key=ca_key_path)
 
 
