@@ -146,7 +146,7 @@ class LoggedNode:
             text,
             job=JOB_ACCEPTED if party == Party.GARBLER else JOB_INITIATED,
             manifest_digest=job.digest,
-            role=Party(party).role_name,  # type: ignore[arg-type]
+            role=Party(party).role_name,
             peer=NODE_NAME,
             peer_key=node_key,
         )

@@ -23,7 +23,7 @@ from __future__ import annotations
 
 from collections.abc import Awaitable, Callable, Collection
 from dataclasses import dataclass
-from typing import Protocol, TypeVar
+from typing import Protocol, TypeVar, cast
 
 import grpc
 
@@ -80,7 +80,7 @@ class Proposal:
             manifest_digest=self.manifest_digest,
             session_id=self.session_id,
             scheduled_for_us=self.scheduled_for_us,
-            role=0 if self.role is None else role_to_wire(self.role),
+            role=cast("pb.Role", 0 if self.role is None else role_to_wire(self.role)),
             attempt=self.attempt,
             trigger=self.trigger,
         )
@@ -110,7 +110,8 @@ class Answer:
         if self.accepted:
             return pb.RunAnswer(accepted=True)
         assert self.code is not None
-        return pb.RunAnswer(accepted=False, reason=_REFUSAL_NUMBERS[self.code], message=self.message)
+        reason = cast("pb.RefusalReason", _REFUSAL_NUMBERS[self.code])
+        return pb.RunAnswer(accepted=False, reason=reason, message=self.message)
 
 
 class ProposalTarget(Protocol):
