@@ -27,13 +27,13 @@ from jointstat.harness.campaign import CampaignReport, NodeCampaign
 from jointstat.harness.faultpoint import FaultPlan
 from jointstat.harness.scanner import Secrets, scan_for_secrets, secret_forms
 from jointstat.harness.scenario import JOB_ACCEPTED, NODE_METRES, NODE_NAME, TABLES, expected_result
-from jointstat.node.jobs import PROPOSE_PATH, PROTOCOL_VERSION, propose
 from jointstat.protocol import EvaluatorSession, GarblerSession, signer, verifier
 from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import AbortReason
 from jointstat.transport import Limits, SessionServer, run_client
 from jointstat.transport.channel import MESSAGE_OPTIONS, METHOD_PATH
 from jointstat.transport.pki import Issued, issue, new_ca, node_tls
+from jointstat.transport.proposals import PROPOSE_PATH, PROTOCOL_VERSION, propose
 from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
 LIMITS = Limits(deadline_s=10, idle_timeout_s=5, abort_grace_s=0.5)

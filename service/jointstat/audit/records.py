@@ -86,6 +86,15 @@ PublicKeyText = Annotated[str, StringConstraints(pattern=r"^[A-Za-z0-9+/]{43}=$"
 SignatureText = Annotated[str, StringConstraints(pattern=r"^[A-Za-z0-9+/]{86}==$")]
 
 
+def plain_detail(text: str) -> str:
+    """A message fit for a ``session_aborted`` record's ``detail``: one line, long hex or base64-like tokens (which
+    could be key material or a label) replaced by ``…``, at most ``MAX_DETAIL`` characters."""
+    line = " ".join(str(text).split())
+    line = _HEXISH.sub("…", line)
+    line = _B64ISH.sub("…", line)
+    return line[:MAX_DETAIL]
+
+
 def _looks_like_key_material(text: str) -> bool:
     if _HEXISH.search(text):
         return True

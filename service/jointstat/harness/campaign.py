@@ -278,7 +278,7 @@ class NodeCampaign:
         else:
             self.acceptor.plans[1] = plan
         t0 = time.monotonic()
-        started = await self.node.admin_run_job({"job": JOB_INITIATED})
+        started = await self.node.admin.run_job({"job": JOB_INITIATED})
         sid = str(started["session"])
         if process is not None:
 

@@ -63,9 +63,7 @@ class FaultPlan:
     def describe(self) -> str:
         how = f"{self.kind} ({'reset' if self.reset else 'close'})" if self.kind == CUT else self.kind
         side = "initiates" if self.node_role == Party.GARBLER else "accepts"
-        return (
-            f"{how} at frame {self.index} of {self.phase}; the node {side} ({fr.role_name(self.node_role)})"
-        )
+        return f"{how} at frame {self.index} of {self.phase}; the node {side} ({Party(self.node_role).role_name})"
 
 
 def make_plans(count: int, seed: int, program: Program) -> list[FaultPlan]:

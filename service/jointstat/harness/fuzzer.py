@@ -161,10 +161,10 @@ class Fuzzer:
 
         prog = self.programs[program]
         rng = np.random.default_rng(seed)
-        keys = {node_role: self.gk, Party.EVALUATOR if node_role == Party.GARBLER else Party.GARBLER: self.ek}
+        keys = {node_role: self.gk, Party(node_role).other: self.ek}
         out: dict[Party, Session] = {}
         for party in Party:
-            other = Party.EVALUATOR if party == Party.GARBLER else Party.GARBLER
+            other = party.other
             common: dict[str, Any] = {
                 "session_id": sid,
                 "program": prog,
@@ -180,8 +180,7 @@ class Fuzzer:
                 session = RecordingEvaluator(**common)
             session.secrets = self.secrets if record else None
             out[party] = session
-        peer_role = Party.EVALUATOR if node_role == Party.GARBLER else Party.GARBLER
-        return out[node_role], out[peer_role]
+        return out[node_role], out[Party(node_role).other]
 
     def _record_references(self) -> None:
         """One honest in-memory session per program: its frames are the valid frames sent out of order."""

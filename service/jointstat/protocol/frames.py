@@ -166,10 +166,6 @@ def role_to_wire(party: Party) -> pb.Role:
     return pb.ROLE_GARBLER if Party(party) == Party.GARBLER else pb.ROLE_EVALUATOR
 
 
-def role_name(party: Party) -> str:
-    return Party(party).name.lower()
-
-
 class ProtocolError(ValueError):
     """The session cannot go on: ``reason`` says why, the text says where (state, frame) and what.
 

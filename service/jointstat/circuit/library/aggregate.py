@@ -82,7 +82,9 @@ class _Aggregate(Statistic[_AggregateParameters]):
                 col = self.manifest.table(party).column(self.column_names(self.params.where)[party])
                 if col is None or col.type != "boolean":
                     problems.append(
-                        Problem("statistic.where", f"tables.{party.role} needs a boolean column of that name")
+                        Problem(
+                            "statistic.where", f"tables.{party.role_name} needs a boolean column of that name"
+                        )
                     )
         if self.params.sample and self.level < 3:
             problems.append(Problem("statistic.sample", "only the variance statistic takes 'sample'"))

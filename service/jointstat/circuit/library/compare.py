@@ -40,7 +40,7 @@ class Compare(ColumnStatistic[CompareParameters]):
             if self.manifest.table(party).capacity != 1:
                 problems.append(
                     Problem(
-                        f"tables.{party.role}.capacity",
+                        f"tables.{party.role_name}.capacity",
                         "must be 1 for the compare statistic (one value each)",
                     )
                 )

@@ -67,7 +67,7 @@ class KeyedJoin(Statistic[JoinParameters]):
         for party, col in zip(Party, cols, strict=True):
             if col.type != "key":
                 problems.append(
-                    Problem("statistic.key", f"tables.{party.role} column {col.name!r} is not a key")
+                    Problem("statistic.key", f"tables.{party.role_name} column {col.name!r} is not a key")
                 )
         if not problems and cols[0].bits != cols[1].bits:
             problems.append(
@@ -77,7 +77,9 @@ class KeyedJoin(Statistic[JoinParameters]):
         if vp is not None and self.params.value is not None:
             value = self.manifest.table(vp).column(self.params.value.column)
             if value is None:
-                problems.append(Problem("statistic.value.column", f"tables.{vp.role} has no such column"))
+                problems.append(
+                    Problem("statistic.value.column", f"tables.{vp.role_name} has no such column")
+                )
             elif not value.number:
                 problems.append(Problem("statistic.value.column", f"{value.name!r} is not a number column"))
         if self.params.threshold is not None and self.params.value is None:

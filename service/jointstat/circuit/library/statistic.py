@@ -150,7 +150,7 @@ class Statistic(ABC, Generic[P]):
         for party in parties:
             table = self.manifest.table(party)
             col = table.column(names[party])
-            role = party.role
+            role = party.role_name
             if col is None:
                 known = ", ".join(c.name for c in table.columns)
                 yield Problem(path, f"tables.{role} has no column {names[party]!r} (it has {known})")
