@@ -25,15 +25,15 @@ import each other, so it sits below both, beside ``canonical.py`` whose encoding
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Literal
+from typing import Final, Literal
 
 from cryptography.exceptions import InvalidSignature
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 
 from jointstat.canonical import canonicalize
 
-HELLO = "hello"
-TRANSCRIPT = "transcript"
+HELLO: Final = "hello"
+TRANSCRIPT: Final = "transcript"
 CONTEXTS: dict[str, bytes] = {
     HELLO: b"jointstat hello v1\x00",
     TRANSCRIPT: b"jointstat transcript v1\x00",

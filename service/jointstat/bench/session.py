@@ -104,6 +104,7 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> dict[str, Any]:
     setup_peak = _peak_rss_mib()
     gc.collect()
     separate_peak = _reset_peak_rss()
+    session: GarblerSession | EvaluatorSession
     if spec["role"] == "garbler":
         party = Party.GARBLER
         session = GarblerSession(inputs=bits[party], chunk_bytes=spec["chunk_bytes"], **common)
@@ -145,6 +146,7 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> dict[str, Any]:
         "pump_s": pump_s,
     }
     if result.completed and spec["check"]:
+        assert result.outputs is not None  # a completed session carries its own outputs
         from jointstat.circuit.backend import PlainBackend
         from jointstat.circuit.builder import Builder
 
@@ -164,7 +166,7 @@ def _add_pump(server: Any) -> None:
         for _ in range(total // PUMP_MESSAGE):
             yield message
 
-    handler = grpc.unary_stream_rpc_method_handler(
+    handler: grpc.RpcMethodHandler[bytes, bytes] = grpc.unary_stream_rpc_method_handler(
         stream, request_deserializer=None, response_serializer=None
     )
     server.add_generic_rpc_handlers(
@@ -180,7 +182,9 @@ async def _pump(target: str, tls: Any) -> float:
 
     options = [*MESSAGE_OPTIONS, ("grpc.ssl_target_name_override", tls.server_name())]
     async with grpc.aio.secure_channel(target, tls.channel_credentials(), options=options) as channel:
-        method = channel.unary_stream(PUMP_PATH, request_serializer=None, response_deserializer=None)
+        method: grpc.aio.UnaryStreamMultiCallable[bytes, bytes] = channel.unary_stream(
+            PUMP_PATH, request_serializer=None, response_deserializer=None
+        )
         start = time.monotonic()
         got = 0
         async for message in method(PUMP_BYTES.to_bytes(8, "little")):

@@ -413,7 +413,7 @@ class CompiledStatistic:
         fields = self.outputs[Party(party)]
         expected = sum(f.spec.bits for f in fields)
         if arr.shape[0] != expected:
-            raise ValueError(f"{Party(party).role} outputs: expected {expected} bits, got {arr.shape[0]}")
+            raise ValueError(f"{Party(party).role_name} outputs: expected {expected} bits, got {arr.shape[0]}")
         out = []
         for f in fields:
             chunk = arr[f.offset : f.offset + f.spec.bits].reshape(*f.spec.shape, f.spec.width)

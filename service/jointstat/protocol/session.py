@@ -224,7 +224,7 @@ class _Accumulator:
 def _check_inputs(program: Program, party: Party, inputs: object) -> np.ndarray:
     bits = np.asarray(inputs)
     expected = program.n_inputs(party)
-    name = fr.role_name(party)
+    name = Party(party).role_name
     if bits.ndim != 1 or bits.shape[0] != expected:
         raise ValueError(
             f"{name} inputs: expected {expected} bits in a one-dimensional array, got shape {bits.shape}"
@@ -278,7 +278,7 @@ class _Session(TableMachine[fr.AnyFrame | None, list[bytes]]):
         self._abort: AbortInfo | None = None
         self._digest: bytes | None = None
         self._peer_signature: bytes | None = None
-        self._who = f"{fr.role_name(self.PARTY)} session"
+        self._who = f"{self.PARTY.role_name} session"
         self._n_in = {p: program.n_inputs(p) for p in Party}
         self._n_out = {p: program.n_outputs(p) for p in Party}
 
@@ -485,7 +485,7 @@ class _Session(TableMachine[fr.AnyFrame | None, list[bytes]]):
         if hello.role != fr.role_to_wire(peer):
             claimed = pb.Role.Name(hello.role) if hello.role in pb.Role.values() else str(hello.role)
             raise ProtocolError(
-                AbortReason.SESSION_MISMATCH, f"peer claims role {claimed}; expected the {fr.role_name(peer)}"
+                AbortReason.SESSION_MISMATCH, f"peer claims role {claimed}; expected the {peer.role_name}"
             )
         if hello.session_id != self.session_id:
             raise ProtocolError(AbortReason.SESSION_MISMATCH, "peer's hello names another session id")

@@ -76,7 +76,8 @@ class ClientStream:
             if code != grpc.StatusCode.OK:
                 raise StreamLost(f"{code.name}: {await self._call.details() or 'no details'}")
             return None
-        return bytes(data)
+        assert isinstance(data, bytes)  # no deserializer: frames arrive as bytes
+        return data
 
     async def write(self, data: bytes) -> None:
         try:

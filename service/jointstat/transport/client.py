@@ -47,7 +47,9 @@ async def run_client(
     name = server_name or tls.server_name()
     options = [*MESSAGE_OPTIONS, ("grpc.ssl_target_name_override", name)]
     async with grpc.aio.secure_channel(target, credentials, options=options) as channel:
-        method = channel.stream_stream(METHOD_PATH, request_serializer=None, response_deserializer=None)
+        method: grpc.aio.StreamStreamMultiCallable[bytes, bytes] = channel.stream_stream(
+            METHOD_PATH, request_serializer=None, response_deserializer=None
+        )
         call = method(timeout=limits.deadline_s + 2 * limits.abort_grace_s)
         stream = ClientStream(call, grace_s=limits.abort_grace_s)
         return await drive(

@@ -92,10 +92,6 @@ class Shutdown:
         self._idle.set()
         self._running = 0
 
-    @property
-    def requested(self) -> bool:
-        return self._requested.is_set()
-
     def request(self) -> None:
         """Ask every session driven with this signal, now or later, to abort with ``peer_shutdown``."""
         self._requested.set()

@@ -98,7 +98,7 @@ class SessionServer:
         if self._server is not None:
             raise RuntimeError("the server has already been started")
         server = grpc.aio.server(options=[*MESSAGE_OPTIONS, ("grpc.so_reuseport", 0)])
-        handler = grpc.stream_stream_rpc_method_handler(self._exchange)
+        handler: grpc.RpcMethodHandler[bytes, bytes] = grpc.stream_stream_rpc_method_handler(self._exchange)
         server.add_generic_rpc_handlers(
             [grpc.method_handlers_generic_handler(SERVICE_NAME, {METHOD_NAME: handler})]
         )
@@ -188,7 +188,7 @@ class SessionServer:
         except ProtocolError as exc:
             await self._refuse(stream, exc.reason, f"first frame refused: {exc}")
             return
-        if kind != fr.HELLO:
+        if kind != fr.HELLO or isinstance(frame, fr.TablesFrame):
             await self._refuse(
                 stream, AbortReason.UNEXPECTED_FRAME, f"the first frame must be hello, got {kind!r}"
             )

@@ -115,7 +115,7 @@ class Compare(Statistic[CompareParameters]):
                 if self.manifest.table(party).capacity != 1:
                     problems.append(
                         Problem(
-                            f"tables.{party.role}.capacity",
+                            f"tables.{party.role_name}.capacity",
                             "must be 1 for the compare statistic of single values (one value each); give "
                             f"{path}.aggregate to compare an aggregate of each table",
                         )

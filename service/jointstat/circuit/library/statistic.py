@@ -322,7 +322,7 @@ class Statistic(ABC, Generic[P]):
         for party in parties:
             table = self.manifest.table(party)
             col = table.column(names[party])
-            role = party.role
+            role = party.role_name
             if col is None:
                 yield Problem(path, self.missing_column(party, names[party]))
             elif numeric and not col.number:
@@ -334,11 +334,11 @@ class Statistic(ABC, Generic[P]):
         other = Party.EVALUATOR if party == Party.GARBLER else Party.GARBLER
         if self.manifest.table(other).column(name) is not None:
             return (
-                f"{name!r} is a column of the {other.role}'s table, not the {party.role}'s: each party's side reads "
+                f"{name!r} is a column of the {other.role_name}'s table, not the {party.role_name}'s: each party's side reads "
                 "only its own table"
             )
         known = ", ".join(c.name for c in table.columns)
-        return f"tables.{party.role} has no column {name!r} (it has {known})"
+        return f"tables.{party.role_name} has no column {name!r} (it has {known})"
 
     def column(self, party: Party, ref: ColumnPair) -> BaseColumn:
         col = self.manifest.table(party).column(self.column_names(ref)[party])
@@ -391,7 +391,7 @@ class Statistic(ABC, Generic[P]):
                 elif bare and col.type != "boolean":
                     problems.append(
                         Problem(
-                            at, f"tables.{party.role} needs a boolean column of that name ({col.type} given)"
+                            at, f"tables.{party.role_name} needs a boolean column of that name ({col.type} given)"
                         )
                     )
                 elif col.identifier:
