@@ -138,7 +138,7 @@ class FixedColumn(BaseColumn):
     fraction_bits: Annotated[int, between(0, MAX_WIDTH - 1)] = Field(
         description="binary fraction digits: 1 holds halves (41.5), 2 quarters, 8 steps of 1/256"
     )
-    signed_: bool = Field(True, alias="signed", description="whether negative values are allowed")
+    signed_: bool = Field(default=True, alias="signed", description="whether negative values are allowed")
     rounding: Rounding | None = _rounding_field()
 
     model_config = ConfigDict(populate_by_name=True, serialize_by_alias=True)
@@ -174,9 +174,12 @@ class IdentifierColumn(BaseColumn):
         "both organisations hold and matched across the tables (`key` is its former name, still read)"
     )
     width: Annotated[int, between(MIN_KEY_WIDTH, MAX_WIDTH)] = Field(
-        32, description="bits of each identifier's hash (16 to 64); wider hashes make false matches rarer"
+        default=32,
+        description="bits of each identifier's hash (16 to 64); wider hashes make false matches rarer",
     )
-    fold_case: bool = Field(False, description="whether letter case is ignored (Ann@X.org matches ann@x.org)")
+    fold_case: bool = Field(
+        default=False, description="whether letter case is ignored (Ann@X.org matches ann@x.org)"
+    )
 
     number: ClassVar[bool] = False
     identifier: ClassVar[bool] = True
@@ -226,7 +229,7 @@ class Job(StrictModel):
 
     name: JobName = Field(description="the job's name: lower-case letters, digits, '.', '_' or '-'")
     version: Annotated[int, between(1, 2**31 - 1)] = Field(description="a number raised with every change")
-    description: str | None = Field(None, description="what the job is for, in words")
+    description: str | None = Field(default=None, description="what the job is for, in words")
 
 
 class PartyInfo(StrictModel):
@@ -258,8 +261,12 @@ class Tables(StrictModel):
 class Outputs(StrictModel):
     """Which named outputs each party receives (what withheld them, if anything, goes with them)."""
 
-    garbler: list[str] = Field([], description="the outputs the garbler's organisation receives, by name")
-    evaluator: list[str] = Field([], description="the outputs the evaluator's organisation receives, by name")
+    garbler: list[str] = Field(
+        default=[], description="the outputs the garbler's organisation receives, by name"
+    )
+    evaluator: list[str] = Field(
+        default=[], description="the outputs the evaluator's organisation receives, by name"
+    )
 
     def receivers(self) -> dict[Party, list[str]]:
         return {Party.GARBLER: list(self.garbler), Party.EVALUATOR: list(self.evaluator)}
@@ -270,7 +277,7 @@ class Disclosure(StrictModel):
     contribute (or keys match). It guards against the plainest exposures; it is no formal privacy guarantee."""
 
     min_count: Annotated[int, between(0, 2 * MAX_CAPACITY)] = Field(
-        0,
+        default=0,
         description="the fewest rows that must count (matched keys for a join, values present for a compare, the "
         "smaller side's rows for a compare of aggregates) before the outputs are released; 0 releases always",
     )
@@ -300,7 +307,7 @@ class Matching(StrictModel):
     """The false key matches (two different identifiers whose hashes collide) both parties accept in expectation."""
 
     max_false_matches: Annotated[float, BeforeValidator(_number), AfterValidator(_positive_finite)] = Field(
-        DEFAULT_MAX_FALSE_MATCHES,
+        default=DEFAULT_MAX_FALSE_MATCHES,
         description="the expected false matches at full capacity both accept (n_g·n_e/2^width); a manifest "
         "above it is refused with the identifier width that meets it",
     )
@@ -310,7 +317,7 @@ class Privacy(StrictModel):
     """What the sensitivity of noisy outputs assumes about the people behind the rows."""
 
     rows_per_person: Annotated[int, between(1, 1 << 20)] = Field(
-        DEFAULT_ROWS_PER_PERSON,
+        default=DEFAULT_ROWS_PER_PERSON,
         description="the most rows one person can have in the two tables together: 1 when each person is in at "
         "most one row of one table, 2 when a person can be in both tables (the default). The sensitivity of "
         "pooled counts and sums grows with it",
@@ -333,11 +340,11 @@ def entry_fields(kind: str) -> dict[str, Any]:
                 description="this statistic's name in the manifest; its outputs are addressed <name>.<output>"
             ),
         ),
-        "compute": (Literal[kind], Field(description="which statistic: " + kind)),  # type: ignore[valid-type]
+        "compute": (Literal[kind], Field(description="which statistic: " + kind)),
         "outputs": (Outputs, Field(description="which of this statistic's outputs each party receives")),
         "disclosure": (
             Disclosure | None,
-            Field(None, description="this statistic's own disclosure rule (default: the manifest's)"),
+            Field(default=None, description="this statistic's own disclosure rule (default: the manifest's)"),
         ),
     }
 
@@ -370,7 +377,7 @@ class Manifest(StrictModel):
     parties: Parties = Field(description="the two organisations and which one garbles")
     tables: Tables = Field(description="each party's input table: typed columns and a row capacity")
     statistic: StatisticParameters | None = Field(
-        None,
+        default=None,
         exclude_if=lambda v: v is None,
         description="the one statistic of a single-statistic manifest (its `name` says which); use `statistics` "
         "for several",
@@ -379,17 +386,17 @@ class Manifest(StrictModel):
         Annotated[list[StatisticParameters], Field(min_length=1, max_length=MAX_STATISTICS)] | None
     ) = later_field(None, "the statistics computed in one session, each named, with its own outputs")
     outputs: Outputs | None = Field(
-        None,
+        default=None,
         exclude_if=lambda v: v is None,
         description="with `statistic`: which outputs each party receives (in `statistics`, each lists its own)",
     )
     disclosure: Disclosure = Field(
-        Disclosure(), description="the disclosure rule of every statistic that has none of its own"
+        default=Disclosure(), description="the disclosure rule of every statistic that has none of its own"
     )
-    matching: Matching = Field(Matching(), description="the bound on false identifier matches")
+    matching: Matching = Field(default=Matching(), description="the bound on false identifier matches")
     privacy: Privacy | None = later_field(None, "what noisy outputs' sensitivities assume")
     plugins: list[str] = Field(
-        [], description="Python files (relative to the manifest) that register custom statistics"
+        default=[], description="Python files (relative to the manifest) that register custom statistics"
     )
 
     def table(self, party: Party) -> Table:

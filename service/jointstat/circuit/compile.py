@@ -53,7 +53,7 @@ from typing import Any
 
 import numpy as np
 
-from jointstat.circuit.agreement import Manifest, StatisticUse
+from jointstat.circuit.agreement import BaseColumn, Manifest, StatisticUse
 from jointstat.circuit.backend import PlainBackend
 from jointstat.circuit.bits import Bits
 from jointstat.circuit.builder import Builder
@@ -204,11 +204,12 @@ class CompiledStatistic:
             valid[party] = bld.input(party, layout.capacity)
             orders[party] = [{} for _ in layout.orders]
             random[party] = None
-            for f in layout.fields:
-                if f.kind == COLUMN:
-                    orders[party][layout.orders.index(f.order)][f.name] = bld.input(party, (f.rows, f.width))
-                elif f.kind == RANDOM:
-                    random[party] = bld.input(party, f.width)
+            for block in layout.fields:
+                if block.kind == COLUMN:
+                    index = layout.orders.index(block.order)
+                    orders[party][index][block.name] = bld.input(party, (block.rows, block.width))
+                elif block.kind == RANDOM:
+                    random[party] = bld.input(party, block.width)
         memo: dict[tuple[Any, ...], Any] = {}
         releases: list[_Release] = []
         results: list[StatisticResult] = []
@@ -221,7 +222,7 @@ class CompiledStatistic:
                 table = manifest.table(party)
                 k = part.order[party]
                 cols = orders[party][k]
-                schema = {c.name: c for c in table.columns if c.name in cols}
+                schema: dict[str, BaseColumn] = {c.name: c for c in table.columns if c.name in cols}
                 order = self.inputs[party].orders[k]
                 tables[party] = TableWires(party, table.capacity, valid[party], cols, schema, order)
             noise = None
@@ -285,7 +286,9 @@ class CompiledStatistic:
             )
         allow = bld.ones(()) if result.ok is None else result.ok
         if rule is not None:
-            allow = bld.and_(allow, rule)  # folds when there is no ok (the digest records the call all the same)
+            allow = bld.and_(
+                allow, rule
+            )  # folds when there is no ok (the digest records the call all the same)
         ok_failed = None
         if rule is not None and part.statistic.ok_rule() is not None:
             ok_failed = bld.xor(rule, allow)  # rule ∧ ¬ok (0 when there is no ok)
@@ -338,9 +341,9 @@ class CompiledStatistic:
         h.update(self.size().structure)
         return h.hexdigest()
 
-    @property
     def epsilon(self) -> Fraction:
-        """The run's total ε: the sum of the ε of every noisy output (0 when nothing is noised)."""
+        """The run's total ε, exact: the sum of the ε of every noisy output (0 when nothing is noised). Each node
+        charges it to its job's privacy budget before a run (stable API: ``compiled.epsilon()``)."""
         return sum((part.statistic.epsilon() for part in self.parts), Fraction(0))
 
     @property
@@ -413,7 +416,9 @@ class CompiledStatistic:
         fields = self.outputs[Party(party)]
         expected = sum(f.spec.bits for f in fields)
         if arr.shape[0] != expected:
-            raise ValueError(f"{Party(party).role_name} outputs: expected {expected} bits, got {arr.shape[0]}")
+            raise ValueError(
+                f"{Party(party).role_name} outputs: expected {expected} bits, got {arr.shape[0]}"
+            )
         out = []
         for f in fields:
             chunk = arr[f.offset : f.offset + f.spec.bits].reshape(*f.spec.shape, f.spec.width)

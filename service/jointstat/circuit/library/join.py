@@ -122,7 +122,8 @@ class KeyedJoin(Statistic[JoinParameters]):
             if not col.identifier:
                 problems.append(
                     Problem(
-                        f"{path}.key", f"tables.{party.role_name} column {col.name!r} is not an identifier column"
+                        f"{path}.key",
+                        f"tables.{party.role_name} column {col.name!r} is not an identifier column",
                     )
                 )
         if not problems and cols[0].bits != cols[1].bits:

@@ -391,7 +391,8 @@ class Statistic(ABC, Generic[P]):
                 elif bare and col.type != "boolean":
                     problems.append(
                         Problem(
-                            at, f"tables.{party.role_name} needs a boolean column of that name ({col.type} given)"
+                            at,
+                            f"tables.{party.role_name} needs a boolean column of that name ({col.type} given)",
                         )
                     )
                 elif col.identifier:
