@@ -68,7 +68,11 @@ class _AggregateParameters(StatisticParameters):
         None,
         description="the number column, named the same in both tables or per party as {garbler: …, evaluator: …}",
     )
-    where: Where | None = None
+    where: Where | None = Field(
+        default=None,
+        description="which rows count: a boolean column's name (rows where it is true), a condition {column, op, "
+        "value} or a list of conditions that must all hold; without it every row counts",
+    )
     precision_bits: PrecisionBits = 8
     sample: bool = Field(
         False,
