@@ -55,7 +55,7 @@ from jointstat.circuit.agreement import (
     StatisticUse,
     entry_fields,
 )
-from jointstat.circuit.library.registry import parameter_models, statistics_for
+from jointstat.circuit.library.registry import BUILT_IN, parameter_models, statistics_for
 from jointstat.circuit.library.statistic import Statistic
 from jointstat.circuit.model import Party
 from jointstat.circuit.parameters import StatisticParameters
@@ -86,9 +86,10 @@ def entry_model(params: type[StatisticParameters]) -> type[StatisticParameters]:
     return _entry_cache[params]
 
 
-def manifest_model() -> type[Manifest]:
-    """The Manifest model whose statistics are the union of every registered statistic's parameters."""
-    models = tuple(parameter_models())
+def manifest_model(models: tuple[type[StatisticParameters], ...] | None = None) -> type[Manifest]:
+    """The Manifest model whose statistics are the union of every registered statistic's parameters (or of
+    ``models``)."""
+    models = tuple(parameter_models()) if models is None else models
     if models not in _model_cache:
         single: Any = models[0] if len(models) == 1 else Annotated[Union[models], Field(discriminator="name")]  # noqa: UP007
         entries = tuple(entry_model(m) for m in models)
@@ -107,9 +108,15 @@ def manifest_model() -> type[Manifest]:
     return _model_cache[models]
 
 
-def schema() -> dict[str, Any]:
-    """The JSON Schema of manifests with the statistics registered now."""
-    return manifest_model().model_json_schema(by_alias=True)
+def schema(*, built_in_only: bool = False) -> dict[str, Any]:
+    """The JSON Schema of manifests with the statistics registered now (or only the built-in ones, as the
+    reference page shows them whatever plugins are loaded)."""
+    models = (
+        tuple(sorted((cls.Parameters for cls in BUILT_IN), key=lambda m: m.__name__))
+        if built_in_only
+        else None
+    )
+    return manifest_model(models).model_json_schema(by_alias=True)
 
 
 # -- loading ------------------------------------------------------------------------------------------------------
@@ -290,7 +297,7 @@ def deprecations(manifest: Manifest) -> list[Problem]:
 
 
 def canonical_differences(a: Manifest, b: Manifest) -> list[tuple[str, Any, Any]]:
-    """The field paths where two manifests' canonical forms differ, with each side's value (``None`` where a side
+    """The field paths where two manifests' canonical forms differ, with each side's value (``ABSENT`` where a side
     has no such field): what makes their digests differ, unless their programs do."""
     left = json.loads(a.canonical())
     right = json.loads(b.canonical())
@@ -299,7 +306,14 @@ def canonical_differences(a: Manifest, b: Manifest) -> list[tuple[str, Any, Any]
     return out
 
 
-_ABSENT: Any = None
+class _Absent:
+    """Where one side's canonical form has no such field (told apart from a field that is null)."""
+
+    def __repr__(self) -> str:
+        return "(absent)"
+
+
+ABSENT: Any = _Absent()
 
 
 def _differences(path: str, left: Any, right: Any, out: list[tuple[str, Any, Any]]) -> None:
@@ -307,7 +321,7 @@ def _differences(path: str, left: Any, right: Any, out: list[tuple[str, Any, Any
         for key in sorted(set(left) | set(right)):
             sub = f"{path}.{key}" if path else key
             if key not in left or key not in right:
-                out.append((sub, left.get(key, _ABSENT), right.get(key, _ABSENT)))
+                out.append((sub, left.get(key, ABSENT), right.get(key, ABSENT)))
             else:
                 _differences(sub, left[key], right[key], out)
     elif isinstance(left, list) and isinstance(right, list) and len(left) == len(right):

@@ -310,7 +310,8 @@ def fit(bld: Builder, wires: Bits, width: int, signed: bool = False) -> Bits:
 class Count(_Aggregate):
     name = "count"
     Parameters = CountParameters
-    description = "how many rows both parties hold (optionally where a boolean column is true)"
+    description = "how many rows both parties hold (optionally where the rows meet a condition)"
+    sensitivity = "count: r (r = `privacy.rows_per_person`); counting queries, Dwork–Roth 2014 section 3.3"
     level = 0
 
 
@@ -318,6 +319,10 @@ class Sum(_Aggregate):
     name = "sum"
     Parameters = SumParameters
     description = "count and sum of a column over both parties' rows"
+    sensitivity = (
+        "count: r; sum of values clamped to [L, U]: r·max(|L|, |U|) (r = `privacy.rows_per_person`; ℓ1 sensitivity, Dwork–Roth 2014 "
+        "definition 3.1); without clamping bounds a sum cannot be noised"
+    )
     level = 1
 
 
@@ -325,6 +330,10 @@ class Mean(_Aggregate):
     name = "mean"
     Parameters = MeanParameters
     description = "count, sum and mean of a column over both parties' rows"
+    sensitivity = (
+        "count and sum as for `sum`; mean: the clamped sum and the count noised separately at ε/2 each, then "
+        "divided (composition, Dwork–Roth 2014 theorem 3.16; post-processing, proposition 2.1)"
+    )
     level = 2
 
 
@@ -332,4 +341,5 @@ class Variance(_Aggregate):
     name = "variance"
     Parameters = VarianceParameters
     description = "count, sum, mean and variance of a column over both parties' rows"
+    sensitivity = "count, sum and mean as for `mean`; the variance is not offered with noise"
     level = 3

@@ -70,6 +70,10 @@ class Histogram(ColumnStatistic[HistogramParameters]):
     name = "histogram"
     Parameters = HistogramParameters
     description = "counts of both parties' values in public bins (numpy.histogram's bins)"
+    sensitivity = (
+        "counts: r for the whole vector of bins, one row falling in one bin, each bin noised at the full ε "
+        "(histogram queries, Dwork–Roth 2014 section 3.3); count: r (r = `privacy.rows_per_person`)"
+    )
     count_output = "count"
 
     def ok_rule(self) -> str | None:

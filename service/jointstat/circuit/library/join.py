@@ -95,6 +95,12 @@ class KeyedJoin(Statistic[JoinParameters]):
     name = "keyed_join"
     Parameters = JoinParameters
     description = "matches, sum, mean and threshold count of a value over the keys both parties hold"
+    sensitivity = (
+        "matches and the threshold count: 1 (identifiers are unique per table, so one person is at most one "
+        "match; counting queries, Dwork–Roth 2014 section 3.3); sum of values clamped to [L, U]: max(|L|, |U|) "
+        "(ℓ1 sensitivity, definition 3.1); mean: noisy sum ÷ noisy matches at ε/2 each (composition, theorem "
+        "3.16)"
+    )
     count_output = "matches"
 
     def ok_rule(self) -> str | None:

@@ -214,6 +214,8 @@ class Statistic(ABC, Generic[P]):
     Parameters: ClassVar[type[StatisticParameters]]  # the model of P (a class variable cannot name P itself)
     description: ClassVar[str] = ""
     count_output: ClassVar[str | None] = None  # the output that is the disclosure count, if there is one
+    # The sensitivity of each output that can carry noise, with its source (shown in docs/manifest.md).
+    sensitivity: ClassVar[str] = "not offered with noise (no useful additive sensitivity)"
 
     def __init__(self, params: P, manifest: Manifest, use: StatisticUse | None = None) -> None:
         self.params: P = params
