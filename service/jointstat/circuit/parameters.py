@@ -203,6 +203,11 @@ class Condition(StrictModel):
 
 
 def _where_kind(value: Any) -> str:
+    """Which form of ``where`` a value is, for validation (YAML data) and serialisation (validated models)."""
+    if isinstance(value, Condition):
+        return "condition"
+    if isinstance(value, SideColumns):
+        return "sides"
     if isinstance(value, list):
         return "all"
     if isinstance(value, dict):
