@@ -297,7 +297,11 @@ class Statistic(ABC, Generic[P]):
                 self.noise_draws(name, exact(setting.epsilon))
             except NoiseError as exc:
                 text = str(exc)
-                problems.append(Problem(path, text.split(": ", 1)[1] if text.startswith(path) else text))
+                if text.startswith(path):  # the sampler names the field itself (…noise.<output>.epsilon)
+                    field, text = text.split(": ", 1)
+                    problems.append(Problem(field, text))
+                else:
+                    problems.append(Problem(path, text))
         for name in sorted(released - set(settings)):
             problems.append(
                 Problem(
