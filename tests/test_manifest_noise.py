@@ -216,3 +216,22 @@ def test_encoding_draws_fresh_random_bits_for_the_noise_every_time() -> None:
     assert not np.array_equal(
         a[table_bits:], b[table_bits:]
     )  # the noise's part is not (2^-random_bits chance)
+
+
+def test_a_disclosure_rule_on_an_exact_count_next_to_noisy_outputs_is_refused_with_its_field() -> None:
+    def change(d: dict[str, Any], own: bool) -> None:
+        entry = d["statistics"][1]
+        del entry["noise"]["count"]
+        entry["outputs"] = {"evaluator": ["sum", "mean"]}
+        if own:
+            entry["disclosure"] = {"min_count": 2}
+        else:
+            d["disclosure"] = {"min_count": 3}
+
+    for own, field in ((False, "disclosure.min_count"), (True, "statistics[1].disclosure.min_count")):
+        problems = problems_of(changed(lambda d, own=own: change(d, own)))
+        assert problems == [
+            f"{field}: wait (mean) has noisy outputs, and a disclosure rule decided on the exact count would "
+            "reveal what the noise hides: noise 'count' too (the rule then compares the noisy count), or set "
+            "min_count: 0"
+        ]
