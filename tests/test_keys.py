@@ -195,7 +195,9 @@ def test_keys_secret_writes_an_owner_only_secret_and_prints_a_fingerprint_both_s
     assert path.stat().st_mode & 0o777 == 0o600
     assert path.parent.stat().st_mode & 0o777 == 0o700
     # Independent computation with the standard library's HMAC (RFC 2104) over the documented label.
-    expected = hmac.new(secret, b"jointstat key-hashing secret fingerprint v1", hashlib.sha256).hexdigest()[:16]
+    expected = hmac.new(secret, b"jointstat key-hashing secret fingerprint v1", hashlib.sha256).hexdigest()[
+        :16
+    ]
     grouped = " ".join(expected[i : i + 4] for i in range(0, 16, 4))
     assert f"fingerprint {grouped}" in written
     assert secret.hex() not in written

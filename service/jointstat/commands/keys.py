@@ -71,7 +71,9 @@ def _secret(args: argparse.Namespace) -> int:
             print(f"{args.fingerprint}: fingerprint {fp}")
             return 0
         if args.out is None:
-            raise UserError("give --out FILE to make a secret, or --fingerprint FILE to show an existing one's")
+            raise UserError(
+                "give --out FILE to make a secret, or --fingerprint FILE to show an existing one's"
+            )
         fp = write_key_secret(args.out, force=args.force)
     except SecretFileError as exc:
         raise UserError(str(exc)) from None
@@ -104,7 +106,11 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
         "secret",
         help="write a fresh key-hashing secret owner-only and print its fingerprint, or show a secret's fingerprint",
     )
-    secret.add_argument("--out", metavar="FILE", help="the file to write (its directory made 0700 if missing)")
-    secret.add_argument("--fingerprint", metavar="FILE", help="print the fingerprint of an existing secret file")
+    secret.add_argument(
+        "--out", metavar="FILE", help="the file to write (its directory made 0700 if missing)"
+    )
+    secret.add_argument(
+        "--fingerprint", metavar="FILE", help="print the fingerprint of an existing secret file"
+    )
     secret.add_argument("--force", action="store_true", help="replace an existing file")
     secret.set_defaults(handler=_secret)

@@ -20,8 +20,9 @@ method             request                             answer
                                                        rate, time left, phases, result file
 =================  ==================================  =========================================================
 
-An unknown job or session answers ``NOT_FOUND``, a request that cannot be honoured (a job this node only accepts)
-``FAILED_PRECONDITION``, a malformed request ``INVALID_ARGUMENT``; the details say why. ``NodeAdmin`` answers the
+``ShowSession`` takes a whole session id or its beginning (the 12 characters ``sessions list`` prints) when one
+session alone begins so. An unknown job or session answers ``NOT_FOUND``, a request that cannot be honoured (a job
+this node only accepts, a run whose window is closed: the answer names the next opening) ``FAILED_PRECONDITION``, a malformed request ``INVALID_ARGUMENT``; the details say why. ``NodeAdmin`` answers the
 methods for a running ``daemon.Node`` from its config, its job store and its session trackers (the console reads
 the node through the same answers, ``node.nodeview``); ``AdminClient`` is the blocking client the
 ``jointstat jobs`` / ``jointstat sessions`` commands and the demo use.
@@ -195,9 +196,17 @@ class NodeAdmin:
                 grpc.StatusCode.FAILED_PRECONDITION,
                 f"this node does not initiate job {name!r}; it runs when node {job.peer} starts it",
             )
+        now = node.clock.now()
+        timing = job.timing()
+        if not timing.in_window(timing.latest_fire(now), now):
+            raise RequestError(
+                grpc.StatusCode.FAILED_PRECONDITION,
+                f"the run window of job {name!r} ({job.schedule.cron} {job.schedule.timezone}, "
+                f"{job.schedule.window_minutes} min) is closed at {now.isoformat()}; it next opens at "
+                f"{timing.next_fire(now).isoformat()} — the peer would refuse the run (outside_window)",
+            )
         if node.state.stopping:
             raise RequestError(grpc.StatusCode.FAILED_PRECONDITION, "the node is stopping")
-        now = node.clock.now()
         sid = node.start_run(job, now, "operator")
         role = job.party.role_name
         log.info(
@@ -239,8 +248,13 @@ class NodeAdmin:
     async def show_session(self, request: dict[str, Any]) -> dict[str, Any]:
         state = self._node.state
         assert state is not None
-        sid = text_field(request, "session")
-        assert sid is not None
+        given = text_field(request, "session")
+        assert given is not None
+        known = list(state.sessions) + await asyncio.to_thread(state.store.sessions_starting, given.lower())
+        try:
+            sid = resolve_session(given, known, self._node.config.node.name)
+        except LookupError as exc:
+            raise RequestError(grpc.StatusCode.NOT_FOUND, str(exc)) from None
         tracker = state.sessions.get(sid)
         rows = [r for r in await asyncio.to_thread(state.store.runs, None, 10_000) if r.session_id == sid]
         if tracker is None and not rows:
@@ -262,6 +276,21 @@ class NodeAdmin:
             elif rows[0].status != "running":
                 out["result_path"] = rows[0].result_path
         return {"session": out}
+
+
+def resolve_session(given: str, known: list[str], node: str) -> str:
+    """The one session id among ``known`` that ``given`` is or begins (the 12 characters ``sessions list`` shows);
+    ``LookupError`` saying why when none or several are."""
+    text = given.strip().lower()
+    matches = sorted({sid for sid in known if sid.startswith(text)}) if text else []
+    if text in matches:
+        return text
+    if not matches:
+        raise LookupError(f"no session {given} on node {node}")
+    if len(matches) > 1:
+        shown = ", ".join(m[:16] for m in matches[:5])
+        raise LookupError(f"{given} begins several sessions on node {node} ({shown}); give more characters")
+    return matches[0]
 
 
 def run_dict(r: RunRecord) -> dict[str, Any]:

@@ -20,7 +20,8 @@ hence fresh Δ, labels and OT secrets:
    already runs ``max_sessions`` sessions ``failed`` (``busy``); otherwise operators can follow it from here.
 2. prepare — compile the manifest (cached per file) and read and encode this node's input (CSV or SQL, identifier
    keys hashed with the key-hashing secret) in a worker thread (``node.prepare``); failing, ``failed``
-   (``input_unavailable``).
+   (``input_unavailable`` when the source cannot be opened, ``input_invalid`` when the records break the manifest,
+   ``manifest_unusable``; ``node.prepare.failure_code``).
 3. propose — log ``session_started``, then call ``Session/Propose`` on the peer over pinned mutual TLS
    (``transport.proposals``) with the job, the manifest digest, the session id, the scheduled time and the role.
    Not delivered: ``aborted`` (``peer_unreachable``); refused: ``refused`` with the peer's reason (e.g.
@@ -34,7 +35,8 @@ hence fresh Δ, labels and OT secrets:
    attestation (refused: ``aborted``, ``bad_signature``), writes the result file and ends the run ``completed``.
 
 ``run_job`` repeats a failed attempt after the configured backoff (``schedule.Planner.retry_at``) while the window
-is open; refusals that retrying cannot cure (``NOT_RETRIED``) are not retried.
+is open; failures and refusals that retrying cannot cure (``NOT_RETRIED``: bad data, an unusable manifest, a
+configuration the two nodes disagree on, an exhausted budget) are not retried.
 
 *Accepting* (``JobRunner.on_proposal``, called by the peer-facing server with the authenticated peer): the pure
 decision ``acceptance.decide`` says refuse, prepare (compile the manifest, read the input, then ask again) or
@@ -79,7 +81,14 @@ from jointstat.node.clock import Clock
 from jointstat.node.config import JobConfig, NodeConfig
 from jointstat.node.keys import NodeKeys, PeerIdentity, session_signing
 from jointstat.node.metrics import NodeMetrics
-from jointstat.node.prepare import Prepared, Preparer, describe_failure
+from jointstat.node.prepare import (
+    INPUT_INVALID,
+    MANIFEST_UNUSABLE,
+    Prepared,
+    Preparer,
+    describe_failure,
+    failure_code,
+)
 from jointstat.node.progress import ABORTED, COMPLETED, FAILED, REFUSED, SessionTracker
 from jointstat.node.results import write_result
 from jointstat.node.runs import (
@@ -114,8 +123,11 @@ NOT_RETRIED = frozenset(
         "both_initiate",
         "malformed",
         "protocol_version",
+        INPUT_INVALID,
+        MANIFEST_UNUSABLE,
+        "budget_exhausted",
     }
-)
+)  # failures no retry can cure: the configuration, the manifest or the data must change first
 CANCELLED = Outcome(ABORTED, "cancelled", "the node is stopping")
 
 T = TypeVar("T")
@@ -160,6 +172,7 @@ class _Found:
     manifest_problem: str | None = None
     inputs: np.ndarray | None = None
     input_problem: str | None = None
+    input_code: str | None = None  # input_invalid or input_unavailable, with input_problem
     seconds: float = 0.0
 
 
@@ -242,8 +255,11 @@ class JobRunner:
         try:
             prepared = await asyncio.to_thread(self.preparer.prepare, job)
         except Exception as exc:
-            log.warning("job %s: cannot prepare this node's input: %s", job.name, describe_failure(exc))
-            return Outcome(FAILED, "input_unavailable", describe_failure(exc))
+            code = failure_code(exc)
+            log.warning(
+                "job %s: cannot prepare this node's input (%s): %s", job.name, code, describe_failure(exc)
+            )
+            return Outcome(FAILED, code, describe_failure(exc))
         self.recorders.progress.measured(run, "prepare", prepared.seconds)
         run.digest = prepared.digest
         await _finish_despite_cancel(self.recorders.announced(run))
@@ -293,7 +309,8 @@ class JobRunner:
         code = answer.code or "refused"
         message = plain_detail(answer.message) or code
         log.warning("job %s: the peer %s refused the run: %s (%s)", run.job, run.peer.name, code, message)
-        return Outcome(REFUSED, code, message, by="peer", phase="proposal")
+        stored = f"node {run.peer.name} refused the run: {message}"
+        return Outcome(REFUSED, code, message, by="peer", phase="proposal", stored_detail=stored)
 
     # -- both sides: the session and its conclusion ----------------------------------------------------------------
 
@@ -392,6 +409,7 @@ class JobRunner:
             manifest_problem=found.manifest_problem,
             input_ready=found.inputs is not None,
             input_problem=found.input_problem,
+            input_code=found.input_code,
         )
 
     async def _prepare_for(self, step: Prepare, found: _Found) -> _Found:
@@ -406,8 +424,14 @@ class JobRunner:
         try:
             bits = await asyncio.to_thread(self.preparer.inputs, step.job, found.compiled)
         except Exception as exc:
-            log.warning("job %s: cannot prepare this node's input: %s", step.job.name, describe_failure(exc))
-            return replace(found, input_problem=describe_failure(exc))
+            code = failure_code(exc)
+            log.warning(
+                "job %s: cannot prepare this node's input (%s): %s",
+                step.job.name,
+                code,
+                describe_failure(exc),
+            )
+            return replace(found, input_problem=describe_failure(exc), input_code=code)
         return replace(found, inputs=bits, seconds=time.monotonic() - t0)
 
     def _proposed_run(self, proposal: Proposal, peer: PeerIdentity, now: datetime, terms: Terms) -> Run:
@@ -415,7 +439,7 @@ class JobRunner:
             job=proposal.job,
             scheduled_for=terms.scheduled_for,
             attempt=proposal.attempt,
-            trigger="peer",
+            trigger=f"peer_{proposal.trigger}",
             session_id=proposal.session_id,
             party=terms.party,
             peer=peer,
@@ -439,7 +463,8 @@ class JobRunner:
         except AuditError:  # the log has seen this session id: nothing of it is logged again
             await self.recorders.ended(run, Outcome(REFUSED, code, message))
             return Answer.refused("malformed", USED_BEFORE)
-        await self.recorders.ended(run, Outcome(REFUSED, code, message, phase="proposal"))
+        outcome = Outcome(REFUSED, code, message, phase="proposal", stored_detail=refusal.local_message)
+        await self.recorders.ended(run, outcome)
         return Answer.refused(code, plain_detail(message))
 
     async def _accept(

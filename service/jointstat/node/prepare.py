@@ -33,6 +33,7 @@ from pathlib import Path
 import numpy as np
 
 from jointstat.circuit.compile import CompiledStatistic
+from jointstat.circuit.inputs import Records
 from jointstat.circuit.model import Party
 from jointstat.node.config import JobConfig
 
@@ -87,23 +88,25 @@ class Preparer:
             self._cache[path] = (stamp, compiled)
             return compiled
 
-    def inputs(self, job: JobConfig, compiled: CompiledStatistic) -> np.ndarray:
-        """This node's input bits for ``job`` (blocking)."""
-        from jointstat.circuit.inputs import encode_inputs, read_csv, read_sql
+    def records(self, job: JobConfig, compiled: CompiledStatistic) -> Records:
+        """This node's records for ``job``, read and checked against its table (blocking)."""
+        from jointstat.circuit.inputs import read_csv, read_sql
 
         party = job.party
         table = compiled.manifest.table(party)
         columns = compiled.inputs[party].columns
         open_source(job)
         if job.input.csv is not None:
-            records = read_csv(job.input.csv.path, table, columns=columns, key_secret=self._key_secret)
-        else:
-            sql = job.input.sql
-            assert sql is not None
-            records = read_sql(
-                sql.connection_url(), sql.query, table, columns=columns, key_secret=self._key_secret
-            )
-        return encode_inputs(compiled, party, records)
+            return read_csv(job.input.csv.path, table, columns=columns, key_secret=self._key_secret)
+        sql = job.input.sql
+        assert sql is not None
+        return read_sql(sql.connection_url(), sql.query, table, columns=columns, key_secret=self._key_secret)
+
+    def inputs(self, job: JobConfig, compiled: CompiledStatistic) -> np.ndarray:
+        """This node's input bits for ``job`` (blocking)."""
+        from jointstat.circuit.inputs import encode_inputs
+
+        return encode_inputs(compiled, job.party, self.records(job, compiled))
 
     def prepare(self, job: JobConfig) -> Prepared:
         """The compiled manifest and this node's input, within the memory limit (blocking)."""

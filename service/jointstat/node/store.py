@@ -98,8 +98,10 @@ def _record(r: tuple[Any, ...]) -> RunRecord:
 class JobStore:
     """Runs of jobs in an SQLite file created owner-only (0600)."""
 
-    def __init__(self, path: str | Path) -> None:
+    def __init__(self, path: str | Path, *, create: bool = True) -> None:
         self.path = Path(path)
+        if not create and not self.path.is_file():
+            raise StoreError(f"job store {self.path}: no such file (has the node ever run?)")
         try:
             ensure_private_dir(self.path.parent)
             fd = os.open(self.path, os.O_CREAT | os.O_RDWR, 0o600)
@@ -205,6 +207,17 @@ class JobStore:
         with self._lock:
             row = self._db.execute(sql, (session_id,)).fetchone()
         return None if row is None else _record(row)
+
+    def sessions_starting(self, prefix: str, limit: int = 10) -> list[str]:
+        """The distinct session ids (hex) that start with ``prefix`` (at most ``limit``)."""
+        if not prefix or not all(c in "0123456789abcdef" for c in prefix):
+            return []
+        with self._lock:
+            rows = self._db.execute(
+                "SELECT DISTINCT session_id FROM runs WHERE substr(session_id, 1, ?) = ? LIMIT ?",
+                (len(prefix), prefix, limit),
+            ).fetchall()
+        return [r[0] for r in rows]
 
     def scheduled_done(self) -> set[tuple[str, datetime]]:
         """(job, scheduled time) pairs that have at least one run, of any outcome."""
