@@ -282,3 +282,9 @@ def test_the_acceptor_records_the_proposed_scheduled_time_so_both_sides_agree() 
     decision = decide(p, ready())
     assert isinstance(decision, Accept)
     assert decision.terms.scheduled_for == later
+
+
+def test_a_busy_refusal_counts_one_session_in_the_singular() -> None:
+    decision = decide(proposal(), ready(running=1, max_sessions=1))
+    assert isinstance(decision, Refuse) and decision.code == "busy"
+    assert "already runs 1 session;" in decision.message

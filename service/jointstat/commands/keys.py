@@ -7,6 +7,7 @@ import argparse
 import json
 from datetime import UTC, datetime
 
+from jointstat.commands import jointstat_command
 from jointstat.problems import UserError
 
 
@@ -46,14 +47,14 @@ def _init(args: argparse.Namespace) -> int:
     if keyset.ca_key is not None:
         print(f"trial CA only: {keyset.ca_key.name} can issue certificates; do not use it in production")
         print(
-            "next: a key-hashing secret both nodes share (jointstat keys secret --out FILE, then copy it to the"
-            " other node owner-only), and a node config for each node (configs/nodes/README.md)"
+            f"next: a key-hashing secret both nodes share ({jointstat_command()} keys secret --out FILE, then copy it"
+            " to the other node owner-only), and a node config for each node (configs/nodes/README.md)"
         )
     else:
         print(
             "a node also needs a TLS certificate and key (tls.certificate, tls.private_key: from your PKI, with the"
             " node's DNS name and both server and client use), the peer's certificate and signing public key, and,"
-            " for identifier columns, the shared key-hashing secret (jointstat keys secret); for a trial on one"
+            f" for identifier columns, the shared key-hashing secret ({jointstat_command()} keys secret); for a trial on one"
             " machine use --trial-ca --nodes A,B instead; see the README's 'Setting up two nodes'"
         )
     return 0
@@ -80,7 +81,7 @@ def _secret(args: argparse.Namespace) -> int:
     print(f"wrote {args.out} (owner-only): fingerprint {fp}")
     print(
         "copy the file to the peer organisation by a channel you trust (never e-mail); there, keep it owner-only"
-        " (chmod 600) and run jointstat keys secret --fingerprint FILE: both operators must read the same"
+        f" (chmod 600) and run {jointstat_command()} keys secret --fingerprint FILE: both operators must read the same"
         " fingerprint"
     )
     return 0

@@ -283,7 +283,12 @@ def _jobs_run(args: argparse.Namespace) -> int:
             print(f"  {line}")
     else:
         print(f"job {args.name}: {snap.get('status')} ({snap.get('reason') or 'no reason given'})")
-        print(f"  later attempts, if the job's retries allow: jointstat jobs history {args.name}")
+        from jointstat.commands import jointstat_command
+
+        config = f" --config {args.config}" if args.config else ""
+        print(
+            f"  the reasons in full, and later attempts: {jointstat_command()} jobs history {args.name}{config}"
+        )
     return 0 if snap.get("status") == "completed" else 1
 
 

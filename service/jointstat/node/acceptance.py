@@ -43,6 +43,7 @@ from typing import Literal
 from jointstat.circuit.model import Party
 from jointstat.node.config import JOB_NAME, JobConfig
 from jointstat.transport.proposals import PROTOCOL_VERSION, Proposal
+from jointstat.units import plural
 
 TRIGGERS = (
     "schedule",
@@ -181,7 +182,9 @@ def decide(proposal: Proposal, here: Situation) -> Decision:
         return Prepare("input", job)
     if here.running >= here.max_sessions:
         return Refuse(
-            "busy", f"node {here.node} already runs {here.max_sessions} sessions; try again later", terms
+            "busy",
+            f"node {here.node} already runs {plural(here.max_sessions, 'session')}; try again later",
+            terms,
         )
     return Accept(terms)
 

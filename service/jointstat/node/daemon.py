@@ -60,6 +60,7 @@ from jointstat.protocol.session import Session, new_session
 from jointstat.transport.driver import Limits
 from jointstat.transport.proposals import proposal_service
 from jointstat.transport.server import SessionServer
+from jointstat.units import plural
 
 log = logging.getLogger("jointstat.node")
 
@@ -183,7 +184,9 @@ class Node:
         now = self.clock.now()
         closed = await asyncio.to_thread(self.state.store.close_interrupted, now)
         if closed:
-            log.warning("job store: %d run(s) left running by the previous process marked aborted", closed)
+            log.warning(
+                "job store: %s left running by the previous process marked aborted", plural(closed, "run")
+            )
         for sid in await asyncio.to_thread(self.state.session_log.open_sessions):
             await asyncio.to_thread(
                 self.state.session_log.session_aborted,
@@ -362,9 +365,11 @@ class Node:
                 task.cancel()
         await self._close_everything()
         log.info(
-            "node %s: stopped (%d session(s) were running and have been aborted)",
+            "node %s: stopped (%s)",
             self.config.node.name,
-            running,
+            "1 session was running and has been aborted"
+            if running == 1
+            else f"{running} sessions were running and have been aborted",
         )
 
     async def _stop_console(self) -> None:
@@ -435,7 +440,7 @@ async def _run(config: NodeConfig) -> int:
     jobs = "; ".join(f"{job.name} ({job_summary(job)})" for job in config.jobs)
     print(
         f"node {n.name}: serving peers on {n.listen.host}:{node.peer_port}, admin {n.admin}, "
-        f"metrics {n.metrics.host}:{node.metrics_port}{extra}; {len(config.jobs)} job(s)"
+        f"metrics {n.metrics.host}:{node.metrics_port}{extra}; {len(config.jobs)} {'job' if len(config.jobs) == 1 else 'jobs'}"
         + (f": {jobs}" if jobs else ""),
         flush=True,
     )

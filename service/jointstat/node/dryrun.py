@@ -57,7 +57,7 @@ class JobCheck:
         starts = "this node starts it" if self.initiate else f"node {self.peer} starts it"
         out = [f"job {self.job}: this node the {self.role}, with node {self.peer} ({starts})"]
         digest = (
-            f"digest {self.digest} (the peer's operator must see the same: jointstat jobs check {self.job})"
+            f"digest {self.digest} (the peer's operator must see the same for this job)"
             if self.digest
             else "not compiled"
         )
@@ -79,7 +79,7 @@ class JobCheck:
 
 def zoned(t: datetime, timezone: str) -> str:
     """A time in the job's zone, with its offset and the zone's name."""
-    return f"{t.astimezone(ZoneInfo(timezone)).isoformat(timespec='minutes')} ({timezone})"
+    return f"{t.astimezone(ZoneInfo(timezone)).isoformat(timespec='minutes')} {timezone}"
 
 
 def window_state(job: JobConfig, now: datetime) -> str:
@@ -87,7 +87,7 @@ def window_state(job: JobConfig, now: datetime) -> str:
     latest = timing.latest_fire(now)
     tz = job.schedule.timezone
     if timing.in_window(latest, now):
-        return f"open until {zoned(latest + timing.window, tz)} (scheduled {zoned(latest, tz)})"
+        return f"open until {zoned(latest + timing.window, tz)}; scheduled {zoned(latest, tz)}"
     return f"closed; it next opens at {zoned(timing.next_fire(now), tz)}"
 
 

@@ -109,6 +109,7 @@ from jointstat.transport.client import run_client
 from jointstat.transport.driver import Limits, SessionResult, Shutdown
 from jointstat.transport.proposals import PROTOCOL_VERSION, Answer, Proposal, propose
 from jointstat.transport.server import SessionServer
+from jointstat.units import plural
 
 log = logging.getLogger("jointstat.node")
 
@@ -246,7 +247,7 @@ class JobRunner:
             return await self.recorders.ended(run, CANCELLED)
         limit = state.config.node.max_sessions
         if state.running_sessions() >= limit:
-            busy = f"this node already runs {limit} sessions (node.max_sessions)"
+            busy = f"this node already runs {plural(limit, 'session')} (node.max_sessions)"
             return await self.recorders.ended(run, Outcome(FAILED, "busy", busy))
         self.recorders.followed(run)
         return await self._carry(run, self._initiate(run, job))

@@ -48,6 +48,12 @@ class StoppedNode:
     def history(self, job: str | None = None, limit: int = 50) -> list[dict[str, Any]]:
         return [run_dict(r) for r in self._store.runs(job, limit)]
 
+    def _peer(self, job: str) -> str | None:
+        try:
+            return self.config.job(job).peer
+        except KeyError:
+            return None
+
     def sessions(self, limit: int = 50) -> list[dict[str, Any]]:
         out: list[dict[str, Any]] = []
         seen: set[str] = set()
@@ -59,6 +65,7 @@ class StoppedNode:
                         "session": r.session_id,
                         "job": r.job,
                         "role": r.role,
+                        "peer": self._peer(r.job),
                         "trigger": r.trigger,
                         "status": r.status,
                         "started_at": r.started_at.isoformat(),
