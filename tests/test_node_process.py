@@ -157,7 +157,7 @@ def test_sigterm_during_a_session_aborts_and_logs_it_on_both_nodes_and_leaves_no
         results = pair.data(name) / "results"
         assert not results.exists() or not any(results.rglob("*")), name
     assert (
-        "stopped (1 session(s) were running and have been aborted)" in (tmp_path / f"{BATHS}.log").read_text()
+        "stopped (1 session was running and has been aborted)" in (tmp_path / f"{BATHS}.log").read_text()
     )
     for name in procs:  # the nodes' own lines only: gRPC's internal log lines stay out unless asked for
         lines = (tmp_path / f"{name}.log").read_text().splitlines()
