@@ -156,9 +156,7 @@ def test_sigterm_during_a_session_aborts_and_logs_it_on_both_nodes_and_leaves_no
         assert row.status == "aborted" and row.result_path is None, name
         results = pair.data(name) / "results"
         assert not results.exists() or not any(results.rglob("*")), name
-    assert (
-        "stopped (1 session was running and has been aborted)" in (tmp_path / f"{BATHS}.log").read_text()
-    )
+    assert "stopped (1 session was running and has been aborted)" in (tmp_path / f"{BATHS}.log").read_text()
     for name in procs:  # the nodes' own lines only: gRPC's internal log lines stay out unless asked for
         lines = (tmp_path / f"{name}.log").read_text().splitlines()
         assert lines and all(" jointstat." in line or line.startswith("node ") for line in lines), lines
