@@ -286,7 +286,7 @@ def test_jobs_check_names_file_row_and_column_of_bad_data_and_exits_non_zero(
     assert main(["jobs", "check", JOB, "--config", str(pair.configs[BATHS])]) == 1
     out = capsys.readouterr().out
     assert f"problem   input_invalid: {bad}" in out
-    assert "row 2" in out and "'visits'" in out and "not an integer" in out
+    assert "line 3" in out and "'visits'" in out and "not an integer" in out  # data row 2 is file line 3
     assert "many" not in out  # the value itself is never shown
     assert "the job would not run" in out
     # node check dry-runs every job the same way
@@ -316,7 +316,7 @@ async def test_bad_data_fails_as_input_invalid_on_the_initiator_and_is_not_retri
         capsys.readouterr()
     (run,) = pair.store_rows(LIBRARY)  # one attempt only: retrying cannot cure bad data
     assert run.status == "failed" and run.reason is not None
-    assert run.reason.startswith(f"input_invalid: {bad}, row 3, column 'email'")
+    assert run.reason.startswith(f"input_invalid: {bad}, line 4, column 'email'")
 
 
 async def test_the_acceptor_refuses_bad_data_as_input_invalid_and_keeps_the_details_to_itself(
@@ -332,8 +332,8 @@ async def test_the_acceptor_refuses_bad_data_as_input_invalid_and_keeps_the_deta
     assert (mine.status, theirs.status) == ("refused", "refused")
     assert mine.reason is not None and theirs.reason is not None
     assert mine.reason.startswith(f"input_invalid: node {BATHS} refused the run: node {BATHS} cannot run job")
-    assert "row 2" not in mine.reason  # the peer is not told where this node's data is wrong
-    assert theirs.reason.startswith(f"input_invalid: this node's input: {bad}, row 2, column 'visits'")
+    assert "line 3" not in mine.reason  # the peer is not told where this node's data is wrong
+    assert theirs.reason.startswith(f"input_invalid: this node's input: {bad}, line 3, column 'visits'")
     assert mine.scheduled_for == theirs.scheduled_for  # both sides record the same scheduled time
 
 

@@ -235,7 +235,9 @@ def test_the_plan_command_reports_its_own_memory_and_warns_before_counting_a_hug
     assert "at 40ms round-trip time" in captured.out and "this plan used" in captured.out
     assert captured.err == ""  # a small plan: no warning
     big = tmp_path / "big.yaml"
-    text = (ROOT / "configs" / "rainfall-totals" / "manifest.yaml").read_text(encoding="utf-8")  # a sum: no keys
+    text = (ROOT / "configs" / "rainfall-totals" / "manifest.yaml").read_text(
+        encoding="utf-8"
+    )  # a sum: no keys
     capacities = {line.strip() for line in text.splitlines() if line.strip().startswith("capacity:")}
     for line in capacities:
         text = text.replace(line, "capacity: 131072")
