@@ -362,6 +362,32 @@ def _jobs_check(args: argparse.Namespace) -> int:
     return 0 if check.ok else 1
 
 
+def _jobs_budget(args: argparse.Namespace) -> int:
+    with _records(args) as client:
+        answer = _call(client.budgets, args.name)
+    if args.json:
+        print(json.dumps(answer, indent=2))
+        return 0
+    budgets = answer["budgets"]
+    if not budgets:
+        print("no job has a privacy budget on this node")
+        return 0
+    print(f"privacy budgets at {_when(answer['now'])}")
+    for b in budgets:
+        print(f"job {b['job']}: ε {b['epsilon']} per {b['period_days']} days (rolling)")
+        print(f"  spent      {b['spent']} (of which reserved by runs in progress: {b['reserved']})")
+        print(f"  remaining  {b['remaining']}")
+        if b.get("run_epsilon") is not None:
+            fits = b.get("next_run_fits_at")
+            when = "now" if fits == answer["now"] else (_when(fits) if fits and fits[0].isdigit() else fits)
+            print(
+                f"  a run      spends ε {b['run_epsilon']}; the next one fits: {when or 'when runs in progress end'}"
+            )
+        for f in b["frees"]:
+            print(f"  frees      ε {f['epsilon']} at {_when(f['at'])} (run {f['run'][:12]})")
+    return 0
+
+
 def _sessions_list(args: argparse.Namespace) -> int:
     with _records(args) as client:
         sessions = _call(client.sessions, args.limit)
@@ -434,6 +460,14 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
         help=f"the node's config (default $JOINTSTAT_CONFIG, else {DEFAULT_CONFIG})",
     )
     p.set_defaults(handler=_jobs_check)
+    p = which.add_parser(
+        "budget",
+        help="each job's privacy budget: ε spent and remaining in its rolling period, and when spends free up"
+        " (also of a stopped node)",
+    )
+    p.add_argument("name", metavar="NAME", nargs="?", help="only this job")
+    _config_option(p)
+    p.set_defaults(handler=_jobs_budget)
     p = which.add_parser(
         "history", help="recorded runs, most recent first, with each reason in full (also of a stopped node)"
     )

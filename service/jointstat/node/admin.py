@@ -18,6 +18,8 @@ method             request                             answer
 ``ListSessions``   ``{"limit": N?}``                   ``sessions``: live and recent sessions
 ``ShowSession``    ``{"session": ID}``                 ``session``: status, phase, AND gates done/total, bytes,
                                                        rate, time left, phases, result file
+``Budget``         ``{"job": NAME?}``                  ``budgets``: each budgeted job's privacy budget: total,
+                                                       period, spent, remaining, reserved, when spends free up
 =================  ==================================  =========================================================
 
 ``ShowSession`` takes a whole session id or its beginning (the 12 characters ``sessions list`` prints) when one
@@ -48,7 +50,7 @@ if TYPE_CHECKING:
 log = logging.getLogger("jointstat.node")
 
 SERVICE = "jointstat.admin.v1.Admin"
-METHODS = ("Status", "ListJobs", "RunJob", "History", "ListSessions", "ShowSession")
+METHODS = ("Status", "ListJobs", "RunJob", "History", "ListSessions", "ShowSession", "Budget")
 CALL_TIMEOUT_S = 15.0
 
 
@@ -181,9 +183,33 @@ class NodeAdmin:
                     if success is None or success.finished_at is None
                     else success.finished_at.isoformat(),
                     "results": str(job.results),
+                    "privacy_budget": None
+                    if job.privacy_budget is None or state.budgets is None
+                    else state.budgets.report(job, now),
                 }
             )
         return {"jobs": jobs}
+
+    async def budget(self, request: dict[str, Any]) -> dict[str, Any]:
+        node = self._node
+        assert node.state is not None and node.state.budgets is not None and node.runner is not None
+        name = text_field(request, "job", required=False)
+        jobs = [self._job(name)] if name is not None else list(node.config.jobs)
+        now = node.clock.now()
+        out = []
+        for job in jobs:
+            if job.privacy_budget is None:
+                continue
+            try:
+                epsilon = (await asyncio.to_thread(node.runner.preparer.compiled, job)).epsilon()
+            except Exception:
+                epsilon = None  # the manifest cannot be compiled: the report leaves the run's ε out
+            report = node.state.budgets.report(job, now, epsilon)
+            if report is not None:
+                out.append(report)
+        if name is not None and not out:
+            raise RequestError(grpc.StatusCode.NOT_FOUND, f"job {name!r} has no privacy budget on this node")
+        return {"now": now.isoformat(), "budgets": out}
 
     async def run_job(self, request: dict[str, Any]) -> dict[str, Any]:
         node = self._node
@@ -377,3 +403,6 @@ class AdminClient:
 
     def session(self, session_id: str) -> dict[str, Any]:
         return dict(self.call("ShowSession", session=session_id)["session"])
+
+    def budgets(self, job: str | None = None) -> dict[str, Any]:
+        return self.call("Budget", **({} if job is None else {"job": job}))

@@ -55,6 +55,7 @@ from jointstat.node.jobs import JobRunner, NodeState, new_session_id
 from jointstat.node.keys import NodeKeys, load_node_keys
 from jointstat.node.metrics import NodeMetrics
 from jointstat.node.secrets import SecretFileError
+from jointstat.node.spending import Budgets
 from jointstat.node.store import JobStore, StoreError
 from jointstat.protocol.session import Session, new_session
 from jointstat.transport.driver import Limits
@@ -141,10 +142,14 @@ class Node:
             metrics=self.metrics,
             limits=Limits(deadline_s=float(node.session_deadline_seconds)),
             new_session=self._session_factory,
+            budgets=await asyncio.to_thread(Budgets, config.jobs, store),
         )
         try:
             await self._recover()
             self.runner = JobRunner(self.state)
+            problems = await self._budget_problems()
+            if problems:
+                raise ConfigError(config.source, problems)
             await self._serve(keys)
         except BaseException:
             await self._close_everything()
@@ -154,6 +159,24 @@ class Node:
         log.info("node %s: started", node.name)
         for job in config.jobs:
             log.info("job %s: %s", job.name, job_summary(job))
+
+    async def _budget_problems(self) -> list[Any]:
+        """Every job whose privacy budget is smaller than one run's ε (its manifest compiled now, and cached)."""
+        from jointstat.node.spending import run_epsilon_problem
+
+        assert self.runner is not None
+        problems = []
+        for i, job in enumerate(self.config.jobs):
+            if job.privacy_budget is None:
+                continue
+            try:
+                compiled = await asyncio.to_thread(self.runner.preparer.compiled, job)
+            except Exception:
+                continue  # reported when a run needs it, and by node check
+            problem = run_epsilon_problem(job, i, compiled.epsilon())
+            if problem is not None:
+                problems.append(problem)
+        return problems
 
     async def _compile_manifests(self) -> None:
         """Compile every job's manifest once in the background, so the first proposal is answered quickly."""
@@ -187,7 +210,19 @@ class Node:
             log.warning(
                 "job store: %s left running by the previous process marked aborted", plural(closed, "run")
             )
-        for sid in await asyncio.to_thread(self.state.session_log.open_sessions):
+        assert self.state.budgets is not None
+        for held in await asyncio.to_thread(self.state.budgets.recover, now):
+            log.warning(
+                "privacy budget of job %s: the reservation of run %s was left open by the previous process;"
+                " counted as spent (whether its result was released is not known)",
+                held.job,
+                held.run_id,
+            )
+        session_log = self.state.session_log
+        for sid in await asyncio.to_thread(session_log.open_sessions):
+            epsilon = await asyncio.to_thread(session_log.held_budget, sid)
+            if epsilon is not None:
+                await asyncio.to_thread(session_log.privacy_budget, sid, epsilon=epsilon, action="spent")
             await asyncio.to_thread(
                 self.state.session_log.session_aborted,
                 sid,

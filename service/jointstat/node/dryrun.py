@@ -7,7 +7,9 @@ the program fits ``node.session_memory_mib``, reads the key-hashing secret when 
 ``keys.key_secret_fingerprint``, for the two operators to compare), opens the input source and reads and encodes
 this node's records against the manifest party the job's ``role`` names (CSV or SQL, exactly as a run does, through
 ``prepare.Preparer``), and reports the row count against the table's capacity and the state of the job's run window
-at ``now``. Nothing is sent anywhere and nothing is written: no peer, no log, no job store.
+at ``now``, and the run's ε against the job's privacy budget (a budget smaller than one run's ε, or one with too
+little left now: ``budget_exhausted``, the job store read but not written). Nothing is sent anywhere and nothing is
+written: no peer, no log, no job store.
 
 Each problem found is one ``Finding`` with the reason code a run would end with (``input_unavailable``,
 ``input_invalid``, ``manifest_unusable``; ``prepare.failure_code``) and the message of the error, which names the
@@ -22,8 +24,10 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from zoneinfo import ZoneInfo
 
+from jointstat.exact import decimal_text
 from jointstat.node.config import JobConfig, NodeConfig
 from jointstat.node.prepare import MANIFEST_UNUSABLE, Preparer, describe_failure, failure_code
+from jointstat.node.spending import run_epsilon_problem
 
 
 @dataclass(frozen=True)
@@ -46,6 +50,8 @@ class JobCheck:
     rows: int | None = None
     capacity: int | None = None
     secret_fingerprint: str | None = None
+    epsilon: str | None = None  # the run's ε (its manifest's noisy outputs)
+    budget: str = "no privacy budget configured"
     window: str = ""
     findings: list[Finding] = field(default_factory=list)
 
@@ -70,6 +76,8 @@ class JobCheck:
             out.append(
                 f"  key-hashing secret fingerprint {self.secret_fingerprint} (the peer's must be the same)"
             )
+        if self.epsilon is not None and self.epsilon != "0":
+            out.append(f"  privacy   a run spends ε = {self.epsilon} ({self.budget})")
         out.append(f"  window    {self.window}")
         for f in self.findings:
             out.append(f"  problem   {f.code}: {f.message}")
@@ -112,6 +120,9 @@ def check_job(config: NodeConfig, job: JobConfig, now: datetime) -> JobCheck:
         source=source,
         window=window_state(job, now),
     )
+    if job.privacy_budget is not None:
+        days = job.privacy_budget.period_days
+        check.budget = f"budget {job.privacy_budget.epsilon} per {days} day{'s' if days != 1 else ''}"
     secret = None
     if config.key_hashing_secret is not None:
         try:
@@ -127,6 +138,27 @@ def check_job(config: NodeConfig, job: JobConfig, now: datetime) -> JobCheck:
     except Exception as exc:
         check.findings.append(Finding(MANIFEST_UNUSABLE, describe_failure(exc)))
         return check
+    epsilon = compiled.epsilon()
+    check.epsilon = decimal_text(epsilon)
+    index = next(i for i, j in enumerate(config.jobs) if j.name == job.name)
+    problem = run_epsilon_problem(job, index, epsilon)
+    if problem is not None:
+        check.findings.append(Finding("budget_exhausted", f"{problem.path}: {problem.message}"))
+    elif job.privacy_budget is not None and epsilon > 0:
+        from jointstat.node.spending import Budgets
+        from jointstat.node.store import JobStore, StoreError
+
+        try:
+            store = JobStore(config.node.job_store, create=False)
+        except StoreError:
+            store = None  # the node has not run yet: nothing spent
+        if store is not None:
+            try:
+                reason = Budgets(config.jobs, store).problem(job, epsilon, now)
+            finally:
+                store.close()
+            if reason is not None:
+                check.findings.append(Finding("budget_exhausted", reason))
     check.capacity = compiled.inputs[job.party].capacity
     try:
         records = preparer.records(job, compiled)

@@ -77,6 +77,7 @@ from jointstat.audit.log import SessionLog
 from jointstat.audit.records import AuditError, plain_detail
 from jointstat.circuit.compile import CompiledStatistic
 from jointstat.node.acceptance import USED_BEFORE, Prepare, Refuse, Situation, Terms, decide
+from jointstat.node.budget import BUDGET_EXHAUSTED, BudgetError, BudgetExhausted
 from jointstat.node.clock import Clock
 from jointstat.node.config import JobConfig, NodeConfig
 from jointstat.node.keys import NodeKeys, PeerIdentity, session_signing
@@ -92,6 +93,7 @@ from jointstat.node.prepare import (
 from jointstat.node.progress import ABORTED, COMPLETED, FAILED, REFUSED, SessionTracker
 from jointstat.node.results import write_result
 from jointstat.node.runs import (
+    BudgetRecorder,
     LogRecorder,
     MetricsRecorder,
     Outcome,
@@ -101,6 +103,7 @@ from jointstat.node.runs import (
     StoreRecorder,
 )
 from jointstat.node.schedule import Planner
+from jointstat.node.spending import Budgets
 from jointstat.node.store import JobStore
 from jointstat.protocol.frames import AbortReason
 from jointstat.protocol.session import Session, new_session
@@ -160,6 +163,9 @@ class NodeState:
     stopping: bool = False
     shutdown: Shutdown = field(default_factory=Shutdown)  # ends running sessions with peer_shutdown on stop
     new_session: Callable[..., Session] = new_session  # makes each session (``protocol.session.new_session``)
+    budgets: Budgets | None = (
+        None  # the jobs' privacy budgets; made from the store by the runner if not given
+    )
 
     def running_sessions(self) -> int:
         return sum(1 for t in self.sessions.values() if not t.ended)
@@ -197,11 +203,15 @@ class JobRunner:
             [j.timing() for j in state.config.jobs if j.initiate], started_at=state.clock.now()
         )
         self.served: set[asyncio.Task[Any]] = set()  # tasks waiting for sessions this node accepted
+        if state.budgets is None:
+            state.budgets = Budgets(state.config.jobs, state.store)
+        self.budgets = state.budgets
         self.recorders = RunRecorders(
             store=StoreRecorder(state.store, state.clock),
             progress=Progress(state.sessions, state.clock),
             metrics=MetricsRecorder(state.metrics, state.running_sessions, state.clock),
             log=LogRecorder(state.session_log),
+            budget=BudgetRecorder(self.budgets, state.store, state.session_log, state.clock),
         )
 
     # -- initiating ------------------------------------------------------------------------------------------------
@@ -264,6 +274,13 @@ class JobRunner:
         self.recorders.progress.measured(run, "prepare", prepared.seconds)
         run.digest = prepared.digest
         await _finish_despite_cancel(self.recorders.announced(run))
+        try:
+            run.held = self.budgets.reserve(job, run.sid, prepared.compiled.epsilon(), self.state.clock.now())
+        except (BudgetExhausted, BudgetError) as exc:
+            log.warning("job %s: not run: the privacy budget: %s", job.name, exc)
+            detail = f"this node's privacy budget of job {job.name}: {exc}"
+            return Outcome(REFUSED, BUDGET_EXHAUSTED, detail, phase="proposal")
+        await _finish_despite_cancel(self.recorders.budget.reserved(run))
         refused = await self._propose(run)
         if refused is not None:
             return refused
@@ -354,6 +371,7 @@ class JobRunner:
             outcome = Outcome(ABORTED, "bad_signature", str(exc), phase="finish", stored_detail=refused)
             return await self.recorders.ended(run, outcome)
         assert run.config is not None
+        await self.recorders.budget.settled(run, spent=True)  # recorded before the result is released
         path = await asyncio.to_thread(
             write_result,
             run.config,
@@ -411,7 +429,20 @@ class JobRunner:
             input_ready=found.inputs is not None,
             input_problem=found.input_problem,
             input_code=found.input_code,
+            budget_problem=self._budget_problem(proposal, peer, now, found),
         )
+
+    def _budget_problem(
+        self, proposal: Proposal, peer: PeerIdentity, now: datetime, found: _Found
+    ) -> str | None:
+        if found.compiled is None:
+            return None
+        job = next(
+            (j for j in self.state.config.jobs if j.name == proposal.job and j.peer == peer.name), None
+        )
+        if job is None:
+            return None
+        return self.budgets.problem(job, found.compiled.epsilon(), now)
 
     async def _prepare_for(self, step: Prepare, found: _Found) -> _Found:
         """Compile the job's manifest or read its input, as ``decide`` asked; a failure is what it found."""
@@ -474,7 +505,18 @@ class JobRunner:
         state, job = self.state, terms.job
         assert job is not None and found.compiled is not None and found.inputs is not None
         prepared = Prepared(found.compiled, terms.party, terms.digest, found.inputs, found.seconds)
+        try:  # in memory and before any await, so the check ``decide`` made still holds
+            held = self.budgets.reserve(job, proposal.session_id.hex(), found.compiled.epsilon(), now)
+        except (BudgetExhausted, BudgetError) as exc:
+            refusal = Refuse(
+                BUDGET_EXHAUSTED,
+                f"node {state.config.node.name} refuses job {job.name}: {exc}",
+                terms,
+                local=f"this node's privacy budget: {exc}",
+            )
+            return await self._refuse(proposal, peer, now, refusal)
         run = self._proposed_run(proposal, peer, now, terms)
+        run.held = held
         self.recorders.followed(run)  # takes its slot before the next await
         self.recorders.progress.measured(run, "prepare", prepared.seconds)
         await self.recorders.opened(run)
@@ -483,6 +525,7 @@ class JobRunner:
         except AuditError:  # the log has seen this session id
             await self.recorders.ended(run, Outcome(REFUSED, "malformed", USED_BEFORE))
             return Answer.refused("malformed", USED_BEFORE)
+        await self.recorders.budget.reserved(run)
         session = self._session(run, prepared)
         assert state.server is not None and run.tracker is not None
         future = state.server.expect(

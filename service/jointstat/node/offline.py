@@ -76,6 +76,33 @@ class StoppedNode:
         out.sort(key=lambda s: s["started_at"], reverse=True)
         return out[:limit]
 
+    def budgets(self, job: str | None = None) -> dict[str, Any]:
+        """The budgets as the stored spends leave them now (an open reservation still counts)."""
+        from datetime import UTC, datetime
+
+        from jointstat.circuit.compile import compile_manifest
+        from jointstat.circuit.manifest import load_manifest
+        from jointstat.node.spending import Budgets
+
+        now = datetime.now(UTC)
+        budgets = Budgets(self.config.jobs, self._store)
+        jobs = [j for j in self.config.jobs if job is None or j.name == job]
+        if job is not None and not jobs:
+            known = ", ".join(j.name for j in self.config.jobs) or "none"
+            raise OfflineError(f"no job named {job!r} (jobs: {known})")
+        out = []
+        for j in jobs:
+            try:
+                epsilon = compile_manifest(load_manifest(j.manifest)).epsilon() if j.privacy_budget else None
+            except Exception:
+                epsilon = None
+            report = budgets.report(j, now, epsilon)
+            if report is not None:
+                out.append(report)
+        if job is not None and not out:
+            raise OfflineError(f"job {job!r} has no privacy budget on node {self.config.node.name}")
+        return {"now": now.isoformat(), "budgets": out}
+
     def session(self, given: str) -> dict[str, Any]:
         name = self.config.node.name
         try:
