@@ -88,7 +88,7 @@ def test_a_value_finer_than_the_column_is_refused_without_a_rounding_rule(tmp_pa
     assert (info.value.row, info.value.column) == (3, "f")
     assert "more precision than the column holds (steps of 2^-2 = 0.25)" in str(info.value)
     assert "41.26" not in str(info.value)
-    with pytest.raises(InputError, match="line 2, column 'u': .*more precision"):
+    with pytest.raises(InputError, match=r"line 2, column 'u': .*more precision"):
         read_csv(write(tmp_path, "u\n3.5\n"), TABLE, columns=["u"])
     assert read_csv(write(tmp_path, "f\n-1.75\n2.000\n"), TABLE, columns=["f"]).columns["f"] == [-7, 8]
 

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import copy
 import csv
+import json
 import statistics
 from collections import defaultdict
 from decimal import ROUND_HALF_EVEN, Decimal
@@ -353,3 +354,26 @@ def test_no_statistic_at_all_is_refused() -> None:
     data = multi([COUNT])
     del data["statistics"]
     assert any(p.startswith("statistics: required field is missing") for p in problems_of(data))
+
+
+def test_plan_and_check_show_the_totals_and_each_statistic(capsys: pytest.CaptureFixture[str]) -> None:
+    from jointstat.cli import main
+
+    path = str(DAIRY / "manifest.yaml")
+    assert main(["plan", path, "--json"]) == 0
+    figures = json.loads(capsys.readouterr().out)
+    parts = figures["statistics"]
+    assert [p["name"] for p in parts] == [e.use.label for e in dairy().parts]
+    assert [p["kind"] for p in parts] == ["keyed_join", "mean", "quantile", "count", "histogram", "compare"]
+    assert sum(p["and_gates"] for p in parts) + figures["and_gates_release"] == figures["and_gates"]
+    assert all(p["table_bytes"] == 32 * p["and_gates"] for p in parts) and figures["epsilon"] == "0"
+    assert parts[1]["outputs"] == {"garbler": ["delivery.count", "delivery.sum", "delivery.mean"]} | {
+        "evaluator": ["delivery.count", "delivery.sum", "delivery.mean"]
+    }
+    assert main(["plan", path]) == 0
+    text = capsys.readouterr().out
+    assert "by statistic" in text and "bigger_collector" in text and "release rules" in text
+    assert main(["manifest", "check", path]) == 0
+    text = capsys.readouterr().out
+    assert "statistics shared_farms (keyed_join), delivery (mean)" in text
+    assert "evaluator (Saltings Milk Collective) receives: withheld, shared_farms.matches" in text

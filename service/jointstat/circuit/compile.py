@@ -240,9 +240,10 @@ class CompiledStatistic:
             releases.append(self._release(bld, part, result, min_count))
             by_statistic[part.use.label or part.use.kind] = bld.and_gates - before
             results.append(result)
-            extra.update(result.extra) if len(self.parts) == 1 else extra.setdefault(
-                "by_statistic", {}
-            ).update({part.use.label: dict(result.extra)})
+            if len(self.parts) == 1:
+                extra.update(result.extra)
+            else:
+                extra.setdefault("by_statistic", {})[part.use.label] = dict(result.extra)
         before = bld.and_gates
         gated: dict[tuple[int, str], Bits] = {}
         for party in Party:

@@ -252,19 +252,16 @@ def _output_problems(use: StatisticUse, stat: Statistic[Any]) -> list[Problem]:
     problems += stat.noise_problems(released)
     settings = stat.noise_settings()
     if settings and use.disclosure.min_count > 0 and stat.count_output not in settings:
-        where = f"{use.path}.disclosure.min_count" if use.label is not None else "disclosure.min_count"
-        if use.label is not None and getattr(use.params, "disclosure", None) is None:
-            where = "disclosure.min_count"
-        what = (
-            f"noise {stat.count_output!r} too (the rule then compares the noisy count)"
-            if stat.count_output
-            else ("set min_count: 0 for it")
-        )
+        own_rule = use.label is not None and getattr(use.params, "disclosure", None) is not None
+        where = f"{use.path}.disclosure.min_count" if own_rule else "disclosure.min_count"
+        remedy = "set min_count: 0"
+        if stat.count_output:
+            remedy = f"noise {stat.count_output!r} too (the rule then compares the noisy count), or {remedy}"
         problems.append(
             Problem(
                 where,
                 f"{use.title} has noisy outputs, and a disclosure rule decided on the exact count would reveal what "
-                f"the noise hides: {what}, or set min_count: 0",
+                f"the noise hides: {remedy}",
             )
         )
     return problems

@@ -74,6 +74,7 @@ from jointstat.circuit.parameters import (
     StatisticParameters,
     exact,
 )
+from jointstat.exact import decimal_text
 from jointstat.problems import Problem
 
 P = TypeVar("P", bound=StatisticParameters)
@@ -244,7 +245,7 @@ class Statistic(ABC, Generic[P]):
         """``outputs()`` by name, noisy outputs as what they release (``noisy_output``)."""
         specs = {spec.name: spec for spec in self.outputs()}
         for name in self.noise_settings():
-            if name in specs:
+            if name in specs and name in self.draws:  # a setting that cannot be drawn is a problem, reported
                 specs[name] = self.noisy_output(specs[name])
         return specs
 
@@ -296,7 +297,11 @@ class Statistic(ABC, Generic[P]):
                 self.noise_draws(name, exact(setting.epsilon))
             except NoiseError as exc:
                 text = str(exc)
-                problems.append(Problem(path, text.split(": ", 1)[1] if text.startswith(path) else text))
+                if text.startswith(path):  # the sampler names the field itself (…noise.<output>.epsilon)
+                    field, text = text.split(": ", 1)
+                    problems.append(Problem(field, text))
+                else:
+                    problems.append(Problem(path, text))
         for name in sorted(released - set(settings)):
             problems.append(
                 Problem(
@@ -452,7 +457,11 @@ class Statistic(ABC, Generic[P]):
             scaled = bound * (1 << frac)
             if scaled.denominator != 1:
                 problems.append(
-                    Problem(f"{path}.{side}", f"{bound} is not a multiple of the column's step 2^-{frac}")
+                    Problem(
+                        f"{path}.{side}",
+                        f"{decimal_text(bound)} is not a multiple of the column's step 2^-{frac} (values are "
+                        "clamped exactly, so a bound must be a value the column can hold)",
+                    )
                 )
         if any(not f.signed for f in formats) and exact(clamp.max) < 0:
             problems.append(
