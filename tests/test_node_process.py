@@ -160,6 +160,8 @@ def test_sigterm_during_a_session_aborts_and_logs_it_on_both_nodes_and_leaves_no
     for name in procs:  # the nodes' own lines only: gRPC's internal log lines stay out unless asked for
         lines = (tmp_path / f"{name}.log").read_text().splitlines()
         assert lines and all(" jointstat." in line or line.startswith("node ") for line in lines), lines
+        stamped = [line for line in lines if " jointstat." in line]  # "2026-03-04 10:00:00,123 UTC INFO …"
+        assert stamped and all(line[23:28] == " UTC " for line in stamped), lines
     assert os.path.exists(pair.log(LIBRARY))
 
 

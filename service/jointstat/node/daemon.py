@@ -38,6 +38,7 @@ import os
 import signal
 import stat
 import sys
+import time
 from collections.abc import Callable
 from datetime import datetime
 from pathlib import Path
@@ -487,15 +488,22 @@ async def _run(config: NodeConfig) -> int:
     return 0
 
 
+def utc_formatter() -> logging.Formatter:
+    """The node's log lines: the time in UTC, marked so (``2026-03-04 10:00:00,123 UTC``), level, logger, message."""
+    formatter = logging.Formatter("%(asctime)s UTC %(levelname)s %(name)s: %(message)s")
+    formatter.converter = time.gmtime
+    return formatter
+
+
 def run_node(config: NodeConfig, *, grpc_logs: bool = False) -> int:
     """Run the node until SIGTERM or SIGINT; returns the process exit code.
 
     Without ``grpc_logs`` the records of gRPC's Python loggers (``grpc.*``) stay out of the node's log; its C
     core's lines are kept out by ``node run`` (``GRPC_VERBOSITY``, which gRPC reads when it is first imported).
     """
-    logging.basicConfig(
-        level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s: %(message)s", stream=sys.stderr
-    )
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(utc_formatter())
+    logging.basicConfig(level=logging.INFO, handlers=[handler])
     if not grpc_logs:
         logging.getLogger("grpc").setLevel(logging.CRITICAL + 1)
     return asyncio.run(_run(config))
