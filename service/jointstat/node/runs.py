@@ -284,9 +284,14 @@ class BudgetRecorder:
         held = run.held
         if held is None:
             return
-        await asyncio.to_thread(
-            self._store.budget_reserve, held.job, held.run_id, held.epsilon, self._clock.now()
-        )
+        try:
+            await asyncio.to_thread(
+                self._store.budget_reserve, held.job, held.run_id, held.epsilon, self._clock.now()
+            )
+        except BaseException:  # not recorded, so not held: the run cannot go on and must not keep the ε
+            run.budget_settled = True
+            self.budgets.settle(held, spent=False, now=self._clock.now())
+            raise
         if run.announced:
             await asyncio.to_thread(
                 self._log.privacy_budget, run.sid, epsilon=epsilon_text(held.epsilon), action="reserved"
