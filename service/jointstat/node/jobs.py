@@ -163,9 +163,8 @@ class NodeState:
     stopping: bool = False
     shutdown: Shutdown = field(default_factory=Shutdown)  # ends running sessions with peer_shutdown on stop
     new_session: Callable[..., Session] = new_session  # makes each session (``protocol.session.new_session``)
-    budgets: Budgets | None = (
-        None  # the jobs' privacy budgets; made from the store by the runner if not given
-    )
+    # the jobs' privacy budgets (``node.spending``); made from the store by the runner if not given
+    budgets: Budgets | None = None
 
     def running_sessions(self) -> int:
         return sum(1 for t in self.sessions.values() if not t.ended)
