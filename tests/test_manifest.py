@@ -151,7 +151,7 @@ def test_every_field_of_the_schema_has_a_description() -> None:
             for i, value in enumerate(node):
                 walk(value, f"{path}[{i}]")
 
-    walk(schema(), "")
+    walk(schema(built_in_only=True), "")  # plugins a test registered describe their own fields
     assert missing == []
 
 

@@ -15,6 +15,7 @@ differs, so the page cannot fall behind the code. The page depends only on the c
 
 from __future__ import annotations
 
+import copy
 import json
 from typing import Any
 
@@ -200,7 +201,13 @@ def _statistics(defs: dict[str, Any]) -> list[str]:
 
 
 def _entry_fields(defs: dict[str, Any]) -> list[str]:
-    entry = defs["SumEntry"]
+    """The fields an entry of ``statistics:`` adds, shown once (every entry model has the same four)."""
+    entry = copy.deepcopy(defs["SumEntry"])
+    kinds = sorted(cls.name for cls in BUILT_IN)
+    entry["properties"]["compute"] = {
+        "enum": kinds,
+        "description": "which statistic the entry computes (each is described below)",
+    }
     params = set(defs["SumParameters"]["properties"]) - {"name"}
     return _fields(entry, skip=tuple(params))
 

@@ -62,9 +62,9 @@ state and the frame; ``abort`` from the peer is accepted in every state before `
 | session   | state                  | event                      | sends                                  | next |
 |-----------|------------------------|----------------------------|----------------------------------------|------|
 | garbler   | new                    | start()                    | hello                                  | awaiting hello |
-| garbler   | awaiting hello         | hello                      | —                                      | base OT, streaming (E has no inputs) |
+| garbler   | awaiting hello         | hello                      | — (as after the OT when E has no inputs) | base OT, streaming, awaiting output labels, awaiting finish (the last three: E has no inputs, as after the OT) |
 | garbler   | base OT                | base_ot (A)                | base_ot (128 points)                   | OT extension |
-| garbler   | OT extension           | ot_extension (columns)     | ot_extension (corrections)             | OT extension, streaming (after the last batch) |
+| garbler   | OT extension           | ot_extension (columns)     | ot_extension (corrections); after the last batch, when nothing is to be streamed, what tables sent sends | OT extension, streaming (after the last batch), awaiting output labels, awaiting finish (after the last batch when G has no inputs and the program no AND gates: nothing to stream, as after tables sent) |
 | garbler   | streaming              | tables sent (from produce) | input labels and tables (produce); decoding and finish if G has no outputs | awaiting output labels, awaiting finish (G has no outputs) |
 | garbler   | awaiting output labels | garbler_output_labels      | when all arrived: decoding, finish     | awaiting output labels, awaiting finish (all arrived) |
 | garbler   | awaiting finish        | finish                     | —                                      | done |
@@ -139,9 +139,15 @@ def _with_abort(table: dict[tuple[str, str], Transition]) -> dict[tuple[str, str
 GARBLER_TABLE: Mapping[tuple[str, str], Transition] = _with_abort(
     {
         (NEW, START): ("_on_start", (AWAITING_HELLO,)),
-        (AWAITING_HELLO, fr.HELLO): ("_on_hello", (BASE_OT, STREAMING)),
+        (AWAITING_HELLO, fr.HELLO): (
+            "_on_hello",
+            (BASE_OT, STREAMING, AWAITING_OUTPUT_LABELS, AWAITING_FINISH),
+        ),
         (BASE_OT, fr.BASE_OT): ("_on_base_ot", (OT_EXTENSION,)),
-        (OT_EXTENSION, fr.OT_EXTENSION): ("_on_ot_extension", (OT_EXTENSION, STREAMING)),
+        (OT_EXTENSION, fr.OT_EXTENSION): (
+            "_on_ot_extension",
+            (OT_EXTENSION, STREAMING, AWAITING_OUTPUT_LABELS, AWAITING_FINISH),
+        ),
         (STREAMING, TABLES_SENT): ("_on_tables_sent", (AWAITING_OUTPUT_LABELS, AWAITING_FINISH)),
         (AWAITING_OUTPUT_LABELS, fr.GARBLER_OUTPUT_LABELS): (
             "_on_output_labels",
@@ -661,7 +667,17 @@ class GarblerSession(_Session):
     def _after_ot(self, ot: CorrelatedOT, replies: list[bytes]) -> tuple[str, list[bytes]]:
         assert isinstance(ot, CorrelatedOTSender)
         self._evaluator_zero = ot.zero_labels  # K of the evaluator's inputs ((0, 2) when it has none)
-        return STREAMING, replies
+        if self._n_in[Party.GARBLER] or self.and_gates_total:
+            return STREAMING, replies
+        # Nothing to stream (no garbler input labels, no tables): the evaluator needs nothing more from us and may
+        # answer at once, so the program runs here and the state leaves 'streaming' with this very reply.
+        assert self._delta is not None
+        self._producing = True
+        for _ in self._payloads(self._delta, self._evaluator_zero):
+            raise ProtocolError(AbortReason.INTERNAL, "a program with no AND gates streamed tables")
+        self._evaluator_zero = None
+        state, more = self._on_tables_sent(None)
+        return state, replies + more
 
     def produce(self) -> Iterator[bytes]:
         """The streamed frames: the garbler's input labels, then the garbled tables, garbled as they are pulled.

@@ -30,7 +30,9 @@ finish while its producer still holds its own last frames (the decoding informat
 ``produce()`` after the last table), so the driver waits for the producer to pull everything (up to
 ``idle_timeout_s``) before it queues the end of the outbox. On a local failure the abort frame jumps the queue
 (frames still waiting are dropped), is given ``abort_grace_s`` to leave, then the stream is closed. A lost stream
-(end of stream, a transport error) fails the session with ``connection lost``.
+(end of stream, a transport error) fails the session with ``connection lost`` — after a failed write only once the
+reader has had ``abort_grace_s`` to deliver a peer's abort frame that arrived before the stream closed, so the
+recorded reason is the peer's (``peer_shutdown``, say) rather than the closed stream.
 Cancelling the task that runs ``drive`` fails the session with ``cancelled``, sends the abort if it can and
 cancels the stream, so the peer ends too. A node that stops asks its sessions to end first through a
 ``Shutdown``: each fails with ``peer_shutdown`` — the abort frame tells the peer why — and ends as on any local
@@ -361,7 +363,12 @@ class _Driver:
             except StreamLost as exc:
                 if slotted:
                     self._slots.release()
-                await self._local_fail(AbortReason.CONNECTION_LOST, f"sending failed: {exc}")
+                # The peer may have ended the stream right after an abort frame that says why (a node shutting
+                # down, say): give the reader ``abort_grace_s`` to hand it over before calling the stream lost.
+                try:
+                    await asyncio.wait_for(self._ended.wait(), timeout=self.limits.abort_grace_s)
+                except TimeoutError:
+                    await self._local_fail(AbortReason.CONNECTION_LOST, f"sending failed: {exc}")
                 return
             if slotted:
                 self._slots.release()
