@@ -27,7 +27,6 @@ from jointstat.circuit.model import Party
 from jointstat.circuit.parameters import StatisticParameters
 from jointstat.cli import main
 from jointstat.problems import Problem
-from pydantic import Field
 
 from tests.test_stat_support import (
     SECRET,
@@ -46,8 +45,8 @@ CONFIGS = ROOT / "configs"
 
 
 class WeightedParameters(StatisticParameters):
-    name: Literal["test_weighted_total"] = Field(description="this test-only statistic")
-    weight: int = Field(description="the public weight of the garbler's total")
+    name: Literal["test_weighted_total"]
+    weight: int
 
 
 @register_statistic
