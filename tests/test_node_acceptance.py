@@ -267,6 +267,7 @@ def test_a_refusal_tells_the_peer_which_node_refused_and_keeps_the_details_for_t
     digest = decide(proposal(manifest_digest=OTHER_DIGEST), ready())
     assert isinstance(digest, Refuse)
     assert "here" not in digest.message and "the proposal" in digest.message
+    assert "jointstat manifest diff MINE THEIRS" in digest.message  # how to find the field that differs
     assert digest.local_message.startswith("the peer proposed manifest digest")
 
 

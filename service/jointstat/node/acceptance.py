@@ -164,7 +164,7 @@ def decide(proposal: Proposal, here: Situation) -> Decision:
     terms = replace(terms, digest=here.own_digest)
     if here.own_digest != proposal.manifest_digest:
         own, theirs = here.own_digest.hex()[:16], proposal.manifest_digest.hex()[:16]
-        compare = "the two manifests differ; compare them field by field (jointstat manifest digest FILE on each side)"
+        compare = "the two manifests differ; with both files at hand, jointstat manifest diff MINE THEIRS lists the fields"
         message = f"node {here.node}'s manifest of job {job.name} has digest {own}…, the proposal {theirs}…; {compare}"
         local = f"the peer proposed manifest digest {theirs}…, this node's manifest of job {job.name} has {own}…; {compare}"
         return Refuse("digest_mismatch", message, terms, local=local)
