@@ -377,3 +377,39 @@ def test_a_snapshot_taken_while_records_are_appended_holds_whole_records_only_an
     assert (
         verify_log(snapshots[-1], allow_open=True).records == 1 + 1 + 1 + 200
     )  # header, checkpoint, start, phases
+
+
+def test_a_sessions_privacy_budget_is_reserved_once_then_spent_or_returned_once(tmp_path: Path) -> None:
+    ka, kb = keys()
+    path = tmp_path / "a.log"
+    with SessionLog(path, ka, "alpha", clock=FakeClock()) as a:
+        for sid in ("s-1", "s-2"):
+            a.session_started(
+                sid,
+                job="shared-donors",
+                manifest_digest=MANIFEST,
+                role="garbler",
+                peer="beta",
+                peer_key=kb.public_key(),
+            )
+        with pytest.raises(AuditError, match="without an open reservation"):
+            a.privacy_budget("s-1", epsilon="1.5", action="spent")
+        a.privacy_budget("s-1", epsilon="1.5", action="reserved")
+        assert a.held_budget("s-1") == "1.5" and a.held_budget("s-2") is None
+        size = path.stat().st_size
+        with pytest.raises(AuditError, match="already reserved"):
+            a.privacy_budget("s-1", epsilon="1.5", action="reserved")
+        with pytest.raises(AuditError, match="another ε than reserved"):
+            a.privacy_budget("s-1", epsilon="2", action="spent")
+        with pytest.raises(AuditError, match="epsilon"):
+            a.privacy_budget("s-2", epsilon="0.1e1", action="reserved")  # exact decimal text only
+        assert path.stat().st_size == size
+        a.privacy_budget("s-1", epsilon="1.5", action="returned")
+        assert a.held_budget("s-1") is None
+        with pytest.raises(AuditError, match="without an open reservation"):
+            a.privacy_budget("s-1", epsilon="1.5", action="spent")
+        a.session_aborted("s-1", reason="peer_unreachable")
+        a.privacy_budget("s-2", epsilon="1/3", action="reserved")
+        a.session_aborted("s-2", reason="node_restarted")
+    report = verify_log(path)
+    assert report.ok

@@ -174,3 +174,64 @@ def test_a_public_key_can_be_given_in_the_base64_form_logs_use(tmp_path: Path) -
         == load_public_key(files.signing_public).public_bytes_raw()
     )
     assert load_public_key(tmp_path / "k.pem").public_bytes_raw() == key.public_key().public_bytes_raw()
+
+
+# -- the key-hashing secret (jointstat keys secret) ---------------------------------------------------------------
+
+
+def test_keys_secret_writes_an_owner_only_secret_and_prints_a_fingerprint_both_sides_can_compare(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    import hashlib
+    import hmac
+
+    from jointstat.cli import main
+
+    path = tmp_path / "shared" / "key-hashing.secret"
+    assert main(["keys", "secret", "--out", str(path)]) == 0
+    written = capsys.readouterr().out
+    secret = path.read_bytes()
+    assert len(secret) == 32
+    assert path.stat().st_mode & 0o777 == 0o600
+    assert path.parent.stat().st_mode & 0o777 == 0o700
+    # Independent computation with the standard library's HMAC (RFC 2104) over the documented label.
+    expected = hmac.new(secret, b"jointstat key-hashing secret fingerprint v1", hashlib.sha256).hexdigest()[
+        :16
+    ]
+    grouped = " ".join(expected[i : i + 4] for i in range(0, 16, 4))
+    assert f"fingerprint {grouped}" in written
+    assert secret.hex() not in written
+    # The peer's copy gives the same fingerprint; another secret a different one.
+    copy = tmp_path / "peer.secret"
+    copy.write_bytes(secret)
+    copy.chmod(0o600)
+    assert main(["keys", "secret", "--fingerprint", str(copy)]) == 0
+    assert grouped in capsys.readouterr().out
+    assert main(["keys", "secret", "--out", str(tmp_path / "other.secret")]) == 0
+    assert grouped not in capsys.readouterr().out
+
+
+def test_keys_secret_refuses_to_overwrite_and_to_read_a_secret_others_can_read(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from jointstat.cli import main
+
+    path = tmp_path / "k.secret"
+    assert main(["keys", "secret", "--out", str(path)]) == 0
+    before = path.read_bytes()
+    assert main(["keys", "secret", "--out", str(path)]) == 2
+    assert "--force" in capsys.readouterr().err
+    assert path.read_bytes() == before
+    path.chmod(0o644)
+    assert main(["keys", "secret", "--fingerprint", str(path)]) == 2
+    assert "chmod 600" in capsys.readouterr().err
+
+
+def test_keys_init_without_a_trial_ca_says_what_else_a_node_needs(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from jointstat.cli import main
+
+    assert main(["keys", "init", "--out", str(tmp_path / "k"), "--node", "alpha"]) == 0
+    out = capsys.readouterr().out
+    assert "TLS certificate" in out and "keys secret" in out and "--trial-ca" in out

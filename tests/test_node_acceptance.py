@@ -104,17 +104,31 @@ REFUSALS: list[tuple[str, dict[str, Any], dict[str, Any], bool, str]] = [
     ("job_not_configured", {}, {"peer": "harbour-tides"}, True, "with peer harbour-tides"),
     ("role_mismatch", {"role": Party.EVALUATOR}, {}, True, "both nodes are configured as the evaluator"),
     ("both_initiate", {"job": "gauge-count"}, {}, True, "initiates job gauge-count itself"),
-    ("outside_window", {}, {"now": SCHEDULED + timedelta(minutes=120)}, True, "outside the run window"),
+    (
+        "outside_window",
+        {},
+        {"now": SCHEDULED + timedelta(minutes=120)},
+        True,
+        "window of job rainfall-totals",
+    ),
     ("input_unavailable", {}, {"own_digest": None, "manifest_problem": "no such file"}, True, "no such file"),
-    ("digest_mismatch", {"manifest_digest": OTHER_DIGEST}, {}, True, "manifest digests differ"),
+    ("digest_mismatch", {"manifest_digest": OTHER_DIGEST}, {}, True, "the two manifests differ"),
     (
         "input_unavailable",
         {},
-        {"input_ready": False, "input_problem": "row 3: not a number"},
+        {"input_ready": False, "input_problem": "a.csv: cannot open the file"},
         True,
         "operator",
     ),
+    (
+        "input_invalid",
+        {},
+        {"input_ready": False, "input_problem": "row 3: not a number", "input_code": "input_invalid"},
+        True,
+        "breaks the manifest",
+    ),
     ("busy", {}, {"running": 2}, True, "already runs 2 sessions"),
+    ("budget_exhausted", {}, {"budget_problem": "ε 0.5 needed, 0.25 left"}, True, "0.25 left"),
 ]
 
 
@@ -162,7 +176,7 @@ def code(decision: Refuse | Prepare | Accept) -> str:
 
 def test_nothing_is_prepared_for_a_proposal_the_checks_before_preparing_refuse() -> None:
     unprepared = ready(own_digest=None, input_ready=False)
-    after_preparing = {"input_unavailable", "digest_mismatch", "busy"}
+    after_preparing = {"input_unavailable", "input_invalid", "digest_mismatch", "budget_exhausted", "busy"}
     rows = [row for row in REFUSALS if row[0] not in after_preparing]
     assert len(rows) == 16
     for reason, proposed, situation, _, _ in rows:
@@ -190,12 +204,15 @@ def test_a_node_that_began_stopping_while_it_prepared_refuses_without_recording(
     assert isinstance(after, Refuse) and after.code == "shutting_down" and after.terms is None
 
 
-def test_a_refusal_is_recorded_at_the_latest_scheduled_time_with_this_nodes_party() -> None:
-    month_ago = round((SCHEDULED - timedelta(days=31)).timestamp() * 1e6)  # the proposer's time is not used
-    refused = decide(proposal(scheduled_for_us=month_ago, attempt=2, role=Party.EVALUATOR), ready())
+def test_a_refusal_is_recorded_at_the_proposed_scheduled_time_with_this_nodes_party() -> None:
+    month_ago = SCHEDULED - timedelta(days=31)  # both nodes record the proposer's time, whatever it is
+    refused = decide(
+        proposal(scheduled_for_us=round(month_ago.timestamp() * 1e6), attempt=2, role=Party.EVALUATOR),
+        ready(),
+    )
     assert isinstance(refused, Refuse) and refused.terms is not None
     assert refused.terms.job is not None and refused.terms.job.name == "rainfall-totals"
-    assert (refused.terms.party, refused.terms.scheduled_for) == (Party.EVALUATOR, SCHEDULED)
+    assert (refused.terms.party, refused.terms.scheduled_for) == (Party.EVALUATOR, month_ago)
 
 
 def test_a_refusal_records_the_proposed_digest_until_this_node_has_compiled_its_own() -> None:
@@ -233,3 +250,42 @@ def test_a_proposal_carries_its_fields_across_the_wire_unchanged() -> None:
     for role in (Party.GARBLER, Party.EVALUATOR, None):
         sent = proposal(role=role, attempt=3, trigger="operator")
         assert Proposal.from_wire(sent.to_wire()) == sent
+
+
+def test_a_refusal_tells_the_peer_which_node_refused_and_keeps_the_details_for_this_node() -> None:
+    decision = decide(
+        proposal(),
+        ready(
+            input_ready=False,
+            input_problem="in.csv, row 3, column 'depth': not a number",
+            input_code="input_invalid",
+        ),
+    )
+    assert isinstance(decision, Refuse)
+    assert "row 3" not in decision.message and "saltmarsh-gauges" in decision.message
+    assert "row 3, column 'depth'" in decision.local_message
+    digest = decide(proposal(manifest_digest=OTHER_DIGEST), ready())
+    assert isinstance(digest, Refuse)
+    assert "here" not in digest.message and "the proposal" in digest.message
+    assert "jointstat manifest diff MINE THEIRS" in digest.message  # how to find the field that differs
+    assert digest.local_message.startswith("the peer proposed manifest digest")
+
+
+def test_an_outside_window_refusal_names_the_next_opening() -> None:
+    decision = decide(proposal(), ready(now=SCHEDULED + timedelta(minutes=120)))
+    assert isinstance(decision, Refuse)
+    assert "next opens at 2026-05-01T03:00:00+00:00" in decision.message
+
+
+def test_the_acceptor_records_the_proposed_scheduled_time_so_both_sides_agree() -> None:
+    later = SCHEDULED + timedelta(minutes=7)
+    p = proposal(scheduled_for_us=round(later.timestamp() * 1_000_000))
+    decision = decide(p, ready())
+    assert isinstance(decision, Accept)
+    assert decision.terms.scheduled_for == later
+
+
+def test_a_busy_refusal_counts_one_session_in_the_singular() -> None:
+    decision = decide(proposal(), ready(running=1, max_sessions=1))
+    assert isinstance(decision, Refuse) and decision.code == "busy"
+    assert "already runs 1 session;" in decision.message

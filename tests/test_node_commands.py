@@ -21,7 +21,7 @@ from jointstat.commands.ops import progress_line
 from jointstat.node.clock import ManualClock, SystemClock
 from jointstat.units import human_bytes
 
-from tests.test_node_daemon import BATHS, JOB, LIBRARY, make_pair, operator_run, running
+from tests.test_node_daemon import BATHS, DEMO, JOB, LIBRARY, make_pair, operator_run, running
 
 
 async def cli(*argv: str) -> int:
@@ -238,3 +238,160 @@ def test_node_run_takes_the_config_option_the_image_and_the_unit_pass() -> None:
 
     args = build_parser().parse_args(["node", "run", "--config", "/etc/jointstat/node.yaml"])
     assert args.config == "/etc/jointstat/node.yaml" and args.handler.__module__ == "jointstat.commands.node"
+
+
+# -- dry runs, stopped nodes, reasons (issue 13) -------------------------------------------------------------------
+
+
+def broken_csv(root: Path, line: int, value: str) -> Path:
+    """The demo's evaluator input with the visits of data row ``line`` replaced by ``value``."""
+    rows = (DEMO / "evaluator.csv").read_text(encoding="utf-8").splitlines()
+    email = rows[line].split(",")[0]
+    rows[line] = f"{email},{value}"
+    path = root / "evaluator-broken.csv"
+    path.write_text("\n".join(rows) + "\n", encoding="utf-8")
+    return path
+
+
+def test_jobs_check_reads_the_input_and_prints_digest_rows_secret_and_window(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    from jointstat.circuit.compile import compile_manifest
+    from jointstat.circuit.manifest import load_manifest
+
+    pair = make_pair(tmp_path)
+    outputs = {}
+    for name in (LIBRARY, BATHS):
+        assert main(["jobs", "check", JOB, "--config", str(pair.configs[name])]) == 0
+        outputs[name] = capsys.readouterr().out
+    digest = compile_manifest(load_manifest(DEMO / "manifest.yaml")).digest
+    rows = len((DEMO / "evaluator.csv").read_text(encoding="utf-8").strip().splitlines()) - 1
+    baths = outputs[BATHS]
+    assert f"digest {digest}" in baths and f"digest {digest}" in outputs[LIBRARY]
+    assert f"{rows} rows of a capacity of 32" in baths
+    assert "window    open until" in baths  # the demo job's weekly window of 10,080 minutes
+    assert "ok: the job would run" in baths
+    fingerprints = {
+        name: next(line for line in out.splitlines() if "key-hashing secret fingerprint" in line)
+        for name, out in outputs.items()
+    }
+    assert fingerprints[LIBRARY] == fingerprints[BATHS]  # the trial's shared secret, the same on both sides
+
+
+def test_jobs_check_names_file_row_and_column_of_bad_data_and_exits_non_zero(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    bad = broken_csv(tmp_path, 2, "many")
+    pair = make_pair(tmp_path, baths_job={"csv": bad})
+    assert main(["jobs", "check", JOB, "--config", str(pair.configs[BATHS])]) == 1
+    out = capsys.readouterr().out
+    assert f"problem   input_invalid: {bad}" in out
+    assert "line 3" in out and "'visits'" in out and "not an integer" in out  # data row 2 is file line 3
+    assert "many" not in out  # the value itself is never shown
+    assert "the job would not run" in out
+    # node check dry-runs every job the same way
+    assert main(["node", "check", "--config", str(pair.configs[BATHS])]) == 1
+    captured = capsys.readouterr()
+    assert "input_invalid" in captured.out and "1 job would not run" in captured.err
+
+
+def test_jobs_check_tells_a_missing_input_file_from_bad_data(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    pair = make_pair(tmp_path, baths_job={"csv": tmp_path / "not-there.csv"})
+    assert main(["jobs", "check", JOB, "--config", str(pair.configs[BATHS])]) == 1
+    assert "input_unavailable: " in capsys.readouterr().out
+
+
+async def test_bad_data_fails_as_input_invalid_on_the_initiator_and_is_not_retried(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    rows = (DEMO / "garbler.csv").read_text(encoding="utf-8").splitlines()
+    rows[3] = "   ," + rows[3].split(",")[1]  # an empty identifier
+    bad = tmp_path / "garbler-broken.csv"
+    bad.write_text("\n".join(rows) + "\n", encoding="utf-8")
+    pair = make_pair(tmp_path, library_job={"csv": bad, "attempts": 3, "backoff_seconds": 0})
+    async with running(pair):
+        assert await cli("jobs", "run", JOB, "--config", str(pair.configs[LIBRARY])) == 1
+        capsys.readouterr()
+    (run,) = pair.store_rows(LIBRARY)  # one attempt only: retrying cannot cure bad data
+    assert run.status == "failed" and run.reason is not None
+    assert run.reason.startswith(f"input_invalid: {bad}, line 4, column 'email'")
+
+
+async def test_the_acceptor_refuses_bad_data_as_input_invalid_and_keeps_the_details_to_itself(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    bad = broken_csv(tmp_path, 2, "-4")
+    pair = make_pair(tmp_path, baths_job={"csv": bad}, library_job={"attempts": 3, "backoff_seconds": 0})
+    async with running(pair):
+        assert await cli("jobs", "run", JOB, "--config", str(pair.configs[LIBRARY])) == 1
+        capsys.readouterr()
+    (mine,) = pair.store_rows(LIBRARY)
+    (theirs,) = pair.store_rows(BATHS)
+    assert (mine.status, theirs.status) == ("refused", "refused")
+    assert mine.reason is not None and theirs.reason is not None
+    assert mine.reason.startswith(f"input_invalid: node {BATHS} refused the run: node {BATHS} cannot run job")
+    assert "line 3" not in mine.reason  # the peer is not told where this node's data is wrong
+    assert theirs.reason.startswith(f"input_invalid: this node's input: {bad}, line 3, column 'visits'")
+    assert mine.scheduled_for == theirs.scheduled_for  # both sides record the same scheduled time
+
+
+async def test_history_and_sessions_read_a_stopped_nodes_store_and_log_and_show_takes_a_prefix(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    pair = make_pair(tmp_path)
+    async with running(pair):
+        assert await cli("jobs", "run", JOB, "--config", str(pair.configs[LIBRARY])) == 0
+        ran = capsys.readouterr().out
+    # both nodes are stopped now
+    assert "  matches = " in ran.split("completed;")[1]  # the values, not only the result file's path
+    config = str(pair.configs[BATHS])
+    assert await cli("jobs", "history", "--config", config) == 0
+    captured = capsys.readouterr()
+    assert "is not running: read from" in captured.err
+    assert "ATTEMPT" in captured.out.splitlines()[0] and "completed" in captured.out
+    assert " UTC" in captured.out and "peer_operator" in captured.out
+    assert await cli("sessions", "list", "--config", config) == 0
+    listing = capsys.readouterr().out
+    prefix = listing.splitlines()[1].split()[0]
+    assert len(prefix) == 12
+    assert await cli("sessions", "show", prefix, "--config", config) == 0
+    shown = capsys.readouterr().out
+    assert f"session {prefix}" in shown and "completed" in shown
+    for phase in ("handshake", "oblivious_transfer", "evaluation", "finish"):
+        assert phase in shown  # from the session log's phase records
+    assert await cli("sessions", "show", "ffffffffffff", "--config", config) == 2
+    assert "no session ffffffffffff" in capsys.readouterr().err
+
+
+async def test_a_run_whose_window_is_closed_is_refused_locally_with_the_next_opening(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    pair = make_pair(tmp_path, library_job={"cron": "0 3 1 1 *", "window_minutes": 1})
+    async with running(pair):
+        assert await cli("jobs", "run", JOB, "--config", str(pair.configs[LIBRARY])) == 2
+        err = capsys.readouterr().err
+    assert "is closed at" in err and "it next opens at" in err
+    assert pair.store_rows(LIBRARY) == [] and pair.store_rows(BATHS) == []  # nothing was proposed
+
+
+def test_the_progress_bar_fits_an_80_column_terminal() -> None:
+    from io import StringIO
+
+    from jointstat.commands.ops import bar_label, progress_columns, short_rate
+    from rich.console import Console
+    from rich.progress import Progress
+
+    out = StringIO()
+    console = Console(file=out, width=80, force_terminal=True, color_system=None)
+    with Progress(*progress_columns(), console=console, transient=False, auto_refresh=False) as bar:
+        task = bar.add_task(bar_label("ab" * 32, "oblivious_transfer"), total=123_456_789, rate="")
+        bar.update(task, completed=61_000_000, rate=short_rate(12_345_678.9))
+        bar.refresh()
+    import re
+
+    plain = re.sub(r"\x1b\[[0-9;?]*[A-Za-z]", "", out.getvalue())
+    line = [ln for ln in plain.replace("\r", "\n").splitlines() if "AND/s" in ln][-1]
+    assert "abababababab oblivious_tr" in line and "12.3M AND/s" in line and "49%" in line
+    assert len(line.rstrip()) <= 80

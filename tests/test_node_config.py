@@ -172,7 +172,9 @@ def test_example_configs_are_checked_ok_by_the_node_check_command(
             main(["node", "check", "--config", str(example_tree / "configs" / "nodes" / f"{name}.yaml")]) == 0
         )
         out = capsys.readouterr().out
-        assert out.startswith("ok: ") and f"node {name}" in out and out.count("\n") == 1
+        *dry_run, last = out.splitlines()  # each job's dry run, then the verdict on the whole config
+        assert last.startswith("ok: ") and f"node {name}" in last
+        assert dry_run[0].startswith("job rainfall-totals: ") and "  ok: the job would run" in dry_run
 
 
 # -- fields, defaults and paths ------------------------------------------------------------------------------------

@@ -266,7 +266,7 @@ async def test_the_evaluators_node_may_initiate_and_each_side_still_gets_exactly
     }
     assert listed[LIBRARY]["next_run"] is None and listed[BATHS]["next_run"] is not None
     # The baths' node proposed and connected; the library's node accepted and served — and garbled.
-    assert (snaps[BATHS]["trigger"], snaps[LIBRARY]["trigger"]) == ("operator", "peer")
+    assert (snaps[BATHS]["trigger"], snaps[LIBRARY]["trigger"]) == ("operator", "peer_operator")
     assert (snaps[LIBRARY]["role"], snaps[BATHS]["role"]) == ("garbler", "evaluator")
     assert snaps[LIBRARY]["bytes_sent"] > snaps[LIBRARY]["bytes_received"]  # the garbler sends the tables
     assert "garbling" in [p["phase"] for p in snaps[LIBRARY]["phases"]]
@@ -324,7 +324,12 @@ async def test_the_job_store_records_the_run_on_both_sides_with_its_trigger(tmp_
         history = (await nodes[LIBRARY].admin.history({"job": JOB}))["runs"]
     assert [(r["session"], r["status"], r["trigger"]) for r in history] == [(sid, "completed", "operator")]
     (theirs,) = pair.store_rows(BATHS)
-    assert (theirs.session_id, theirs.status, theirs.trigger, theirs.job) == (sid, "completed", "peer", JOB)
+    assert (theirs.session_id, theirs.status, theirs.trigger, theirs.job) == (
+        sid,
+        "completed",
+        "peer_operator",
+        JOB,
+    )
     assert theirs.result_path is not None and Path(theirs.result_path).is_file()
 
 
@@ -435,7 +440,7 @@ async def test_a_scheduled_job_fires_when_the_clock_reaches_its_time_and_both_no
     )
     assert (theirs.status, theirs.trigger, theirs.scheduled_for) == (
         "completed",
-        "peer",
+        "peer_schedule",
         DAY + timedelta(hours=3),
     )
     assert theirs.session_id == sid

@@ -78,9 +78,18 @@ def test_the_demo_runs_two_node_processes_prints_both_results_and_checks_the_log
     )
     out = done.stdout
     assert done.returncode == 0, out + done.stderr
-    assert f"{LIBRARY}  (garbler) matches 6" in out
-    assert f"{BATHS}    (evaluator) matches 6, sum 53, mean 8.832, above 3" in out
-    assert "both agree with the plain answer" in out
+    assert f"{LIBRARY} (garbler), in" in out and f"{BATHS} (evaluator), in" in out
+    assert out.count("matches = 6: members on both lists") == 2
+    assert "sum = 53: visits" in out
+    # 53/6 in fixed point with 8 fraction bits, rounded toward zero: floor(53/6 · 256) / 256 = 2261/256
+    assert "mean = 8.83203125: visits per shared member, 53/6 = 8.83333 exactly" in out
+    assert "rounded toward zero to a step of 2^-8" in out
+    assert "above = 3: shared members with at least 10 visits" in out
+    assert "each value equals the plain answer" in out
+    assert "DIFFERS" not in out
+    # the commands it suggests run as written from where it was started
+    hints = [line.split("(")[0].split() for line in out.splitlines() if "jobs history --config" in line]
+    assert hints and hints[0][0].endswith("jointstat")
     assert "exit code 0" in out and "both attest to the same transcript" in out
     assert out.count("chain and signatures verify") == 2
     assert "all checks passed" in out
@@ -147,12 +156,12 @@ def test_sigterm_during_a_session_aborts_and_logs_it_on_both_nodes_and_leaves_no
         assert row.status == "aborted" and row.result_path is None, name
         results = pair.data(name) / "results"
         assert not results.exists() or not any(results.rglob("*")), name
-    assert (
-        "stopped (1 session(s) were running and have been aborted)" in (tmp_path / f"{BATHS}.log").read_text()
-    )
+    assert "stopped (1 session was running and has been aborted)" in (tmp_path / f"{BATHS}.log").read_text()
     for name in procs:  # the nodes' own lines only: gRPC's internal log lines stay out unless asked for
         lines = (tmp_path / f"{name}.log").read_text().splitlines()
         assert lines and all(" jointstat." in line or line.startswith("node ") for line in lines), lines
+        stamped = [line for line in lines if " jointstat." in line]  # "2026-03-04 10:00:00,123 UTC INFO …"
+        assert stamped and all(line[23:28] == " UTC " for line in stamped), lines
     assert os.path.exists(pair.log(LIBRARY))
 
 

@@ -142,7 +142,7 @@ async def test_the_digest_refusal_names_both_digests_without_the_manifest(tmp_pa
     }
     assert started[LIBRARY] != started[BATHS]  # each log records the digest its node holds
     detail = session_records(pair.log(BATHS), sid)[-1]["body"]["detail"]
-    assert "digests differ" in detail and started[BATHS][:16] in detail
+    assert "manifests differ" in detail and started[BATHS][:16] in detail
 
 
 async def test_inside_the_window_at_the_accepting_node_the_same_run_is_accepted(tmp_path: Path) -> None:

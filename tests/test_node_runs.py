@@ -29,6 +29,7 @@ from jointstat.node.keys import PeerIdentity
 from jointstat.node.metrics import NodeMetrics
 from jointstat.node.progress import ABORTED, FAILED, REFUSED, SessionTracker
 from jointstat.node.runs import (
+    BudgetRecorder,
     LogRecorder,
     MetricsRecorder,
     Outcome,
@@ -37,6 +38,7 @@ from jointstat.node.runs import (
     RunRecorders,
     StoreRecorder,
 )
+from jointstat.node.spending import Budgets
 from jointstat.node.store import JobStore
 from jointstat.transport import pki
 
@@ -113,6 +115,7 @@ def bench(tmp_path: Path) -> Iterator[Bench]:
         progress=Progress(sessions, clock),
         metrics=MetricsRecorder(metrics, running, clock),
         log=LogRecorder(log),
+        budget=BudgetRecorder(Budgets([], store), store, log, clock),
     )
     try:
         yield Bench(recorders, store, log, tmp_path / "sessions.jsonl", metrics, sessions, peer)

@@ -20,6 +20,7 @@ from jointstat.circuit.plan import (
     padded_ots,
     parse_rate,
     plan,
+    round_trips,
 )
 from jointstat.cli import main
 from jointstat.garble.outputs import OutputDecoding, make_decoding
@@ -200,3 +201,49 @@ def test_the_plan_command_prints_json_or_a_table(capsys: pytest.CaptureFixture[s
     assert "assumes:" in out and "100Mbit/s" in out
     assert main(["plan", str(EXAMPLE), "--bandwidth", "quick"]) == 2
     assert "cannot read the bandwidth 'quick'" in capsys.readouterr().err
+
+
+def test_the_estimate_adds_ot_round_trips_and_start_up_to_the_tables() -> None:
+    compiled = compile_manifest(load_manifest(EXAMPLE))
+    speed = Speed(garble_and_per_s=1e6, evaluate_and_per_s=2e6, base_ot_seconds=0.05, ot_per_s=1e5)
+    near = plan(compiled, parse_rate("1Gbit/s"), speed, rtt=0.0)
+    far = plan(compiled, parse_rate("1Gbit/s"), speed, rtt=0.1)
+    ots = compiled.size().inputs[Party.EVALUATOR]
+    assert near["ot_seconds"] >= 0.05 + ots / 1e5  # base OTs plus the extension at the given rate
+    assert near["latency_seconds"] == 0.0
+    assert far["round_trips"] == near["round_trips"] == round_trips(ots)
+    assert far["latency_seconds"] == pytest.approx(0.1 * round_trips(ots))
+    parts = ("tables_seconds", "ot_seconds", "latency_seconds", "startup_seconds")
+    for figures in (near, far):
+        assert figures["est_seconds"] == pytest.approx(sum(figures[p] for p in parts), abs=1e-5)  # type: ignore[misc]
+
+
+def test_round_trips_count_the_handshakes_and_one_per_window_of_ot_batches() -> None:
+    # proposal: TCP + TLS 1.3 + the call = 3; session: TCP + TLS = 2, hellos 0.5, first tables, output labels,
+    # decoding and finish 0.5 each = 2; with OTs: base OT 1, then one per window of 4 batches of 65,536 OTs.
+    assert round_trips(0) == 3 + 2.5 + 2
+    assert round_trips(1) == 3 + 2.5 + 2 + 1 + 1
+    assert round_trips(4 * 65_536) == 3 + 2.5 + 2 + 1 + 1
+    assert round_trips(4 * 65_536 + 1) == 3 + 2.5 + 2 + 1 + 2
+
+
+def test_the_plan_command_reports_its_own_memory_and_warns_before_counting_a_huge_plan(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    assert main(["plan", str(EXAMPLE), "--rtt", "40ms"]) == 0
+    captured = capsys.readouterr()
+    assert "at 40ms round-trip time" in captured.out and "this plan used" in captured.out
+    assert captured.err == ""  # a small plan: no warning
+    big = tmp_path / "big.yaml"
+    text = (ROOT / "configs" / "rainfall-totals" / "manifest.yaml").read_text(
+        encoding="utf-8"
+    )  # a sum: no keys
+    capacities = {line.strip() for line in text.splitlines() if line.strip().startswith("capacity:")}
+    for line in capacities:
+        text = text.replace(line, "capacity: 131072")
+    big.write_text(text, encoding="utf-8")
+    assert main(["plan", str(big), "--json"]) in (0, 2)
+    captured = capsys.readouterr()
+    assert "tables of up to 131,072 rows a side; counting the program first" in captured.err
+    assert json.loads(captured.out.splitlines()[0])["planner_peak_memory_bytes"] > 0
+    assert main(["plan", str(EXAMPLE), "--rtt", "soon"]) == 2

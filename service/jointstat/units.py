@@ -17,3 +17,8 @@ def human_bytes(n: int | None) -> str:
             return f"{value:.0f} {unit}" if unit == "B" else f"{value:.1f} {unit}"
         value /= 1024
     raise AssertionError("unreachable")
+
+
+def plural(n: int, word: str) -> str:
+    """``1 session``, ``2 sessions``: a count and a noun that takes an ``s`` in the plural."""
+    return f"{n} {word}" if n == 1 else f"{n} {word}s"

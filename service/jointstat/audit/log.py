@@ -175,6 +175,15 @@ class SessionLog:
         with self._lock:
             return self._rules.open_sessions()
 
+    def held_budget(self, session_id: str) -> str | None:
+        """The ε an open session holds reserved of its job's privacy budget (its ``privacy_budget reserved``
+        record, not yet spent or returned), or None."""
+        with self._lock:
+            state = self._rules.sessions.get(session_id)
+            if state is None or state.outcome != "open" or state.budget != "reserved":
+                return None
+            return state.epsilon
+
     def snapshot(self) -> bytes:
         """The log's bytes as written so far, read under the writer's lock: whole records only, never a record
         half-way through its write (for verifying a log while its node runs). Blocks like an append."""
@@ -253,6 +262,10 @@ class SessionLog:
     def session_completed(self, session_id: str, *, duration_us: int) -> int:
         """Record that the session completed (after the peer's attestation)."""
         return self._typed(Kind.SESSION_COMPLETED, session_id, {"duration_us": duration_us})
+
+    def privacy_budget(self, session_id: str, *, epsilon: str, action: str) -> int:
+        """Record the session's spend of its job's privacy budget (``reserved``, then ``spent`` or ``returned``)."""
+        return self._typed(Kind.PRIVACY_BUDGET, session_id, {"epsilon": epsilon, "action": action})
 
     def session_aborted(
         self,

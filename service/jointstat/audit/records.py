@@ -21,7 +21,9 @@ The session rules (:class:`SessionRules`) are shared by the writer, which refuse
 which reports a log that does: a session starts once; phases may follow; one ``transcript`` record (the node's own
 digest and its signature over it); then one ``peer_attestation`` (the peer's signature over the same digest, from
 the finish frame); then ``session_completed``. ``session_aborted`` may end a session at any point before that.
-Nothing follows a session's end.
+Nothing follows a session's end. A session of a job with a privacy budget also records its spend, anywhere while it
+is open: ``privacy_budget`` ``reserved`` (once, before anything can be released), then at most one ``spent`` (the
+result was released) or ``returned`` (nothing was), of the same ε.
 
 The transcript statement both nodes sign (and send in their finish frames) is defined once, in
 ``jointstat.statements``, which the protocol and this package both use (``statements.sign_transcript`` and
@@ -75,6 +77,7 @@ class Kind(StrEnum):
     SESSION_COMPLETED = "session_completed"
     SESSION_ABORTED = "session_aborted"
     CHECKPOINT = "checkpoint"
+    PRIVACY_BUDGET = "privacy_budget"
 
 
 NodeName = Annotated[str, StringConstraints(pattern=NODE_NAME_PATTERN, max_length=63)]
@@ -166,6 +169,15 @@ class SessionAborted(RecordBody):
         return detail
 
 
+class PrivacyBudget(RecordBody):
+    """A session's spend of its job's privacy budget: ``reserved`` before anything can be released, then ``spent``
+    (the result was released: the ε counts for one period from the record's time) or ``returned`` (nothing was
+    released: the ε is given back). ``epsilon`` is the run's ε as exact decimal text (``0.5``), or ``p/q``."""
+
+    epsilon: Annotated[str, StringConstraints(pattern=r"^(\d{1,30}(\.\d{1,30})?|\d{1,30}/\d{1,30})$")]
+    action: Literal["reserved", "spent", "returned"]
+
+
 class Checkpoint(RecordBody):
     """The writer's signed statement of the chain so far: ``records`` before this one, ``head`` the SHA-256 of the
     last of them (the size and root of RFC 6962's signed tree head, for a hash chain), sessions open, and why."""
@@ -185,6 +197,7 @@ BODIES: dict[Kind, type[RecordBody]] = {
     Kind.SESSION_COMPLETED: SessionCompleted,
     Kind.SESSION_ABORTED: SessionAborted,
     Kind.CHECKPOINT: Checkpoint,
+    Kind.PRIVACY_BUDGET: PrivacyBudget,
 }
 
 
@@ -290,6 +303,8 @@ class SessionState:
     outcome: str = "open"
     reason: str | None = None
     aborted_by: str | None = None
+    budget: str | None = None  # the last privacy_budget action of the session, if any
+    epsilon: str | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -303,6 +318,8 @@ class SessionState:
             "outcome": self.outcome,
             "reason": self.reason,
             "aborted_by": self.aborted_by,
+            "privacy_budget": self.budget,
+            "epsilon": self.epsilon,
         }
 
 
@@ -403,6 +420,22 @@ class SessionRules:
                     )
             if commit:
                 state.peer_signature = body.signature
+        elif kind is Kind.PRIVACY_BUDGET:
+            assert isinstance(body, PrivacyBudget)
+            if body.action == "reserved":
+                if state.budget is not None:
+                    raise AuditError(f"session {session_id} already reserved its privacy budget")
+            else:
+                if state.budget != "reserved":
+                    raise AuditError(
+                        f"privacy_budget {body.action} for session {session_id} without an open reservation"
+                    )
+                if body.epsilon != state.epsilon:
+                    raise AuditError(
+                        f"session {session_id}: privacy_budget {body.action} of another ε than reserved"
+                    )
+            if commit:
+                state.budget, state.epsilon = body.action, body.epsilon
         elif kind is Kind.SESSION_COMPLETED:
             if state.peer_signature is None:
                 raise AuditError(f"session {session_id} completed without the peer's attestation")

@@ -13,12 +13,22 @@ from what the protocol sends (κ = 128, 16-byte labels):
 * evaluator → garbler: the IKNP matrix columns (16 bytes per OT, each batch padded to a multiple of 128 OTs),
   the labels of the garbler's outputs (16 bytes each) and the base-OT sender's point (32 bytes).
 
-The time estimate assumes garbling, transfer and evaluation overlap (tables stream while garbling goes on), so the
-table phase takes the longest of the three: AND gates at the measured garbling and evaluation speed passed in
-(``Speed``; the command measures this machine with a short real run), and the garbler's bytes at the given
-bandwidth; the OT and output bytes are added at the bandwidth. It leaves out network latency, OT-extension
-computation and the base OTs' public-key work (tens of milliseconds); both parties are assumed to be as fast as
-this machine.
+The time estimate has four parts, each reported on its own:
+
+* *tables*: garbling, transfer and evaluation overlap (tables stream while garbling goes on), so this phase takes
+  the longest of the three: AND gates at the measured garbling and evaluation speed passed in (``Speed``; the
+  command measures this machine with a short real run), and the tables' bytes at the given bandwidth;
+* *oblivious transfer*: the 128 base OTs' public-key work (measured: ``Speed.base_ot_seconds``) and the OT
+  extension at the measured rate (``Speed.ot_per_s``), plus the other bytes (OT, labels, decoding) at the bandwidth;
+* *round trips* at the given round-trip time: ``round_trips`` counts the waits of one run from the flow of
+  ``protocol.session`` and ``node.jobs`` — the proposal on a new connection (TCP handshake, TLS 1.3 handshake: one
+  round trip each, RFC 8446 §2; the call itself), the session's own connection (TCP and TLS again), the hellos
+  (half a round trip), the base OT (one), the OT extension (one per window of ``OT_WINDOW`` batches in flight), the
+  first tables (half), the garbler's output labels, the evaluator's decoding and the finish (half each);
+* *start-up*: compiling and counting the program, which each node does before it proposes or accepts (measured
+  here as this plan counted it).
+
+Both parties are assumed to be as fast as this machine; nothing else of the network (loss, congestion) is modelled.
 
 Several statistics (``statistics:``) run as one program in one session: the totals are the job's, and
 ``statistics`` breaks the AND gates (and the garbled-table bytes they cost) down by statistic, each counted where
@@ -34,6 +44,7 @@ figures, so it is refused before a night's run rather than killed by the kernel 
 
 from __future__ import annotations
 
+import math
 import re
 import time
 from dataclasses import dataclass
@@ -47,6 +58,8 @@ TABLE_BYTES_PER_AND = 32
 BASE_OT_COUNT = 128
 POINT_BYTES = 32
 OT_BATCH = 1 << 16  # OTs per extension batch (jointstat.ot.extension.DEFAULT_BATCH)
+OT_WINDOW = 4  # batches the receiver keeps in flight (jointstat.ot.extension.DEFAULT_WINDOW)
+HANDSHAKE_ROUND_TRIPS = 2  # a new connection: TCP (one round trip) and TLS 1.3 (one, RFC 8446 §2)
 DEFAULT_BANDWIDTH = "100Mbit/s"
 DEFAULT_MEMORY_LIMIT = (
     8 * 2**30
@@ -95,16 +108,32 @@ def padded_ots(count: int, batch: int = OT_BATCH) -> int:
 
 @dataclass(frozen=True)
 class Speed:
+    """This machine's measured speeds (``bench.garble.measured_speed``, ``bench.ot.measured_ot_speed``)."""
+
     garble_and_per_s: float
     evaluate_and_per_s: float
+    base_ot_seconds: float = 0.0  # 128 base OTs, both sides
+    ot_per_s: float = math.inf  # correlated OTs by extension, both sides
+
+
+def round_trips(ot_count: int) -> float:
+    """Round trips one run waits for, from proposal to finish (see the module docstring)."""
+    proposal = HANDSHAKE_ROUND_TRIPS + 1
+    session = HANDSHAKE_ROUND_TRIPS + 0.5  # connection, then the hellos cross
+    if ot_count:
+        batches = -(-padded_ots(ot_count) // OT_BATCH)
+        session += 1 + -(-batches // OT_WINDOW)  # base OT, then the extension's windows
+    session += 0.5 + 0.5 + 0.5 + 0.5  # first tables, output labels, decoding, finish
+    return proposal + session
 
 
 class LimitError(ValueError):
     """A job that would need more memory or time than the node allows; the message gives the figures."""
 
 
-def plan(compiled: CompiledStatistic, bandwidth: float, speed: Speed) -> dict[str, object]:
-    """The figures of ``jointstat plan`` (see the module docstring for what they assume)."""
+def plan(compiled: CompiledStatistic, bandwidth: float, speed: Speed, rtt: float = 0.0) -> dict[str, object]:
+    """The figures of ``jointstat plan`` at ``bandwidth`` (bytes/s) and round-trip time ``rtt`` (seconds); see the
+    module docstring for what they assume."""
     t0 = time.perf_counter()
     size = compiled.size()
     count_s = time.perf_counter() - t0
@@ -126,6 +155,9 @@ def plan(compiled: CompiledStatistic, bandwidth: float, speed: Speed) -> dict[st
         and_gates / speed.garble_and_per_s, and_gates / speed.evaluate_and_per_s, tables / bandwidth
     )
     rest = (g_to_e - tables + e_to_g) / bandwidth
+    ot_s = (speed.base_ot_seconds + ot_count / speed.ot_per_s if ot_count else 0.0) + rest
+    trips = round_trips(ot_count)
+    latency_s = trips * rtt
     return {
         "job": compiled.manifest.job.name,
         "statistic": compiled.kinds,
@@ -139,14 +171,21 @@ def plan(compiled: CompiledStatistic, bandwidth: float, speed: Speed) -> dict[st
         "bytes_garbler_to_evaluator": g_to_e,
         "bytes_evaluator_to_garbler": e_to_g,
         "memory_bytes": memory_bytes(compiled),
-        "est_seconds": round(table_phase + rest + count_s, 6),
+        "est_seconds": round(table_phase + ot_s + latency_s + count_s, 6),
+        "tables_seconds": round(table_phase, 6),
+        "ot_seconds": round(ot_s, 6),
+        "round_trips": trips,
+        "rtt_seconds": rtt,
+        "latency_seconds": round(latency_s, 6),
+        "startup_seconds": round(count_s, 6),
         "bandwidth_bytes_per_s": bandwidth,
         "garble_and_per_s": round(speed.garble_and_per_s),
         "evaluate_and_per_s": round(speed.evaluate_and_per_s),
         "count_seconds": round(count_s, 6),
         "assumes": (
-            "garbling, transfer and evaluation overlap; AND gates at this machine's measured speed on both sides;"
-            " bytes at the given bandwidth; no latency, OT-extension computation or base-OT public-key work"
+            "garbling, transfer and evaluation overlap; AND gates and OTs at this machine's measured speeds on both"
+            " sides; bytes at the given bandwidth; the counted round trips at the given round-trip time; start-up"
+            " is compiling and counting the program"
         ),
     }
 

@@ -11,3 +11,23 @@ fix; the CLI prints it without a traceback and exits with code 2.
 ``node`` (node check/run), ``ops`` (jobs …, sessions …, through a running node's admin API), ``bench`` (every
 ``jointstat bench …``), ``demo`` (the README's demonstration).
 """
+
+from __future__ import annotations
+
+import shutil
+import sys
+from pathlib import Path
+
+
+def jointstat_command() -> str:
+    """How the person at this terminal runs ``jointstat``, for hints printed to them: ``jointstat`` when that name
+    on their PATH is this installation, else the script's path relative to the working directory (from the
+    repository root ``.venv/bin/jointstat``), so every printed command works as written."""
+    script = Path(sys.executable).parent / "jointstat"
+    found = shutil.which("jointstat")
+    if found is not None and Path(found).resolve() == script.resolve():
+        return "jointstat"
+    try:
+        return str(script.relative_to(Path.cwd()))
+    except ValueError:
+        return str(script)

@@ -30,12 +30,14 @@ from __future__ import annotations
 
 import argparse
 import csv
+import math
 import os
 import shutil
 import signal
 import subprocess
 import sys
 import time
+from fractions import Fraction
 from pathlib import Path
 from typing import Any
 
@@ -218,6 +220,28 @@ def _shown(result: dict[str, Any]) -> str:
     return ", ".join(parts)
 
 
+def explain(name: str, got: Any, plain: dict[str, Any]) -> str:
+    """What one output of the demo's keyed join means, and how it compares with the plain answer."""
+    step = plain["mean_step"]
+    exponent = round(-math.log2(step)) if step else 0
+    if name == "matches":
+        return f"matches = {got}: members on both lists (e-mail addresses equal after case folding); exact"
+    if name == "sum":
+        return f"sum = {got}: visits to the baths by those shared members last quarter; exact"
+    if name == "mean":
+        exact = plain["mean_fraction"]
+        return (
+            f"mean = {got}: visits per shared member, {exact.numerator}/{exact.denominator} = {float(exact):.6g}"
+            f" exactly, computed in fixed point and rounded toward zero to a step of 2^-{exponent}"
+        )
+    if name == "above":
+        return (
+            f"above = {got}: shared members with at least {plain['threshold']:g} visits (the manifest's threshold;"
+            " 'above' counts a value equal to it); exact"
+        )
+    return f"{name} = {got}"
+
+
 def plain_answer(manifest_path: Path, garbler_csv: Path, evaluator_csv: Path) -> dict[str, Any]:
     """The keyed join computed in the clear from both invented files (what neither node could ever do)."""
     from jointstat.circuit.manifest import load_manifest
@@ -236,6 +260,7 @@ def plain_answer(manifest_path: Path, garbler_csv: Path, evaluator_csv: Path) ->
     with open(evaluator_csv, newline="", encoding="utf-8") as fh:
         evaluator = {norm(row[key]): float(row[value_col]) for row in csv.DictReader(fh)}
     shared = [evaluator[k] for k in evaluator if k in garbler]
+    total = sum(Fraction(str(v)) for v in shared)
     threshold = stat.threshold  # type: ignore[attr-defined]
     column = manifest.tables.evaluator.columns[
         [c.name for c in manifest.tables.evaluator.columns].index(value_col)
@@ -246,6 +271,8 @@ def plain_answer(manifest_path: Path, garbler_csv: Path, evaluator_csv: Path) ->
         "matches": len(shared),
         "sum": sum(shared),
         "mean": sum(shared) / len(shared) if shared else None,
+        "mean_fraction": total / len(shared) if shared else None,
+        "threshold": threshold,
         "above": sum(1 for v in shared if v >= threshold),
         "withheld": len(shared) < manifest.disclosure.min_count,
     }
@@ -354,14 +381,18 @@ def run_nodes(work: Path | None = None) -> int:
             result = _read_result(s["result_path"])
             problems = _agrees(result, plain)
             ok = ok and not problems
-            _say(f"       {name:<18} ({result['role']}) {_shown(result)}")
-            _say(f"       {'':<18} {Path(s['result_path']).relative_to(work)}")
+            _say(f"       {name} ({result['role']}), in {Path(s['result_path']).relative_to(work)}:")
+            if result.get("withheld"):
+                _say("         withheld: fewer matches than the disclosure rule's minimum")
+            for output, got in (result.get("outputs") or {}).items():
+                _say(f"         {explain(output, got, plain)}")
             for p in problems:
-                _say(f"       {'':<18} DIFFERS from the plain answer: {p}")
+                _say(f"         DIFFERS from the plain answer: {p}")
         _say(
             "                        "
-            + ("both agree with" if ok else "do NOT agree with")
-            + " the plain answer from the two CSV files (only a demo sees both)"
+            + ("each value equals" if ok else "the values do NOT match")
+            + " the plain answer from the two CSV files (only a demo sees both); the mean is the exact mean"
+            " rounded toward zero to its step"
         )
     except DemoError as exc:
         _say(f"  FAILED: {exc}")
@@ -388,7 +419,8 @@ def run_nodes(work: Path | None = None) -> int:
         comparison = compare_logs(logs[LIBRARY].read_bytes(), logs[BATHS].read_bytes())
         ok = ok and comparison.ok and bool(comparison.matched)
         verdict = "both attest to the same transcript" if comparison.ok else "; ".join(comparison.problems)
-        _say(f"  {'7. audit compare':<21} {len(comparison.matched)} session(s) in both logs; {verdict}")
+        n = len(comparison.matched)
+        _say(f"  {'7. audit compare':<21} {n} {'session' if n == 1 else 'sessions'} in both logs; {verdict}")
     if not ok:
         for name in procs:
             log = work / f"{name}.log"
@@ -399,12 +431,23 @@ def run_nodes(work: Path | None = None) -> int:
     _say()
     _say(f"  {'all checks passed' if ok else 'SOMETHING FAILED'} in {time.monotonic() - t_start:.1f} s.")
     if ok:
-        _say("  The files stay in place; for instance:")
-        _say(f"    jointstat audit compare {logs[LIBRARY]} {logs[BATHS]}")
-        _say(
-            f"    jointstat node run --config {work / (LIBRARY + '.yaml')}   (then: jointstat jobs list --config …)"
-        )
+        from jointstat.commands import jointstat_command
+
+        js = jointstat_command()
+        here = _relative(work)
+        _say("  The files stay in place; commands to try next, as written here:")
+        _say(f"    {js} audit compare {here / LIBRARY / 'sessions.jsonl'} {here / BATHS / 'sessions.jsonl'}")
+        _say(f"    {js} jobs history --config {here / (BATHS + '.yaml')}      (works on a stopped node)")
+        _say(f"    {js} jobs check {JOB} --config {here / (BATHS + '.yaml')}  (a dry run; no peer contacted)")
+        _say(f"    {js} node run --config {here / (LIBRARY + '.yaml')}       (the node, until Ctrl-C)")
     return 0 if ok else 1
+
+
+def _relative(path: Path) -> Path:
+    try:
+        return path.resolve().relative_to(Path.cwd().resolve())
+    except ValueError:
+        return path
 
 
 def _run(args: argparse.Namespace) -> int:

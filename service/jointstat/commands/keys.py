@@ -1,4 +1,5 @@
-"""``jointstat keys init``: a node's signing key, or for a local trial a private CA and keys for several nodes."""
+"""``jointstat keys init``: a node's signing key, or for a local trial a private CA and keys for several nodes;
+``jointstat keys secret``: a key-hashing secret to share with the peer organisation, and its fingerprint."""
 
 from __future__ import annotations
 
@@ -6,6 +7,7 @@ import argparse
 import json
 from datetime import UTC, datetime
 
+from jointstat.commands import jointstat_command
 from jointstat.problems import UserError
 
 
@@ -44,6 +46,44 @@ def _init(args: argparse.Namespace) -> int:
         print(f"  fingerprint {n.fingerprint} — give {n.signing_public.name} to the peer organisation")
     if keyset.ca_key is not None:
         print(f"trial CA only: {keyset.ca_key.name} can issue certificates; do not use it in production")
+        print(
+            f"next: a key-hashing secret both nodes share ({jointstat_command()} keys secret --out FILE, then copy it"
+            " to the other node owner-only), and a node config for each node (configs/nodes/README.md)"
+        )
+    else:
+        print(
+            "a node also needs a TLS certificate and key (tls.certificate, tls.private_key: from your PKI, with the"
+            " node's DNS name and both server and client use), the peer's certificate and signing public key, and,"
+            f" for identifier columns, the shared key-hashing secret ({jointstat_command()} keys secret); for a trial on one"
+            " machine use --trial-ca --nodes A,B instead; see the README's 'Setting up two nodes'"
+        )
+    return 0
+
+
+def _secret(args: argparse.Namespace) -> int:
+    from jointstat.node.keys import key_secret_fingerprint, read_key_secret, write_key_secret
+    from jointstat.node.secrets import SecretFileError
+
+    try:
+        if args.fingerprint is not None:
+            if args.out is not None:
+                raise UserError("give either --out FILE (make a secret) or --fingerprint FILE (check one)")
+            fp = key_secret_fingerprint(read_key_secret(args.fingerprint))
+            print(f"{args.fingerprint}: fingerprint {fp}")
+            return 0
+        if args.out is None:
+            raise UserError(
+                "give --out FILE to make a secret, or --fingerprint FILE to show an existing one's"
+            )
+        fp = write_key_secret(args.out, force=args.force)
+    except SecretFileError as exc:
+        raise UserError(str(exc)) from None
+    print(f"wrote {args.out} (owner-only): fingerprint {fp}")
+    print(
+        "copy the file to the peer organisation by a channel you trust (never e-mail); there, keep it owner-only"
+        f" (chmod 600) and run {jointstat_command()} keys secret --fingerprint FILE: both operators must read the same"
+        " fingerprint"
+    )
     return 0
 
 
@@ -63,3 +103,15 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     init.add_argument("--force", action="store_true", help="replace existing files")
     init.add_argument("--json", action="store_true", help="print one JSON object")
     init.set_defaults(handler=_init)
+    secret = which.add_parser(
+        "secret",
+        help="write a fresh key-hashing secret owner-only and print its fingerprint, or show a secret's fingerprint",
+    )
+    secret.add_argument(
+        "--out", metavar="FILE", help="the file to write (its directory made 0700 if missing)"
+    )
+    secret.add_argument(
+        "--fingerprint", metavar="FILE", help="print the fingerprint of an existing secret file"
+    )
+    secret.add_argument("--force", action="store_true", help="replace an existing file")
+    secret.set_defaults(handler=_secret)

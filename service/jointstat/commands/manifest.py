@@ -170,18 +170,47 @@ def _reference(args: argparse.Namespace) -> int:
     return 0
 
 
+BIG_PLAN_ROWS = (
+    1 << 16
+)  # rows a side above which counting the program itself takes noticeable time and memory
+
+
 def _plan(args: argparse.Namespace) -> int:
+    import dataclasses
+    import time
+
+    started = time.perf_counter()
     from jointstat.bench.garble import measured_speed
+    from jointstat.bench.ot import measured_ot_speed
+    from jointstat.bench.report import peak_rss_mib
     from jointstat.circuit.plan import LimitError, check_limits, parse_rate, plan
+    from jointstat.harness.link.settings import parse_duration
 
     try:
         rate = parse_rate(args.bandwidth)
+        rtt = parse_duration(args.rtt)
     except ValueError as exc:
         raise UserError(str(exc)) from None
+    from jointstat.circuit.compile import compile_manifest
     from jointstat.circuit.manifest import key_matching
 
-    compiled = _compile(args.file)
-    figures = plan(compiled, rate, measured_speed())
+    manifest = _load(args.file)
+    rows = max(manifest.tables.garbler.capacity, manifest.tables.evaluator.capacity)
+    if rows > BIG_PLAN_ROWS:
+        print(
+            f"jointstat plan: tables of up to {rows:,} rows a side; counting the program first takes time and memory"
+            " in proportion (seconds to minutes, up to a few GiB); the figures below include what it took",
+            file=sys.stderr,
+            flush=True,
+        )
+    compiled = compile_manifest(manifest)
+    base_ot_seconds, ot_per_s = measured_ot_speed()
+    speed = dataclasses.replace(measured_speed(), base_ot_seconds=base_ot_seconds, ot_per_s=ot_per_s)
+    figures = plan(compiled, rate, speed, rtt)
+    figures["planner_seconds"] = round(
+        time.perf_counter() - started, 6
+    )  # counting, measuring speeds, all of it
+    figures["planner_peak_memory_bytes"] = round(peak_rss_mib() * 2**20)
     matching = key_matching(compiled.manifest)
     figures["expected_false_matches"] = None if matching is None else matching.expected
     figures["max_false_matches"] = compiled.manifest.matching.max_false_matches
@@ -210,7 +239,18 @@ def _plan(args: argparse.Namespace) -> int:
         ("evaluator → garbler", _size(int(figures["bytes_evaluator_to_garbler"]))),  # type: ignore[arg-type]
         ("memory per party", _size(int(figures["memory_bytes"]))),  # type: ignore[arg-type]
         ("garbling speed here", f"{figures['garble_and_per_s']:,} AND/s"),
-        ("estimated time", f"{figures['est_seconds']:,} s"),
+        ("estimated time", f"{figures['est_seconds']:,.3f} s, of which"),
+        ("  tables", f"{figures['tables_seconds']:,.3f} s (garbling, transfer and evaluation overlapping)"),
+        ("  oblivious transfer", f"{figures['ot_seconds']:,.3f} s (base OTs, extension, their bytes)"),
+        (
+            "  round trips",
+            f"{figures['latency_seconds']:,.3f} s ({figures['round_trips']:g} at {args.rtt} round-trip time)",
+        ),
+        ("  start-up", f"{figures['startup_seconds']:,.3f} s (compiling and counting the program)"),
+        (
+            "this plan used",
+            f"{figures['planner_seconds']:,.2f} s and {_size(int(figures['planner_peak_memory_bytes']))} of memory (peak)",
+        ),  # type: ignore[arg-type]
         ("privacy ε per run", str(figures["epsilon"])),
     ]
     width = max(len(k) for k, _ in rows)
@@ -273,5 +313,10 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     plan = sub.add_parser("plan", help="gate counts, traffic and time estimate of a manifest's job")
     plan.add_argument("file")
     plan.add_argument("--bandwidth", default="100Mbit/s", help="link rate, e.g. 100Mbit/s, 1Gbit/s, 50MB/s")
+    plan.add_argument(
+        "--rtt",
+        default="0ms",
+        help="round-trip time between the two nodes, e.g. 40ms, 0.2s (default 0ms: same host)",
+    )
     plan.add_argument("--json", action="store_true", help="print one JSON object")
     plan.set_defaults(handler=_plan)

@@ -1,4 +1,5 @@
-"""``jointstat node check`` validates a node config and the files it names; ``jointstat node run`` runs the node.
+"""``jointstat node check`` validates a node config and the files it names, then dry-runs every job (``jobs check``:
+manifest, secret, input; no peer is contacted); ``jointstat node run`` runs the node.
 
 ``node run`` performs the same checks first and refuses to start on any problem (exit code 1); it then runs the
 daemon (``jointstat.node.daemon``) until SIGTERM or SIGINT, aborts and logs running sessions, and exits 0. gRPC's
@@ -29,13 +30,27 @@ def _check(args: argparse.Namespace) -> int:
         for problem in problems:
             print(f"{config.source}: {problem}", file=sys.stderr)
         return 1
+    from datetime import UTC, datetime
+
+    from jointstat.node.dryrun import check_job
+
+    failed = 0
+    now = datetime.now(UTC)
+    for job in config.jobs:
+        check = check_job(config, job, now)
+        for line in check.lines():
+            print(line)
+        failed += not check.ok
+    if failed:
+        print(f"{config.source}: {_plural(failed, 'job')} would not run", file=sys.stderr)
+        return 1
     peers = ", ".join(p.name for p in config.peers)
     jobs = ", ".join(f"{j.name} as {j.role}" + (", initiates" if j.initiate else "") for j in config.jobs)
     print(
         f"ok: {config.source}: node {config.node.name} listens on {config.node.listen}, admin {config.node.admin}; "
         f"{_plural(len(config.peers), 'peer')} ({peers}); {_plural(len(config.jobs), 'job')}"
         + (f" ({jobs})" if jobs else "")
-        + "; certificates current, secret files owner-only"
+        + "; certificates current, secret files owner-only, every job's input read"
     )
     return 0
 

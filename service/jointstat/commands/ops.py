@@ -1,8 +1,11 @@
 """``jointstat jobs …`` and ``jointstat sessions …``: the operator's commands, talking to a running node's admin API.
 
 Each command reads the node config given by ``--config`` (default ``$JOINTSTAT_CONFIG``, else
-``/etc/jointstat/node.yaml``, the path of the container image and the systemd unit) only to find the node's admin
-address, and calls the admin API there (``node.admin``). ``jobs run NAME`` asks the node to run an initiated job
+``/etc/jointstat/node.yaml``, the path of the container image and the systemd unit) to find the node's admin
+address, and calls the admin API there (``node.admin``). When no node answers there, ``jobs history``, ``sessions
+list`` and ``sessions show`` read the stopped node's job store and session log directly (``node.offline``) and say
+so on standard error. ``sessions show`` takes the 12 characters ``sessions list`` prints. Every time is shown with
+its zone (UTC, as the node records it). ``jobs run`` prints this node's result values when the run completes. ``jobs run NAME`` asks the node to run an initiated job
 now and follows its session; ``sessions show ID`` shows one session and, for a running session on a terminal,
 follows it with a progress bar (AND gates done of total, bytes, rate, time left); when the output is not a
 terminal it prints plain lines instead. ``--json`` prints the admin API's answer as it is, and nothing else (``jobs
@@ -19,6 +22,7 @@ import json
 import os
 import sys
 import time
+from datetime import UTC, datetime
 from typing import Any
 
 from jointstat.problems import UserError
@@ -41,12 +45,45 @@ def _client(args: argparse.Namespace) -> Any:
     return AdminClient(str(config.node.admin))
 
 
+def _records(args: argparse.Namespace) -> Any:
+    """The running node's admin client, or — when no node answers — the stopped node's files (``node.offline``)."""
+    from jointstat.node.admin import AdminClient, AdminError
+    from jointstat.node.config import ConfigError, load_node_config
+    from jointstat.node.offline import OfflineError, StoppedNode
+
+    path = args.config or os.environ.get("JOINTSTAT_CONFIG") or DEFAULT_CONFIG
+    try:
+        config = load_node_config(path)
+    except ConfigError as exc:
+        raise UserError(str(exc)) from None
+    client = AdminClient(str(config.node.admin), timeout=5.0)
+    try:
+        client.status()
+        return client
+    except AdminError as exc:
+        client.close()
+        import grpc
+
+        if exc.code not in (grpc.StatusCode.UNAVAILABLE, grpc.StatusCode.DEADLINE_EXCEEDED):
+            raise UserError(str(exc)) from None
+    try:
+        stopped = StoppedNode(config)
+    except OfflineError as exc:
+        raise UserError(f"node {config.node.name} is not running, and {exc}") from None
+    print(
+        f"(node {config.node.name} is not running: read from {config.node.job_store} and {config.node.session_log})",
+        file=sys.stderr,
+    )
+    return stopped
+
+
 def _call(fn: Any, *args: Any) -> Any:
     from jointstat.node.admin import AdminError
+    from jointstat.node.offline import OfflineError
 
     try:
         return fn(*args)
-    except AdminError as exc:
+    except (AdminError, OfflineError) as exc:
         raise UserError(str(exc)) from None
 
 
@@ -57,10 +94,16 @@ def _short(text: str | None, width: int) -> str:
 
 
 def _when(text: str | None) -> str:
-    """An ISO time as YYYY-MM-DD HH:MM:SS (UTC as the node reports it)."""
+    """An ISO time as YYYY-MM-DD HH:MM:SS UTC (the node reports times with their offset)."""
     if not text:
         return "-"
-    return text.replace("T", " ")[:19]
+    try:
+        t = datetime.fromisoformat(text)
+    except ValueError:
+        return text
+    if t.tzinfo is None:
+        return text.replace("T", " ")[:19] + " (zone unknown)"
+    return t.astimezone(UTC).strftime("%Y-%m-%d %H:%M:%S UTC")
 
 
 def _table(rows: list[list[str]], header: list[str]) -> None:
@@ -88,6 +131,37 @@ def progress_line(s: dict[str, Any]) -> str:
     return ", ".join(p for p in parts if p)
 
 
+BAR_LABEL = 26  # characters: the session's 12, a space and its phase or status (shortened to fit)
+
+
+def bar_label(session_id: str, phase: str | None) -> str:
+    return _short(f"{session_id[:12]} {phase or '-'}", BAR_LABEL).ljust(BAR_LABEL)
+
+
+def short_rate(rate: float | None) -> str:
+    """AND gates per second in at most 11 characters (``12.3M AND/s``)."""
+    if not rate:
+        return ""
+    for factor, unit in ((1e9, "G"), (1e6, "M"), (1e3, "k")):
+        if rate >= factor:
+            return f"{rate / factor:.1f}{unit} AND/s"
+    return f"{rate:.0f} AND/s"
+
+
+def progress_columns() -> tuple[Any, ...]:
+    """The progress bar's columns: label, bar, per cent, rate, time left — 74 characters, so an 80-column terminal
+    shows it whole (bytes and exact gate counts are in ``sessions show`` once it ends)."""
+    from rich.progress import BarColumn, TaskProgressColumn, TextColumn, TimeRemainingColumn
+
+    return (
+        TextColumn("{task.description}"),
+        BarColumn(bar_width=20),
+        TaskProgressColumn(),
+        TextColumn("{task.fields[rate]:>11}"),
+        TimeRemainingColumn(),
+    )
+
+
 def follow(
     client: Any, session_id: str, *, tty: bool, prefix: str = "", quiet: bool = False
 ) -> dict[str, Any]:
@@ -102,29 +176,20 @@ def follow(
             snap = _call(client.session, session_id)
         return snap
     if tty:
-        from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+        from rich.progress import Progress
 
-        columns = (
-            TextColumn("{task.description}"),
-            BarColumn(),
-            TextColumn("{task.fields[gates]}"),
-            TextColumn("{task.fields[traffic]}"),
-            TextColumn("{task.fields[rate]}"),
-            TimeRemainingColumn(),
-        )
+        columns = progress_columns()
         with Progress(*columns, transient=False) as bar:
-            task = bar.add_task(session_id[:12], total=None, gates="", traffic="", rate="")
+            task = bar.add_task(session_id[:12], total=None, rate="")
             while True:
                 total = snap.get("and_gates_total")
                 rate = snap.get("and_gates_per_s")
                 bar.update(
                     task,
-                    description=f"{session_id[:12]} {snap.get('phase') or snap.get('status')}",
+                    description=bar_label(session_id, snap.get("phase") or snap.get("status")),
                     total=total,
                     completed=snap.get("and_gates_done") or 0,
-                    gates=f"{snap.get('and_gates_done') or 0:,}/{total:,} AND" if total else "",
-                    traffic=f"↑{human_bytes(snap.get('bytes_sent'))} ↓{human_bytes(snap.get('bytes_received'))}",
-                    rate=f"{rate:,.0f} AND/s" if rate else "",
+                    rate=short_rate(rate),
                 )
                 if snap.get("status") in ENDED:
                     break
@@ -161,7 +226,7 @@ def _print_session(s: dict[str, Any]) -> None:
                 f"  received {human_bytes(p['bytes_received']):>10}"
             )
     if not s.get("live", True):
-        print("  (from the job store; the node has no live record of this session since it restarted)")
+        print("  (from the job store and the session log; the node holds no live record of this session)")
 
 
 # -- handlers ----------------------------------------------------------------------------------------------------------
@@ -214,14 +279,38 @@ def _jobs_run(args: argparse.Namespace) -> int:
         print(json.dumps(snap, indent=2))
     elif snap.get("status") == "completed":
         print(f"job {args.name}: completed; this node's result is in {snap.get('result_path')}")
+        for line in result_lines(snap.get("result_path")):
+            print(f"  {line}")
     else:
         print(f"job {args.name}: {snap.get('status')} ({snap.get('reason') or 'no reason given'})")
-        print(f"  later attempts, if the job's retries allow: jointstat jobs history {args.name}")
+        from jointstat.commands import jointstat_command
+
+        config = f" --config {args.config}" if args.config else ""
+        print(
+            f"  the reasons in full, and later attempts: {jointstat_command()} jobs history {args.name}{config}"
+        )
     return 0 if snap.get("status") == "completed" else 1
 
 
+def result_lines(path: str | None) -> list[str]:
+    """This node's result values, one line each, from its result file (what ``jobs run`` prints at the end)."""
+    from jointstat.node.results import ResultFileError, read_result
+
+    if not path:
+        return []
+    try:
+        record = read_result(path)
+    except ResultFileError as exc:
+        return [f"(cannot read the result file: {exc})"]
+    if record.withheld is None:
+        return ["this node receives no output of this job (only the peer does)"]
+    if record.withheld:
+        return ["withheld: the manifest's disclosure rule held the values back (too few contributing rows)"]
+    return [f"{name} = {value}" for name, value in record.outputs.items()]
+
+
 def _jobs_history(args: argparse.Namespace) -> int:
-    with _client(args) as client:
+    with _records(args) as client:
         runs = _call(client.history, args.name, args.limit)
     if args.json:
         print(json.dumps(runs, indent=2))
@@ -239,19 +328,68 @@ def _jobs_history(args: argparse.Namespace) -> int:
             r["trigger"],
             r["status"],
             _when(r["finished_at"]),
-            _short(r["session"], 12),
-            _short(r["reason"], 60),
+            (r["session"] or "-")[:12],
         ]
         for r in runs
     ]
-    _table(
-        rows, ["RUN", "JOB", "SCHEDULED", "TRY", "ROLE", "TRIGGER", "STATUS", "FINISHED", "SESSION", "REASON"]
-    )
+    header = ["RUN", "JOB", "SCHEDULED", "ATTEMPT", "ROLE", "TRIGGER", "STATUS", "FINISHED", "SESSION"]
+    _table(rows, header)
+    reasons = [(r["id"], r["reason"]) for r in runs if r.get("reason")]
+    if reasons:
+        print()
+        for run_id, reason in reasons:
+            print(f"run {run_id}: {reason}")
+    return 0
+
+
+def _jobs_check(args: argparse.Namespace) -> int:
+    from jointstat.node.config import ConfigError, load_node_config
+    from jointstat.node.dryrun import check_job
+
+    path = args.config or os.environ.get("JOINTSTAT_CONFIG") or DEFAULT_CONFIG
+    try:
+        config = load_node_config(path)
+    except ConfigError as exc:
+        raise UserError(str(exc)) from None
+    try:
+        job = config.job(args.name)
+    except KeyError:
+        known = ", ".join(j.name for j in config.jobs) or "none"
+        raise UserError(f"{config.source}: no job named {args.name!r} (jobs: {known})") from None
+    check = check_job(config, job, datetime.now(UTC))
+    for line in check.lines():
+        print(line)
+    return 0 if check.ok else 1
+
+
+def _jobs_budget(args: argparse.Namespace) -> int:
+    with _records(args) as client:
+        answer = _call(client.budgets, args.name)
+    if args.json:
+        print(json.dumps(answer, indent=2))
+        return 0
+    budgets = answer["budgets"]
+    if not budgets:
+        print("no job has a privacy budget on this node")
+        return 0
+    print(f"privacy budgets at {_when(answer['now'])}")
+    for b in budgets:
+        print(f"job {b['job']}: ε {b['epsilon']} per {b['period_days']} days (rolling)")
+        print(f"  spent      {b['spent']} (of which reserved by runs in progress: {b['reserved']})")
+        print(f"  remaining  {b['remaining']}")
+        if b.get("run_epsilon") is not None:
+            fits = b.get("next_run_fits_at")
+            when = "now" if fits == answer["now"] else (_when(fits) if fits and fits[0].isdigit() else fits)
+            print(
+                f"  a run      spends ε {b['run_epsilon']}; the next one fits: {when or 'when runs in progress end'}"
+            )
+        for f in b["frees"]:
+            print(f"  frees      ε {f['epsilon']} at {_when(f['at'])} (run {f['run'][:12]})")
     return 0
 
 
 def _sessions_list(args: argparse.Namespace) -> int:
-    with _client(args) as client:
+    with _records(args) as client:
         sessions = _call(client.sessions, args.limit)
     if args.json:
         print(json.dumps(sessions, indent=2))
@@ -261,7 +399,7 @@ def _sessions_list(args: argparse.Namespace) -> int:
         return 0
     rows = [
         [
-            s["session"],
+            s["session"][:12],
             s["job"],
             s.get("role") or "-",
             s.get("peer") or "-",
@@ -277,12 +415,12 @@ def _sessions_list(args: argparse.Namespace) -> int:
 
 
 def _sessions_show(args: argparse.Namespace) -> int:
-    with _client(args) as client:
+    with _records(args) as client:
         snap = _call(client.session, args.id)
-        running = snap.get("status") not in ENDED
+        running = snap.get("status") not in ENDED and snap.get("live", True)
         tty = sys.stdout.isatty()
         if running and not args.json and (tty or args.follow):
-            snap = follow(client, args.id, tty=tty)
+            snap = follow(client, snap["session"], tty=tty)
     if args.json:
         print(json.dumps(snap, indent=2))
     else:
@@ -310,7 +448,29 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--detach", action="store_true", help="return once the run is requested")
     _config_option(p)
     p.set_defaults(handler=_jobs_run)
-    p = which.add_parser("history", help="recorded runs, most recent first")
+    p = which.add_parser(
+        "check",
+        help="dry run, without the peer: read and encode the job's input against its manifest, check the secret,"
+        " print the manifest digest, rows against capacity and the window; exit 0 if the job would run",
+    )
+    p.add_argument("name", metavar="NAME", help="the job's name")
+    p.add_argument(
+        "--config",
+        metavar="FILE",
+        help=f"the node's config (default $JOINTSTAT_CONFIG, else {DEFAULT_CONFIG})",
+    )
+    p.set_defaults(handler=_jobs_check)
+    p = which.add_parser(
+        "budget",
+        help="each job's privacy budget: ε spent and remaining in its rolling period, and when spends free up"
+        " (also of a stopped node)",
+    )
+    p.add_argument("name", metavar="NAME", nargs="?", help="only this job")
+    _config_option(p)
+    p.set_defaults(handler=_jobs_budget)
+    p = which.add_parser(
+        "history", help="recorded runs, most recent first, with each reason in full (also of a stopped node)"
+    )
     p.add_argument("name", metavar="NAME", nargs="?", help="only this job")
     p.add_argument("--limit", type=int, default=20, help="how many runs (default 20)")
     _config_option(p)
@@ -323,7 +483,9 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     _config_option(p)
     p.set_defaults(handler=_sessions_list)
     p = which.add_parser("show", help="one session; follows a running one with a progress bar on a terminal")
-    p.add_argument("id", metavar="ID", help="the session id")
+    p.add_argument(
+        "id", metavar="ID", help="the session id, or its first characters (12 as sessions list shows)"
+    )
     p.add_argument(
         "--follow", action="store_true", help="follow a running session also when not on a terminal"
     )

@@ -9,8 +9,10 @@ so far — and answers one of three things; it reads no clock, no file and no so
 
 - ``Refuse(code, message, terms)``: refuse with a reason (the wire's refusal reasons in snake case). With ``terms``
   the refusal is recorded before the answer goes out — logged (``session_started`` then ``session_aborted``) and
-  stored (``refused``) as a run of ``terms.job`` at ``terms.scheduled_for``, this node playing ``terms.party``,
-  with the manifest digest ``terms.digest``; without, it is only answered (nothing of it is trustworthy enough to
+  stored (``refused``) as a run of ``terms.job`` at ``terms.scheduled_for`` (the proposal's scheduled time, so
+  both nodes record the same one), this node playing ``terms.party``,
+  with the manifest digest ``terms.digest``; ``message`` is what the peer's operator reads (it names this node),
+  ``local_message`` what this node's own store keeps (worded from this node's side, with the details); without, it is only answered (nothing of it is trustworthy enough to
   record: the node is stopping, the protocol version differs, the fields are malformed, the session id was used).
 - ``Prepare(step, job)``: the checks so far pass, but the next one needs work: compile the job's manifest
   (``step == "manifest"``) or read and encode this node's input (``"input"``); ask again with what was found.
@@ -21,9 +23,12 @@ version differs (``protocol_version``); a field is malformed, or the session id 
 no job of that name is configured for that peer (``job_not_configured``); both nodes name the same manifest party
 (``role_mismatch``); this node initiates the job itself (``both_initiate``: with both nodes initiating, every
 scheduled time would run twice); this node's clock is outside the job's window ``[T, T + window)`` for its latest
-scheduled time T (``outside_window``). Then, once the manifest is compiled: it cannot be (``input_unavailable``), or
-its digest differs from the proposed one (``digest_mismatch``). Then, once the input is read: it cannot be
-(``input_unavailable``, with a fixed message: the operator of this node has the details, the peer does not). Last,
+scheduled time T (``outside_window``, with the next opening). Then, once the manifest is compiled: it cannot be
+(``input_unavailable``), or its digest differs from the proposed one (``digest_mismatch``), or the run's ε (the
+compiled manifest's) does not fit in what is left of the job's privacy budget (``budget_exhausted``, with when enough
+frees up). Then, once the input is
+read: it cannot be (``input_unavailable``: the source cannot be opened; ``input_invalid``: the records break the
+manifest; the answer says only which, the details stay with this node's operator). Last,
 the node already runs ``max_sessions`` sessions (``busy``). Asked again after preparing, ``decide`` checks again from
 the top with the same arrival time, so a node that began stopping meanwhile refuses as ``shutting_down``.
 """
@@ -38,8 +43,12 @@ from typing import Literal
 from jointstat.circuit.model import Party
 from jointstat.node.config import JOB_NAME, JobConfig
 from jointstat.transport.proposals import PROTOCOL_VERSION, Proposal
+from jointstat.units import plural
 
-TRIGGERS = ("schedule", "operator")  # what may start a run on the proposing node
+TRIGGERS = (
+    "schedule",
+    "operator",
+)  # what may start a run on the proposing node (the acceptor records peer_<trigger>)
 SESSION_ID_BYTES = (1, 64)
 USED_BEFORE = "this session id has been used before"
 
@@ -60,6 +69,10 @@ class Situation:
     manifest_problem: str | None = None  # why the job's manifest cannot be compiled here
     input_ready: bool = False  # this node's input is read and encoded
     input_problem: str | None = None  # why it cannot be
+    input_code: str | None = None  # input_invalid (the records break the manifest) or input_unavailable
+    budget_problem: str | None = (
+        None  # why the run's ε does not fit in the job's privacy budget now, if it does not
+    )
 
 
 @dataclass(frozen=True)
@@ -75,8 +88,13 @@ class Terms:
 @dataclass(frozen=True)
 class Refuse:
     code: str
-    message: str
+    message: str  # the answer's words, for the peer's operator: this node is named, never "here"
     terms: Terms | None = None  # None: answered only, neither logged nor stored
+    local: str | None = None  # this node's own words for its job store, where they differ
+
+    @property
+    def local_message(self) -> str:
+        return self.local or self.message
 
 
 @dataclass(frozen=True)
@@ -116,7 +134,8 @@ def decide(proposal: Proposal, here: Situation) -> Decision:
         return Refuse("job_not_configured", message, terms)
     timing = job.timing()
     latest = timing.latest_fire(here.now)
-    terms = Terms(job, job.party, latest, proposal.manifest_digest)
+    proposed = datetime.fromtimestamp(proposal.scheduled_for_us / 1e6, UTC)
+    terms = Terms(job, job.party, proposed, proposal.manifest_digest)
     if job.party == proposal.role:
         message = (
             f"both nodes are configured as the {proposal.role.role_name} of job {job.name}; the role of one of "
@@ -130,30 +149,43 @@ def decide(proposal: Proposal, here: Situation) -> Decision:
         )
         return Refuse("both_initiate", message, terms)
     if not timing.in_window(latest, here.now):
-        message = (
-            f"outside the run window here: the latest scheduled time {latest.isoformat()} plus "
-            f"{job.schedule.window_minutes} min has passed (now {here.now.isoformat()})"
+        reopens = timing.next_fire(here.now).isoformat()
+        window = (
+            f"run window of job {job.name} ({job.schedule.cron} {job.schedule.timezone}, "
+            f"{job.schedule.window_minutes} min) is closed at {here.now.isoformat()}; it next opens at {reopens}"
         )
-        return Refuse("outside_window", message, terms)
+        return Refuse("outside_window", f"node {here.node}'s {window}", terms, local=f"this node's {window}")
     if here.manifest_problem is not None:
-        message = f"the job's manifest cannot be used here: {here.manifest_problem}"
-        return Refuse("input_unavailable", message, terms)
+        message = f"node {here.node} cannot use its manifest of job {job.name}: {here.manifest_problem}"
+        local = f"this node cannot use its manifest of job {job.name}: {here.manifest_problem}"
+        return Refuse("input_unavailable", message, terms, local=local)
     if here.own_digest is None:
         return Prepare("manifest", job)
     terms = replace(terms, digest=here.own_digest)
     if here.own_digest != proposal.manifest_digest:
-        message = (
-            f"manifest digests differ (here {here.own_digest.hex()[:16]}…, "
-            f"proposed {proposal.manifest_digest.hex()[:16]}…)"
+        own, theirs = here.own_digest.hex()[:16], proposal.manifest_digest.hex()[:16]
+        compare = "the two manifests differ; with both files at hand, jointstat manifest diff MINE THEIRS lists the fields"
+        message = f"node {here.node}'s manifest of job {job.name} has digest {own}…, the proposal {theirs}…; {compare}"
+        local = f"the peer proposed manifest digest {theirs}…, this node's manifest of job {job.name} has {own}…; {compare}"
+        return Refuse("digest_mismatch", message, terms, local=local)
+    if here.budget_problem is not None:
+        message = f"node {here.node} refuses job {job.name}: {here.budget_problem}"
+        return Refuse(
+            "budget_exhausted", message, terms, local=f"this node's privacy budget: {here.budget_problem}"
         )
-        return Refuse("digest_mismatch", message, terms)
     if here.input_problem is not None:
-        message = "this node cannot read or encode its input for the job (its operator has the details)"
-        return Refuse("input_unavailable", message, terms)
+        code = here.input_code or "input_unavailable"
+        what = "its input breaks the manifest" if code == "input_invalid" else "it cannot read its input"
+        message = f"node {here.node} cannot run job {job.name}: {what} (its operator has the details)"
+        return Refuse(code, message, terms, local=f"this node's input: {here.input_problem}")
     if not here.input_ready:
         return Prepare("input", job)
     if here.running >= here.max_sessions:
-        return Refuse("busy", f"this node already runs {here.max_sessions} sessions", terms)
+        return Refuse(
+            "busy",
+            f"node {here.node} already runs {plural(here.max_sessions, 'session')}; try again later",
+            terms,
+        )
     return Accept(terms)
 
 

@@ -18,10 +18,13 @@ method             request                             answer
 ``ListSessions``   ``{"limit": N?}``                   ``sessions``: live and recent sessions
 ``ShowSession``    ``{"session": ID}``                 ``session``: status, phase, AND gates done/total, bytes,
                                                        rate, time left, phases, result file
+``Budget``         ``{"job": NAME?}``                  ``budgets``: each budgeted job's privacy budget: total,
+                                                       period, spent, remaining, reserved, when spends free up
 =================  ==================================  =========================================================
 
-An unknown job or session answers ``NOT_FOUND``, a request that cannot be honoured (a job this node only accepts)
-``FAILED_PRECONDITION``, a malformed request ``INVALID_ARGUMENT``; the details say why. ``NodeAdmin`` answers the
+``ShowSession`` takes a whole session id or its beginning (the 12 characters ``sessions list`` prints) when one
+session alone begins so. An unknown job or session answers ``NOT_FOUND``, a request that cannot be honoured (a job
+this node only accepts, a run whose window is closed: the answer names the next opening) ``FAILED_PRECONDITION``, a malformed request ``INVALID_ARGUMENT``; the details say why. ``NodeAdmin`` answers the
 methods for a running ``daemon.Node`` from its config, its job store and its session trackers (the console reads
 the node through the same answers, ``node.nodeview``); ``AdminClient`` is the blocking client the
 ``jointstat jobs`` / ``jointstat sessions`` commands and the demo use.
@@ -47,7 +50,7 @@ if TYPE_CHECKING:
 log = logging.getLogger("jointstat.node")
 
 SERVICE = "jointstat.admin.v1.Admin"
-METHODS = ("Status", "ListJobs", "RunJob", "History", "ListSessions", "ShowSession")
+METHODS = ("Status", "ListJobs", "RunJob", "History", "ListSessions", "ShowSession", "Budget")
 CALL_TIMEOUT_S = 15.0
 
 
@@ -180,9 +183,33 @@ class NodeAdmin:
                     if success is None or success.finished_at is None
                     else success.finished_at.isoformat(),
                     "results": str(job.results),
+                    "privacy_budget": None
+                    if job.privacy_budget is None or state.budgets is None
+                    else state.budgets.report(job, now),
                 }
             )
         return {"jobs": jobs}
+
+    async def budget(self, request: dict[str, Any]) -> dict[str, Any]:
+        node = self._node
+        assert node.state is not None and node.state.budgets is not None and node.runner is not None
+        name = text_field(request, "job", required=False)
+        jobs = [self._job(name)] if name is not None else list(node.config.jobs)
+        now = node.clock.now()
+        out = []
+        for job in jobs:
+            if job.privacy_budget is None:
+                continue
+            try:
+                epsilon = (await asyncio.to_thread(node.runner.preparer.compiled, job)).epsilon()
+            except Exception:
+                epsilon = None  # the manifest cannot be compiled: the report leaves the run's ε out
+            report = node.state.budgets.report(job, now, epsilon)
+            if report is not None:
+                out.append(report)
+        if name is not None and not out:
+            raise RequestError(grpc.StatusCode.NOT_FOUND, f"job {name!r} has no privacy budget on this node")
+        return {"now": now.isoformat(), "budgets": out}
 
     async def run_job(self, request: dict[str, Any]) -> dict[str, Any]:
         node = self._node
@@ -195,9 +222,17 @@ class NodeAdmin:
                 grpc.StatusCode.FAILED_PRECONDITION,
                 f"this node does not initiate job {name!r}; it runs when node {job.peer} starts it",
             )
+        now = node.clock.now()
+        timing = job.timing()
+        if not timing.in_window(timing.latest_fire(now), now):
+            raise RequestError(
+                grpc.StatusCode.FAILED_PRECONDITION,
+                f"the run window of job {name!r} ({job.schedule.cron} {job.schedule.timezone}, "
+                f"{job.schedule.window_minutes} min) is closed at {now.isoformat()}; it next opens at "
+                f"{timing.next_fire(now).isoformat()} — the peer would refuse the run (outside_window)",
+            )
         if node.state.stopping:
             raise RequestError(grpc.StatusCode.FAILED_PRECONDITION, "the node is stopping")
-        now = node.clock.now()
         sid = node.start_run(job, now, "operator")
         role = job.party.role_name
         log.info(
@@ -239,8 +274,13 @@ class NodeAdmin:
     async def show_session(self, request: dict[str, Any]) -> dict[str, Any]:
         state = self._node.state
         assert state is not None
-        sid = text_field(request, "session")
-        assert sid is not None
+        given = text_field(request, "session")
+        assert given is not None
+        known = list(state.sessions) + await asyncio.to_thread(state.store.sessions_starting, given.lower())
+        try:
+            sid = resolve_session(given, known, self._node.config.node.name)
+        except LookupError as exc:
+            raise RequestError(grpc.StatusCode.NOT_FOUND, str(exc)) from None
         tracker = state.sessions.get(sid)
         rows = [r for r in await asyncio.to_thread(state.store.runs, None, 10_000) if r.session_id == sid]
         if tracker is None and not rows:
@@ -262,6 +302,21 @@ class NodeAdmin:
             elif rows[0].status != "running":
                 out["result_path"] = rows[0].result_path
         return {"session": out}
+
+
+def resolve_session(given: str, known: list[str], node: str) -> str:
+    """The one session id among ``known`` that ``given`` is or begins (the 12 characters ``sessions list`` shows);
+    ``LookupError`` saying why when none or several are."""
+    text = given.strip().lower()
+    matches = sorted({sid for sid in known if sid.startswith(text)}) if text else []
+    if text in matches:
+        return text
+    if not matches:
+        raise LookupError(f"no session {given} on node {node}")
+    if len(matches) > 1:
+        shown = ", ".join(m[:16] for m in matches[:5])
+        raise LookupError(f"{given} begins several sessions on node {node} ({shown}); give more characters")
+    return matches[0]
 
 
 def run_dict(r: RunRecord) -> dict[str, Any]:
@@ -348,3 +403,6 @@ class AdminClient:
 
     def session(self, session_id: str) -> dict[str, Any]:
         return dict(self.call("ShowSession", session=session_id)["session"])
+
+    def budgets(self, job: str | None = None) -> dict[str, Any]:
+        return self.call("Budget", **({} if job is None else {"job": job}))

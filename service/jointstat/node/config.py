@@ -32,7 +32,9 @@ Sections and defaults (all paths relative to the config file's directory unless 
   default 120), ``role`` (``garbler`` or ``evaluator``: which of the manifest's two parties this node is for
   this job — the table its input is read against and the outputs it receives), ``initiate`` (this node opens
   the session; independent of the role), ``retries`` (``attempts`` 3, ``backoff_seconds`` 60,
-  ``backoff_factor`` 2), ``results`` (directory, default ``<results_dir>/<job name>``).
+  ``backoff_factor`` 2), ``results`` (directory, default ``<results_dir>/<job name>``), ``privacy_budget``
+  (optional: ``epsilon``, the most ε the job's results may release in any rolling ``period_days``, default 30;
+  an exact decimal, ``"3"`` or ``"0.5"``; ``node.spending`` keeps it).
 
 Defaults that depend on other fields are filled in before validation from the raw text, so a derived path is
 resolved and checked like one written out. Cross-field rules (peer names unique and not the node's own, job names
@@ -55,6 +57,7 @@ import posixpath
 import re
 from dataclasses import dataclass
 from datetime import datetime, timedelta
+from fractions import Fraction
 from pathlib import Path
 from typing import Annotated, Any, Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
@@ -72,6 +75,7 @@ from pydantic_core import PydanticCustomError
 
 from jointstat.audit.records import node_name_ok
 from jointstat.circuit.model import Party
+from jointstat.circuit.parameters import ExactDecimal
 from jointstat.fields import StrictModel, between
 from jointstat.node.schedule import JobTiming, ScheduleError
 from jointstat.problems import Problem, ProblemError, field_path, pydantic_message, read_yaml
@@ -486,6 +490,29 @@ class RetryConfig(StrictModel):
     backoff_factor: Annotated[float, between(1, 10)] = 2.0
 
 
+def _positive_decimal(value: str) -> str:
+    from fractions import Fraction
+
+    if Fraction(value) <= 0:
+        raise ValueError("must be greater than 0")
+    return value
+
+
+class BudgetConfig(StrictModel):
+    """A job's privacy budget on this node: at most ``epsilon`` released in any ``period_days`` (rolling)."""
+
+    epsilon: Annotated[ExactDecimal, AfterValidator(_positive_decimal)]
+    period_days: Annotated[int, between(1, 3660)] = 30
+
+    @property
+    def total(self) -> Fraction:
+        return Fraction(self.epsilon)
+
+    @property
+    def period(self) -> timedelta:
+        return timedelta(days=self.period_days)
+
+
 class JobConfig(StrictModel):
     """One scheduled joint computation with one peer."""
 
@@ -501,6 +528,7 @@ class JobConfig(StrictModel):
     initiate: bool
     retries: RetryConfig = RetryConfig()
     results: ConfigPath
+    privacy_budget: BudgetConfig | None = None
 
     @property
     def party(self) -> Party:

@@ -38,6 +38,7 @@ import os
 import signal
 import stat
 import sys
+import time
 from collections.abc import Callable
 from datetime import datetime
 from pathlib import Path
@@ -55,11 +56,13 @@ from jointstat.node.jobs import JobRunner, NodeState, new_session_id
 from jointstat.node.keys import NodeKeys, load_node_keys
 from jointstat.node.metrics import NodeMetrics
 from jointstat.node.secrets import SecretFileError
+from jointstat.node.spending import Budgets
 from jointstat.node.store import JobStore, StoreError
 from jointstat.protocol.session import Session, new_session
 from jointstat.transport.driver import Limits
 from jointstat.transport.proposals import proposal_service
 from jointstat.transport.server import SessionServer
+from jointstat.units import plural
 
 log = logging.getLogger("jointstat.node")
 
@@ -140,10 +143,14 @@ class Node:
             metrics=self.metrics,
             limits=Limits(deadline_s=float(node.session_deadline_seconds)),
             new_session=self._session_factory,
+            budgets=await asyncio.to_thread(Budgets, config.jobs, store),
         )
         try:
             await self._recover()
             self.runner = JobRunner(self.state)
+            problems = await self._budget_problems()
+            if problems:
+                raise ConfigError(config.source, problems)
             await self._serve(keys)
         except BaseException:
             await self._close_everything()
@@ -153,6 +160,24 @@ class Node:
         log.info("node %s: started", node.name)
         for job in config.jobs:
             log.info("job %s: %s", job.name, job_summary(job))
+
+    async def _budget_problems(self) -> list[Any]:
+        """Every job whose privacy budget is smaller than one run's ε (its manifest compiled now, and cached)."""
+        from jointstat.node.spending import run_epsilon_problem
+
+        assert self.runner is not None
+        problems = []
+        for i, job in enumerate(self.config.jobs):
+            if job.privacy_budget is None:
+                continue
+            try:
+                compiled = await asyncio.to_thread(self.runner.preparer.compiled, job)
+            except Exception:
+                continue  # reported when a run needs it, and by node check
+            problem = run_epsilon_problem(job, i, compiled.epsilon())
+            if problem is not None:
+                problems.append(problem)
+        return problems
 
     async def _compile_manifests(self) -> None:
         """Compile every job's manifest once in the background, so the first proposal is answered quickly."""
@@ -183,8 +208,22 @@ class Node:
         now = self.clock.now()
         closed = await asyncio.to_thread(self.state.store.close_interrupted, now)
         if closed:
-            log.warning("job store: %d run(s) left running by the previous process marked aborted", closed)
-        for sid in await asyncio.to_thread(self.state.session_log.open_sessions):
+            log.warning(
+                "job store: %s left running by the previous process marked aborted", plural(closed, "run")
+            )
+        assert self.state.budgets is not None
+        for held in await asyncio.to_thread(self.state.budgets.recover, now):
+            log.warning(
+                "privacy budget of job %s: the reservation of run %s was left open by the previous process;"
+                " counted as spent (whether its result was released is not known)",
+                held.job,
+                held.run_id,
+            )
+        session_log = self.state.session_log
+        for sid in await asyncio.to_thread(session_log.open_sessions):
+            epsilon = await asyncio.to_thread(session_log.held_budget, sid)
+            if epsilon is not None:
+                await asyncio.to_thread(session_log.privacy_budget, sid, epsilon=epsilon, action="spent")
             await asyncio.to_thread(
                 self.state.session_log.session_aborted,
                 sid,
@@ -365,9 +404,11 @@ class Node:
                 task.cancel()
         await self._close_everything()
         log.info(
-            "node %s: stopped (%d session(s) were running and have been aborted)",
+            "node %s: stopped (%s)",
             self.config.node.name,
-            running,
+            "1 session was running and has been aborted"
+            if running == 1
+            else f"{running} sessions were running and have been aborted",
         )
 
     async def _stop_console(self) -> None:
@@ -438,7 +479,7 @@ async def _run(config: NodeConfig) -> int:
     jobs = "; ".join(f"{job.name} ({job_summary(job)})" for job in config.jobs)
     print(
         f"node {n.name}: serving peers on {n.listen.host}:{node.peer_port}, admin {n.admin}, "
-        f"metrics {n.metrics.host}:{node.metrics_port}{extra}; {len(config.jobs)} job(s)"
+        f"metrics {n.metrics.host}:{node.metrics_port}{extra}; {len(config.jobs)} {'job' if len(config.jobs) == 1 else 'jobs'}"
         + (f": {jobs}" if jobs else ""),
         flush=True,
     )
@@ -450,15 +491,22 @@ async def _run(config: NodeConfig) -> int:
     return 0
 
 
+def utc_formatter() -> logging.Formatter:
+    """The node's log lines: the time in UTC, marked so (``2026-03-04 10:00:00,123 UTC``), level, logger, message."""
+    formatter = logging.Formatter("%(asctime)s UTC %(levelname)s %(name)s: %(message)s")
+    formatter.converter = time.gmtime
+    return formatter
+
+
 def run_node(config: NodeConfig, *, grpc_logs: bool = False) -> int:
     """Run the node until SIGTERM or SIGINT; returns the process exit code.
 
     Without ``grpc_logs`` the records of gRPC's Python loggers (``grpc.*``) stay out of the node's log; its C
     core's lines are kept out by ``node run`` (``GRPC_VERBOSITY``, which gRPC reads when it is first imported).
     """
-    logging.basicConfig(
-        level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s: %(message)s", stream=sys.stderr
-    )
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(utc_formatter())
+    logging.basicConfig(level=logging.INFO, handlers=[handler])
     if not grpc_logs:
         logging.getLogger("grpc").setLevel(logging.CRITICAL + 1)
     return asyncio.run(_run(config))

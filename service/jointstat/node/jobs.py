@@ -20,7 +20,8 @@ hence fresh Δ, labels and OT secrets:
    already runs ``max_sessions`` sessions ``failed`` (``busy``); otherwise operators can follow it from here.
 2. prepare — compile the manifest (cached per file) and read and encode this node's input (CSV or SQL, identifier
    keys hashed with the key-hashing secret) in a worker thread (``node.prepare``); failing, ``failed``
-   (``input_unavailable``).
+   (``input_unavailable`` when the source cannot be opened, ``input_invalid`` when the records break the manifest,
+   ``manifest_unusable``; ``node.prepare.failure_code``).
 3. propose — log ``session_started``, then call ``Session/Propose`` on the peer over pinned mutual TLS
    (``transport.proposals``) with the job, the manifest digest, the session id, the scheduled time and the role.
    Not delivered: ``aborted`` (``peer_unreachable``); refused: ``refused`` with the peer's reason (e.g.
@@ -34,7 +35,8 @@ hence fresh Δ, labels and OT secrets:
    attestation (refused: ``aborted``, ``bad_signature``), writes the result file and ends the run ``completed``.
 
 ``run_job`` repeats a failed attempt after the configured backoff (``schedule.Planner.retry_at``) while the window
-is open; refusals that retrying cannot cure (``NOT_RETRIED``) are not retried.
+is open; failures and refusals that retrying cannot cure (``NOT_RETRIED``: bad data, an unusable manifest, a
+configuration the two nodes disagree on, an exhausted budget) are not retried.
 
 *Accepting* (``JobRunner.on_proposal``, called by the peer-facing server with the authenticated peer): the pure
 decision ``acceptance.decide`` says refuse, prepare (compile the manifest, read the input, then ask again) or
@@ -75,14 +77,23 @@ from jointstat.audit.log import SessionLog
 from jointstat.audit.records import AuditError, plain_detail
 from jointstat.circuit.compile import CompiledStatistic
 from jointstat.node.acceptance import USED_BEFORE, Prepare, Refuse, Situation, Terms, decide
+from jointstat.node.budget import BUDGET_EXHAUSTED, BudgetError, BudgetExhausted
 from jointstat.node.clock import Clock
 from jointstat.node.config import JobConfig, NodeConfig
 from jointstat.node.keys import NodeKeys, PeerIdentity, session_signing
 from jointstat.node.metrics import NodeMetrics
-from jointstat.node.prepare import Prepared, Preparer, describe_failure
+from jointstat.node.prepare import (
+    INPUT_INVALID,
+    MANIFEST_UNUSABLE,
+    Prepared,
+    Preparer,
+    describe_failure,
+    failure_code,
+)
 from jointstat.node.progress import ABORTED, COMPLETED, FAILED, REFUSED, SessionTracker
 from jointstat.node.results import write_result
 from jointstat.node.runs import (
+    BudgetRecorder,
     LogRecorder,
     MetricsRecorder,
     Outcome,
@@ -92,6 +103,7 @@ from jointstat.node.runs import (
     StoreRecorder,
 )
 from jointstat.node.schedule import Planner
+from jointstat.node.spending import Budgets
 from jointstat.node.store import JobStore
 from jointstat.protocol.frames import AbortReason
 from jointstat.protocol.session import Session, new_session
@@ -100,6 +112,7 @@ from jointstat.transport.client import run_client
 from jointstat.transport.driver import Limits, SessionResult, Shutdown
 from jointstat.transport.proposals import PROTOCOL_VERSION, Answer, Proposal, propose
 from jointstat.transport.server import SessionServer
+from jointstat.units import plural
 
 log = logging.getLogger("jointstat.node")
 
@@ -114,8 +127,11 @@ NOT_RETRIED = frozenset(
         "both_initiate",
         "malformed",
         "protocol_version",
+        INPUT_INVALID,
+        MANIFEST_UNUSABLE,
+        "budget_exhausted",
     }
-)
+)  # failures no retry can cure: the configuration, the manifest or the data must change first
 CANCELLED = Outcome(ABORTED, "cancelled", "the node is stopping")
 
 T = TypeVar("T")
@@ -147,6 +163,8 @@ class NodeState:
     stopping: bool = False
     shutdown: Shutdown = field(default_factory=Shutdown)  # ends running sessions with peer_shutdown on stop
     new_session: Callable[..., Session] = new_session  # makes each session (``protocol.session.new_session``)
+    # the jobs' privacy budgets (``node.spending``); made from the store by the runner if not given
+    budgets: Budgets | None = None
 
     def running_sessions(self) -> int:
         return sum(1 for t in self.sessions.values() if not t.ended)
@@ -160,6 +178,7 @@ class _Found:
     manifest_problem: str | None = None
     inputs: np.ndarray | None = None
     input_problem: str | None = None
+    input_code: str | None = None  # input_invalid or input_unavailable, with input_problem
     seconds: float = 0.0
 
 
@@ -183,11 +202,15 @@ class JobRunner:
             [j.timing() for j in state.config.jobs if j.initiate], started_at=state.clock.now()
         )
         self.served: set[asyncio.Task[Any]] = set()  # tasks waiting for sessions this node accepted
+        if state.budgets is None:
+            state.budgets = Budgets(state.config.jobs, state.store)
+        self.budgets = state.budgets
         self.recorders = RunRecorders(
             store=StoreRecorder(state.store, state.clock),
             progress=Progress(state.sessions, state.clock),
             metrics=MetricsRecorder(state.metrics, state.running_sessions, state.clock),
             log=LogRecorder(state.session_log),
+            budget=BudgetRecorder(self.budgets, state.store, state.session_log, state.clock),
         )
 
     # -- initiating ------------------------------------------------------------------------------------------------
@@ -233,7 +256,7 @@ class JobRunner:
             return await self.recorders.ended(run, CANCELLED)
         limit = state.config.node.max_sessions
         if state.running_sessions() >= limit:
-            busy = f"this node already runs {limit} sessions (node.max_sessions)"
+            busy = f"this node already runs {plural(limit, 'session')} (node.max_sessions)"
             return await self.recorders.ended(run, Outcome(FAILED, "busy", busy))
         self.recorders.followed(run)
         return await self._carry(run, self._initiate(run, job))
@@ -242,11 +265,21 @@ class JobRunner:
         try:
             prepared = await asyncio.to_thread(self.preparer.prepare, job)
         except Exception as exc:
-            log.warning("job %s: cannot prepare this node's input: %s", job.name, describe_failure(exc))
-            return Outcome(FAILED, "input_unavailable", describe_failure(exc))
+            code = failure_code(exc)
+            log.warning(
+                "job %s: cannot prepare this node's input (%s): %s", job.name, code, describe_failure(exc)
+            )
+            return Outcome(FAILED, code, describe_failure(exc))
         self.recorders.progress.measured(run, "prepare", prepared.seconds)
         run.digest = prepared.digest
         await _finish_despite_cancel(self.recorders.announced(run))
+        try:
+            run.held = self.budgets.reserve(job, run.sid, prepared.compiled.epsilon(), self.state.clock.now())
+        except (BudgetExhausted, BudgetError) as exc:
+            log.warning("job %s: not run: the privacy budget: %s", job.name, exc)
+            detail = f"this node's privacy budget of job {job.name}: {exc}"
+            return Outcome(REFUSED, BUDGET_EXHAUSTED, detail, phase="proposal")
+        await _finish_despite_cancel(self.recorders.budget.reserved(run))
         refused = await self._propose(run)
         if refused is not None:
             return refused
@@ -293,7 +326,8 @@ class JobRunner:
         code = answer.code or "refused"
         message = plain_detail(answer.message) or code
         log.warning("job %s: the peer %s refused the run: %s (%s)", run.job, run.peer.name, code, message)
-        return Outcome(REFUSED, code, message, by="peer", phase="proposal")
+        stored = f"node {run.peer.name} refused the run: {message}"
+        return Outcome(REFUSED, code, message, by="peer", phase="proposal", stored_detail=stored)
 
     # -- both sides: the session and its conclusion ----------------------------------------------------------------
 
@@ -336,6 +370,7 @@ class JobRunner:
             outcome = Outcome(ABORTED, "bad_signature", str(exc), phase="finish", stored_detail=refused)
             return await self.recorders.ended(run, outcome)
         assert run.config is not None
+        await self.recorders.budget.settled(run, spent=True)  # recorded before the result is released
         path = await asyncio.to_thread(
             write_result,
             run.config,
@@ -392,7 +427,21 @@ class JobRunner:
             manifest_problem=found.manifest_problem,
             input_ready=found.inputs is not None,
             input_problem=found.input_problem,
+            input_code=found.input_code,
+            budget_problem=self._budget_problem(proposal, peer, now, found),
         )
+
+    def _budget_problem(
+        self, proposal: Proposal, peer: PeerIdentity, now: datetime, found: _Found
+    ) -> str | None:
+        if found.compiled is None:
+            return None
+        job = next(
+            (j for j in self.state.config.jobs if j.name == proposal.job and j.peer == peer.name), None
+        )
+        if job is None:
+            return None
+        return self.budgets.problem(job, found.compiled.epsilon(), now)
 
     async def _prepare_for(self, step: Prepare, found: _Found) -> _Found:
         """Compile the job's manifest or read its input, as ``decide`` asked; a failure is what it found."""
@@ -406,8 +455,14 @@ class JobRunner:
         try:
             bits = await asyncio.to_thread(self.preparer.inputs, step.job, found.compiled)
         except Exception as exc:
-            log.warning("job %s: cannot prepare this node's input: %s", step.job.name, describe_failure(exc))
-            return replace(found, input_problem=describe_failure(exc))
+            code = failure_code(exc)
+            log.warning(
+                "job %s: cannot prepare this node's input (%s): %s",
+                step.job.name,
+                code,
+                describe_failure(exc),
+            )
+            return replace(found, input_problem=describe_failure(exc), input_code=code)
         return replace(found, inputs=bits, seconds=time.monotonic() - t0)
 
     def _proposed_run(self, proposal: Proposal, peer: PeerIdentity, now: datetime, terms: Terms) -> Run:
@@ -415,7 +470,7 @@ class JobRunner:
             job=proposal.job,
             scheduled_for=terms.scheduled_for,
             attempt=proposal.attempt,
-            trigger="peer",
+            trigger=f"peer_{proposal.trigger}",
             session_id=proposal.session_id,
             party=terms.party,
             peer=peer,
@@ -439,7 +494,8 @@ class JobRunner:
         except AuditError:  # the log has seen this session id: nothing of it is logged again
             await self.recorders.ended(run, Outcome(REFUSED, code, message))
             return Answer.refused("malformed", USED_BEFORE)
-        await self.recorders.ended(run, Outcome(REFUSED, code, message, phase="proposal"))
+        outcome = Outcome(REFUSED, code, message, phase="proposal", stored_detail=refusal.local_message)
+        await self.recorders.ended(run, outcome)
         return Answer.refused(code, plain_detail(message))
 
     async def _accept(
@@ -448,7 +504,18 @@ class JobRunner:
         state, job = self.state, terms.job
         assert job is not None and found.compiled is not None and found.inputs is not None
         prepared = Prepared(found.compiled, terms.party, terms.digest, found.inputs, found.seconds)
+        try:  # in memory and before any await, so the check ``decide`` made still holds
+            held = self.budgets.reserve(job, proposal.session_id.hex(), found.compiled.epsilon(), now)
+        except (BudgetExhausted, BudgetError) as exc:
+            refusal = Refuse(
+                BUDGET_EXHAUSTED,
+                f"node {state.config.node.name} refuses job {job.name}: {exc}",
+                terms,
+                local=f"this node's privacy budget: {exc}",
+            )
+            return await self._refuse(proposal, peer, now, refusal)
         run = self._proposed_run(proposal, peer, now, terms)
+        run.held = held
         self.recorders.followed(run)  # takes its slot before the next await
         self.recorders.progress.measured(run, "prepare", prepared.seconds)
         await self.recorders.opened(run)
@@ -457,6 +524,7 @@ class JobRunner:
         except AuditError:  # the log has seen this session id
             await self.recorders.ended(run, Outcome(REFUSED, "malformed", USED_BEFORE))
             return Answer.refused("malformed", USED_BEFORE)
+        await self.recorders.budget.reserved(run)
         session = self._session(run, prepared)
         assert state.server is not None and run.tracker is not None
         future = state.server.expect(

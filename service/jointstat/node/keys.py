@@ -14,6 +14,13 @@ gRPC uses. A real deployment uses the organisations' own PKI instead; the CA key
 All files are written owner-only and atomically; existing files are refused unless ``force`` is given, and the
 whole set is checked before anything is written, so a refused run leaves nothing half-made.
 
+The key-hashing secret (``key_hashing_secret`` in a node config) is shared by the two organisations: identifiers
+are hashed under it on each side (``circuit.inputs``), so both must hold the same bytes. ``write_key_secret``
+writes ``KEY_SECRET_BYTES`` fresh bytes from the operating system's CSPRNG (``secrets.token_bytes``) to an
+owner-only file; ``key_secret_fingerprint`` is HMAC-SHA-256 (RFC 2104) keyed with the secret over a fixed label,
+shown as 16 hex digits in groups of four, so the two operators can read it to each other and confirm they hold the
+same secret without showing it (common practice: a keyed MAC of a public label reveals nothing of a 32-byte key).
+
 File layout in the output directory: ``<node>.signing.key.pem``, ``<node>.signing.pub.pem``, and with a trial CA
 also ``ca.cert.pem``, ``ca.key.pem``, ``<node>.tls.key.pem``, ``<node>.tls.cert.pem``.
 
@@ -30,7 +37,9 @@ from __future__ import annotations
 
 import base64
 import hashlib
+import hmac
 import os
+import secrets
 from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
@@ -61,6 +70,8 @@ CA_KEY = "ca.key.pem"
 ORGANISATION = "jointstat trial"
 MIN_KEY_SECRET_BYTES = 16  # the rule jointstat.circuit.inputs applies to the key-hashing secret
 MIN_CONSOLE_TOKEN_CHARS = 32
+KEY_SECRET_BYTES = 32
+KEY_SECRET_LABEL = b"jointstat key-hashing secret fingerprint v1"
 
 
 def signing_key_file(node: str) -> str:
@@ -288,6 +299,33 @@ def init_trial(
         )
         written.append(replace(files, tls_key=key_path, tls_cert=cert_path))
     return KeySet(nodes=written, ca_cert=ca_cert_path, ca_key=ca_key_path)
+
+
+# -- the key-hashing secret ----------------------------------------------------------------------------------------
+
+
+def key_secret_fingerprint(secret: bytes) -> str:
+    """HMAC-SHA-256(secret, label), first 8 bytes as hex in groups of four (see the module docstring)."""
+    digest = hmac.new(secret, KEY_SECRET_LABEL, hashlib.sha256).hexdigest()[:16]
+    return " ".join(digest[i : i + 4] for i in range(0, 16, 4))
+
+
+def write_key_secret(path: str | os.PathLike[str], *, force: bool = False) -> str:
+    """Write a fresh key-hashing secret owner-only to ``path`` (its directory made 0700 if missing); its fingerprint."""
+    target = Path(path)
+    _refuse_existing([target], force)
+    ensure_private_dir(target.parent)
+    secret = secrets.token_bytes(KEY_SECRET_BYTES)
+    write_private_file(target, secret, overwrite=force)
+    return key_secret_fingerprint(secret)
+
+
+def read_key_secret(path: str | os.PathLike[str]) -> bytes:
+    """A key-hashing secret from an owner-only file, at least ``MIN_KEY_SECRET_BYTES`` long."""
+    data = read_secret_file(path, "key-hashing secret")
+    if len(data) < MIN_KEY_SECRET_BYTES:
+        raise SecretFileError(f"key-hashing secret {path}: must hold at least {MIN_KEY_SECRET_BYTES} bytes")
+    return data
 
 
 # -- a running node's keys -------------------------------------------------------------------------------------

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import asyncio
 from datetime import datetime
+from fractions import Fraction
 from typing import TYPE_CHECKING, Any
 
 from jointstat.node.admin import RequestError
@@ -22,6 +23,7 @@ from jointstat.node.console.view import (
     JobView,
     LogKeys,
     PhaseView,
+    PrivacyBudget,
     ResultView,
     RunRefused,
     RunView,
@@ -71,6 +73,19 @@ def job_view(d: dict[str, Any]) -> JobView:
         next_run=_time(d.get("next_run")),
         last_run=None if not d.get("last_run") else run_view(d["last_run"]),
         last_success=_time(d.get("last_success")),
+        privacy_budget=_budget(d.get("privacy_budget")),
+    )
+
+
+def _budget(d: dict[str, Any] | None) -> PrivacyBudget | None:
+    """A job's privacy budget (``Budget`` report) as the console shows it: ε left of the total per period."""
+    if not d:
+        return None
+    days = int(d["period_days"])
+    return PrivacyBudget(
+        left=float(Fraction(d["remaining"])),
+        total=float(Fraction(d["epsilon"])),
+        unit=f"ε per {days} day" if days == 1 else f"ε per {days} days",
     )
 
 

@@ -15,7 +15,13 @@ step              who hears of it, in this order
 ``announced``     the session log: ``session_started`` (a session id it has seen is refused: ``AuditError``, and
                   nothing else hears of it); metrics: sessions started
 ``exchange_over`` progress: the open phase closed; the session log: a ``phase_finished`` per phase
-``ended``         the session log: ``session_aborted`` or ``session_completed``; the job store: the row's outcome;
+``reserved``      the job's privacy budget (``node.spending``), if the job has one and the run spends ε: the store's
+                  ``budget_spends`` row, then the session log's ``privacy_budget reserved``
+``released``      the budget: the spend is dated (``spent``) in memory, the store and the log — before the result
+                  file is written
+``ended``         the budget, if still held: ``spent`` when the session ended in a phase that may have released
+                  outputs, else ``returned``; the session log: ``session_aborted`` or ``session_completed``; the job
+                  store: the row's outcome;
                   then — even if those failed — progress: the session's status; metrics: completed or aborted by
                   reason, bytes, AND gates per second, sessions running
 ================  =================================================================================================
@@ -47,6 +53,7 @@ from jointstat.node.keys import PeerIdentity
 from jointstat.node.metrics import NodeMetrics
 from jointstat.node.prepare import MAX_MESSAGE
 from jointstat.node.progress import COMPLETED, PROPOSING, SessionTracker
+from jointstat.node.spending import RELEASING_PHASES, Budgets, Held, epsilon_text
 from jointstat.node.store import JobStore
 from jointstat.protocol.session import Session
 
@@ -90,6 +97,9 @@ class Run:
     announced: bool = False  # its session_started is in the session log
     phases_closed: bool = False
     outcome: Outcome | None = None
+    held: Held | None = None  # its hold on the job's privacy budget, once reserved
+    budget_logged: bool = False  # the reservation is in the session log
+    budget_settled: bool = False
 
     @property
     def sid(self) -> str:
@@ -260,16 +270,72 @@ class LogRecorder:
             await asyncio.to_thread(aborted, run.sid, reason=reason, by=by, phase=phase, detail="")
 
 
+class BudgetRecorder:
+    """The privacy budget's account of runs: reserved, then spent or returned — in memory, the store and the log."""
+
+    def __init__(self, budgets: Budgets, store: JobStore, session_log: SessionLog, clock: Clock) -> None:
+        self.budgets = budgets
+        self._store = store
+        self._log = session_log
+        self._clock = clock
+
+    async def reserved(self, run: Run) -> None:
+        """Record the hold ``run.held`` (taken in memory by ``Budgets.reserve``) in the store, then the log."""
+        held = run.held
+        if held is None:
+            return
+        try:
+            await asyncio.to_thread(
+                self._store.budget_reserve, held.job, held.run_id, held.epsilon, self._clock.now()
+            )
+        except BaseException:  # not recorded, so not held: the run cannot go on and must not keep the ε
+            run.budget_settled = True
+            self.budgets.settle(held, spent=False, now=self._clock.now())
+            raise
+        if run.announced:
+            await asyncio.to_thread(
+                self._log.privacy_budget, run.sid, epsilon=epsilon_text(held.epsilon), action="reserved"
+            )
+            run.budget_logged = True
+
+    async def settled(self, run: Run, *, spent: bool) -> None:
+        """The run released its result (``spent``) or ended without (returned); once."""
+        held = run.held
+        if held is None or run.budget_settled:
+            return
+        run.budget_settled = True
+        now = self._clock.now()
+        self.budgets.settle(held, spent=spent, now=now)
+        await asyncio.to_thread(self._store.budget_settle, held.job, held.run_id, spent=spent, at=now)
+        if run.budget_logged:
+            action = "spent" if spent else "returned"
+            await asyncio.to_thread(
+                self._log.privacy_budget, run.sid, epsilon=epsilon_text(held.epsilon), action=action
+            )
+
+
+def releases(outcome: Outcome) -> bool:
+    """Whether a run that ended so may have released outputs (and so spends its ε)."""
+    return outcome.status == COMPLETED or (outcome.phase in RELEASING_PHASES)
+
+
 class RunRecorders:
     """The observers of runs, told of each step in pipeline order: who hears what, and when, is said here."""
 
     def __init__(
-        self, *, store: StoreRecorder, progress: Progress, metrics: MetricsRecorder, log: LogRecorder
+        self,
+        *,
+        store: StoreRecorder,
+        progress: Progress,
+        metrics: MetricsRecorder,
+        log: LogRecorder,
+        budget: BudgetRecorder,
     ) -> None:
         self.store = store
         self.progress = progress
         self.metrics = metrics
         self.log = log
+        self.budget = budget
 
     async def opened(self, run: Run) -> None:
         await self.store.opened(run)
@@ -300,6 +366,7 @@ class RunRecorders:
         run.outcome = outcome
         try:
             await self.exchange_over(run)
+            await self.budget.settled(run, spent=releases(outcome))
             await self.log.ended(run)
             await self.store.ended(run, outcome)
         finally:
@@ -314,6 +381,9 @@ class RunRecorders:
         if first:
             run.outcome = outcome
         try:
+            phase = outcome.phase or (run.tracker.phase if run.tracker is not None else None)
+            with contextlib.suppress(Exception):
+                await self.budget.settled(run, spent=releases(replace(outcome, phase=phase)))
             with contextlib.suppress(Exception):
                 await self.store.ended(run, outcome)
         finally:

@@ -6,7 +6,11 @@ A *run* is one attempt at one scheduled time of one job: it is recorded when it 
 updated once when it ends (``completed``, ``aborted``, ``refused`` or ``failed``, with the reason). Each change is
 one SQLite transaction, so a crash leaves either the old or the new row, never half of one; a run still marked
 ``running`` when the node starts again is closed as ``aborted`` ("node stopped during the run"). Results
-themselves are files written by the node; the store keeps their path. Each run also records the manifest
+themselves are files written by the node; the store keeps their path.
+
+Privacy budgets (``node.spending``): every spend of a job's budget is a row of ``budget_spends`` — the run (its
+session id), its ε as an exact fraction ``p/q``, when it was reserved, and then when it was spent (the result was
+released) or returned (nothing was). A returned spend is kept, for the record, but no longer counts. Each run also records the manifest
 party this node played (``garbler`` or ``evaluator``); a store made before that column existed gains it, empty
 for its old rows, when opened. No secret and no input value is stored.
 """
@@ -18,6 +22,7 @@ import sqlite3
 import threading
 from dataclasses import dataclass
 from datetime import UTC, datetime
+from fractions import Fraction
 from pathlib import Path
 from typing import Any
 
@@ -39,6 +44,15 @@ CREATE TABLE IF NOT EXISTS runs (
     role TEXT
 );
 CREATE INDEX IF NOT EXISTS runs_by_job ON runs (job, scheduled_for);
+CREATE TABLE IF NOT EXISTS budget_spends (
+    job TEXT NOT NULL,
+    run_id TEXT NOT NULL,
+    epsilon TEXT NOT NULL,
+    reserved_at TEXT NOT NULL,
+    spent_at TEXT,
+    returned_at TEXT,
+    PRIMARY KEY (job, run_id)
+);
 """
 
 RUN_COLUMNS = (
@@ -46,6 +60,17 @@ RUN_COLUMNS = (
     " role"
 )  # named, not *, so the order is the same in a store that gained ``role`` by ALTER TABLE
 STATUSES = ("running", "completed", "aborted", "refused", "failed")
+
+
+@dataclass(frozen=True)
+class BudgetRow:
+    """One spend of a job's privacy budget as stored."""
+
+    run_id: str
+    epsilon: Fraction
+    reserved_at: datetime
+    spent_at: datetime | None
+    returned_at: datetime | None
 
 
 class StoreError(RuntimeError):
@@ -98,8 +123,10 @@ def _record(r: tuple[Any, ...]) -> RunRecord:
 class JobStore:
     """Runs of jobs in an SQLite file created owner-only (0600)."""
 
-    def __init__(self, path: str | Path) -> None:
+    def __init__(self, path: str | Path, *, create: bool = True) -> None:
         self.path = Path(path)
+        if not create and not self.path.is_file():
+            raise StoreError(f"job store {self.path}: no such file (has the node ever run?)")
         try:
             ensure_private_dir(self.path.parent)
             fd = os.open(self.path, os.O_CREAT | os.O_RDWR, 0o600)
@@ -205,6 +232,45 @@ class JobStore:
         with self._lock:
             row = self._db.execute(sql, (session_id,)).fetchone()
         return None if row is None else _record(row)
+
+    def sessions_starting(self, prefix: str, limit: int = 10) -> list[str]:
+        """The distinct session ids (hex) that start with ``prefix`` (at most ``limit``)."""
+        if not prefix or not all(c in "0123456789abcdef" for c in prefix):
+            return []
+        with self._lock:
+            rows = self._db.execute(
+                "SELECT DISTINCT session_id FROM runs WHERE substr(session_id, 1, ?) = ? LIMIT ?",
+                (len(prefix), prefix, limit),
+            ).fetchall()
+        return [r[0] for r in rows]
+
+    # -- privacy budgets -----------------------------------------------------------------------------------------
+
+    def budget_reserve(self, job: str, run_id: str, epsilon: Fraction, at: datetime) -> None:
+        """Record that run ``run_id`` holds ``epsilon`` of ``job``'s budget from ``at``."""
+        self._write(
+            "INSERT INTO budget_spends (job, run_id, epsilon, reserved_at) VALUES (?, ?, ?, ?)",
+            (job, run_id, f"{epsilon.numerator}/{epsilon.denominator}", _iso(at)),
+        )
+
+    def budget_settle(self, job: str, run_id: str, *, spent: bool, at: datetime) -> None:
+        """Record that the reservation of ``run_id`` was spent (released at ``at``) or returned."""
+        column = "spent_at" if spent else "returned_at"
+        self._write(
+            f"UPDATE budget_spends SET {column} = ? WHERE job = ? AND run_id = ?"
+            " AND spent_at IS NULL AND returned_at IS NULL",
+            (_iso(at), job, run_id),
+        )
+
+    def budget_spends(self, job: str) -> list[BudgetRow]:
+        """Every recorded spend of ``job``'s budget, oldest reservation first (returned ones included)."""
+        with self._lock:
+            rows = self._db.execute(
+                "SELECT run_id, epsilon, reserved_at, spent_at, returned_at FROM budget_spends WHERE job = ?"
+                " ORDER BY reserved_at, run_id",
+                (job,),
+            ).fetchall()
+        return [BudgetRow(r[0], Fraction(r[1]), _parse(r[2]), _parse(r[3]), _parse(r[4])) for r in rows]  # type: ignore[arg-type]
 
     def scheduled_done(self) -> set[tuple[str, datetime]]:
         """(job, scheduled time) pairs that have at least one run, of any outcome."""

@@ -44,6 +44,8 @@ class RefusalReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     REFUSAL_REASON_SHUTTING_DOWN: _ClassVar[RefusalReason]
     REFUSAL_REASON_PROTOCOL_VERSION: _ClassVar[RefusalReason]
     REFUSAL_REASON_BOTH_INITIATE: _ClassVar[RefusalReason]
+    REFUSAL_REASON_INPUT_INVALID: _ClassVar[RefusalReason]
+    REFUSAL_REASON_BUDGET_EXHAUSTED: _ClassVar[RefusalReason]
 ROLE_UNSPECIFIED: Role
 ROLE_GARBLER: Role
 ROLE_EVALUATOR: Role
@@ -74,6 +76,8 @@ REFUSAL_REASON_INPUT_UNAVAILABLE: RefusalReason
 REFUSAL_REASON_SHUTTING_DOWN: RefusalReason
 REFUSAL_REASON_PROTOCOL_VERSION: RefusalReason
 REFUSAL_REASON_BOTH_INITIATE: RefusalReason
+REFUSAL_REASON_INPUT_INVALID: RefusalReason
+REFUSAL_REASON_BUDGET_EXHAUSTED: RefusalReason
 
 class Hello(_message.Message):
     __slots__ = ("protocol_version", "manifest_digest", "session_id", "role", "program_digest", "signature")
