@@ -241,11 +241,11 @@ async def test_an_operator_run_completes_on_both_nodes_each_with_only_its_own_re
     assert results[LIBRARY]["role"] == "garbler" and results[BATHS]["role"] == "evaluator"
     assert results[LIBRARY]["outputs"] == {"matches": plain["matches"]}
     baths = results[BATHS]["outputs"]
-    assert list(baths) == ["matches", "sum", "mean", "above"]
-    assert (baths["matches"], baths["sum"], baths["above"]) == (
+    assert list(baths) == ["matches", "sum", "mean", "at_least"]
+    assert (baths["matches"], baths["sum"], baths["at_least"]) == (
         plain["matches"],
         plain["sum"],
-        plain["above"],
+        plain["at_least"],
     )
     assert 0 <= plain["mean"] - baths["mean"] < plain["mean_step"]
     assert results[LIBRARY]["withheld"] is results[BATHS]["withheld"] is False
@@ -276,11 +276,11 @@ async def test_the_evaluators_node_may_initiate_and_each_side_still_gets_exactly
     assert (results[LIBRARY]["role"], results[BATHS]["role"]) == ("garbler", "evaluator")
     assert results[LIBRARY]["outputs"] == {"matches": plain["matches"]}  # outputs.garbler: [matches]
     baths = results[BATHS]["outputs"]
-    assert list(baths) == ["matches", "sum", "mean", "above"]  # outputs.evaluator
-    assert (baths["matches"], baths["sum"], baths["above"]) == (
+    assert list(baths) == ["matches", "sum", "mean", "at_least"]  # outputs.evaluator
+    assert (baths["matches"], baths["sum"], baths["at_least"]) == (
         plain["matches"],
         plain["sum"],
-        plain["above"],
+        plain["at_least"],
     )
     for name, role in ((LIBRARY, "garbler"), (BATHS, "evaluator")):
         (started,) = [r for r in session_records(pair.log(name), sid) if r["kind"] == "session_started"]
@@ -547,8 +547,8 @@ async def test_a_job_reads_its_input_from_a_sql_query_as_well_as_from_csv(tmp_pa
         snap = (await nodes[BATHS].admin.show_session({"session": sid}))["session"]
     plain = plain_answer(DEMO / "manifest.yaml", DEMO / "garbler.csv", DEMO / "evaluator.csv")
     outputs = json.loads(Path(snap["result_path"]).read_text(encoding="utf-8"))["outputs"]
-    assert (outputs["matches"], outputs["sum"], outputs["above"]) == (
+    assert (outputs["matches"], outputs["sum"], outputs["at_least"]) == (
         plain["matches"],
         plain["sum"],
-        plain["above"],
+        plain["at_least"],
     )

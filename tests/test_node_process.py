@@ -84,7 +84,7 @@ def test_the_demo_runs_two_node_processes_prints_both_results_and_checks_the_log
     # 53/6 in fixed point with 8 fraction bits, rounded toward zero: floor(53/6 · 256) / 256 = 2261/256
     assert "mean = 8.83203125: visits per shared member, 53/6 = 8.83333 exactly" in out
     assert "rounded toward zero to a step of 2^-8" in out
-    assert "above = 3: shared members with at least 10 visits" in out
+    assert "at_least = 3: shared members with at least 10 visits" in out
     assert "each value equals the plain answer" in out
     assert "DIFFERS" not in out
     # the commands it suggests run as written from where it was started

@@ -234,10 +234,10 @@ def explain(name: str, got: Any, plain: dict[str, Any]) -> str:
             f"mean = {got}: visits per shared member, {exact.numerator}/{exact.denominator} = {float(exact):.6g}"
             f" exactly, computed in fixed point and rounded toward zero to a step of 2^-{exponent}"
         )
-    if name == "above":
+    if name == "at_least":
         return (
-            f"above = {got}: shared members with at least {plain['threshold']:g} visits (the manifest's threshold;"
-            " 'above' counts a value equal to it); exact"
+            f"at_least = {got}: shared members with at least {float(plain['threshold']):g} visits (the manifest's"
+            ' threshold, op ">=": a value equal to it counts); exact'
         )
     return f"{name} = {got}"
 
@@ -261,7 +261,7 @@ def plain_answer(manifest_path: Path, garbler_csv: Path, evaluator_csv: Path) ->
         evaluator = {norm(row[key]): float(row[value_col]) for row in csv.DictReader(fh)}
     shared = [evaluator[k] for k in evaluator if k in garbler]
     total = sum(Fraction(str(v)) for v in shared)
-    threshold = stat.threshold  # type: ignore[attr-defined]
+    threshold = Fraction(str(stat.threshold.value))  # type: ignore[attr-defined]
     column = manifest.tables.evaluator.columns[
         [c.name for c in manifest.tables.evaluator.columns].index(value_col)
     ]
@@ -273,7 +273,7 @@ def plain_answer(manifest_path: Path, garbler_csv: Path, evaluator_csv: Path) ->
         "mean": sum(shared) / len(shared) if shared else None,
         "mean_fraction": total / len(shared) if shared else None,
         "threshold": threshold,
-        "above": sum(1 for v in shared if v >= threshold),
+        "at_least": sum(1 for v in shared if Fraction(str(v)) >= threshold),
         "withheld": len(shared) < manifest.disclosure.min_count,
     }
 
