@@ -33,7 +33,10 @@ from jointstat.garble.backends import EvaluatorBackend
 from jointstat.harness.scanner import Secrets
 from jointstat.primitives.blocks import BLOCK_DTYPE
 from jointstat.protocol import frames as fr
-from jointstat.protocol.session import CorrelatedOT, EvaluatorSession, GarblerSession, Session
+from jointstat.protocol.evaluator import EvaluatorSession
+from jointstat.protocol.garbler import GarblerSession
+from jointstat.protocol.session import CorrelatedOT
+from jointstat.protocol.sides import Session
 
 
 def sid_text(session_id: bytes) -> str:

@@ -65,7 +65,7 @@ from jointstat.node.metrics import NodeMetrics
 from jointstat.node.progress import SessionTracker
 from jointstat.node.secrets import SecretFileError
 from jointstat.node.store import JobStore, RunRecord, StoreError
-from jointstat.protocol.session import Session, new_session
+from jointstat.protocol.sides import Session, new_session
 from jointstat.transport.driver import Limits
 from jointstat.transport.server import SessionServer
 

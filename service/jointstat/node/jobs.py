@@ -80,8 +80,8 @@ from jointstat.node.progress import ABORTED, COMPLETED, FAILED, PROPOSING, REFUS
 from jointstat.node.results import RESULT_FORMAT
 from jointstat.node.schedule import Planner
 from jointstat.node.store import JobStore
+from jointstat.protocol import Session, Sign, Verify, new_session
 from jointstat.protocol.frames import AbortReason
-from jointstat.protocol.session import Session, Sign, Verify, new_session
 from jointstat.statements import TRANSCRIPT, Statement
 from jointstat.transport.channel import MESSAGE_OPTIONS, SERVICE_NAME, SessionIds, describe_rpc_error
 from jointstat.transport.driver import Limits, SessionResult, Shutdown

@@ -13,7 +13,7 @@ from collections.abc import Callable
 
 import grpc
 
-from jointstat.protocol.session import Session
+from jointstat.protocol.sides import Session
 from jointstat.transport.channel import MESSAGE_OPTIONS, METHOD_PATH, ClientStream, SessionIds
 from jointstat.transport.driver import Limits, SessionResult, Shutdown, WireCounters, drive
 from jointstat.transport.tls import NodeTLS

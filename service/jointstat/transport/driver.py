@@ -59,7 +59,8 @@ import numpy as np
 
 from jointstat.circuit.model import Party
 from jointstat.protocol.frames import AbortInfo, AbortReason, ProtocolError
-from jointstat.protocol.session import GarblerSession, Session
+from jointstat.protocol.garbler import GarblerSession
+from jointstat.protocol.sides import Session
 
 GRPC_MESSAGE_PREFIX = 5  # compressed flag and 4-byte length before every gRPC message
 READ_AHEAD = 4  # frames read from the stream before the session has taken the ones before

@@ -27,7 +27,7 @@ import grpc
 
 from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import AbortReason, ProtocolError
-from jointstat.protocol.session import Session
+from jointstat.protocol.sides import Session
 from jointstat.transport.channel import (
     MESSAGE_OPTIONS,
     METHOD_NAME,

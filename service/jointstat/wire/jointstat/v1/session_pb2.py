@@ -24,19 +24,19 @@ _sym_db = _symbol_database.Default()
 
 
 
-DESCRIPTOR = _descriptor_pool.Default().AddSerializedFile(b'\n\x1ajointstat/v1/session.proto\x12\x0cjointstat.v1\"\x9b\x01\n\x05Hello\x12\x18\n\x10protocol_version\x18\x01 \x01(\r\x12\x17\n\x0fmanifest_digest\x18\x02 \x01(\x0c\x12\x12\n\nsession_id\x18\x03 \x01(\x0c\x12 \n\x04role\x18\x04 \x01(\x0e\x32\x12.jointstat.v1.Role\x12\x16\n\x0eprogram_digest\x18\x05 \x01(\x0c\x12\x11\n\tsignature\x18\x06 \x01(\x0c\"\x19\n\x06\x42\x61seOT\x12\x0f\n\x07payload\x18\x01 \x01(\x0c\"\x1e\n\x0bOTExtension\x12\x0f\n\x07payload\x18\x01 \x01(\x0c\"$\n\x12GarblerInputLabels\x12\x0e\n\x06labels\x18\x01 \x01(\x0c\"\x1f\n\rGarbledTables\x12\x0e\n\x06tables\x18\x01 \x01(\x0c\"%\n\x13GarblerOutputLabels\x12\x0e\n\x06labels\x18\x01 \x01(\x0c\"+\n\x17\x45valuatorOutputDecoding\x12\x10\n\x08\x64\x65\x63oding\x18\x01 \x01(\x0c\"6\n\x06\x46inish\x12\x19\n\x11transcript_digest\x18\x01 \x01(\x0c\x12\x11\n\tsignature\x18\x02 \x01(\x0c\"C\n\x05\x41\x62ort\x12)\n\x06reason\x18\x01 \x01(\x0e\x32\x19.jointstat.v1.AbortReason\x12\x0f\n\x07message\x18\x02 \x01(\t\"\xe8\x03\n\x05\x46rame\x12$\n\x05hello\x18\x01 \x01(\x0b\x32\x13.jointstat.v1.HelloH\x00\x12\'\n\x07\x62\x61se_ot\x18\x02 \x01(\x0b\x32\x14.jointstat.v1.BaseOTH\x00\x12\x31\n\x0cot_extension\x18\x03 \x01(\x0b\x32\x19.jointstat.v1.OTExtensionH\x00\x12@\n\x14garbler_input_labels\x18\x04 \x01(\x0b\x32 .jointstat.v1.GarblerInputLabelsH\x00\x12\x35\n\x0egarbled_tables\x18\x05 \x01(\x0b\x32\x1b.jointstat.v1.GarbledTablesH\x00\x12\x42\n\x15garbler_output_labels\x18\x06 \x01(\x0b\x32!.jointstat.v1.GarblerOutputLabelsH\x00\x12J\n\x19\x65valuator_output_decoding\x18\x07 \x01(\x0b\x32%.jointstat.v1.EvaluatorOutputDecodingH\x00\x12&\n\x06\x66inish\x18\x08 \x01(\x0b\x32\x14.jointstat.v1.FinishH\x00\x12$\n\x05\x61\x62ort\x18\t \x01(\x0b\x32\x13.jointstat.v1.AbortH\x00\x42\x06\n\x04\x62ody\"\xbf\x01\n\x0bRunProposal\x12\x18\n\x10protocol_version\x18\x01 \x01(\r\x12\x0b\n\x03job\x18\x02 \x01(\t\x12\x17\n\x0fmanifest_digest\x18\x03 \x01(\x0c\x12\x12\n\nsession_id\x18\x04 \x01(\x0c\x12\x18\n\x10scheduled_for_us\x18\x05 \x01(\x03\x12 \n\x04role\x18\x06 \x01(\x0e\x32\x12.jointstat.v1.Role\x12\x0f\n\x07\x61ttempt\x18\x07 \x01(\r\x12\x0f\n\x07trigger\x18\x08 \x01(\t\"[\n\tRunAnswer\x12\x10\n\x08\x61\x63\x63\x65pted\x18\x01 \x01(\x08\x12+\n\x06reason\x18\x02 \x01(\x0e\x32\x1b.jointstat.v1.RefusalReason\x12\x0f\n\x07message\x18\x03 \x01(\t*B\n\x04Role\x12\x14\n\x10ROLE_UNSPECIFIED\x10\x00\x12\x10\n\x0cROLE_GARBLER\x10\x01\x12\x12\n\x0eROLE_EVALUATOR\x10\x02*\x94\x04\n\x0b\x41\x62ortReason\x12\x1c\n\x18\x41\x42ORT_REASON_UNSPECIFIED\x10\x00\x12!\n\x1d\x41\x42ORT_REASON_PROTOCOL_VERSION\x10\x01\x12\"\n\x1e\x41\x42ORT_REASON_MANIFEST_MISMATCH\x10\x02\x12!\n\x1d\x41\x42ORT_REASON_SESSION_MISMATCH\x10\x03\x12 \n\x1c\x41\x42ORT_REASON_SESSION_REFUSED\x10\x04\x12!\n\x1d\x41\x42ORT_REASON_UNEXPECTED_FRAME\x10\x05\x12 \n\x1c\x41\x42ORT_REASON_MALFORMED_FRAME\x10\x06\x12\x1b\n\x17\x41\x42ORT_REASON_OT_FAILURE\x10\x07\x12\x1f\n\x1b\x41\x42ORT_REASON_INVALID_OUTPUT\x10\x08\x12$\n ABORT_REASON_TRANSCRIPT_MISMATCH\x10\t\x12\x1e\n\x1a\x41\x42ORT_REASON_BAD_SIGNATURE\x10\n\x12\x19\n\x15\x41\x42ORT_REASON_DEADLINE\x10\x0b\x12\x1a\n\x16\x41\x42ORT_REASON_CANCELLED\x10\x0c\x12 \n\x1c\x41\x42ORT_REASON_CONNECTION_LOST\x10\r\x12\x19\n\x15\x41\x42ORT_REASON_INTERNAL\x10\x0e\x12\x1e\n\x1a\x41\x42ORT_REASON_PEER_SHUTDOWN\x10\x0f*\x85\x03\n\rRefusalReason\x12\x1e\n\x1aREFUSAL_REASON_UNSPECIFIED\x10\x00\x12%\n!REFUSAL_REASON_JOB_NOT_CONFIGURED\x10\x01\x12\"\n\x1eREFUSAL_REASON_DIGEST_MISMATCH\x10\x02\x12!\n\x1dREFUSAL_REASON_OUTSIDE_WINDOW\x10\x03\x12\x17\n\x13REFUSAL_REASON_BUSY\x10\x04\x12 \n\x1cREFUSAL_REASON_ROLE_MISMATCH\x10\x05\x12\x1c\n\x18REFUSAL_REASON_MALFORMED\x10\x06\x12$\n REFUSAL_REASON_INPUT_UNAVAILABLE\x10\x07\x12 \n\x1cREFUSAL_REASON_SHUTTING_DOWN\x10\x08\x12#\n\x1fREFUSAL_REASON_PROTOCOL_VERSION\x10\t\x12 \n\x1cREFUSAL_REASON_BOTH_INITIATE\x10\n2\x82\x01\n\x07Session\x12\x38\n\x08\x45xchange\x12\x13.jointstat.v1.Frame\x1a\x13.jointstat.v1.Frame(\x01\x30\x01\x12=\n\x07Propose\x12\x19.jointstat.v1.RunProposal\x1a\x17.jointstat.v1.RunAnswerb\x06proto3')
+DESCRIPTOR = _descriptor_pool.Default().AddSerializedFile(b'\n\x1ajointstat/v1/session.proto\x12\x0cjointstat.v1\"\x9b\x01\n\x05Hello\x12\x18\n\x10protocol_version\x18\x01 \x01(\r\x12\x17\n\x0fmanifest_digest\x18\x02 \x01(\x0c\x12\x12\n\nsession_id\x18\x03 \x01(\x0c\x12 \n\x04role\x18\x04 \x01(\x0e\x32\x12.jointstat.v1.Role\x12\x16\n\x0eprogram_digest\x18\x05 \x01(\x0c\x12\x11\n\tsignature\x18\x06 \x01(\x0c\"\x19\n\x06\x42\x61seOT\x12\x0f\n\x07payload\x18\x01 \x01(\x0c\"\x1e\n\x0bOTExtension\x12\x0f\n\x07payload\x18\x01 \x01(\x0c\"$\n\x12GarblerInputLabels\x12\x0e\n\x06labels\x18\x01 \x01(\x0c\"\x1f\n\rGarbledTables\x12\x0e\n\x06tables\x18\x01 \x01(\x0c\"%\n\x13GarblerOutputLabels\x12\x0e\n\x06labels\x18\x01 \x01(\x0c\"+\n\x17\x45valuatorOutputDecoding\x12\x10\n\x08\x64\x65\x63oding\x18\x01 \x01(\x0c\"6\n\x06\x46inish\x12\x19\n\x11transcript_digest\x18\x01 \x01(\x0c\x12\x11\n\tsignature\x18\x02 \x01(\x0c\"\x1b\n\tTablesAck\x12\x0e\n\x06\x66rames\x18\x01 \x01(\x04\"\x95\x01\n\x06Resume\x12\x18\n\x10protocol_version\x18\x01 \x01(\r\x12\x12\n\nsession_id\x18\x02 \x01(\x0c\x12 \n\x04role\x18\x03 \x01(\x0e\x32\x12.jointstat.v1.Role\x12\x0f\n\x07\x61ttempt\x18\x04 \x01(\r\x12\x17\n\x0f\x66rames_received\x18\x05 \x01(\x04\x12\x11\n\tsignature\x18\x06 \x01(\x0c\"C\n\x05\x41\x62ort\x12)\n\x06reason\x18\x01 \x01(\x0e\x32\x19.jointstat.v1.AbortReason\x12\x0f\n\x07message\x18\x02 \x01(\t\"\xbf\x04\n\x05\x46rame\x12$\n\x05hello\x18\x01 \x01(\x0b\x32\x13.jointstat.v1.HelloH\x00\x12\'\n\x07\x62\x61se_ot\x18\x02 \x01(\x0b\x32\x14.jointstat.v1.BaseOTH\x00\x12\x31\n\x0cot_extension\x18\x03 \x01(\x0b\x32\x19.jointstat.v1.OTExtensionH\x00\x12@\n\x14garbler_input_labels\x18\x04 \x01(\x0b\x32 .jointstat.v1.GarblerInputLabelsH\x00\x12\x35\n\x0egarbled_tables\x18\x05 \x01(\x0b\x32\x1b.jointstat.v1.GarbledTablesH\x00\x12\x42\n\x15garbler_output_labels\x18\x06 \x01(\x0b\x32!.jointstat.v1.GarblerOutputLabelsH\x00\x12J\n\x19\x65valuator_output_decoding\x18\x07 \x01(\x0b\x32%.jointstat.v1.EvaluatorOutputDecodingH\x00\x12&\n\x06\x66inish\x18\x08 \x01(\x0b\x32\x14.jointstat.v1.FinishH\x00\x12$\n\x05\x61\x62ort\x18\t \x01(\x0b\x32\x13.jointstat.v1.AbortH\x00\x12-\n\ntables_ack\x18\n \x01(\x0b\x32\x17.jointstat.v1.TablesAckH\x00\x12&\n\x06resume\x18\x0b \x01(\x0b\x32\x14.jointstat.v1.ResumeH\x00\x42\x06\n\x04\x62ody\"\xbf\x01\n\x0bRunProposal\x12\x18\n\x10protocol_version\x18\x01 \x01(\r\x12\x0b\n\x03job\x18\x02 \x01(\t\x12\x17\n\x0fmanifest_digest\x18\x03 \x01(\x0c\x12\x12\n\nsession_id\x18\x04 \x01(\x0c\x12\x18\n\x10scheduled_for_us\x18\x05 \x01(\x03\x12 \n\x04role\x18\x06 \x01(\x0e\x32\x12.jointstat.v1.Role\x12\x0f\n\x07\x61ttempt\x18\x07 \x01(\r\x12\x0f\n\x07trigger\x18\x08 \x01(\t\"[\n\tRunAnswer\x12\x10\n\x08\x61\x63\x63\x65pted\x18\x01 \x01(\x08\x12+\n\x06reason\x18\x02 \x01(\x0e\x32\x1b.jointstat.v1.RefusalReason\x12\x0f\n\x07message\x18\x03 \x01(\t*B\n\x04Role\x12\x14\n\x10ROLE_UNSPECIFIED\x10\x00\x12\x10\n\x0cROLE_GARBLER\x10\x01\x12\x12\n\x0eROLE_EVALUATOR\x10\x02*\xb5\x04\n\x0b\x41\x62ortReason\x12\x1c\n\x18\x41\x42ORT_REASON_UNSPECIFIED\x10\x00\x12!\n\x1d\x41\x42ORT_REASON_PROTOCOL_VERSION\x10\x01\x12\"\n\x1e\x41\x42ORT_REASON_MANIFEST_MISMATCH\x10\x02\x12!\n\x1d\x41\x42ORT_REASON_SESSION_MISMATCH\x10\x03\x12 \n\x1c\x41\x42ORT_REASON_SESSION_REFUSED\x10\x04\x12!\n\x1d\x41\x42ORT_REASON_UNEXPECTED_FRAME\x10\x05\x12 \n\x1c\x41\x42ORT_REASON_MALFORMED_FRAME\x10\x06\x12\x1b\n\x17\x41\x42ORT_REASON_OT_FAILURE\x10\x07\x12\x1f\n\x1b\x41\x42ORT_REASON_INVALID_OUTPUT\x10\x08\x12$\n ABORT_REASON_TRANSCRIPT_MISMATCH\x10\t\x12\x1e\n\x1a\x41\x42ORT_REASON_BAD_SIGNATURE\x10\n\x12\x19\n\x15\x41\x42ORT_REASON_DEADLINE\x10\x0b\x12\x1a\n\x16\x41\x42ORT_REASON_CANCELLED\x10\x0c\x12 \n\x1c\x41\x42ORT_REASON_CONNECTION_LOST\x10\r\x12\x19\n\x15\x41\x42ORT_REASON_INTERNAL\x10\x0e\x12\x1e\n\x1a\x41\x42ORT_REASON_PEER_SHUTDOWN\x10\x0f\x12\x1f\n\x1b\x41\x42ORT_REASON_RESUME_REFUSED\x10\x10*\x85\x03\n\rRefusalReason\x12\x1e\n\x1aREFUSAL_REASON_UNSPECIFIED\x10\x00\x12%\n!REFUSAL_REASON_JOB_NOT_CONFIGURED\x10\x01\x12\"\n\x1eREFUSAL_REASON_DIGEST_MISMATCH\x10\x02\x12!\n\x1dREFUSAL_REASON_OUTSIDE_WINDOW\x10\x03\x12\x17\n\x13REFUSAL_REASON_BUSY\x10\x04\x12 \n\x1cREFUSAL_REASON_ROLE_MISMATCH\x10\x05\x12\x1c\n\x18REFUSAL_REASON_MALFORMED\x10\x06\x12$\n REFUSAL_REASON_INPUT_UNAVAILABLE\x10\x07\x12 \n\x1cREFUSAL_REASON_SHUTTING_DOWN\x10\x08\x12#\n\x1fREFUSAL_REASON_PROTOCOL_VERSION\x10\t\x12 \n\x1cREFUSAL_REASON_BOTH_INITIATE\x10\n2\x82\x01\n\x07Session\x12\x38\n\x08\x45xchange\x12\x13.jointstat.v1.Frame\x1a\x13.jointstat.v1.Frame(\x01\x30\x01\x12=\n\x07Propose\x12\x19.jointstat.v1.RunProposal\x1a\x17.jointstat.v1.RunAnswerb\x06proto3')
 
 _globals = globals()
 _builder.BuildMessageAndEnumDescriptors(DESCRIPTOR, _globals)
 _builder.BuildTopDescriptorsAndMessages(DESCRIPTOR, 'jointstat.v1.session_pb2', _globals)
 if not _descriptor._USE_C_DESCRIPTORS:
   DESCRIPTOR._loaded_options = None
-  _globals['_ROLE']._serialized_start=1319
-  _globals['_ROLE']._serialized_end=1385
-  _globals['_ABORTREASON']._serialized_start=1388
-  _globals['_ABORTREASON']._serialized_end=1920
-  _globals['_REFUSALREASON']._serialized_start=1923
-  _globals['_REFUSALREASON']._serialized_end=2312
+  _globals['_ROLE']._serialized_start=1587
+  _globals['_ROLE']._serialized_end=1653
+  _globals['_ABORTREASON']._serialized_start=1656
+  _globals['_ABORTREASON']._serialized_end=2221
+  _globals['_REFUSALREASON']._serialized_start=2224
+  _globals['_REFUSALREASON']._serialized_end=2613
   _globals['_HELLO']._serialized_start=45
   _globals['_HELLO']._serialized_end=200
   _globals['_BASEOT']._serialized_start=202
@@ -53,14 +53,18 @@ if not _descriptor._USE_C_DESCRIPTORS:
   _globals['_EVALUATOROUTPUTDECODING']._serialized_end=414
   _globals['_FINISH']._serialized_start=416
   _globals['_FINISH']._serialized_end=470
-  _globals['_ABORT']._serialized_start=472
-  _globals['_ABORT']._serialized_end=539
-  _globals['_FRAME']._serialized_start=542
-  _globals['_FRAME']._serialized_end=1030
-  _globals['_RUNPROPOSAL']._serialized_start=1033
-  _globals['_RUNPROPOSAL']._serialized_end=1224
-  _globals['_RUNANSWER']._serialized_start=1226
-  _globals['_RUNANSWER']._serialized_end=1317
-  _globals['_SESSION']._serialized_start=2315
-  _globals['_SESSION']._serialized_end=2445
+  _globals['_TABLESACK']._serialized_start=472
+  _globals['_TABLESACK']._serialized_end=499
+  _globals['_RESUME']._serialized_start=502
+  _globals['_RESUME']._serialized_end=651
+  _globals['_ABORT']._serialized_start=653
+  _globals['_ABORT']._serialized_end=720
+  _globals['_FRAME']._serialized_start=723
+  _globals['_FRAME']._serialized_end=1298
+  _globals['_RUNPROPOSAL']._serialized_start=1301
+  _globals['_RUNPROPOSAL']._serialized_end=1492
+  _globals['_RUNANSWER']._serialized_start=1494
+  _globals['_RUNANSWER']._serialized_end=1585
+  _globals['_SESSION']._serialized_start=2616
+  _globals['_SESSION']._serialized_end=2746
 # @@protoc_insertion_point(module_scope)
