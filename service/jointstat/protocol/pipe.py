@@ -125,10 +125,9 @@ def run_in_memory(
         try:
             resumes = target.resumes
             replies = target.receive(data)
-            if target.resumes > resumes:
-                if to == resuming:  # the initiator has taken the answer: the exchange is over
-                    resuming = None
-                    stats.resumes += 1
+            if target.resumes > resumes and to == resuming:  # the initiator has taken the answer: resumed
+                resuming = None
+                stats.resumes += 1
             post(other[to], replies)
         except ProtocolError as exc:
             if exc.frame is not None:
