@@ -98,6 +98,7 @@ class GarblerSession(SessionBase):
         self._producer: TableProducer | None = None
         self._gates_garbled = 0  # once the program has ended (the backend is gone)
         self._producing = False
+        self.last_number = -1  # the number of the logical frame produce() handed out last
         self._output_zero: dict[Party, np.ndarray] | None = None
         self._returned = Accumulator(
             fr.GARBLER_OUTPUT_LABELS, BLOCK_BYTES * self._n_out[Party.GARBLER], "16 bytes per garbler output"
@@ -162,7 +163,7 @@ class GarblerSession(SessionBase):
         try:
             current = next(payloads, None)
             if current is None:  # no garbler inputs and no AND gates: nothing to stream
-                yield from self._dispatch(TABLES_SENT, None)
+                yield from self._hand_out(self._dispatch_numbered(TABLES_SENT))
                 return
             while current is not None:
                 # Pull the next chunk first: it runs the program further, and after the last one the program has
@@ -179,10 +180,12 @@ class GarblerSession(SessionBase):
                         f"{len(frame)} would pass its limit of {self.replay_limit_bytes}: the transport must wait "
                         "for acknowledgements (can_stream)",
                     )
+                number = self._transcript.logical_sent
                 data = self._emit(kind, frame)
-                extra = self._dispatch(TABLES_SENT, None) if upcoming is None else []
+                extra = self._dispatch_numbered(TABLES_SENT) if upcoming is None else []
+                self.last_number = number
                 yield data
-                yield from extra
+                yield from self._hand_out(extra)
                 current = upcoming
         except ProtocolError:
             raise
@@ -195,6 +198,19 @@ class GarblerSession(SessionBase):
                 AbortReason.INTERNAL,
                 f"{self._who} in state {self._state!r}: garbling failed ({type(exc).__name__})",
             ) from exc
+
+    def _dispatch_numbered(self, event: str) -> list[tuple[int, bytes]]:
+        """The frames an event sends, each with its number (they are all logical frames)."""
+        first = self._transcript.logical_sent
+        return list(enumerate(self._dispatch(event, None), start=first))
+
+    def _hand_out(self, frames: list[tuple[int, bytes]]) -> Iterator[bytes]:
+        """Yield frames made earlier in this step, but not those a resume has resent meanwhile (made, not yet
+        handed out, then resent from the replay buffer: handing them out again would send them twice)."""
+        for number, data in frames:
+            if number >= self._resent_upto:
+                self.last_number = number
+                yield data
 
     def _payloads(self, delta: np.ndarray, evaluator_zero: np.ndarray) -> Iterator[tuple[str, bytes]]:
         own_zero = np.frombuffer(

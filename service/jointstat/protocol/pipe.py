@@ -82,7 +82,9 @@ def run_in_memory(
             post(other[initiator], [sessions[initiator].resume_frame(attempt)])
             return True
         for session in sessions.values():
-            session.fail(AbortReason.CONNECTION_LOST, "the connection was cut before the session could resume")
+            session.fail(
+                AbortReason.CONNECTION_LOST, "the connection was cut before the session could resume"
+            )
         stats.lost = True
         return False
 

@@ -353,6 +353,7 @@ class SessionBase(TableMachine[fr.AnyFrame | None, list[bytes]]):
         self._last_attempt = 0  # the latest resume attempt accepted
         self._offered_attempt = 0  # the attempt of the resume frame this side sent and awaits an answer to
         self.resumes = 0  # resumes completed on this side
+        self._resent_upto = 0  # every logical frame numbered below this has been handed out by a resume
 
     # -- public view ----------------------------------------------------------------------------------------------
     @property
@@ -652,6 +653,7 @@ class SessionBase(TableMachine[fr.AnyFrame | None, list[bytes]]):
         self._last_attempt = r.attempt
         self.resumes += 1
         self._acknowledged(r.frames_received, "the peer's resume")
+        self._resent_upto = self._transcript.logical_sent
         return answer + list(self._replay)
 
     def _on_resume(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
