@@ -488,6 +488,13 @@ class SessionBase(TableMachine[fr.AnyFrame | None, list[bytes]]):
         self._transcript.received(kind, data)
         return self._dispatch(kind, frame)
 
+    def check_resume(self, data: bytes) -> None:
+        """Check a peer's resume frame without taking it: raises ``ResumeRefused`` when ``receive`` would."""
+        kind, frame = fr.decode(data)
+        if kind != fr.RESUME:
+            raise ResumeRefused(f"{self._who}: a {kind!r} frame is not a resume")
+        self._check_resume(frame)
+
     def resume_frame(self, attempt: int) -> bytes:
         """The resume frame this side opens a new stream with, for reconnection ``attempt`` (1, 2, … increasing).
 

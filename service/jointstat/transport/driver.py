@@ -160,6 +160,8 @@ class _Driver:
             cap_bytes=cap, floor_bytes=min(2 * unit, cap), initial_bytes=limits.window_initial_bytes
         )
         self._ot_flow_seen = (0, 0)
+        self._checks: list[asyncio.Task[None]] = []
+        self._finished = False
         session.use_hash_factory(self._hasher.new)
 
     # -- helpers ----------------------------------------------------------------------------------------------------
@@ -215,11 +217,35 @@ class _Driver:
         """A stream the server accepted for this session (server side): the first (``resuming`` False, its first
         frame the hello) or one resuming it; the future ends with that link."""
         over: asyncio.Future[None] = self._loop.create_future()
-        self._offers.put_nowait(Offer(stream, first, over))
+        offer = Offer(stream, first, over)
         link = self._link
-        if resuming and link is not None and self._connected.is_set():
-            link.lose("a new stream resumed the session")  # the peer reconnected before this side saw the cut
+        if self._finished:
+            refused = ProtocolError(AbortReason.RESUME_REFUSED, "the session has ended here")
+            self._checks.append(asyncio.create_task(self._refuse_offer(offer, refused)))
+        elif resuming and link is not None and self._connected.is_set():
+            # The peer reconnected before this side saw the cut: the running link gives way, but only to a resume
+            # that checks (anyone else holding a pinned certificate could otherwise cut the session).
+            self._checks.append(asyncio.create_task(self._supersede(link, offer)))
+        else:
+            self._offers.put_nowait(offer)
         return over
+
+    async def _supersede(self, link: _Link, offer: Offer) -> None:
+        try:
+            await self._call(self.session.check_resume, offer.first)
+        except ProtocolError as exc:
+            await self._refuse_offer(offer, exc)
+            return
+        link.lose("the peer resumed the session on a new stream")
+        self._offers.put_nowait(offer)
+
+    async def _refuse_offer(self, offer: Offer, exc: ProtocolError) -> None:
+        self._event(REFUSED, str(exc))
+        with contextlib.suppress(Exception):
+            frame = exc.frame or fr.abort_frame(AbortReason.RESUME_REFUSED, str(exc))
+            await offer.stream.write(frame)
+        if not offer.over.done():
+            offer.over.set_result(None)
 
     def stream_gone(self, stream: FrameStream, why: str) -> None:
         """The server's handler of ``stream`` was cancelled: if it is the current link, it is lost."""
@@ -521,12 +547,7 @@ class _Driver:
                 try:
                     replies, _ = await self._call(self._receive, offer.first)
                 except ResumeRefused as exc:
-                    self._event(REFUSED, str(exc))
-                    with contextlib.suppress(Exception):
-                        if exc.frame is not None:
-                            await offer.stream.write(exc.frame)
-                    if not offer.over.done():
-                        offer.over.set_result(None)
+                    await self._refuse_offer(offer, exc)
                     continue
                 except ProtocolError as exc:
                     self._event(REFUSED, str(exc))
@@ -673,13 +694,19 @@ class _Driver:
             self._room.set()
             self._connected.set()  # a producer waiting for a link wakes up and sees the stop
             producer = self._producer
-            for task in (*watchers, *([producer] if producer is not None else [])):
+            others = [*watchers, *self._checks, *([producer] if producer is not None else [])]
+            for task in others:
                 task.cancel()
-            for task in (*watchers, *([producer] if producer is not None else [])):
+            for task in others:
                 with contextlib.suppress(asyncio.CancelledError, Exception):
                     await task
             with contextlib.suppress(Exception):
                 await self._call(self.session.release)
+            self._finished = True
+            ended = ProtocolError(AbortReason.RESUME_REFUSED, "the session has ended here")
+            while not self._offers.empty():
+                with contextlib.suppress(Exception):
+                    await self._refuse_offer(self._offers.get_nowait(), ended)
         flow = FlowFigures(
             rtt_min_s=None if not math.isfinite(self._flow.rtt_min_s) else self._flow.rtt_min_s,
             rate_bytes_per_s=self._flow.rate_bytes_per_s,
