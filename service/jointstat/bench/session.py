@@ -93,6 +93,11 @@ def node_process(spec: dict[str, Any], conn: Connection) -> None:
         conn.close()
 
 
+def session_id(run: int, attempt: int) -> bytes:
+    """The id of a node process's session: run ``run`` (1, 2: uncut and cut), attempt ``attempt`` (1 + restarts)."""
+    return SESSION_ID + f"-{run}-{attempt}".encode()
+
+
 def _limits(linked: bool) -> Any:
     from jointstat.transport import Limits
 
@@ -141,7 +146,7 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> None:
         conn.send({"port": await server.start()})
 
     def new(run: int, attempt: int) -> Any:
-        sid = SESSION_ID + f"-{run}-{attempt}".encode()
+        sid = session_id(run, attempt)
         if garbler:
             return GarblerSession(
                 session_id=sid, inputs=bits[party], chunk_bytes=spec["chunk_bytes"], **common
@@ -481,6 +486,8 @@ def run(
             base["garbler_to_evaluator_bytes"] / base["wall_s"] / rate, 3
         )
         figures["slowdown"] = round(figures["wall_s"] / base["wall_s"], 3)
+        # bytes sent again after the cuts (frames in flight or unacknowledged when the link went down)
+        figures["resent_bytes"] = figures["garbler_to_evaluator_bytes"] - base["garbler_to_evaluator_bytes"]
         figures["outputs_correct"] = figures["outputs_correct"] and base["outputs_correct"]
     title = f"session benchmark (two node processes through the link emulator: {link}, {rtt} RTT"
     emit(title + (f", {cuts} cuts)" if cuts else ")"), figures, as_json)
