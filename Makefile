@@ -16,6 +16,7 @@ install: $(STAMP)
 lint: $(STAMP)
 	$(BIN)/ruff check service tests
 	$(BIN)/ruff format --check service tests
+	$(BIN)/mypy
 
 format: $(STAMP)
 	$(BIN)/ruff format service tests
@@ -58,4 +59,4 @@ lock:
 	mv constraints.new constraints.txt
 
 clean:
-	rm -rf $(VENV) build *.egg-info .pytest_cache .ruff_cache
+	rm -rf $(VENV) build *.egg-info .pytest_cache .ruff_cache .mypy_cache

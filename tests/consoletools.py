@@ -74,17 +74,11 @@ def outside_references(html: str) -> list[str]:
 
 
 HEX_RUN = re.compile(r"[0-9A-Fa-f]{32,}")
-B64_RUN = re.compile(r"[A-Za-z0-9+/_-]{40,}={0,2}")
 
 
 def unexplained_hex(text: str, allowed: set[str]) -> list[str]:
     """Runs of 32 or more hex digits (the length of a label or Δ) that are not one of the ``allowed`` public ids."""
     return [run for run in HEX_RUN.findall(text) if run.lower() not in allowed]
-
-
-def unexplained_base64(text: str, allowed: set[str]) -> list[str]:
-    """Base64-looking runs of 40 or more characters that are not one of the ``allowed`` public values."""
-    return [run for run in B64_RUN.findall(text) if run not in allowed and not HEX_RUN.fullmatch(run)]
 
 
 @dataclass

@@ -181,6 +181,8 @@ def test_an_operator_logs_in_runs_a_job_watches_it_complete_and_checks_results_a
     nodes: ConsolePair, browser: Any, screens: Path
 ) -> None:
     from selenium.webdriver.common.by import By
+    from selenium.webdriver.support import expected_conditions
+    from selenium.webdriver.support.ui import WebDriverWait
 
     driver, url = browser, nodes.url(LIBRARY)
 
@@ -189,10 +191,18 @@ def test_an_operator_logs_in_runs_a_job_watches_it_complete_and_checks_results_a
     assert driver.current_url == f"{url}/login"
     driver.find_element(By.ID, "token").send_keys("not-the-token-" + "x" * 40)
     driver.find_element(By.CSS_SELECTOR, "form[action='/login'] button").click()
-    assert "That is not this node's console token." in text_of(driver, "main")
+    # A click does not wait for the page the form posts to (a loaded machine showed the old page): wait for it.
+    refused = "That is not this node's console token."
+    WebDriverWait(driver, WAIT_S).until(
+        expected_conditions.text_to_be_present_in_element((By.CSS_SELECTOR, "main"), refused),
+        message="the refused login's page did not come",
+    )
     screenshot(driver, screens / "1-login-refused.png")
     driver.find_element(By.ID, "token").send_keys(nodes.token(LIBRARY))
     driver.find_element(By.CSS_SELECTOR, "form[action='/login'] button").click()
+    WebDriverWait(driver, WAIT_S).until(
+        lambda d: d.current_url != f"{url}/login", message="the login did not leave the login page"
+    )
 
     # The job list.
     assert driver.current_url == f"{url}/jobs"

@@ -143,6 +143,8 @@ def test_output_values_are_written_by_their_kind() -> None:
 
 
 def test_times_are_written_in_utc_and_in_a_jobs_own_time_zone() -> None:
+    # Paris is UTC+1 (CET) in early March and London UTC+1 (BST) in July: the EU summer-time rule, checked against
+    # the time-zone database in tests/test_node_schedule.py.
     assert present.when(T0) == "2025-03-03 02:15:00 UTC"
     assert present.when_in(T0, "Europe/Paris") == "2025-03-03 03:15 CET"
     assert present.when_in(datetime(2025, 7, 1, 1, 0, tzinfo=UTC), "Europe/London") == "2025-07-01 02:00 BST"

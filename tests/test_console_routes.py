@@ -606,7 +606,7 @@ async def test_the_jobs_page_shows_each_jobs_settings_and_latest_outcome_and_run
     assert "<code>15 2 * * 1</code>" in weekly and "Europe/Paris" in weekly
     assert (
         "2025-03-10 02:15 CET" in weekly and "2025-03-10 01:15:00 UTC" in weekly
-    )  # next run, in its zone and UTC
+    )  # next run, in its zone (CET = UTC+1 before summer time: see tests/test_node_schedule.py) and UTC
     assert "closed" in weekly and "open" in monthly
     assert 'action="/jobs/weekly-totals/run"' in weekly and "Run now" in weekly
     assert "Run now" not in monthly and "when beta starts it" in monthly

@@ -46,7 +46,6 @@ from tests.circuits import (
 )
 
 G, E = Party.GARBLER, Party.EVALUATOR
-MASK128 = (1 << 128) - 1
 
 
 # -- the independent reference: ZRE15 figure 2 on Python integers -------------------------------------------------

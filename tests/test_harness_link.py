@@ -1,7 +1,8 @@
 """The link emulator (``jointstat.harness.link``): rate, delay, queue and cuts, measured against their settings.
 
 Here timing is the thing under test — the emulator's own rate and delay — not the speed of the product, so these
-tests measure time. Every tolerance is justified beside it. The timing tests run the emulator as the benchmarks do,
+tests measure time; likewise the memory the emulator holds when a receiver stalls, since a bounded buffer is part
+of what it emulates (a router's queue), is traced in one test. Every tolerance is justified beside it. The timing tests run the emulator as the benchmarks do,
 in a process of its own (``LinkProcess``), with plain blocking sockets on this side; the behaviour tests run
 ``Link`` in the test's event loop. Everything binds to 127.0.0.1, moves at most a few tens of MB, and is bounded
 by a timeout of its own.
@@ -50,7 +51,6 @@ from jointstat.harness.link import (
 
 LOOPBACK = "127.0.0.1"
 MBIT = 1e6 / 8  # bytes per second in one Mbit/s (SI prefix M = 10^6; 8 bits to a byte)
-GBIT = 1e9 / 8
 TEST_TIMEOUT_S = 20.0  # any one test ends by this, even if the emulator hangs
 
 # A fast link for the behaviour tests: they check what arrives, not when.

@@ -15,9 +15,9 @@ import pytest
 import yaml
 from hypothesis import given
 from hypothesis import strategies as st
+from jointstat.circuit.agreement import DEFAULT_MAX_FALSE_MATCHES
 from jointstat.circuit.compile import compile_manifest
 from jointstat.circuit.manifest import (
-    DEFAULT_MAX_FALSE_MATCHES,
     ManifestError,
     expected_false_matches,
     key_matching,

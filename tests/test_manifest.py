@@ -11,8 +11,9 @@ from pathlib import Path
 
 import pytest
 import yaml
+from jointstat.circuit.agreement import canonical_json
 from jointstat.circuit.compile import compile_manifest
-from jointstat.circuit.manifest import ManifestError, canonical_json, load_manifest, parse_manifest, schema
+from jointstat.circuit.manifest import ManifestError, load_manifest, parse_manifest, schema
 
 ROOT = Path(__file__).resolve().parents[1]
 CONFIGS = sorted((ROOT / "configs").glob("*/manifest.yaml"))

@@ -126,7 +126,7 @@ async def test_progress_phases_add_up_to_the_sessions_traffic(tmp_path: Path) ->
     pair = make_pair(tmp_path)
     async with running(pair) as nodes:
         sid = await operator_run(nodes)
-        snaps = {n: (await nodes[n].admin_show_session({"session": sid}))["session"] for n in nodes}
+        snaps = {n: (await nodes[n].admin.show_session({"session": sid}))["session"] for n in nodes}
     for snap in snaps.values():
         wire = [p for p in snap["phases"] if p["phase"] not in ("prepare", "proposal")]
         assert sum(p["bytes_sent"] for p in wire) == snap["bytes_sent"]

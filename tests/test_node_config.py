@@ -274,6 +274,31 @@ def test_a_unix_socket_path_longer_than_the_kernel_allows_is_refused() -> None:
     assert problem.startswith("node.admin: ") and "longer than 107 bytes" in problem
 
 
+def test_the_unix_socket_path_limit_is_the_longest_path_this_kernel_binds() -> None:
+    # unix(7): sun_path holds 108 bytes on Linux, one of them the terminating NUL, so a path has at most 107 (from
+    # memory). Checked against the running kernel through the socket module: 107 bytes bind, 108 are refused; the
+    # config accepts the first and refuses the second.
+    import socket
+    import tempfile
+
+    folder = Path(tempfile.mkdtemp(prefix="jsu-", dir="/tmp"))
+    try:
+        fits, too_long = (str(folder / ("s" * (n - len(str(folder)) - 1))) for n in (107, 108))
+        assert (len(fits), len(too_long)) == (107, 108)
+        with socket.socket(socket.AF_UNIX) as sock:
+            sock.bind(fits)
+        with socket.socket(socket.AF_UNIX) as sock, pytest.raises(OSError, match="too long"):
+            sock.bind(too_long)
+        data = base_config()
+        data["node"]["admin"] = f"unix:{fits}"
+        assert parse_node_config(yaml.safe_dump(data)).node.admin == UnixSocket(Path(fits))
+        data["node"]["admin"] = f"unix:{too_long}"
+        (problem,) = problems_of(data)
+        assert problem.startswith("node.admin: ") and "longer than 107 bytes" in problem
+    finally:
+        shutil.rmtree(folder)
+
+
 def test_address_strings_are_what_grpc_takes() -> None:
     assert str(parse_host_port("[::1]:7300")) == "[::1]:7300"
     assert str(parse_host_port("Node-1.Example:7300")) == "node-1.example:7300"

@@ -169,7 +169,7 @@ def tracker_ended(node: Node, sid: str) -> bool:
 
 async def operator_run(nodes: dict[str, Node], initiator: str = LIBRARY) -> str:
     """Run the job now on the initiator's node and wait until both nodes have ended the session; its id."""
-    started = await nodes[initiator].admin_run_job({"job": JOB})
+    started = await nodes[initiator].admin.run_job({"job": JOB})
     sid = started["session"]
     await until(
         lambda: tracker_ended(nodes[LIBRARY], sid) and tracker_ended(nodes[BATHS], sid), "the session"
@@ -196,7 +196,8 @@ def csv_secrets() -> list[str]:
 
 
 def short_tmp() -> Path:
-    """A short directory under /tmp (a Unix socket path must fit in 107 bytes)."""
+    """A short directory under /tmp (a Unix socket path must fit in 107 bytes: unix(7), checked against the kernel in
+    tests/test_node_config.py)."""
     import tempfile
 
     return Path(tempfile.mkdtemp(prefix="jsn-", dir="/tmp"))
@@ -228,7 +229,7 @@ async def test_an_operator_run_completes_on_both_nodes_each_with_only_its_own_re
     pair = make_pair(tmp_path)
     async with running(pair) as nodes:
         sid = await operator_run(nodes)
-        snaps = {n: (await nodes[n].admin_show_session({"session": sid}))["session"] for n in nodes}
+        snaps = {n: (await nodes[n].admin.show_session({"session": sid}))["session"] for n in nodes}
     plain = plain_answer(DEMO / "manifest.yaml", DEMO / "garbler.csv", DEMO / "evaluator.csv")
     results = {}
     for name, snap in snaps.items():
@@ -256,9 +257,9 @@ async def test_the_evaluators_node_may_initiate_and_each_side_still_gets_exactly
 ) -> None:
     pair = make_pair(tmp_path, library_initiates=False, baths_initiates=True)
     async with running(pair) as nodes:
-        listed = {n: (await nodes[n].admin_list_jobs({}))["jobs"][0] for n in nodes}
+        listed = {n: (await nodes[n].admin.list_jobs({}))["jobs"][0] for n in nodes}
         sid = await operator_run(nodes, initiator=BATHS)
-        snaps = {n: (await nodes[n].admin_show_session({"session": sid}))["session"] for n in nodes}
+        snaps = {n: (await nodes[n].admin.show_session({"session": sid}))["session"] for n in nodes}
     assert {n: (j["role"], j["initiate"]) for n, j in listed.items()} == {
         LIBRARY: ("garbler", False),
         BATHS: ("evaluator", True),
@@ -320,7 +321,7 @@ async def test_the_job_store_records_the_run_on_both_sides_with_its_trigger(tmp_
     pair = make_pair(tmp_path)
     async with running(pair) as nodes:
         sid = await operator_run(nodes)
-        history = (await nodes[LIBRARY].admin_history({"job": JOB}))["runs"]
+        history = (await nodes[LIBRARY].admin.history({"job": JOB}))["runs"]
     assert [(r["session"], r["status"], r["trigger"]) for r in history] == [(sid, "completed", "operator")]
     (theirs,) = pair.store_rows(BATHS)
     assert (theirs.session_id, theirs.status, theirs.trigger, theirs.job) == (sid, "completed", "peer", JOB)
@@ -363,13 +364,13 @@ async def test_the_admin_api_lists_jobs_and_refuses_unknown_or_accept_only_jobs(
 
     pair = make_pair(tmp_path)
     async with running(pair) as nodes:
-        (job,) = (await nodes[LIBRARY].admin_list_jobs({}))["jobs"]
+        (job,) = (await nodes[LIBRARY].admin.list_jobs({}))["jobs"]
         with pytest.raises(RequestError) as unknown:
-            await nodes[LIBRARY].admin_run_job({"job": "no-such-job"})
+            await nodes[LIBRARY].admin.run_job({"job": "no-such-job"})
         with pytest.raises(RequestError) as accept_only:
-            await nodes[BATHS].admin_run_job({"job": JOB})
+            await nodes[BATHS].admin.run_job({"job": JOB})
         with pytest.raises(RequestError) as no_session:
-            await nodes[BATHS].admin_show_session({"session": "00ff"})
+            await nodes[BATHS].admin.show_session({"session": "00ff"})
     assert (job["name"], job["peer"], job["role"], job["initiate"], job["window_open"]) == (
         JOB,
         BATHS,
@@ -538,7 +539,7 @@ async def test_a_job_reads_its_input_from_a_sql_query_as_well_as_from_csv(tmp_pa
     pair = make_pair(tmp_path, baths_jobs=[job])
     async with running(pair) as nodes:
         sid = await operator_run(nodes)
-        snap = (await nodes[BATHS].admin_show_session({"session": sid}))["session"]
+        snap = (await nodes[BATHS].admin.show_session({"session": sid}))["session"]
     plain = plain_answer(DEMO / "manifest.yaml", DEMO / "garbler.csv", DEMO / "evaluator.csv")
     outputs = json.loads(Path(snap["result_path"]).read_text(encoding="utf-8"))["outputs"]
     assert (outputs["matches"], outputs["sum"], outputs["above"]) == (

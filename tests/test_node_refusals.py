@@ -80,13 +80,13 @@ async def refused_run(pair: Pair, clock: ManualClock, busy: bool = False) -> tup
                 trigger="peer",
                 started_at=clock.now(),
             )
-        started = await nodes[LIBRARY].admin_run_job({"job": JOB})
+        started = await nodes[LIBRARY].admin.run_job({"job": JOB})
         sid = started["session"]
         library = nodes[LIBRARY].state
         assert library is not None
         await until(lambda: sid in library.sessions and library.sessions[sid].ended, "the refusal")
         await until(lambda: not nodes[LIBRARY]._jobs, "the run to finish its attempts")
-        snap = (await nodes[LIBRARY].admin_show_session({"session": sid}))["session"]
+        snap = (await nodes[LIBRARY].admin.show_session({"session": sid}))["session"]
     return sid, snap
 
 
@@ -149,7 +149,7 @@ async def test_inside_the_window_at_the_accepting_node_the_same_run_is_accepted(
     timing = {"cron": "0 3 * * *", "window_minutes": 40}
     pair = make_pair(tmp_path, library_job=timing, baths_job=timing)
     async with running(pair, ManualClock(NOW - timedelta(minutes=20))) as nodes:
-        started = await nodes[LIBRARY].admin_run_job({"job": JOB})
+        started = await nodes[LIBRARY].admin.run_job({"job": JOB})
         library = nodes[LIBRARY].state
         assert library is not None
         await until(

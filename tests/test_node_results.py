@@ -1,4 +1,4 @@
-"""Reading back result files (``node.results``): what ``jobs.write_result`` writes reads back field for field,
+"""Reading back result files (``node.results``): what ``write_result`` writes reads back field for field,
 newest files are listed oldest first, and a damaged file is named without hiding the others or showing a value."""
 
 from __future__ import annotations
@@ -11,8 +11,7 @@ from pathlib import Path
 import pytest
 from jointstat.circuit.model import Party
 from jointstat.node.config import parse_node_config
-from jointstat.node.jobs import write_result
-from jointstat.node.results import ResultFileError, ResultRecord, job_results, read_result
+from jointstat.node.results import ResultFileError, ResultRecord, job_results, read_result, write_result
 
 CONFIG = """
 node: {name: teal-valley-weather, listen: "127.0.0.1:0", data_dir: data}

@@ -3,9 +3,11 @@ job store that remembers runs. Times are given explicitly: no test reads the clo
 
 from __future__ import annotations
 
+import calendar
 import stat
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
+from zoneinfo import ZoneInfo
 
 import pytest
 from jointstat.node.schedule import DueRun, JobTiming, Planner, ScheduleError
@@ -19,8 +21,45 @@ def utc(*args: int) -> datetime:
 NIGHTLY = JobTiming(job="nightly", cron="30 1 * * *", timezone="Europe/Berlin", window=timedelta(hours=2))
 
 
+def eu_offset(standard_hours: int, when: datetime) -> timedelta:
+    """The UTC offset of a European zone at ``when`` by the EU summer-time rule (Directive 2000/84/EC, articles 2
+    and 3, from memory): summer time, one hour ahead of standard time, runs from 01:00 UTC on the last Sunday of
+    March to 01:00 UTC on the last Sunday of October."""
+
+    def last_sunday(month: int) -> datetime:
+        day = max(d for d in range(25, 32) if calendar.weekday(when.year, month, d) == calendar.SUNDAY)
+        return datetime(when.year, month, day, 1, tzinfo=UTC)
+
+    summer = last_sunday(3) <= when < last_sunday(10)
+    return timedelta(hours=standard_hours + summer)
+
+
+# Standard time of each zone the tests use, in hours east of UTC: CET = UTC+1, GMT = UTC+0 (from memory).
+ZONES = {"Europe/Berlin": 1, "Europe/Paris": 1, "Europe/London": 0}
+
+
+@pytest.mark.parametrize("zone", sorted(ZONES))
+def test_the_zone_offsets_these_tests_rely_on_follow_the_eu_summer_time_rule(zone: str) -> None:
+    # The time-zone database the schedule and the console read (zoneinfo with the tzdata package) against the rule,
+    # on the dates the schedule and console tests use and around each change of 2025 and 2026.
+    moments = [
+        utc(2026, 12, 2, 0, 30),
+        utc(2026, 7, 1, 23, 30),
+        utc(2025, 3, 3, 2, 15),
+        utc(2025, 3, 10, 1, 15),
+    ]
+    moments += [utc(2025, 7, 1, 1, 0)]
+    for year, march, october in ((2025, 30, 26), (2026, 29, 25)):
+        for day, month in ((march, 3), (october, 10)):
+            change = utc(year, month, day, 1)
+            moments += [change - timedelta(minutes=1), change, change + timedelta(hours=1)]
+    for when in moments:
+        assert when.astimezone(ZoneInfo(zone)).utcoffset() == eu_offset(ZONES[zone], when), (zone, when)
+
+
 def test_cron_times_are_read_in_the_jobs_time_zone() -> None:
-    # 01:30 in Berlin is 23:30 UTC the day before in winter (UTC+1) and 23:30 → 22:30 UTC in summer (UTC+2).
+    # 01:30 in Berlin is 23:30 UTC the day before in winter (UTC+1) and 23:30 → 22:30 UTC in summer (UTC+2): the
+    # EU summer-time rule, checked against the time-zone database above.
     winter = NIGHTLY.fire_times(utc(2026, 12, 1, 12), utc(2026, 12, 3, 12))
     assert winter == [utc(2026, 12, 2, 0, 30), utc(2026, 12, 3, 0, 30)]
     summer = NIGHTLY.fire_times(utc(2026, 7, 1, 12), utc(2026, 7, 2, 12))

@@ -12,12 +12,19 @@ from jointstat.bench import ot as bench_ot
 def test_bench_reports_json_figures(capsys: pytest.CaptureFixture[str]) -> None:
     assert cli.main(["bench", "ot", "--count", "300", "--json"]) == 0
     figures = json.loads(capsys.readouterr().out)
-    for key in ("count", "base_ot_seconds", "extension_ot_per_s", "bytes_per_ot"):
+    for key in (
+        "count",
+        "base_ot_seconds",
+        "extension_ot_per_s",
+        "bytes_per_ot",
+        "working_mib_beyond_outputs",
+    ):
         assert key in figures
     assert figures["count"] == 300
     # 300 OTs = one batch: 128 columns of 384 bits (48 bytes each) plus 300 corrections of 16 bytes.
     assert figures["bytes_per_ot"] == pytest.approx((128 * 48 + 16 * 300) / 300)
     assert figures["base_ot_seconds"] > 0 and figures["extension_ot_per_s"] > 0
+    assert figures["working_mib_beyond_outputs"] > 0  # measured, whatever its size
 
 
 def test_bench_table_output(capsys: pytest.CaptureFixture[str]) -> None:

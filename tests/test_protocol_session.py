@@ -313,6 +313,32 @@ def test_a_program_with_public_constants_only_completes_with_nothing_streamed() 
     assert list(evaluator.outputs) == [1, 0, 1, 1]
 
 
+@pytest.mark.parametrize("evaluator_inputs", [0, 3], ids=["no OT", "after OT"])
+def test_with_nothing_to_stream_the_garbler_leaves_streaming_before_the_evaluator_can_answer(
+    evaluator_inputs: int,
+) -> None:
+    # Found by the TLS property test: with no garbler inputs and no AND gates the evaluator needs nothing more after
+    # hello (or the OT) and sends its finish at once, which could reach the garbler before its producer ran. The
+    # garbler must already be past 'streaming' when the frame that ends the OT (or the hello) has been handled.
+    def run(bld: Builder) -> None:
+        e = bld.input(Party.EVALUATOR, evaluator_inputs)
+        bld.output(Party.EVALUATOR, bld.not_(e))
+
+    program = Program.of(run)
+    e_bits = np.array([1, 0, 1][:evaluator_inputs], dtype=np.uint8)
+    garbler, evaluator = make_pair(program, np.zeros(0, dtype=np.uint8), e_bits)
+    to_garbler, to_evaluator = list(evaluator.start()), list(garbler.start())
+    while to_garbler or to_evaluator:  # no produce() is ever called: the garbler must not need it
+        if to_evaluator:
+            to_garbler += evaluator.receive(to_evaluator.pop(0))
+        else:
+            to_evaluator += garbler.receive(to_garbler.pop(0))
+            assert garbler.state != sm.STREAMING and not garbler.ready_to_stream
+    assert garbler.state == evaluator.state == sm.DONE
+    assert list(evaluator.outputs) == [0, 1, 0][:evaluator_inputs]
+    assert garbler.outputs is not None and garbler.outputs.size == 0
+
+
 # -- mismatches in the hello -----------------------------------------------------------------------------------------
 
 

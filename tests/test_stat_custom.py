@@ -14,18 +14,19 @@ import pytest
 from jointstat.circuit.compile import CompiledStatistic, compile_manifest
 from jointstat.circuit.inputs import Records, encode_inputs, read_csv
 from jointstat.circuit.library import blocks
-from jointstat.circuit.library.registry import (
+from jointstat.circuit.library.registry import register_statistic, registered
+from jointstat.circuit.library.statistic import (
     BuildContext,
     OutputSpec,
     Statistic,
     StatisticResult,
     TableNeeds,
-    register_statistic,
-    registered,
 )
-from jointstat.circuit.manifest import Problem, StatisticParameters, load_manifest
+from jointstat.circuit.manifest import load_manifest
 from jointstat.circuit.model import Party
+from jointstat.circuit.parameters import StatisticParameters
 from jointstat.cli import main
+from jointstat.problems import Problem
 
 from tests.test_stat_support import (
     SECRET,
@@ -48,14 +49,14 @@ class WeightedParameters(StatisticParameters):
 
 
 @register_statistic
-class WeightedTotal(Statistic):
+class WeightedTotal(Statistic[WeightedParameters]):
     """A public weight times the garbler's total plus the evaluator's total (test-only custom statistic)."""
 
     name = "test_weighted_total"
     Parameters = WeightedParameters
 
     def problems(self) -> list[Problem]:
-        return [] if self.params.weight > 0 else [Problem("statistic.weight", "must be positive")]  # type: ignore[attr-defined]
+        return [] if self.params.weight > 0 else [Problem("statistic.weight", "must be positive")]
 
     def needs(self) -> dict[Party, TableNeeds]:
         return {p: TableNeeds(("v",)) for p in Party}
@@ -69,7 +70,7 @@ class WeightedTotal(Statistic):
         for p in Party:
             t = ctx.table(p)
             sums.append(bld.extend(blocks.tree_sum(bld, bld.and_(t.bits("v"), t.valid[:, None])), 16))
-        w = self.params.weight  # type: ignore[attr-defined]
+        w = self.params.weight
         weighted = blocks.multiply_full(bld, sums[0], bld.constant_word(w, w.bit_length()))[:16]
         return StatisticResult({"total": bld.add(weighted, sums[1])})
 

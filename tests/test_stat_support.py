@@ -17,9 +17,10 @@ import numpy as np
 import pytest
 import yaml
 from hypothesis import settings
+from jointstat.circuit.agreement import Manifest
 from jointstat.circuit.compile import CompiledStatistic, compile_manifest
 from jointstat.circuit.inputs import Records, encode_inputs, hash_key
-from jointstat.circuit.manifest import Manifest, parse_manifest
+from jointstat.circuit.manifest import parse_manifest
 from jointstat.circuit.model import CircuitError, Party
 from jointstat.garble.local import LocalRun, run_locally
 

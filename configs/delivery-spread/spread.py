@@ -17,21 +17,13 @@ from typing import Literal
 from jointstat.circuit.bits import Bits, concat
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.library import blocks
-from jointstat.circuit.library.registry import (
-    BuildContext,
-    OutputSpec,
-    Statistic,
-    StatisticResult,
-    TableNeeds,
-    register_statistic,
-)
-from jointstat.circuit.manifest import ColumnPair, Problem, StatisticParameters
-from jointstat.circuit.model import Party
+from jointstat.circuit.library.registry import register_statistic
+from jointstat.circuit.library.statistic import BuildContext, ColumnStatistic, OutputSpec, StatisticResult
+from jointstat.circuit.parameters import ColumnParameters
 
 
-class SpreadParameters(StatisticParameters):
+class SpreadParameters(ColumnParameters):
     name: Literal["spread"]
-    column: ColumnPair
 
 
 def tree_reduce(bld: Builder, keys: Bits, take_larger: bool) -> Bits:
@@ -46,39 +38,24 @@ def tree_reduce(bld: Builder, keys: Bits, take_larger: bool) -> Bits:
 
 
 @register_statistic
-class Spread(Statistic):
+class Spread(ColumnStatistic[SpreadParameters]):
+    """Checks and reads its one column as every ``ColumnStatistic`` does; declares and builds its outputs."""
+
     name = "spread"
     Parameters = SpreadParameters
     description = "largest minus smallest value over both parties' rows (custom example)"
 
-    def problems(self) -> list[Problem]:
-        return list(self.check_columns(self.params.column, "statistic.column"))  # type: ignore[attr-defined]
-
-    def needs(self) -> dict[Party, TableNeeds]:
-        names = self.column_names(self.params.column)  # type: ignore[attr-defined]
-        return {party: TableNeeds((names[party],)) for party in Party}
-
-    def _format(self) -> tuple[int, int]:
-        cols = [self.column(p, self.params.column) for p in Party]  # type: ignore[attr-defined]
-        frac = max(c.frac for c in cols)
-        signed = any(c.signed for c in cols)
-        width = max(c.bits + (frac - c.frac) + (1 if signed and not c.signed else 0) for c in cols)
-        return width, frac
-
     def outputs(self) -> list[OutputSpec]:
-        width, frac = self._format()
-        n = sum(self.manifest.table(p).capacity for p in Party)
+        fmt = self.column_format(self.params.column)
         return [
-            OutputSpec("spread", width, False, frac, description="largest − smallest"),
-            OutputSpec("count", n.bit_length(), description="rows"),
+            OutputSpec("spread", fmt.width, False, fmt.frac, description="largest − smallest"),
+            OutputSpec("count", self.rows().bit_length(), description="rows"),
         ]
 
     def build(self, ctx: BuildContext) -> StatisticResult:
         bld = ctx.builder
-        names = self.column_names(self.params.column)  # type: ignore[attr-defined]
-        nums = blocks.align(bld, *[ctx.table(p).number(names[p]) for p in Party])
-        keys = concat([blocks.order_key(bld, x) for x in nums], axis=0)
-        valid = concat([ctx.table(p).valid for p in Party])
+        keys = concat([blocks.order_key(bld, x) for x in self.aligned(ctx, self.params.column)], axis=0)
+        valid = ctx.valid()
         w = keys.shape[1]
         ones = bld.ones((keys.shape[0], w))
         zeros = bld.zeros((keys.shape[0], w))
@@ -86,7 +63,7 @@ class Spread(Statistic):
         high = tree_reduce(bld, bld.select(valid, zeros, keys), take_larger=True)
         count = blocks.count_bits(bld, valid)
         return StatisticResult(
-            {"spread": bld.sub(high, low), "count": bld.extend(count, self.outputs()[1].width)},
+            {"spread": bld.sub(high, low), "count": bld.extend(count, self.output_specs()["count"].width)},
             count=count,
             ok=blocks.at_least(bld, count, 1),
         )

@@ -29,16 +29,16 @@ import each other, so it sits below both, beside ``canonical.py`` whose encoding
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Literal
+from typing import Final, Literal
 
 from cryptography.exceptions import InvalidSignature
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 
 from jointstat.canonical import canonicalize
 
-HELLO = "hello"
-RESUME = "resume"
-TRANSCRIPT = "transcript"
+HELLO: Final = "hello"
+RESUME: Final = "resume"
+TRANSCRIPT: Final = "transcript"
 CONTEXTS: dict[str, bytes] = {
     HELLO: b"jointstat hello v1\x00",
     RESUME: b"jointstat resume v1\x00",

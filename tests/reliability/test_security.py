@@ -27,19 +27,42 @@ from jointstat.harness.campaign import CampaignReport, NodeCampaign
 from jointstat.harness.faultpoint import FaultPlan
 from jointstat.harness.scanner import Secrets, scan_for_secrets, secret_forms
 from jointstat.harness.scenario import JOB_ACCEPTED, NODE_METRES, NODE_NAME, TABLES, expected_result
-from jointstat.node.jobs import PROPOSE_PATH, PROTOCOL_VERSION, propose
 from jointstat.protocol import EvaluatorSession, GarblerSession, signer, verifier
 from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import AbortReason
 from jointstat.transport import Limits, SessionServer, run_client
 from jointstat.transport.channel import MESSAGE_OPTIONS, METHOD_PATH
 from jointstat.transport.pki import Issued, issue, new_ca, node_tls
+from jointstat.transport.proposals import PROPOSE_PATH, PROTOCOL_VERSION, propose
 from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
 LIMITS = Limits(deadline_s=10, idle_timeout_s=5, abort_grace_s=0.5)
-HTTP2_PREFACE = b"PRI * HTTP/2.0\r\n\r\nSM\r\n\r\n" + bytes.fromhex(
-    "000000040000000000"
-)  # RFC 9113 §3.4, SETTINGS
+# A cleartext HTTP/2 client's first bytes: the connection preface and an empty SETTINGS frame (RFC 9113 §3.4 and
+# §6.5, from memory; checked against the h2 and hyperframe libraries below).
+HTTP2_PREFACE = b"PRI * HTTP/2.0\r\n\r\nSM\r\n\r\n" + bytes.fromhex("000000040000000000")
+TLS_ALERT = (
+    0x15  # the record content type alert(21) of RFC 8446 §5.1 (from memory; checked against ssl below)
+)
+
+
+def test_the_cleartext_bytes_are_the_http2_preface_and_a_settings_frame_as_h2_writes_them() -> None:
+    import h2.config
+    import h2.connection
+    from hyperframe.frame import Frame, SettingsFrame
+
+    client = h2.connection.H2Connection(h2.config.H2Configuration(client_side=True))
+    client.initiate_connection()
+    sent = client.data_to_send()
+    assert HTTP2_PREFACE[:24] == sent[:24]  # the 24-byte client connection preface
+    frame, length = Frame.parse_frame_header(memoryview(HTTP2_PREFACE[24:]))
+    assert isinstance(frame, SettingsFrame) and frame.stream_id == 0 and length == 0 and not frame.flags
+    assert len(HTTP2_PREFACE) == 24 + 9  # a frame header is 9 bytes
+
+
+def test_the_tls_alert_content_type_is_the_one_pythons_ssl_module_knows() -> None:
+    import ssl
+
+    assert ssl._TLSContentType.ALERT == TLS_ALERT  # CPython's own table of RFC 8446 content types
 
 
 # -- plaintext -----------------------------------------------------------------------------------------------------
@@ -77,7 +100,7 @@ async def test_a_plaintext_connection_to_a_node_is_refused_before_any_frame_and_
         await writer.drain()
         answer = await asyncio.wait_for(reader.read(4096), timeout=10)
         writer.close()
-        assert answer == b"" or answer[0] == 0x15  # 0x15: a TLS alert record (RFC 8446 §5.1)
+        assert answer == b"" or answer[0] == TLS_ALERT  # at most a TLS alert record
         assert c.node.state.sessions == {}  # nothing reached the node's jobs
         served = await c.run_accepted(None)
     assert served.node.outputs == expected_result()

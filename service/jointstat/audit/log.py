@@ -44,6 +44,7 @@ from jointstat.audit.records import (
     FORMAT,
     AuditError,
     Checkpoint,
+    CheckpointCause,
     Kind,
     LogOpened,
     RecordBody,
@@ -180,7 +181,7 @@ class SessionLog:
         with self._lock:
             if self._fd < 0:
                 raise AuditError(f"audit log {self.path} is closed")
-            chunks = []
+            chunks: list[bytes] = []
             offset = 0
             while True:
                 chunk = os.pread(self._fd, 1 << 20, offset)
@@ -201,7 +202,7 @@ class SessionLog:
         peer_certificate_der: bytes | None = None,
     ) -> int:
         """Record a session's start; ``peer_key`` (the peer's signing key) lets the log check its attestation."""
-        body = {
+        body: dict[str, object] = {
             "job": job,
             "manifest_digest": _digest_hex(manifest_digest, "manifest digest"),
             "role": role,
@@ -263,7 +264,7 @@ class SessionLog:
         detail: str = "",
     ) -> int:
         """Record an abort: ``reason`` is a snake_case code; ``detail`` a short fixed message (no values)."""
-        body = {"reason": reason, "by": by, "phase": phase, "detail": detail}
+        body: dict[str, object] = {"reason": reason, "by": by, "phase": phase, "detail": detail}
         return self._typed(Kind.SESSION_ABORTED, session_id, body)
 
     def link_event(
@@ -277,7 +278,7 @@ class SessionLog:
         detail: str = "",
     ) -> int:
         """Record a cut of the session's connection, a resume, or a refused or failed resume attempt."""
-        body = {
+        body: dict[str, object] = {
             "event": event,
             "at_us": at_us,
             "frames_sent": frames_sent,
@@ -321,7 +322,7 @@ class SessionLog:
                 self._checkpoint("session_ended")
             return seq
 
-    def _checkpoint(self, cause: str) -> int:
+    def _checkpoint(self, cause: CheckpointCause) -> int:
         """Append a checkpoint of the chain so far (the caller holds the lock, or is the constructor)."""
         body = Checkpoint(
             records=self._seq, head=self._prev, open_sessions=len(self._rules.open_sessions()), cause=cause

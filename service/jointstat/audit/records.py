@@ -38,7 +38,7 @@ import re
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from enum import StrEnum
-from typing import Annotated, Any, Literal
+from typing import Annotated, Any, Final, Literal
 
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 from cryptography.hazmat.primitives.serialization import Encoding, PublicFormat
@@ -47,8 +47,9 @@ from pydantic import BaseModel, ConfigDict, Field, StringConstraints, Validation
 from jointstat.canonical import MAX_SAFE_INTEGER, canonicalize
 from jointstat.statements import transcript_signature_ok
 
-FORMAT = "jointstat-audit/1"
+FORMAT: Final = "jointstat-audit/1"
 GENESIS = "0" * 64
+CheckpointCause = Literal["opened", "session_ended", "closed", "recovered"]  # why a checkpoint was written
 RECORD_CONTEXT = b"jointstat audit record v1\x00"
 ENVELOPE_FIELDS = frozenset({"seq", "time", "kind", "session", "body", "prev", "sig"})
 MAX_DETAIL = 300
@@ -86,6 +87,15 @@ HexDigest = Annotated[str, StringConstraints(pattern=_HEX32)]
 Count = Annotated[int, Field(ge=0, le=MAX_SAFE_INTEGER)]
 PublicKeyText = Annotated[str, StringConstraints(pattern=r"^[A-Za-z0-9+/]{43}=$")]
 SignatureText = Annotated[str, StringConstraints(pattern=r"^[A-Za-z0-9+/]{86}==$")]
+
+
+def plain_detail(text: str) -> str:
+    """A message fit for a ``session_aborted`` record's ``detail``: one line, long hex or base64-like tokens (which
+    could be key material or a label) replaced by ``…``, at most ``MAX_DETAIL`` characters."""
+    line = " ".join(str(text).split())
+    line = _HEXISH.sub("…", line)
+    line = _B64ISH.sub("…", line)
+    return line[:MAX_DETAIL]
 
 
 def _looks_like_key_material(text: str) -> bool:
@@ -187,7 +197,7 @@ class Checkpoint(RecordBody):
     records: Count
     head: HexDigest
     open_sessions: Count
-    cause: Literal["opened", "session_ended", "closed", "recovered"]
+    cause: CheckpointCause
 
 
 BODIES: dict[Kind, type[RecordBody]] = {

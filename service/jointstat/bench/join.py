@@ -146,7 +146,7 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> dict[str, Any]:
     tls = NodeTLS(spec["certificate"], spec["private_key"], (spec["peer_certificate"],))
     key = Ed25519PrivateKey.from_private_bytes(spec["signing_key"])
     peer = Ed25519PublicKey.from_public_bytes(spec["peer_public_key"])
-    common = {
+    common: dict[str, Any] = {
         "session_id": SESSION_ID,
         "program": program,
         "manifest_digest": bytes.fromhex(compiled.digest),
@@ -154,6 +154,7 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> dict[str, Any]:
         "verify": verifier(peer),
     }
     limits = Limits(deadline_s=CHILD_TIMEOUT_S, idle_timeout_s=300.0)
+    session: GarblerSession | EvaluatorSession
     if party == Party.GARBLER:
         session = GarblerSession(inputs=bits, **common)
         server = SessionServer(tls, address="127.0.0.1:0", limits=limits)
@@ -234,7 +235,7 @@ def _session(rows: int, as_json: bool) -> int:
 
 
 def run(rows: int, as_json: bool, session: bool = False) -> int:
-    from jointstat.circuit.manifest import MAX_CAPACITY
+    from jointstat.circuit.agreement import MAX_CAPACITY
 
     if not 1 <= rows <= MAX_CAPACITY:
         print(f"jointstat bench join: --rows must be between 1 and {MAX_CAPACITY}", file=sys.stderr)

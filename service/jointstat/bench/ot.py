@@ -11,6 +11,9 @@ every figure is the real wall time of both sides' work together (on one core, as
 * ``bytes_per_ot`` — all payload bytes of the extension phase, both directions, over ``count``.
 * ``end_to_end_seconds`` — the whole ``CorrelatedOTSender``/``CorrelatedOTReceiver`` protocol once more,
   for scale.
+* ``working_mib_beyond_outputs`` — in one more run of that protocol, traced by ``tracemalloc`` (numpy reports its
+  arrays to it), the peak of what both sides held above what they hold at the end (the two ``count``-label
+  output arrays): the batches in flight, which the batch size and the receiver's window bound, not ``count``.
 
 Each run's output is checked (the evaluator's labels equal K ⊕ choices·Δ) before any figure is printed; a
 wrong result exits with status 1 and prints nothing but the failure.
@@ -22,6 +25,7 @@ import os
 import statistics
 import sys
 import time
+import tracemalloc
 
 import numpy as np
 
@@ -91,6 +95,11 @@ def run(count: int, as_json: bool) -> int:
         print("jointstat bench ot: correlated OT gave wrong labels", file=sys.stderr)
         return 1
 
+    working_bytes = _traced_working_bytes(session_id, count)
+    if working_bytes is None:
+        print("jointstat bench ot: correlated OT gave wrong labels", file=sys.stderr)
+        return 1
+
     figures = {
         "count": count,
         "base_ot_seconds": statistics.median(base_times),
@@ -99,6 +108,7 @@ def run(count: int, as_json: bool) -> int:
         "extension_seconds": extension_seconds,
         "end_to_end_seconds": end_to_end_seconds,
         "largest_message_bytes": end_to_end.largest_payload,
+        "working_mib_beyond_outputs": round(working_bytes / 2**20, 2),
         "peak_rss_mib": peak_rss_mib(),
     }
     emit(
@@ -107,3 +117,20 @@ def run(count: int, as_json: bool) -> int:
         as_json,
     )
     return 0
+
+
+def _traced_working_bytes(session_id: bytes, count: int) -> int | None:
+    """Peak traced bytes above the final ones over one correlated-OT run of ``count``; None if its labels are wrong."""
+    delta = _fresh_delta()
+    choices = random_choice_bits(count)
+    sender = CorrelatedOTSender(session_id, delta, count)
+    receiver = CorrelatedOTReceiver(session_id, choices)
+    tracemalloc.start()
+    try:
+        run_pipe(receiver, sender)
+        final, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    if not np.array_equal(receiver.labels, sender.zero_labels ^ (select_mask(choices) & delta)):
+        return None
+    return peak - final

@@ -207,6 +207,7 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> None:
             "flow": None if result.flow is None else vars(result.flow),
         }
         if result.completed and spec["check"]:
+            assert result.outputs is not None  # a completed session carries its own outputs
             if plain is None:
                 from jointstat.circuit.backend import PlainBackend
                 from jointstat.circuit.builder import Builder
@@ -237,7 +238,7 @@ def _add_pump(server: Any) -> None:
         for _ in range(total // PUMP_MESSAGE):
             yield message
 
-    handler = grpc.unary_stream_rpc_method_handler(
+    handler: grpc.RpcMethodHandler[bytes, bytes] = grpc.unary_stream_rpc_method_handler(
         stream, request_deserializer=None, response_serializer=None
     )
     server.add_generic_rpc_handlers(
@@ -253,7 +254,9 @@ async def _pump(target: str, tls: Any) -> float:
 
     options = [*MESSAGE_OPTIONS, ("grpc.ssl_target_name_override", tls.server_name())]
     async with grpc.aio.secure_channel(target, tls.channel_credentials(), options=options) as channel:
-        method = channel.unary_stream(PUMP_PATH, request_serializer=None, response_deserializer=None)
+        method: grpc.aio.UnaryStreamMultiCallable[bytes, bytes] = channel.unary_stream(
+            PUMP_PATH, request_serializer=None, response_deserializer=None
+        )
         start = time.monotonic()
         got = 0
         async for message in method(PUMP_BYTES.to_bytes(8, "little")):

@@ -283,12 +283,15 @@ class PlainBackend(Backend):
         return np.asarray(values, dtype=np.uint8)
 
     def _xor_data(self, a: np.ndarray | None, b: np.ndarray | None) -> np.ndarray:
+        assert a is not None and b is not None
         return np.bitwise_xor(a, b)
 
     def _not_data(self, a: np.ndarray | None) -> np.ndarray:
+        assert a is not None
         return np.bitwise_xor(a, np.uint8(1))
 
     def _and_data(self, a: np.ndarray | None, b: np.ndarray | None) -> np.ndarray:
+        assert a is not None and b is not None
         return np.bitwise_and(a, b)
 
     def _input_data(self, party: Party, n: int) -> np.ndarray:

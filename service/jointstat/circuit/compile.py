@@ -11,7 +11,7 @@ Inputs of a party, in this order (the encoder in ``jointstat.circuit.inputs`` pr
 the validity bit of each of its ``capacity`` rows, then for each column the statistic reads, in the order the
 table declares them, ``capacity`` rows × the column's bits, row by row, each value least significant bit first.
 
-The statistic builds its results (``library.registry``); the program then applies the disclosure rule: allow =
+The statistic builds its results (``library.statistic``); the program then applies the disclosure rule: allow =
 ok ∧ (count ≥ min_count), every result bit is ANDed with allow, and withheld = ¬allow. A party's outputs are its
 ``withheld`` bit followed by the outputs the manifest gives it, in the order listed, each value least significant
 bit first. ``decode`` turns a party's output bits into named Python values (integers, floats for fixed-point
@@ -20,7 +20,7 @@ withheld.
 
 Size and digest: ``size()`` runs the program once on the count backend (gates, inputs, outputs, and the SHA-256
 of the program's structure: every gate batch, input and output in order). ``digest`` is SHA-256 (FIPS 180-4) over
-"jointstat.manifest.v2\\n", the manifest's canonical JSON (RFC 8785 style, see ``manifest.canonical_json``), a zero
+"jointstat.manifest.v2\\n", the manifest's canonical JSON (RFC 8785 style, see ``agreement.canonical_json``), a zero
 byte and that structure digest. Both nodes compare it before anything secret moves; the same file gives the same
 digest on any machine and any run of the same program version, and two programs that would meet their AND gates
 in a different order cannot share it.
@@ -35,22 +35,21 @@ from typing import Any
 
 import numpy as np
 
+from jointstat.circuit.agreement import Manifest
 from jointstat.circuit.backend import PlainBackend
 from jointstat.circuit.bits import Bits
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.encode import bits_to_int
 from jointstat.circuit.library import blocks
-from jointstat.circuit.library.registry import (
-    ROLES,
+from jointstat.circuit.library.registry import statistic_for
+from jointstat.circuit.library.statistic import (
     BuildContext,
     OutputSpec,
     Statistic,
     StatisticResult,
     TableNeeds,
     TableWires,
-    statistic_for,
 )
-from jointstat.circuit.manifest import Manifest
 from jointstat.circuit.model import CircuitError, Party
 from jointstat.circuit.program import Program, ProgramSize, measure
 
@@ -101,7 +100,7 @@ class OutputField:
 @dataclass
 class CompiledStatistic:
     manifest: Manifest
-    statistic: Statistic
+    statistic: Statistic[Any]
     inputs: dict[Party, InputLayout]
     outputs: dict[Party, tuple[OutputField, ...]]
     _size: list[ProgramSize] = field(default_factory=list, repr=False)
@@ -208,7 +207,9 @@ class CompiledStatistic:
         fields = self.outputs[Party(party)]
         expected = sum(f.spec.bits for f in fields)
         if arr.shape[0] != expected:
-            raise ValueError(f"{ROLES[Party(party)]} outputs: expected {expected} bits, got {arr.shape[0]}")
+            raise ValueError(
+                f"{Party(party).role_name} outputs: expected {expected} bits, got {arr.shape[0]}"
+            )
         out: dict[str, Any] = {}
         for f in fields:
             chunk = arr[f.offset : f.offset + f.spec.bits].reshape(*f.spec.shape, f.spec.width)
@@ -246,7 +247,7 @@ def compile_manifest(manifest: Manifest) -> CompiledStatistic:
     stat = statistic_for(manifest)
     needs = stat.needs()
     layouts = {party: input_layout(manifest, party, needs[party]) for party in Party}
-    specs = {s.name: s for s in stat.outputs()}
+    specs = stat.output_specs()
     outputs: dict[Party, tuple[OutputField, ...]] = {}
     for party in Party:
         names = manifest.outputs.garbler if party == Party.GARBLER else manifest.outputs.evaluator

@@ -47,9 +47,9 @@ from typing import Any
 
 import numpy as np
 
+from jointstat.circuit.agreement import BaseColumn, KeyColumn, Table
 from jointstat.circuit.compile import CompiledStatistic
 from jointstat.circuit.encode import int_to_bits
-from jointstat.circuit.manifest import Table, _Column
 from jointstat.circuit.model import Party
 
 KEY_DOMAIN = b"jointstat key v1\x00"
@@ -118,13 +118,13 @@ def check_secret(secret: bytes | None, source: str) -> bytes:
 # -- value parsing -------------------------------------------------------------------------------------------------
 
 
-def _parse(col: _Column, value: Any, secret: bytes | None) -> tuple[int, str | None]:
+def _parse(col: BaseColumn, value: Any, secret: bytes | None) -> tuple[int, str | None]:
     """(encoded integer, normalised key text or None); raises ValueError with a message that omits the value."""
-    kind = col.type  # type: ignore[attr-defined]
+    kind = col.type
     if value is None or (isinstance(value, str) and not value.strip()):
         raise ValueError("the value is missing")
-    if kind == "key":
-        text = normalise_key(str(value), col.fold_case)  # type: ignore[attr-defined]
+    if isinstance(col, KeyColumn):
+        text = normalise_key(str(value), col.fold_case)
         if not text:
             raise ValueError("the key is empty")
         assert secret is not None
@@ -315,7 +315,7 @@ def encode_inputs(compiled: CompiledStatistic, party: Party, records: Records) -
     return bits
 
 
-def _check_unique(records: Records, name: str, col: _Column) -> None:
+def _check_unique(records: Records, name: str, col: BaseColumn) -> None:
     values = records.columns[name]
     seen: dict[int, int] = {}
     texts = records.keys.get(name)

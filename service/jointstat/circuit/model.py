@@ -8,6 +8,7 @@ who: the garbler encrypts, the evaluator evaluates, and each has its own inputs 
 from __future__ import annotations
 
 from enum import IntEnum
+from typing import Literal
 
 
 class CircuitError(ValueError):
@@ -19,3 +20,13 @@ class Party(IntEnum):
 
     GARBLER = 0
     EVALUATOR = 1
+
+    @property
+    def other(self) -> Party:
+        """The other party of the protocol."""
+        return Party.EVALUATOR if self is Party.GARBLER else Party.GARBLER
+
+    @property
+    def role_name(self) -> Literal["garbler", "evaluator"]:
+        """``garbler`` or ``evaluator``: the word node configs, session logs, result files and the job store use."""
+        return "garbler" if self is Party.GARBLER else "evaluator"

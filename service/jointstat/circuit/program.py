@@ -46,21 +46,6 @@ class ProgramSize:
         its result: 3×)."""
         return 16 * (self.peak_bits + 3 * self.widest_call)
 
-    def summary(self) -> dict[str, int]:
-        return {
-            "and_gates": self.and_gates,
-            "xor_gates": self.xor_gates,
-            "not_gates": self.not_gates,
-            "and_calls": self.and_calls,
-            "and_depth": self.and_depth,
-            "peak_bits": self.peak_bits,
-            "widest_call": self.widest_call,
-            "garbler_inputs": self.inputs[Party.GARBLER],
-            "evaluator_inputs": self.inputs[Party.EVALUATOR],
-            "garbler_outputs": self.outputs[Party.GARBLER],
-            "evaluator_outputs": self.outputs[Party.EVALUATOR],
-        }
-
 
 def measure(run: Run) -> ProgramSize:
     """Run ``run(bld)`` on the count backend: gate counts, inputs, outputs and structure digest."""

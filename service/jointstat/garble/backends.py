@@ -192,7 +192,7 @@ class GarblerBackend(_LabelBackend):
         """Hand the tables written so far to the sink (call once more after the program ends)."""
         if self._fill:
             fill, self._fill = self._fill, 0
-            self._sink(memoryview(self._chunk)[:fill])
+            self._sink(self._chunk.data[:fill])
 
     def input_labels(self, party: Party, bits: object) -> np.ndarray:
         """The labels encoding ``bits`` on ``party``'s input wires: W⁰ ⊕ bit·Δ, as (n, 2) blocks.

@@ -63,6 +63,7 @@ from jointstat.transport.driver import Limits
 FAULT_LIMITS = Limits(deadline_s=4.0, idle_timeout_s=2.0, abort_grace_s=0.5)
 NODE_DEADLINE_S = 4  # the node's session_deadline_seconds for the run (its idle timeout stays the default)
 RETRY_BACKOFF_S = 1.0
+Attempt = tuple[str, FaultPlan | None, Side, Side, str | None]  # session id, fault, node, peer, fault fired
 
 
 @dataclass
@@ -125,7 +126,11 @@ class NodeCampaign:
             self.keys, self.job, self.logged, self.secrets, self._fire_outbound, self.limits
         )
         self.outbound.target = await self.acceptor.start()
-        entry = {"manifest": self.files.manifest, "peer": PEER_NAME, "csv": self.files.node_csv}
+        entry: dict[str, Any] = {
+            "manifest": self.files.manifest,
+            "peer": PEER_NAME,
+            "csv": self.files.node_csv,
+        }
         config = node_config(
             name=NODE_NAME,
             peer=PEER_NAME,
@@ -136,8 +141,8 @@ class NodeCampaign:
             metrics_port=0,
             admin=f"127.0.0.1:{free_port()}",
             jobs=[
-                job_entry(name=JOB_ACCEPTED, initiate=False, role="evaluator", **entry),  # type: ignore[arg-type]
-                job_entry(  # type: ignore[arg-type]
+                job_entry(name=JOB_ACCEPTED, initiate=False, role="evaluator", **entry),
+                job_entry(
                     name=JOB_INITIATED,
                     initiate=True,
                     role="garbler",
@@ -273,7 +278,7 @@ class NodeCampaign:
         else:
             self.acceptor.plans[1] = plan
         t0 = time.monotonic()
-        started = await self.node.admin_run_job({"job": JOB_INITIATED})
+        started = await self.node.admin.run_job({"job": JOB_INITIATED})
         sid = str(started["session"])
         if process is not None:
 
@@ -294,7 +299,7 @@ class NodeCampaign:
         node = await self.node_side(sid, Party.GARBLER, t0)
         self.outbound.clear()
         self.acceptor.plans.clear()
-        attempts = [(sid, plan, node, peer, fired)]
+        attempts: list[Attempt] = [(sid, plan, node, peer, fired)]
         acc = await self.acceptor.wait_for_attempt(2, RETRY_BACKOFF_S * 2 + self.node_bound)
         if acc is None:
             missing = Side(party=Party.GARBLER, hung=True, message="the node did not retry the job")
@@ -307,7 +312,7 @@ class NodeCampaign:
             attempts.append((acc.session_id.hex(), None, node, peer, None))
         self._add(attempts)
 
-    def _add(self, attempts: list[tuple[str, FaultPlan | None, Side, Side, str | None]]) -> None:
+    def _add(self, attempts: list[Attempt]) -> None:
         first = attempts[0][0]
         for i, (sid, plan, node, peer, fired) in enumerate(attempts):
             kind: Literal["fault", "retry"] = "fault" if i == 0 else "retry"

@@ -63,9 +63,7 @@ class FaultPlan:
     def describe(self) -> str:
         how = f"{self.kind} ({'reset' if self.reset else 'close'})" if self.kind == CUT else self.kind
         side = "initiates" if self.node_role == Party.GARBLER else "accepts"
-        return (
-            f"{how} at frame {self.index} of {self.phase}; the node {side} ({fr.role_name(self.node_role)})"
-        )
+        return f"{how} at frame {self.index} of {self.phase}; the node {side} ({Party(self.node_role).role_name})"
 
 
 def make_plans(count: int, seed: int, program: Program) -> list[FaultPlan]:
@@ -194,7 +192,7 @@ class FaultyContext:
             if isinstance(data, bytes | bytearray):
                 with contextlib.suppress(fr.ProtocolError):
                     kind, frame = fr.decode(bytes(data))
-                    if kind == fr.HELLO:
+                    if kind == fr.HELLO and not isinstance(frame, fr.TablesFrame):
                         self.point = self._points.get(bytes(frame.hello.session_id))
             if (
                 self.point is not None
@@ -225,6 +223,8 @@ async def connect(
         session_ids.claim(session.session_id)
     options = [*MESSAGE_OPTIONS, ("grpc.ssl_target_name_override", tls.server_name())]
     async with grpc.aio.secure_channel(target, tls.channel_credentials(), options=options) as channel:
-        method = channel.stream_stream(METHOD_PATH, request_serializer=None, response_deserializer=None)
+        method: grpc.aio.StreamStreamMultiCallable[bytes, bytes] = channel.stream_stream(
+            METHOD_PATH, request_serializer=None, response_deserializer=None
+        )
         call = method(timeout=limits.deadline_s + 2 * limits.abort_grace_s)
         return await drive(session, FaultyStream(call, limits.abort_grace_s, point), limits)

@@ -163,10 +163,10 @@ class Fuzzer:
 
         prog = self.programs[program]
         rng = np.random.default_rng(seed)
-        keys = {node_role: self.gk, Party.EVALUATOR if node_role == Party.GARBLER else Party.GARBLER: self.ek}
+        keys = {node_role: self.gk, Party(node_role).other: self.ek}
         out: dict[Party, Session] = {}
         for party in Party:
-            other = Party.EVALUATOR if party == Party.GARBLER else Party.GARBLER
+            other = party.other
             common: dict[str, Any] = {
                 "session_id": sid,
                 "program": prog,
@@ -182,8 +182,7 @@ class Fuzzer:
                 session = RecordingEvaluator(**common)
             session.secrets = self.secrets if record else None
             out[party] = session
-        peer_role = Party.EVALUATOR if node_role == Party.GARBLER else Party.GARBLER
-        return out[node_role], out[peer_role]
+        return out[node_role], out[Party(node_role).other]
 
     def _record_references(self) -> None:
         """One honest in-memory session per program: its frames are the valid frames sent out of order."""
@@ -284,7 +283,8 @@ class Fuzzer:
             outcome.by_peer = result.abort.by_peer
         else:
             outcome.refused_first_frame = True
-            aborts = [f for k, f in (fr.decode(w) for w in written) if k == fr.ABORT]
+            decoded = (fr.decode(w) for w in written)
+            aborts = [f for k, f in decoded if k == fr.ABORT and not isinstance(f, fr.TablesFrame)]
             if aborts:
                 outcome.reason = AbortReason(aborts[-1].abort.reason).name.lower()
                 outcome.message = aborts[-1].abort.message
@@ -347,7 +347,9 @@ class Fuzzer:
         record = case.index % SECRET_SAMPLE == 0
         node, peer = self.sessions(case.program, case.node_role, sid, case.seed, record)
         future = server.expect(node)
-        call = channel.stream_stream(METHOD_PATH)(timeout=self._bound())
+        call: grpc.aio.StreamStreamCall[bytes, bytes] = channel.stream_stream(METHOD_PATH)(
+            timeout=self._bound()
+        )
         written: list[bytes] = []
         errors: list[str] = []
 
@@ -359,8 +361,9 @@ class Fuzzer:
                 return None
             if data is grpc.aio.EOF:
                 return None
-            written.append(bytes(data))
-            return bytes(data)
+            assert isinstance(data, bytes)  # no deserializer: frames arrive as bytes
+            written.append(data)
+            return data
 
         async def send_frame(data: bytes) -> None:
             with contextlib.suppress(grpc.aio.AioRpcError, asyncio.InvalidStateError, grpc.aio.UsageError):

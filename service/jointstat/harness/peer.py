@@ -14,13 +14,12 @@ parts a node is made of:
 - ``HarnessAcceptor`` is the peer accepting the node's proposals of ``JOB_INITIATED``: a ``SessionServer`` that
   answers ``Session/Propose`` and serves the sessions it accepted, each stream passing a ``FaultPoint``.
 - ``propose_run`` / ``play_initiated`` / ``run_initiator`` are the peer initiating ``JOB_ACCEPTED``: propose the
-  run to the node (``node.jobs.propose``), then garble and stream the session to the node, or to a proxy before it.
+  run to the node (``transport.proposals.propose``), then garble and stream the session to the node, or to a proxy before it.
 """
 
 from __future__ import annotations
 
 import asyncio
-import re
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -30,13 +29,13 @@ import grpc
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 
 from jointstat.audit import SessionLog
+from jointstat.audit.records import plain_detail
 from jointstat.circuit.model import Party
 from jointstat.harness.faultpoint import PEER_CHUNK_BYTES, FaultPlan, FaultPoint, FaultyContext, Fire, connect
 from jointstat.harness.outcome import Side, end_bound, side_of
 from jointstat.harness.recording import recording_session
 from jointstat.harness.scanner import Secrets
 from jointstat.harness.scenario import JOB_ACCEPTED, JOB_INITIATED, NODE_NAME, PEER_NAME, PeerJob
-from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import AbortReason
 from jointstat.protocol.sides import Session
 from jointstat.transport.channel import SERVICE_NAME, SessionIds
@@ -81,11 +80,11 @@ class PeerKeys:
         return NodeTLS(self.certificate, self.private_key, (self.node_certificate,))
 
     def node_identity(self, port: int) -> Any:
-        """The node as the peer's proposals address it (``node.jobs.PeerIdentity``)."""
+        """The node as the peer's proposals address it (``node.keys.PeerIdentity``)."""
         from cryptography import x509
         from cryptography.hazmat.primitives import serialization
 
-        from jointstat.node.jobs import PeerIdentity
+        from jointstat.node.keys import PeerIdentity
         from jointstat.transport.tls import fingerprint
 
         cert = x509.load_pem_x509_certificate(self.node_certificate)
@@ -97,14 +96,6 @@ class PeerKeys:
             certificate_der=cert.public_bytes(serialization.Encoding.DER),
             signing_key=self.node_key,
         )
-
-
-def safe_detail(message: str) -> str:
-    """An abort message fit for a log's ``detail``: long hex or base64-like tokens dropped, cut to 300 chars."""
-    line = " ".join(message.split())
-    line = re.sub(r"[0-9A-Fa-f]{32,}", "…", line)
-    line = re.sub(r"[A-Za-z0-9+/_=-]{20,}", "…", line)
-    return line[:300]
 
 
 class LoggedNode:
@@ -137,7 +128,7 @@ class LoggedNode:
     def session(self, party: Party, sid: bytes, job: PeerJob) -> Session:
         """A recording session for ``party``, its start logged; it signs through the log."""
         assert self.log is not None
-        from jointstat.node.jobs import session_signing
+        from jointstat.node.keys import session_signing
 
         log, text, node_key = self.log, sid.hex(), self.keys.node_key
         sign, verify = session_signing(log, self.keys.signing_key, node_key, text)
@@ -155,7 +146,7 @@ class LoggedNode:
             text,
             job=JOB_ACCEPTED if party == Party.GARBLER else JOB_INITIATED,
             manifest_digest=job.digest,
-            role=fr.role_name(party),  # type: ignore[arg-type]
+            role=Party(party).role_name,
             peer=NODE_NAME,
             peer_key=node_key,
         )
@@ -183,7 +174,7 @@ class LoggedNode:
             reason=abort.reason.name.lower(),
             by="peer" if abort.by_peer else "self",
             phase=phase,
-            detail=safe_detail(abort.message),
+            detail=plain_detail(abort.message),
         )
 
 
@@ -219,7 +210,7 @@ class HarnessAcceptor(SessionServer):
         self.ready.set()
 
     def _add_propose(self, server: grpc.aio.Server) -> None:
-        from jointstat.node.jobs import PROPOSE_METHOD
+        from jointstat.transport.proposals import PROPOSE_METHOD
 
         handler = grpc.unary_unary_rpc_method_handler(
             self._propose,
@@ -292,7 +283,7 @@ async def propose_run(
 
     A refusal is logged as the session's abort (its reason the refusal code) and the session is failed.
     """
-    from jointstat.node.jobs import PROTOCOL_VERSION, REFUSAL_CODES, propose
+    from jointstat.transport.proposals import PROTOCOL_VERSION, REFUSAL_CODES, propose
 
     session = await asyncio.to_thread(logged.session, Party.GARBLER, session_id, job)
     proposal = pb.RunProposal(
@@ -316,7 +307,7 @@ async def propose_run(
             reason=code,
             by="peer",
             phase="proposal",
-            detail=safe_detail(answer.message),
+            detail=plain_detail(answer.message),
         )
     return session, answer
 

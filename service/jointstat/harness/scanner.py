@@ -21,7 +21,7 @@ import threading
 from collections.abc import Iterable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 SCAN_PREFIX = (
     8  # every searched form is at least this long; shorter ones would match counts and times by chance
@@ -127,7 +127,8 @@ def secret_forms(secrets: Secrets) -> dict[str, str]:
         forms[str(value)] = f"{what} as decimal"
         forms[f"{value:x}"] = f"{what} as hex"
         forms[f"{value:X}"] = f"{what} as upper-case hex"
-        for order in ("little", "big"):
+        orders: tuple[Literal["little", "big"], ...] = ("little", "big")
+        for order in orders:
             raw = value.to_bytes(8, order)
             forms[raw.hex()] = f"{what} as {order}-endian bytes in hex"
             for text in _b64_inner(raw):

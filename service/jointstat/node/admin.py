@@ -21,17 +21,30 @@ method             request                             answer
 =================  ==================================  =========================================================
 
 An unknown job or session answers ``NOT_FOUND``, a request that cannot be honoured (a job this node only accepts)
-``FAILED_PRECONDITION``, a malformed request ``INVALID_ARGUMENT``; the details say why. ``AdminClient`` is the
-blocking client the ``jointstat jobs`` / ``jointstat sessions`` commands and the demo use.
+``FAILED_PRECONDITION``, a malformed request ``INVALID_ARGUMENT``; the details say why. ``NodeAdmin`` answers the
+methods for a running ``daemon.Node`` from its config, its job store and its session trackers (the console reads
+the node through the same answers, ``node.nodeview``); ``AdminClient`` is the blocking client the
+``jointstat jobs`` / ``jointstat sessions`` commands and the demo use.
 """
 
 from __future__ import annotations
 
+import asyncio
 import json
+import logging
 from collections.abc import Awaitable, Callable
-from typing import Any, Protocol
+from typing import TYPE_CHECKING, Any
 
 import grpc
+
+from jointstat.node.progress import SessionTracker
+from jointstat.node.store import RunRecord
+
+if TYPE_CHECKING:
+    from jointstat.node.config import JobConfig
+    from jointstat.node.daemon import Node
+
+log = logging.getLogger("jointstat.node")
 
 SERVICE = "jointstat.admin.v1.Admin"
 METHODS = ("Status", "ListJobs", "RunJob", "History", "ListSessions", "ShowSession")
@@ -54,17 +67,6 @@ class RequestError(Exception):
         self.code = code
 
 
-class AdminHandlers(Protocol):
-    """What the daemon provides to the admin API (each returns a JSON-ready dict)."""
-
-    async def admin_status(self, request: dict[str, Any]) -> dict[str, Any]: ...
-    async def admin_list_jobs(self, request: dict[str, Any]) -> dict[str, Any]: ...
-    async def admin_run_job(self, request: dict[str, Any]) -> dict[str, Any]: ...
-    async def admin_history(self, request: dict[str, Any]) -> dict[str, Any]: ...
-    async def admin_list_sessions(self, request: dict[str, Any]) -> dict[str, Any]: ...
-    async def admin_show_session(self, request: dict[str, Any]) -> dict[str, Any]: ...
-
-
 def _encode(value: dict[str, Any]) -> bytes:
     return json.dumps(value, sort_keys=True, default=str).encode("utf-8")
 
@@ -83,8 +85,8 @@ def _snake(name: str) -> str:
     return "".join("_" + c.lower() if c.isupper() else c for c in name).lstrip("_")
 
 
-def admin_handler(target: AdminHandlers) -> grpc.GenericRpcHandler:
-    """The generic handler serving ``target``'s methods as the admin service."""
+def admin_handler(target: NodeAdmin) -> grpc.GenericRpcHandler:
+    """The generic handler serving ``target``'s methods as the admin service (``ListJobs`` → ``list_jobs``)."""
 
     def wrap(method: Callable[[dict[str, Any]], Awaitable[dict[str, Any]]]) -> grpc.RpcMethodHandler:
         async def handle(data: bytes, context: grpc.aio.ServicerContext) -> bytes:
@@ -98,7 +100,7 @@ def admin_handler(target: AdminHandlers) -> grpc.GenericRpcHandler:
             handle, request_deserializer=None, response_serializer=None
         )
 
-    handlers = {name: wrap(getattr(target, f"admin_{_snake(name)}")) for name in METHODS}
+    handlers = {name: wrap(getattr(target, _snake(name))) for name in METHODS}
     return grpc.method_handlers_generic_handler(SERVICE, handlers)
 
 
@@ -116,6 +118,174 @@ def limit_field(request: dict[str, Any], default: int = 50) -> int:
     if isinstance(value, bool) or not isinstance(value, int) or not 1 <= value <= 10_000:
         raise RequestError(grpc.StatusCode.INVALID_ARGUMENT, "'limit' must be an integer from 1 to 10000")
     return value
+
+
+class NodeAdmin:
+    """The admin API's answers for a running node (see the module docstring); each returns a JSON-ready dict."""
+
+    def __init__(self, node: Node) -> None:
+        self._node = node
+
+    def _job(self, name: str) -> JobConfig:
+        config = self._node.config
+        try:
+            return config.job(name)
+        except KeyError:
+            known = ", ".join(j.name for j in config.jobs) or "none"
+            raise RequestError(grpc.StatusCode.NOT_FOUND, f"no job named {name!r} (jobs: {known})") from None
+
+    async def status(self, request: dict[str, Any]) -> dict[str, Any]:
+        node = self._node
+        state, section = node.state, node.config.node
+        assert state is not None
+        return {
+            "node": section.name,
+            "started_at": None if node.started_at is None else node.started_at.isoformat(),
+            "now": node.clock.now().isoformat(),
+            "listen": str(section.listen),
+            "peer_port": node.peer_port,
+            "metrics_port": node.metrics_port,
+            "health_port": node.health_port,
+            "admin": str(section.admin),
+            "sessions_running": state.running_sessions(),
+            "max_sessions": section.max_sessions,
+            "jobs": len(node.config.jobs),
+            "stopping": state.stopping,
+        }
+
+    async def list_jobs(self, request: dict[str, Any]) -> dict[str, Any]:
+        state = self._node.state
+        assert state is not None
+        now = self._node.clock.now()
+        jobs = []
+        for job in self._node.config.jobs:
+            timing = job.timing()
+            latest = timing.latest_fire(now)
+            runs = await asyncio.to_thread(state.store.runs, job.name, 1)
+            success = await asyncio.to_thread(state.store.last_success, job.name)
+            jobs.append(
+                {
+                    "name": job.name,
+                    "peer": job.peer,
+                    "initiate": job.initiate,
+                    "role": job.party.role_name,
+                    "manifest": str(job.manifest),
+                    "cron": job.schedule.cron,
+                    "timezone": job.schedule.timezone,
+                    "window_minutes": job.schedule.window_minutes,
+                    "window_open": timing.in_window(latest, now),
+                    "next_run": timing.next_fire(now).isoformat() if job.initiate else None,
+                    "last_run": run_dict(runs[0]) if runs else None,
+                    "last_success": None
+                    if success is None or success.finished_at is None
+                    else success.finished_at.isoformat(),
+                    "results": str(job.results),
+                }
+            )
+        return {"jobs": jobs}
+
+    async def run_job(self, request: dict[str, Any]) -> dict[str, Any]:
+        node = self._node
+        assert node.state is not None
+        name = text_field(request, "job")
+        assert name is not None
+        job = self._job(name)
+        if not job.initiate:
+            raise RequestError(
+                grpc.StatusCode.FAILED_PRECONDITION,
+                f"this node does not initiate job {name!r}; it runs when node {job.peer} starts it",
+            )
+        if node.state.stopping:
+            raise RequestError(grpc.StatusCode.FAILED_PRECONDITION, "the node is stopping")
+        now = node.clock.now()
+        sid = node.start_run(job, now, "operator")
+        role = job.party.role_name
+        log.info(
+            "job %s: run requested by the operator, this node the %s (session %s)", name, role, sid.hex()
+        )
+        return {"job": name, "role": role, "session": sid.hex(), "scheduled_for": now.isoformat()}
+
+    async def history(self, request: dict[str, Any]) -> dict[str, Any]:
+        state = self._node.state
+        assert state is not None
+        job = text_field(request, "job", required=False)
+        runs = await asyncio.to_thread(state.store.runs, job, limit_field(request))
+        return {"runs": [run_dict(r) for r in runs]}
+
+    async def list_sessions(self, request: dict[str, Any]) -> dict[str, Any]:
+        state = self._node.state
+        assert state is not None
+        limit = limit_field(request)
+        live = list(state.sessions.values())[::-1]
+        out: list[dict[str, Any]] = [_brief(t) for t in live]
+        seen = {t.session_id for t in live}
+        for r in await asyncio.to_thread(state.store.runs, None, limit):
+            if r.session_id and r.session_id not in seen:
+                seen.add(r.session_id)
+                out.append(
+                    {
+                        "session": r.session_id,
+                        "job": r.job,
+                        "role": r.role,
+                        "status": r.status,
+                        "started_at": r.started_at.isoformat(),
+                        "reason": r.reason,
+                        "live": False,
+                    }
+                )
+        out.sort(key=lambda s: s["started_at"], reverse=True)
+        return {"sessions": out[:limit]}
+
+    async def show_session(self, request: dict[str, Any]) -> dict[str, Any]:
+        state = self._node.state
+        assert state is not None
+        sid = text_field(request, "session")
+        assert sid is not None
+        tracker = state.sessions.get(sid)
+        rows = [r for r in await asyncio.to_thread(state.store.runs, None, 10_000) if r.session_id == sid]
+        if tracker is None and not rows:
+            raise RequestError(
+                grpc.StatusCode.NOT_FOUND, f"no session {sid} on node {self._node.config.node.name}"
+            )
+        out: dict[str, Any] = {"session": sid, "live": tracker is not None}
+        if tracker is not None:
+            out.update(tracker.snapshot())
+        if rows:
+            out["run"] = run_dict(rows[0])
+            out.setdefault("job", rows[0].job)
+            if rows[0].role is not None:
+                out.setdefault("role", rows[0].role)
+            if tracker is None:
+                out["status"] = rows[0].status
+                out["reason"] = rows[0].reason
+                out["result_path"] = rows[0].result_path
+            elif rows[0].status != "running":
+                out["result_path"] = rows[0].result_path
+        return {"session": out}
+
+
+def run_dict(r: RunRecord) -> dict[str, Any]:
+    """A job-store run as the admin API shows it."""
+    return {
+        "id": r.id,
+        "job": r.job,
+        "scheduled_for": r.scheduled_for.isoformat(),
+        "attempt": r.attempt,
+        "trigger": r.trigger,
+        "role": r.role,
+        "session": r.session_id,
+        "status": r.status,
+        "started_at": r.started_at.isoformat(),
+        "finished_at": None if r.finished_at is None else r.finished_at.isoformat(),
+        "reason": r.reason,
+        "result_path": r.result_path,
+    }
+
+
+def _brief(t: SessionTracker) -> dict[str, Any]:
+    snap = t.snapshot()
+    keys = ("session", "job", "role", "peer", "trigger", "status", "reason", "phase", "started_at")
+    return {**{k: snap[k] for k in keys}, "live": True}
 
 
 class AdminClient:

@@ -40,10 +40,11 @@ unique, a job's peer configured, the node's listening addresses distinct, job re
 once every field is valid. ``JobConfig.timing()`` gives the job's ``jointstat.node.schedule.JobTiming``.
 
 File checks are separate from parsing, so a config can be validated where its keys are absent (a build machine):
-``secret_problems()`` opens each secret through ``jointstat.node.secrets`` (owner-only, regular file) and checks it
-parses; ``file_problems()`` checks the public files (certificates parse and are current, pinned fingerprints
-match, public keys load, manifests exist). Messages name the field and the file, never a secret's content; a
-database URL carrying a password is refused (the password belongs in ``password_file``) and never echoed.
+``secret_problems()`` and ``file_problems()`` are ``jointstat.node.keys``' checks of the secret files (owner-only,
+regular, parse) and of the public ones (certificates parse and are current, pinned fingerprints match, public keys
+load, manifests exist), where the node's keys are also read. Messages name the field and the file, never a
+secret's content; a database URL carrying a password is refused (the password belongs in ``password_file``) and
+never echoed.
 """
 
 from __future__ import annotations
@@ -53,16 +54,14 @@ import os
 import posixpath
 import re
 from dataclasses import dataclass
-from datetime import UTC, datetime, timedelta
+from datetime import datetime, timedelta
 from pathlib import Path
 from typing import Annotated, Any, Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from pydantic import (
     AfterValidator,
-    BaseModel,
     BeforeValidator,
-    ConfigDict,
     Field,
     PrivateAttr,
     ValidationError,
@@ -72,15 +71,15 @@ from pydantic import (
 from pydantic_core import PydanticCustomError
 
 from jointstat.audit.records import node_name_ok
+from jointstat.circuit.model import Party
+from jointstat.fields import StrictModel, between
 from jointstat.node.schedule import JobTiming, ScheduleError
 from jointstat.problems import Problem, ProblemError, field_path, pydantic_message, read_yaml
 
 UNIX_PREFIX = "unix:"
 MAX_UNIX_PATH_BYTES = 107  # sun_path is 108 bytes on Linux, one of them the terminating NUL
-MIN_KEY_SECRET_BYTES = 16  # the rule jointstat.circuit.inputs applies to the key-hashing secret
 DEFAULT_METRICS = "127.0.0.1:7303"
 CONSOLE_TOKEN_FILE = "console.token"
-MIN_CONSOLE_TOKEN_CHARS = 32
 JOB_NAME = re.compile(r"[a-z0-9][a-z0-9._-]{0,63}")
 _HOST_LABEL = re.compile(r"(?!-)[A-Za-z0-9-]{1,63}(?<!-)")
 
@@ -256,15 +255,6 @@ def _job_name(value: str) -> str:
     return value
 
 
-def _between(lo: float, hi: float) -> AfterValidator:
-    def check(v: float) -> float:
-        if not lo <= v <= hi:
-            raise ValueError(f"must be between {lo} and {hi}")
-        return v
-
-    return AfterValidator(check)
-
-
 def _cron(value: str) -> str:
     from croniter import croniter
 
@@ -329,10 +319,6 @@ Text = Annotated[str, AfterValidator(_non_empty)]
 # -- models ----------------------------------------------------------------------------------------------------------
 
 
-class StrictModel(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True, strict=True)
-
-
 def _derived(data: dict[str, Any], key: str) -> str:
     """A raw path field usable as the base of a derived default, else ``.`` (its own error is reported)."""
     value = data.get(key)
@@ -351,9 +337,9 @@ class NodeSection(StrictModel):
     job_store: ConfigPath
     session_log: ConfigPath
     results_dir: ConfigPath
-    max_sessions: Annotated[int, _between(1, 64)] = 4
-    session_deadline_seconds: Annotated[int, _between(1, 86400)] = 3600
-    session_memory_mib: Annotated[int, _between(64, 1 << 22)] = 8192
+    max_sessions: Annotated[int, between(1, 64)] = 4
+    session_deadline_seconds: Annotated[int, between(1, 86400)] = 3600
+    session_memory_mib: Annotated[int, between(64, 1 << 22)] = 8192
     console: BindAddress | None = None
     console_behind_proxy: bool = False
     console_token_file: ConfigPath | None = None
@@ -489,15 +475,15 @@ class ScheduleConfig(StrictModel):
 
     cron: Annotated[str, AfterValidator(_cron)]
     timezone: Annotated[str, AfterValidator(_timezone)] = "UTC"
-    window_minutes: Annotated[int, _between(1, 7 * 24 * 60)] = 120
+    window_minutes: Annotated[int, between(1, 7 * 24 * 60)] = 120
 
 
 class RetryConfig(StrictModel):
     """How often a failed run is tried again inside its window, waiting backoff · factor^(k−1) after attempt k."""
 
-    attempts: Annotated[int, _between(1, 100)] = 3
-    backoff_seconds: Annotated[float, _between(0, 86400)] = 60.0
-    backoff_factor: Annotated[float, _between(1, 10)] = 2.0
+    attempts: Annotated[int, between(1, 100)] = 3
+    backoff_seconds: Annotated[float, between(0, 86400)] = 60.0
+    backoff_factor: Annotated[float, between(1, 10)] = 2.0
 
 
 class JobConfig(StrictModel):
@@ -515,6 +501,11 @@ class JobConfig(StrictModel):
     initiate: bool
     retries: RetryConfig = RetryConfig()
     results: ConfigPath
+
+    @property
+    def party(self) -> Party:
+        """The manifest party this node is for the job: its configured ``role``, never who initiates."""
+        return Party[self.role.upper()]
 
     def timing(self) -> JobTiming:
         """The job's timing for ``jointstat.node.schedule.Planner``."""
@@ -537,7 +528,7 @@ class NodeConfig(StrictModel):
     signing_key: ConfigPath
     key_hashing_secret: ConfigPath | None = None
     peers: Annotated[list[PeerConfig], Field(min_length=1)]
-    jobs: list[JobConfig] = []
+    jobs: list[JobConfig] = []  # noqa: RUF012 (pydantic copies a default for each model)
 
     _source: str = PrivateAttr("<node config>")
 
@@ -599,34 +590,20 @@ class NodeConfig(StrictModel):
         for i, peer in enumerate(self.peers):
             if peer.name == self.node.name:
                 problems.append(Problem(f"peers[{i}].name", f"{peer.name!r} is this node's own name"))
-            elif peer.name in seen_peers:
+            elif (first := _seen_before(seen_peers, peer.name, i)) is not None:
                 problems.append(
-                    Problem(
-                        f"peers[{i}].name", f"{peer.name!r} is already used by peers[{seen_peers[peer.name]}]"
-                    )
+                    Problem(f"peers[{i}].name", f"{peer.name!r} is already used by peers[{first}]")
                 )
-            else:
-                seen_peers[peer.name] = i
         seen_jobs: dict[str, int] = {}
         seen_results: dict[Path, int] = {}
         known = ", ".join(seen_peers) or "none"
         for i, job in enumerate(self.jobs):
-            if job.name in seen_jobs:
-                problems.append(
-                    Problem(f"jobs[{i}].name", f"{job.name!r} is already used by jobs[{seen_jobs[job.name]}]")
-                )
-            else:
-                seen_jobs[job.name] = i
+            if (first := _seen_before(seen_jobs, job.name, i)) is not None:
+                problems.append(Problem(f"jobs[{i}].name", f"{job.name!r} is already used by jobs[{first}]"))
             if job.peer not in seen_peers:
                 problems.append(Problem(f"jobs[{i}].peer", f"no peer named {job.peer!r} (peers: {known})"))
-            if job.results in seen_results:
-                problems.append(
-                    Problem(
-                        f"jobs[{i}].results", f"same directory as jobs[{seen_results[job.results]}].results"
-                    )
-                )
-            else:
-                seen_results[job.results] = i
+            if (first := _seen_before(seen_results, job.results, i)) is not None:
+                problems.append(Problem(f"jobs[{i}].results", f"same directory as jobs[{first}].results"))
             try:
                 job.timing()
             except ScheduleError as exc:  # the field validators apply the same rules; kept as a guarantee
@@ -648,79 +625,13 @@ class NodeConfig(StrictModel):
             taken.append((field_name, address))
         return problems
 
-    # -- file checks ---------------------------------------------------------------------------------------------
+    # -- file checks (``jointstat.node.keys`` reads the key files) ------------------------------------------
 
     def secret_problems(self) -> list[Problem]:
         """Each secret file must exist, be owner-only and parse; the TLS key must match the certificate."""
-        from cryptography import x509
+        from jointstat.node.keys import secret_problems
 
-        from jointstat.node.keys import load_signing_key, read_tls_key
-        from jointstat.node.secrets import SecretFileError, read_secret_file
-
-        problems = []
-        try:
-            tls_key = read_tls_key(self.tls.private_key)
-        except SecretFileError as exc:
-            problems.append(Problem("tls.private_key", str(exc)))
-        else:
-            try:
-                cert = x509.load_pem_x509_certificate(self.tls.certificate.read_bytes())
-            except (OSError, ValueError):
-                pass  # reported by file_problems
-            else:
-                if not _key_matches(tls_key, cert):
-                    problems.append(
-                        Problem(
-                            "tls.private_key", f"{self.tls.private_key}: is not the key of tls.certificate"
-                        )
-                    )
-        try:
-            load_signing_key(self.signing_key)
-        except SecretFileError as exc:
-            problems.append(Problem("signing_key", str(exc)))
-        if self.key_hashing_secret is not None:
-            try:
-                secret = read_secret_file(self.key_hashing_secret, "key-hashing secret")
-            except SecretFileError as exc:
-                problems.append(Problem("key_hashing_secret", str(exc)))
-            else:
-                if len(secret) < MIN_KEY_SECRET_BYTES:
-                    problems.append(
-                        Problem(
-                            "key_hashing_secret",
-                            f"{self.key_hashing_secret}: must hold at least {MIN_KEY_SECRET_BYTES} bytes",
-                        )
-                    )
-        problems += self._console_token_problems()
-        for i, job in enumerate(self.jobs):
-            sql = job.input.sql
-            if sql is not None and sql.password_file is not None:
-                try:
-                    if not read_secret_file(sql.password_file, "database password").strip():
-                        problems.append(
-                            Problem(f"jobs[{i}].input.sql.password_file", f"{sql.password_file}: is empty")
-                        )
-                except SecretFileError as exc:
-                    problems.append(Problem(f"jobs[{i}].input.sql.password_file", str(exc)))
-        return problems
-
-    def _console_token_problems(self) -> list[Problem]:
-        """A configured console token file must exist; the default one is made at first start if missing."""
-        from jointstat.node.secrets import SecretFileError, read_secret_file
-
-        node = self.node
-        if node.console is None:
-            return []
-        path = node.console_token_path()
-        field = "node.console_token_file" if node.console_token_file is not None else "node.console"
-        if node.console_token_file is None and not path.exists():
-            return []
-        try:
-            data = read_secret_file(path, "console login token")
-        except SecretFileError as exc:
-            return [Problem(field, str(exc))]
-        problem = console_token_problem(data)
-        return [] if problem is None else [Problem(field, f"{path}: {problem}")]
+        return secret_problems(self)
 
     def check_secrets(self) -> None:
         """Raise ``ConfigError`` listing every secret-file problem (none: return)."""
@@ -730,53 +641,15 @@ class NodeConfig(StrictModel):
 
     def file_problems(self, now: datetime | None = None) -> list[Problem]:
         """The public files: certificates parse and are valid at ``now``, pins match, keys load, manifests exist."""
-        from jointstat.node.keys import load_public_key
-        from jointstat.node.secrets import SecretFileError
-        from jointstat.transport.tls import fingerprint
+        from jointstat.node.keys import file_problems
 
-        moment = now or datetime.now(UTC)
-        problems = []
-        problem = _certificate_problem(self.tls.certificate, moment)
-        if problem is not None:
-            problems.append(Problem("tls.certificate", problem))
-        for i, peer in enumerate(self.peers):
-            problem = _certificate_problem(peer.certificate, moment, pinned=True)
-            if problem is not None:
-                problems.append(Problem(f"peers[{i}].certificate", problem))
-            elif peer.certificate_sha256 is not None:
-                got = fingerprint(peer.certificate.read_bytes()).hex()
-                if got != peer.certificate_sha256:
-                    problems.append(
-                        Problem(
-                            f"peers[{i}].certificate_sha256",
-                            f"does not match {peer.certificate} (its SHA-256 is {got})",
-                        )
-                    )
-            try:
-                load_public_key(peer.signing_public_key)
-            except SecretFileError as exc:
-                problems.append(Problem(f"peers[{i}].signing_public_key", str(exc)))
-        for i, job in enumerate(self.jobs):
-            if not job.manifest.is_file():
-                problems.append(Problem(f"jobs[{i}].manifest", f"{job.manifest}: no such file"))
-        for field_name in ("data_dir", "results_dir"):
-            path = getattr(self.node, field_name)
-            if path.exists() and not path.is_dir():
-                problems.append(Problem(f"node.{field_name}", f"{path}: exists and is not a directory"))
-        return problems
+        return file_problems(self, now)
 
 
-def console_token_problem(data: bytes) -> str | None:
-    """What is wrong with a console token file's content (one line of printable ASCII, long enough), or None."""
-    try:
-        text = data.decode("ascii").removesuffix("\n")
-    except UnicodeDecodeError:
-        return "the login token must be printable ASCII text"
-    if not text.isprintable() or any(c.isspace() for c in text):
-        return "the login token must be one line of printable ASCII without spaces"
-    if len(text) < MIN_CONSOLE_TOKEN_CHARS:
-        return f"the login token must be at least {MIN_CONSOLE_TOKEN_CHARS} characters long"
-    return None
+def _seen_before(seen: dict[Any, int], key: Any, index: int) -> int | None:
+    """The index ``key`` was first seen at, or None when it is new (then it is noted as seen at ``index``)."""
+    first = seen.setdefault(key, index)
+    return None if first == index else first
 
 
 def _clash(a: HostPort | UnixSocket, b: HostPort | UnixSocket) -> bool:
@@ -785,44 +658,6 @@ def _clash(a: HostPort | UnixSocket, b: HostPort | UnixSocket) -> bool:
     if a.port != b.port or a.port == 0:
         return False
     return a.host == b.host or a.is_wildcard or b.is_wildcard
-
-
-def _key_matches(key_pem: bytes, cert: Any) -> bool:
-    from cryptography.hazmat.primitives import serialization
-
-    key = serialization.load_pem_private_key(key_pem, password=None)
-    spki = serialization.Encoding.DER, serialization.PublicFormat.SubjectPublicKeyInfo
-    return bool(key.public_key().public_bytes(*spki) == cert.public_key().public_bytes(*spki))
-
-
-def _certificate_problem(path: Path, now: datetime, *, pinned: bool = False) -> str | None:
-    """What is wrong with a certificate file, or None; a ``pinned`` peer file must be one non-CA certificate."""
-    from cryptography import x509
-
-    from jointstat.transport.tls import pinned_certificate
-
-    try:
-        data = path.read_bytes()
-    except FileNotFoundError:
-        return f"{path}: no such file"
-    except OSError as exc:
-        return f"{path}: cannot read ({exc.strerror})"
-    if b"PRIVATE KEY" in data:
-        return f"{path}: holds a private key; name the certificate file"
-    try:
-        cert = x509.load_pem_x509_certificate(data)
-    except ValueError:
-        return f"{path}: not a PEM certificate"
-    if pinned:
-        try:
-            cert = pinned_certificate(data, str(path))
-        except ValueError as exc:
-            return str(exc)
-    if now < cert.not_valid_before_utc:
-        return f"{path}: not valid before {cert.not_valid_before_utc:%Y-%m-%d %H:%M} UTC"
-    if now >= cert.not_valid_after_utc:
-        return f"{path}: expired on {cert.not_valid_after_utc:%Y-%m-%d %H:%M} UTC"
-    return None
 
 
 # -- loading -----------------------------------------------------------------------------------------------------------

@@ -9,11 +9,11 @@ the log shows started but never ended get ``session_aborted`` (reason ``node_res
 one asyncio event loop:
 
 - the peer-facing gRPC server on ``node.listen`` (``transport.SessionServer``, mutual TLS with the pinned peer
-  certificates), carrying ``Session/Exchange``, ``Session/Propose`` (``node.jobs``) and the standard gRPC health
-  service ``grpc.health.v1.Health``; the health service also on ``node.health`` in plain text when configured, for
-  probes that hold no client certificate;
+  certificates), carrying ``Session/Exchange``, ``Session/Propose`` (``transport.proposals``, answered by
+  ``node.jobs``) and the standard gRPC health service ``grpc.health.v1.Health``; the health service also on
+  ``node.health`` in plain text when configured, for probes that hold no client certificate;
 - the Prometheus endpoint on ``node.metrics`` (``node.metrics``);
-- the admin API on ``node.admin`` (``node.admin``);
+- the admin API on ``node.admin`` (``node.admin``: ``NodeAdmin`` answers it from this node);
 - the operator console in the browser on ``node.console`` when set (``node.console``, seeing the node only
   through ``node.nodeview.DaemonView``);
 - the scheduler: once at start-up, each initiated job's latest scheduled time whose window is still open and which
@@ -39,34 +39,26 @@ import signal
 import stat
 import sys
 from collections.abc import Callable
-from datetime import UTC, datetime
+from datetime import datetime
 from pathlib import Path
 from typing import Any
 
 import grpc
-from croniter import croniter
 from grpc_health.v1 import health, health_pb2, health_pb2_grpc
 
 from jointstat.audit.log import SessionLog
 from jointstat.audit.records import AuditError
-from jointstat.node.admin import RequestError, admin_handler, limit_field, text_field
+from jointstat.node.admin import NodeAdmin, admin_handler
 from jointstat.node.clock import Clock, SystemClock
 from jointstat.node.config import ConfigError, JobConfig, NodeConfig, UnixSocket
-from jointstat.node.jobs import (
-    JobRunner,
-    NodeState,
-    load_node_keys,
-    new_session_id,
-    proposal_service,
-    role_name,
-    role_of,
-)
+from jointstat.node.jobs import JobRunner, NodeState, new_session_id
+from jointstat.node.keys import NodeKeys, load_node_keys
 from jointstat.node.metrics import NodeMetrics
-from jointstat.node.progress import SessionTracker
 from jointstat.node.secrets import SecretFileError
-from jointstat.node.store import JobStore, RunRecord, StoreError
+from jointstat.node.store import JobStore, StoreError
 from jointstat.protocol.sides import Session, new_session
 from jointstat.transport.driver import Limits
+from jointstat.transport.proposals import proposal_service
 from jointstat.transport.server import SessionServer
 
 log = logging.getLogger("jointstat.node")
@@ -77,34 +69,10 @@ SHUTDOWN_MARGIN_S = 1.0  # common practice: slack beyond a session's own grace p
 KEEP_ENDED_SESSIONS = 200
 
 
-def _run_dict(r: RunRecord) -> dict[str, Any]:
-    return {
-        "id": r.id,
-        "job": r.job,
-        "scheduled_for": r.scheduled_for.isoformat(),
-        "attempt": r.attempt,
-        "trigger": r.trigger,
-        "role": r.role,
-        "session": r.session_id,
-        "status": r.status,
-        "started_at": r.started_at.isoformat(),
-        "finished_at": None if r.finished_at is None else r.finished_at.isoformat(),
-        "reason": r.reason,
-        "result_path": r.result_path,
-    }
-
-
 def job_summary(job: JobConfig) -> str:
     """``garbler with riverside-baths, initiates``: the job's manifest role, peer and who opens its sessions."""
     opens = "initiates" if job.initiate else "accepts the peer's proposals"
-    return f"{role_name(role_of(job))} with {job.peer}, {opens}"
-
-
-def next_fire(job: JobConfig, now: datetime) -> datetime:
-    """The job's first scheduled time strictly after ``now`` (UTC)."""
-    timing = job.timing()
-    nxt = croniter(timing.cron, now.astimezone(timing.zone)).get_next(datetime)
-    return nxt.astimezone(UTC)
+    return f"{job.party.role_name} with {job.peer}, {opens}"
 
 
 class Node:
@@ -123,6 +91,7 @@ class Node:
         self.clock: Clock = clock or SystemClock()
         self._session_factory = session_factory or new_session
         self.metrics = NodeMetrics()
+        self.admin = NodeAdmin(self)  # the admin API's answers (``node.admin``), also read by the console
         self.state: NodeState | None = None
         self.runner: JobRunner | None = None
         self.health = health.aio.HealthServicer()
@@ -230,10 +199,12 @@ class Node:
             if last is not None and last.finished_at is not None:
                 self.metrics.last_success.labels(job.name).set(last.finished_at.timestamp())
 
-    async def _serve(self, keys: Any) -> None:
+    async def _serve(self, keys: NodeKeys) -> None:
         assert self.state is not None and self.runner is not None
         node = self.config.node
-        runner = self.runner
+        proposals = proposal_service(
+            keys.server_tls.pinned_fingerprints, keys.peer_by_fingerprint, self.runner.on_proposal
+        )
 
         def add_health(server: grpc.aio.Server) -> None:
             health_pb2_grpc.add_HealthServicer_to_server(self.health, server)
@@ -243,7 +214,7 @@ class Node:
             address=str(node.listen),
             limits=self.state.limits,
             session_ids=self.state.session_ids,
-            services=[proposal_service(lambda: runner, keys), add_health],
+            services=[proposals, add_health],
             shutdown=self.state.shutdown,
         )
         self.state.server = self._server
@@ -258,7 +229,7 @@ class Node:
             self._health_server, self.health_port = server, port
         self.metrics_port = await asyncio.to_thread(self.metrics.serve, node.metrics.host, node.metrics.port)
         admin = grpc.aio.server()
-        admin.add_generic_rpc_handlers([admin_handler(self)])
+        admin.add_generic_rpc_handlers([admin_handler(self.admin)])
         if isinstance(node.admin, UnixSocket):
             _clear_stale_socket(node.admin.path)
         if admin.add_insecure_port(str(node.admin)) == 0:
@@ -291,14 +262,17 @@ class Node:
 
     # -- scheduling ----------------------------------------------------------------------------------------------
 
-    def _spawn(self, job: JobConfig, scheduled_for: datetime, trigger: str, sid: bytes | None = None) -> None:
+    def start_run(self, job: JobConfig, scheduled_for: datetime, trigger: str) -> bytes:
+        """Start the attempts at one run of an initiated job in a task of its own; the first attempt's session id."""
         assert self.runner is not None
+        sid = new_session_id()
         task = asyncio.create_task(
             self.runner.run_job(job, scheduled_for, trigger, sid), name=f"job-{job.name}"
         )
         self._jobs.add(task)
         task.add_done_callback(self._job_done)
         self._prune_sessions()
+        return sid
 
     def _job_done(self, task: asyncio.Task[Any]) -> None:
         self._jobs.discard(task)
@@ -326,16 +300,16 @@ class Node:
                     run.job,
                     run.scheduled_for,
                 )
-                self._spawn(initiated[run.job], run.scheduled_for, "schedule")
+                self.start_run(initiated[run.job], run.scheduled_for, "schedule")
         while not self.state.stopping:
             for run in planner.due(self.clock.now()):
                 log.info("job %s: scheduled run of %s is due", run.job, run.scheduled_for.isoformat())
-                self._spawn(initiated[run.job], run.scheduled_for, "schedule")
+                self.start_run(initiated[run.job], run.scheduled_for, "schedule")
             if not initiated:
                 await self._stop_requested.wait()
                 return
             now = self.clock.now()
-            wake = min(next_fire(job, now) for job in initiated.values())
+            wake = min(job.timing().next_fire(now) for job in initiated.values())
             sleeper = asyncio.ensure_future(self.clock.sleep_until(wake))
             stopper = asyncio.ensure_future(self._stop_requested.wait())
             try:
@@ -418,145 +392,6 @@ class Node:
             with contextlib.suppress(OSError):
                 if stat.S_ISSOCK(admin.path.lstat().st_mode):
                     admin.path.unlink()
-
-    # -- admin API -----------------------------------------------------------------------------------------------
-
-    def _job(self, name: str) -> JobConfig:
-        try:
-            return self.config.job(name)
-        except KeyError:
-            known = ", ".join(j.name for j in self.config.jobs) or "none"
-            raise RequestError(grpc.StatusCode.NOT_FOUND, f"no job named {name!r} (jobs: {known})") from None
-
-    async def admin_status(self, request: dict[str, Any]) -> dict[str, Any]:
-        assert self.state is not None
-        node = self.config.node
-        return {
-            "node": node.name,
-            "started_at": None if self.started_at is None else self.started_at.isoformat(),
-            "now": self.clock.now().isoformat(),
-            "listen": str(node.listen),
-            "peer_port": self.peer_port,
-            "metrics_port": self.metrics_port,
-            "health_port": self.health_port,
-            "admin": str(node.admin),
-            "sessions_running": self.state.running_sessions(),
-            "max_sessions": node.max_sessions,
-            "jobs": len(self.config.jobs),
-            "stopping": self.state.stopping,
-        }
-
-    async def admin_list_jobs(self, request: dict[str, Any]) -> dict[str, Any]:
-        assert self.state is not None
-        now = self.clock.now()
-        jobs = []
-        for job in self.config.jobs:
-            timing = job.timing()
-            latest = timing.latest_fire(now)
-            runs = await asyncio.to_thread(self.state.store.runs, job.name, 1)
-            success = await asyncio.to_thread(self.state.store.last_success, job.name)
-            jobs.append(
-                {
-                    "name": job.name,
-                    "peer": job.peer,
-                    "initiate": job.initiate,
-                    "role": role_name(role_of(job)),
-                    "manifest": str(job.manifest),
-                    "cron": job.schedule.cron,
-                    "timezone": job.schedule.timezone,
-                    "window_minutes": job.schedule.window_minutes,
-                    "window_open": timing.in_window(latest, now),
-                    "next_run": next_fire(job, now).isoformat() if job.initiate else None,
-                    "last_run": _run_dict(runs[0]) if runs else None,
-                    "last_success": None
-                    if success is None or success.finished_at is None
-                    else success.finished_at.isoformat(),
-                    "results": str(job.results),
-                }
-            )
-        return {"jobs": jobs}
-
-    async def admin_run_job(self, request: dict[str, Any]) -> dict[str, Any]:
-        assert self.state is not None
-        name = text_field(request, "job")
-        assert name is not None
-        job = self._job(name)
-        if not job.initiate:
-            raise RequestError(
-                grpc.StatusCode.FAILED_PRECONDITION,
-                f"this node does not initiate job {name!r}; it runs when node {job.peer} starts it",
-            )
-        if self.state.stopping:
-            raise RequestError(grpc.StatusCode.FAILED_PRECONDITION, "the node is stopping")
-        now = self.clock.now()
-        sid = new_session_id()
-        self._spawn(job, now, "operator", sid)
-        role = role_name(role_of(job))
-        log.info(
-            "job %s: run requested by the operator, this node the %s (session %s)", name, role, sid.hex()
-        )
-        return {"job": name, "role": role, "session": sid.hex(), "scheduled_for": now.isoformat()}
-
-    async def admin_history(self, request: dict[str, Any]) -> dict[str, Any]:
-        assert self.state is not None
-        job = text_field(request, "job", required=False)
-        runs = await asyncio.to_thread(self.state.store.runs, job, limit_field(request))
-        return {"runs": [_run_dict(r) for r in runs]}
-
-    async def admin_list_sessions(self, request: dict[str, Any]) -> dict[str, Any]:
-        assert self.state is not None
-        limit = limit_field(request)
-        live = list(self.state.sessions.values())[::-1]
-        out: list[dict[str, Any]] = [_brief(t) for t in live]
-        seen = {t.session_id for t in live}
-        for r in await asyncio.to_thread(self.state.store.runs, None, limit):
-            if r.session_id and r.session_id not in seen:
-                seen.add(r.session_id)
-                out.append(
-                    {
-                        "session": r.session_id,
-                        "job": r.job,
-                        "role": r.role,
-                        "status": r.status,
-                        "started_at": r.started_at.isoformat(),
-                        "reason": r.reason,
-                        "live": False,
-                    }
-                )
-        out.sort(key=lambda s: s["started_at"], reverse=True)
-        return {"sessions": out[:limit]}
-
-    async def admin_show_session(self, request: dict[str, Any]) -> dict[str, Any]:
-        assert self.state is not None
-        sid = text_field(request, "session")
-        assert sid is not None
-        tracker = self.state.sessions.get(sid)
-        rows = [
-            r for r in await asyncio.to_thread(self.state.store.runs, None, 10_000) if r.session_id == sid
-        ]
-        if tracker is None and not rows:
-            raise RequestError(grpc.StatusCode.NOT_FOUND, f"no session {sid} on node {self.config.node.name}")
-        out: dict[str, Any] = {"session": sid, "live": tracker is not None}
-        if tracker is not None:
-            out.update(tracker.snapshot())
-        if rows:
-            out["run"] = _run_dict(rows[0])
-            out.setdefault("job", rows[0].job)
-            if rows[0].role is not None:
-                out.setdefault("role", rows[0].role)
-            if tracker is None:
-                out["status"] = rows[0].status
-                out["reason"] = rows[0].reason
-                out["result_path"] = rows[0].result_path
-            elif rows[0].status != "running":
-                out["result_path"] = rows[0].result_path
-        return {"session": out}
-
-
-def _brief(t: SessionTracker) -> dict[str, Any]:
-    snap = t.snapshot()
-    keys = ("session", "job", "role", "peer", "trigger", "status", "reason", "phase", "started_at")
-    return {**{k: snap[k] for k in keys}, "live": True}
 
 
 def _clear_stale_socket(path: Path) -> None:

@@ -16,6 +16,14 @@ whole set is checked before anything is written, so a refused run leaves nothing
 
 File layout in the output directory: ``<node>.signing.key.pem``, ``<node>.signing.pub.pem``, and with a trial CA
 also ``ca.cert.pem``, ``ca.key.pem``, ``<node>.tls.key.pem``, ``<node>.tls.cert.pem``.
+
+A running node's keys are read here too, and only here: ``load_node_keys`` reads each secret file of a node config
+once (owner-only, it must parse; the TLS key must match the certificate) and the peers' public files, and gives the
+``NodeKeys`` the node holds — its signing key, its server TLS pinning every peer, and per peer a ``PeerIdentity``
+(address, client TLS pinning that peer alone, certificate fingerprint, signing public key). ``secret_problems``
+and ``file_problems`` are the same reads as checks for ``node check`` (``NodeConfig.secret_problems`` /
+``file_problems``): every problem named by its field path and file, never a secret's content.
+``session_signing`` gives a session the node's ``sign`` and ``verify``.
 """
 
 from __future__ import annotations
@@ -24,22 +32,35 @@ import base64
 import hashlib
 import os
 from collections.abc import Sequence
-from dataclasses import dataclass
-from datetime import datetime
+from dataclasses import dataclass, field, replace
+from datetime import UTC, datetime
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from cryptography import x509
 from cryptography.hazmat.primitives import serialization
 from cryptography.hazmat.primitives.asymmetric import ec
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 
+from jointstat import statements
 from jointstat.audit.records import node_name_ok, raw_public_key
+from jointstat.node.config import ConfigError, NodeConfig
 from jointstat.node.secrets import SecretFileError, ensure_private_dir, read_secret_file, write_private_file
+from jointstat.problems import Problem
+from jointstat.statements import TRANSCRIPT, Statement
 from jointstat.transport import pki
+from jointstat.transport.tls import NodeTLS, pinned_certificate
+from jointstat.transport.tls import fingerprint as certificate_fingerprint
+
+if TYPE_CHECKING:
+    from jointstat.audit.log import SessionLog
+    from jointstat.protocol.session import Sign, Verify
 
 CA_CERT = "ca.cert.pem"
 CA_KEY = "ca.key.pem"
 ORGANISATION = "jointstat trial"
+MIN_KEY_SECRET_BYTES = 16  # the rule jointstat.circuit.inputs applies to the key-hashing secret
+MIN_CONSOLE_TOKEN_CHARS = 32
 
 
 def signing_key_file(node: str) -> str:
@@ -265,15 +286,249 @@ def init_trial(
         cert_path = write_private_file(
             directory / tls_cert_file(node), tls_cert.public_bytes(pem), overwrite=force
         )
-        written.append(
-            NodeKeyFiles(
-                node=files.node,
-                signing_key=files.signing_key,
-                signing_public=files.signing_public,
-                public_key=files.public_key,
-                fingerprint=files.fingerprint,
-                tls_key=key_path,
-                tls_cert=cert_path,
-            )
-        )
+        written.append(replace(files, tls_key=key_path, tls_cert=cert_path))
     return KeySet(nodes=written, ca_cert=ca_cert_path, ca_key=ca_key_path)
+
+
+# -- a running node's keys -------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class PeerIdentity:
+    """A configured peer as this node knows it (see the module docstring)."""
+
+    name: str
+    address: str
+    tls: NodeTLS  # client side: pins this peer only
+    fingerprint: bytes
+    certificate_der: bytes
+    signing_key: Ed25519PublicKey
+
+
+@dataclass(frozen=True)
+class NodeKeys:
+    """What the node holds after reading its key files."""
+
+    signing_key: Ed25519PrivateKey
+    server_tls: NodeTLS  # pins every peer
+    peers: dict[str, PeerIdentity]
+    key_secret: bytes | None
+
+    def peer_by_fingerprint(self, value: bytes) -> PeerIdentity | None:
+        for peer in self.peers.values():
+            if peer.fingerprint == value:
+                return peer
+        return None
+
+
+def load_node_keys(config: NodeConfig) -> NodeKeys:
+    """Read the node's secrets (each once) and its peers' public files; raises ``ConfigError`` listing every secret
+    problem, ``ValueError`` for a pinned peer certificate that cannot be used."""
+    found = _read_secrets(config)
+    if found.problems:
+        raise ConfigError(config.source, found.problems)
+    assert found.tls_key is not None and found.signing_key is not None
+    own_cert = config.tls.certificate.read_bytes()
+    peer_certs = {p.name: p.certificate.read_bytes() for p in config.peers}
+    peers = {}
+    for p in config.peers:
+        pem = peer_certs[p.name]
+        cert = pinned_certificate(pem, f"peer {p.name}: {p.certificate}")
+        if p.certificate_sha256 is not None and certificate_fingerprint(cert).hex() != p.certificate_sha256:
+            raise ValueError(f"peer {p.name}: {p.certificate} is not the certificate of certificate_sha256")
+        peers[p.name] = PeerIdentity(
+            name=p.name,
+            address=str(p.address),
+            tls=NodeTLS(own_cert, found.tls_key, (pem,)),
+            fingerprint=certificate_fingerprint(cert),
+            certificate_der=cert.public_bytes(serialization.Encoding.DER),
+            signing_key=load_public_key(p.signing_public_key),
+        )
+    return NodeKeys(
+        signing_key=found.signing_key,
+        server_tls=NodeTLS(own_cert, found.tls_key, tuple(peer_certs.values())),
+        peers=peers,
+        key_secret=found.key_secret,
+    )
+
+
+def session_signing(
+    session_log: SessionLog, key: Ed25519PrivateKey, peer_key: Ed25519PublicKey, sid: str
+) -> tuple[Sign, Verify]:
+    """A session's ``sign`` and ``verify`` on a node: its hello signed with the node's key, its transcript signed by
+    the session log (which records the digest and the signature as the finish frame is made), the peer's checked
+    against ``peer_key``; both refuse statements of any session but ``sid`` (``jointstat.statements``)."""
+
+    def sign(statement: Statement) -> bytes:
+        if statement.session != sid:
+            raise ValueError("asked to sign a statement of another session")
+        if statement.kind == TRANSCRIPT:
+            return session_log.transcript(sid, statement.digest)
+        return statements.sign(key, statement)
+
+    def verify(signature: bytes, statement: Statement) -> bool:
+        return statement.session == sid and statements.signature_ok(peer_key, statement, signature)
+
+    return sign, verify
+
+
+# -- checking a node config's key files ------------------------------------------------------------------------
+
+
+@dataclass
+class _Secrets:
+    """A node config's secrets as read, and every problem found reading them."""
+
+    tls_key: bytes | None = None
+    signing_key: Ed25519PrivateKey | None = None
+    key_secret: bytes | None = None
+    problems: list[Problem] = field(default_factory=list)
+
+
+def secret_problems(config: NodeConfig) -> list[Problem]:
+    """Each secret file must exist, be owner-only and parse; the TLS key must match the certificate."""
+    return _read_secrets(config).problems
+
+
+def _read_secrets(config: NodeConfig) -> _Secrets:
+    found = _Secrets()
+    problems = found.problems
+    try:
+        found.tls_key = read_tls_key(config.tls.private_key)
+    except SecretFileError as exc:
+        problems.append(Problem("tls.private_key", str(exc)))
+    else:
+        try:
+            cert = x509.load_pem_x509_certificate(config.tls.certificate.read_bytes())
+        except (OSError, ValueError):
+            pass  # reported by file_problems
+        else:
+            if not _key_matches(found.tls_key, cert):
+                problems.append(
+                    Problem("tls.private_key", f"{config.tls.private_key}: is not the key of tls.certificate")
+                )
+    try:
+        found.signing_key = load_signing_key(config.signing_key)
+    except SecretFileError as exc:
+        problems.append(Problem("signing_key", str(exc)))
+    if config.key_hashing_secret is not None:
+        try:
+            found.key_secret = read_secret_file(config.key_hashing_secret, "key-hashing secret")
+        except SecretFileError as exc:
+            problems.append(Problem("key_hashing_secret", str(exc)))
+        else:
+            if len(found.key_secret) < MIN_KEY_SECRET_BYTES:
+                problems.append(
+                    Problem(
+                        "key_hashing_secret",
+                        f"{config.key_hashing_secret}: must hold at least {MIN_KEY_SECRET_BYTES} bytes",
+                    )
+                )
+    problems += _console_token_problems(config)
+    for i, job in enumerate(config.jobs):
+        sql = job.input.sql
+        if sql is not None and sql.password_file is not None:
+            try:
+                if not read_secret_file(sql.password_file, "database password").strip():
+                    problems.append(
+                        Problem(f"jobs[{i}].input.sql.password_file", f"{sql.password_file}: is empty")
+                    )
+            except SecretFileError as exc:
+                problems.append(Problem(f"jobs[{i}].input.sql.password_file", str(exc)))
+    return found
+
+
+def _console_token_problems(config: NodeConfig) -> list[Problem]:
+    """A configured console token file must exist; the default one is made at first start if missing."""
+    node = config.node
+    if node.console is None:
+        return []
+    path = node.console_token_path()
+    field = "node.console_token_file" if node.console_token_file is not None else "node.console"
+    if node.console_token_file is None and not path.exists():
+        return []
+    try:
+        data = read_secret_file(path, "console login token")
+    except SecretFileError as exc:
+        return [Problem(field, str(exc))]
+    problem = console_token_problem(data)
+    return [] if problem is None else [Problem(field, f"{path}: {problem}")]
+
+
+def console_token_problem(data: bytes) -> str | None:
+    """What is wrong with a console token file's content (one line of printable ASCII, long enough), or None."""
+    try:
+        text = data.decode("ascii").removesuffix("\n")
+    except UnicodeDecodeError:
+        return "the login token must be printable ASCII text"
+    if not text.isprintable() or any(c.isspace() for c in text):
+        return "the login token must be one line of printable ASCII without spaces"
+    if len(text) < MIN_CONSOLE_TOKEN_CHARS:
+        return f"the login token must be at least {MIN_CONSOLE_TOKEN_CHARS} characters long"
+    return None
+
+
+def file_problems(config: NodeConfig, now: datetime | None = None) -> list[Problem]:
+    """The public files: certificates parse and are valid at ``now``, pins match, keys load, manifests exist."""
+    moment = now or datetime.now(UTC)
+    problems = []
+    problem = _certificate_problem(config.tls.certificate, moment)
+    if problem is not None:
+        problems.append(Problem("tls.certificate", problem))
+    for i, peer in enumerate(config.peers):
+        problem = _certificate_problem(peer.certificate, moment, pinned=True)
+        if problem is not None:
+            problems.append(Problem(f"peers[{i}].certificate", problem))
+        elif peer.certificate_sha256 is not None:
+            got = certificate_fingerprint(peer.certificate.read_bytes()).hex()
+            if got != peer.certificate_sha256:
+                problems.append(
+                    Problem(
+                        f"peers[{i}].certificate_sha256",
+                        f"does not match {peer.certificate} (its SHA-256 is {got})",
+                    )
+                )
+        try:
+            load_public_key(peer.signing_public_key)
+        except SecretFileError as exc:
+            problems.append(Problem(f"peers[{i}].signing_public_key", str(exc)))
+    for i, job in enumerate(config.jobs):
+        if not job.manifest.is_file():
+            problems.append(Problem(f"jobs[{i}].manifest", f"{job.manifest}: no such file"))
+    for field_name in ("data_dir", "results_dir"):
+        path = getattr(config.node, field_name)
+        if path.exists() and not path.is_dir():
+            problems.append(Problem(f"node.{field_name}", f"{path}: exists and is not a directory"))
+    return problems
+
+
+def _key_matches(key_pem: bytes, cert: x509.Certificate) -> bool:
+    key = serialization.load_pem_private_key(key_pem, password=None)
+    spki = serialization.Encoding.DER, serialization.PublicFormat.SubjectPublicKeyInfo
+    return bool(key.public_key().public_bytes(*spki) == cert.public_key().public_bytes(*spki))
+
+
+def _certificate_problem(path: Path, now: datetime, *, pinned: bool = False) -> str | None:
+    """What is wrong with a certificate file, or None; a ``pinned`` peer file must be one non-CA certificate."""
+    try:
+        data = path.read_bytes()
+    except FileNotFoundError:
+        return f"{path}: no such file"
+    except OSError as exc:
+        return f"{path}: cannot read ({exc.strerror})"
+    if b"PRIVATE KEY" in data:
+        return f"{path}: holds a private key; name the certificate file"
+    try:
+        cert = x509.load_pem_x509_certificate(data)
+    except ValueError:
+        return f"{path}: not a PEM certificate"
+    if pinned:
+        try:
+            cert = pinned_certificate(data, str(path))
+        except ValueError as exc:
+            return str(exc)
+    if now < cert.not_valid_before_utc:
+        return f"{path}: not valid before {cert.not_valid_before_utc:%Y-%m-%d %H:%M} UTC"
+    if now >= cert.not_valid_after_utc:
+        return f"{path}: expired on {cert.not_valid_after_utc:%Y-%m-%d %H:%M} UTC"
+    return None

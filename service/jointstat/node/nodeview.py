@@ -3,8 +3,8 @@
 Theory of operation
 -------------------
 Everything the console sees goes through here, built from what the daemon already offers its operators: the
-admin API's handlers (``Node.admin_list_jobs``, ``admin_list_sessions``, ``admin_show_session``,
-``admin_run_job`` — the same answers ``jointstat jobs`` and ``jointstat sessions`` print), a running session's
+admin API's answers (``Node.admin``, ``admin.NodeAdmin``: ``list_jobs``, ``list_sessions``, ``show_session``,
+``run_job`` — the same answers ``jointstat jobs`` and ``jointstat sessions`` print), a running session's
 ``progress.SessionTracker.snapshot``, the job result files (``node.results``), the session log's
 ``SessionLog.snapshot`` and the public signing keys. Each answer is converted into the console's plain records, so
 a change inside the daemon touches this file and not the console. Nothing here reads a private key, an input or a
@@ -115,11 +115,11 @@ class DaemonView:
         return self._node.config.node.name
 
     async def jobs(self) -> list[JobView]:
-        answer = await self._node.admin_list_jobs({})
+        answer = await self._node.admin.list_jobs({})
         return [job_view(j) for j in answer["jobs"]]
 
     async def sessions(self, limit: int) -> list[SessionView]:
-        answer = await self._node.admin_list_sessions({"limit": limit})
+        answer = await self._node.admin.list_sessions({"limit": limit})
         return [session_view(s) for s in answer["sessions"]]
 
     async def session(self, session_id: str) -> SessionView | None:
@@ -128,7 +128,7 @@ class DaemonView:
         if tracker is not None:  # followed by the node: its tracker has it all (no job-store read)
             return session_view({**tracker.snapshot(), "live": True})
         try:
-            answer = await self._node.admin_show_session({"session": session_id})
+            answer = await self._node.admin.show_session({"session": session_id})
         except RequestError:
             return None
         return session_view(answer["session"])
@@ -144,10 +144,10 @@ class DaemonView:
         return out
 
     async def run_now(self, job: str) -> str:
-        """Start the run (``admin_run_job``) and wait until the node follows its session, so that the session's
+        """Start the run (``NodeAdmin.run_job``) and wait until the node follows its session, so that the session's
         page opened next shows it live (the run is recorded, then its tracker made, in the job's own task)."""
         try:
-            answer = await self._node.admin_run_job({"job": job})
+            answer = await self._node.admin.run_job({"job": job})
         except RequestError as exc:
             raise RunRefused(str(exc)) from None
         session = str(answer["session"])

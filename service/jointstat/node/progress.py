@@ -114,10 +114,6 @@ class SessionTracker:
         self._final_rate: float | None = None
 
     @property
-    def role_name(self) -> str:
-        return "garbler" if self.role == Party.GARBLER else "evaluator"
-
-    @property
     def ended(self) -> bool:
         return self.status in ENDED
 
@@ -202,7 +198,7 @@ class SessionTracker:
         return {
             "session": self.session_id,
             "job": self.job,
-            "role": self.role_name,
+            "role": self.role.role_name,
             "peer": self.peer,
             "trigger": self.trigger,
             "status": self.status,

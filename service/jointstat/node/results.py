@@ -1,9 +1,12 @@
-"""Reading back a job's result files: this node's own outputs of each completed run, oldest first.
+"""A job's result files: this node's own outputs of each completed run, written once and read back oldest first.
 
 Theory of operation
 -------------------
-The node writes one JSON file per completed run (``jobs.write_result``, format ``jointstat-result/1``) into the
-job's result directory, named ``<UTC time>-<session id>.json`` so that names sort by time. ``read_result`` parses
+The node writes one JSON file per completed run (``write_result``, format ``jointstat-result/1``) into the job's
+result directory, owner-only and atomically (``secrets.write_private_file``: a reader sees the whole file or
+none), named ``<UTC time>-<session id>.json`` so that names sort by time. It holds the job, the session, this
+node's role, the manifest digest, the times, ``withheld`` (the disclosure rule's flag, or null when this node
+receives no output) and the named outputs as the compiled manifest decoded them. ``read_result`` parses
 one file strictly: the format tag, the job, the session, the role, the times, the ``withheld`` flag and the named
 outputs; anything else is a ``ResultFileError`` naming the file and the field (never a value). ``job_results``
 lists the newest ``limit`` files of a directory and reads each, giving them oldest first by their finish time
@@ -18,11 +21,17 @@ from __future__ import annotations
 import json
 import re
 from dataclasses import dataclass
-from datetime import datetime
+from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-RESULT_FORMAT = "jointstat-result/1"  # the tag jobs.write_result writes
+from jointstat.circuit.model import Party
+from jointstat.node.secrets import ensure_private_dir, write_private_file
+
+if TYPE_CHECKING:
+    from jointstat.node.config import JobConfig
+
+RESULT_FORMAT = "jointstat-result/1"  # the tag write_result writes
 MAX_RESULT_BYTES = 1 << 20
 RESULT_NAME = re.compile(r"\d{8}T\d{6}Z-[A-Za-z0-9][A-Za-z0-9._:-]{0,127}\.json")
 OutputValue = int | float | bool | str | list[Any] | None
@@ -48,6 +57,34 @@ class ResultRecord:
     finished_at: datetime
     withheld: bool | None  # None: this node receives no output of the job (only the peer does)
     outputs: dict[str, OutputValue]
+
+
+def write_result(
+    job: JobConfig,
+    *,
+    session_id: str,
+    party: Party,
+    digest: bytes,
+    scheduled_for: datetime,
+    finished_at: datetime,
+    outputs: dict[str, Any],
+) -> Path:
+    """Write this node's result of one session of ``job``, owner-only and atomically; returns the file's path."""
+    directory = ensure_private_dir(job.results)
+    stamp = finished_at.astimezone(UTC).strftime("%Y%m%dT%H%M%SZ")
+    body = {
+        "format": RESULT_FORMAT,
+        "job": job.name,
+        "session": session_id,
+        "role": Party(party).role_name,
+        "manifest_digest": digest.hex(),
+        "scheduled_for": scheduled_for.astimezone(UTC).isoformat(),
+        "finished_at": finished_at.astimezone(UTC).isoformat(),
+        "withheld": outputs.get("withheld") if outputs else None,
+        "outputs": {k: v for k, v in outputs.items() if k != "withheld"},
+    }
+    data = (json.dumps(body, indent=2) + "\n").encode("utf-8")
+    return write_private_file(directory / f"{stamp}-{session_id}.json", data)
 
 
 def _time(path: Path, body: dict[str, Any], key: str) -> datetime:

@@ -14,6 +14,8 @@ are due. Nothing here reads a clock or sleeps, so tests drive it with any time t
 - At start-up ``missed(now, done)`` returns, per job, the latest scheduled time before ``now`` whose window is still
   open and which the store has no run for, so a run missed while the node was down happens once, not once per
   missed tick.
+- ``JobTiming.next_fire(now)``: the first scheduled time after ``now`` (the scheduler sleeps until the earliest of
+  them; the admin API shows it as a job's next run).
 - ``retry_at(job, scheduled_for, attempt, failed_at)``: after a failed attempt k (1-based) the next attempt waits
   ``backoff · factor^(k−1)`` seconds, unless the attempts are used up or the retry would fall outside the window.
 """
@@ -71,7 +73,7 @@ class JobTiming:
             it = croniter(self.cron, after.astimezone(self.zone))
         except CroniterBadCronError as exc:  # pragma: no cover - validated in __post_init__
             raise ScheduleError(f"job {self.job!r}: {exc}") from exc
-        times = []
+        times: list[datetime] = []
         while True:
             t = it.get_next(datetime)
             if t > until:
@@ -83,6 +85,11 @@ class JobTiming:
         _require_aware(now, "now")
         it = croniter(self.cron, (now + timedelta(seconds=1)).astimezone(self.zone))
         return it.get_prev(datetime).astimezone(ZoneInfo("UTC"))
+
+    def next_fire(self, now: datetime) -> datetime:
+        """The first scheduled time strictly after ``now`` (UTC)."""
+        _require_aware(now, "now")
+        return croniter(self.cron, now.astimezone(self.zone)).get_next(datetime).astimezone(ZoneInfo("UTC"))
 
     def in_window(self, scheduled_for: datetime, now: datetime) -> bool:
         return scheduled_for <= now < scheduled_for + self.window

@@ -158,9 +158,6 @@ class JobStore:
             (job, _iso(scheduled_for), attempt, trigger, session_id, _iso(started_at), role),
         )
 
-    def set_session(self, run_id: int, session_id: str) -> None:
-        self._write("UPDATE runs SET session_id = ? WHERE id = ?", (session_id, run_id))
-
     def finish(
         self,
         run_id: int,

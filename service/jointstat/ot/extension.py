@@ -124,7 +124,7 @@ class SeedStreams:
         zeros = memoryview(self._zeros)[:nbytes]
         # update_into wants block_size − 1 spare bytes past each write; the next row (or the tail) provides them.
         buffer = np.empty(rows * nbytes + BLOCK_BYTES, dtype=np.uint8)
-        whole = memoryview(buffer)
+        whole = buffer.data
         for i, encryptor in enumerate(self._encryptors):
             encryptor.update_into(zeros, whole[i * nbytes :])
         return buffer[: rows * nbytes].reshape(rows, nbytes)

@@ -33,7 +33,11 @@ BATCH = 1 << 15  # blocks per AES call: large enough to amortise the call, small
 
 
 class FixedKeyAES:
-    """π: AES-128 encryption under a fixed key, applied to whole block arrays."""
+    """π: AES-128 encryption under a fixed key, applied to whole block arrays.
+
+    An instance is used by one thread at a time (``cryptography``'s encryptor contexts are not thread-safe): each
+    garbling scheme and OT party makes its own.
+    """
 
     def __init__(self, key: bytes = FIXED_KEY) -> None:
         self._enc = Cipher(algorithms.AES(key), modes.ECB()).encryptor()
@@ -48,11 +52,11 @@ class FixedKeyAES:
             out = np.empty_like(src)
         flat_in = src.reshape(-1)
         flat_out = out.reshape(-1)
-        whole_out = memoryview(flat_out).cast("B")
-        scratch = memoryview(self._scratch).cast("B")
+        whole_out = flat_out.data.cast("B")
+        scratch = self._scratch.data.cast("B")
         for start in range(0, n, BATCH):
             stop = min(n, start + BATCH)
-            chunk = memoryview(flat_in[2 * start : 2 * stop]).cast("B")
+            chunk = flat_in[2 * start : 2 * stop].data.cast("B")
             if stop < n:
                 # update_into insists on 15 spare bytes past the payload; the rest of ``out`` provides them.
                 self._enc.update_into(chunk, whole_out[16 * start :])
@@ -74,11 +78,11 @@ class FixedKeyAES:
             out = np.empty_like(src)
         low_word_only = tweaks.ndim == 1
         scratch = self._scratch.reshape(-1, 2)
-        scratch_bytes = memoryview(self._scratch).cast("B")
+        scratch_bytes = self._scratch.data.cast("B")
         for start in range(0, n, BATCH):
             stop = min(n, start + BATCH)
             m = stop - start
-            self._enc.update_into(memoryview(src[start:stop].reshape(-1)).cast("B"), scratch_bytes)
+            self._enc.update_into(src[start:stop].reshape(-1).data.cast("B"), scratch_bytes)
             px = scratch[:m]
             out[start:stop] = px
             if low_word_only:
@@ -92,25 +96,12 @@ class FixedKeyAES:
         return out
 
 
-_DEFAULT: FixedKeyAES | None = None
-
-
-def default_permutation() -> FixedKeyAES:
-    """A process-wide π instance (the key is public, so sharing it is safe; it is not thread-safe, see below).
-
-    ``cryptography`` encryptor contexts must not be used from two threads at once; code that hashes in worker
-    threads creates its own ``FixedKeyAES``.
-    """
-    global _DEFAULT
-    if _DEFAULT is None:
-        _DEFAULT = FixedKeyAES()
-    return _DEFAULT
-
-
 def prg_expand(seed: bytes, nbytes: int, *, nonce: bytes = bytes(16)) -> np.ndarray:
     """Expand a 16-byte seed into ``nbytes`` pseudo-random bytes with AES-128-CTR (NIST SP 800-38A), as uint8.
 
-    Used as the PRG G of IKNP OT extension. The seed is the AES key; ``nonce`` is the initial counter block.
+    The PRG G of IKNP OT extension, one seed at a time: the seed is the AES key, ``nonce`` the initial counter
+    block. OT extension reads many seeds at once through ``ot.extension.SeedStreams``, which gives the same streams
+    (counter 0); ``tests/vectors/prg_ctr.txt`` holds known answers of both.
     """
     if len(seed) != BLOCK_BYTES:
         raise ValueError(f"PRG seed must be 16 bytes, got {len(seed)}")

@@ -21,51 +21,12 @@ def random_blocks(n: int) -> np.ndarray:
     return np.frombuffer(bytearray(os.urandom(n * BLOCK_BYTES)), dtype=BLOCK_DTYPE).reshape(n, 2)
 
 
-def blocks_from_bytes(data: bytes | bytearray | memoryview, *, what: str = "blocks") -> np.ndarray:
-    """View ``data`` as an ``(n, 2)`` block array; raises ValueError naming ``what`` if the length is wrong."""
-    if len(data) % BLOCK_BYTES:
-        raise ValueError(f"{what}: {len(data)} bytes is not a whole number of 16-byte blocks")
-    return np.frombuffer(data, dtype=BLOCK_DTYPE).reshape(-1, 2)
-
-
-def blocks_to_bytes(blocks: np.ndarray) -> bytes:
-    """The wire bytes of a block array (16 bytes per block, little-endian words)."""
-    return np.ascontiguousarray(blocks, dtype=BLOCK_DTYPE).tobytes()
-
-
-def block_from_bytes(data: bytes, *, what: str = "block") -> np.ndarray:
-    """One 16-byte block as a ``(2,)`` array."""
-    if len(data) != BLOCK_BYTES:
-        raise ValueError(f"{what}: expected 16 bytes, got {len(data)}")
-    return np.frombuffer(data, dtype=BLOCK_DTYPE).copy()
-
-
 def select_mask(bits: np.ndarray) -> np.ndarray:
     """A ``(n, 1)`` word mask that is all ones where ``bits`` is 1 and zero where it is 0 (for branch-free select)."""
     return (np.asarray(bits, dtype=np.uint64) * np.uint64(0xFFFFFFFFFFFFFFFF)).reshape(-1, 1)
 
 
-def lsb(blocks: np.ndarray) -> np.ndarray:
-    """The signal bit (bit 0 of the first byte) of each block, as uint8."""
-    return (blocks[:, 0] & np.uint64(1)).astype(np.uint8)
-
-
+# A block as one opaque 16-byte cell: gathers, scatters and strided copies of whole blocks are several times faster
+# on a ``.view(CELL_DTYPE)`` of an ``(n, 2)`` array than on pairs of words (numpy's inner loop would otherwise run
+# over an axis of length 2); XORs stay on the word view.
 CELL_DTYPE = np.dtype("V16")
-
-
-def as_cells(blocks: np.ndarray) -> np.ndarray:
-    """View an ``(n, 2)`` block array as ``(n,)`` opaque 16-byte cells (an ``(n, 2m)`` one as ``(n, m)``).
-
-    Gathers, scatters and strided copies of whole blocks are several times faster on 16-byte cells than on pairs
-    of words (numpy's inner loop would otherwise run over an axis of length 2); XORs stay on the word view.
-    """
-    cells = blocks.view(CELL_DTYPE)
-    return cells.reshape(blocks.shape[:-1]) if blocks.shape[-1] == 2 else cells
-
-
-def signal_masks(blocks: np.ndarray) -> np.ndarray:
-    """An ``(n, 2)`` word mask per block: all ones where the block's signal bit is 1, else 0 (branch-free select)."""
-    bits = blocks[:, 0] & np.uint64(1)
-    mask = np.repeat(bits, 2).reshape(-1, 2)
-    np.negative(mask, out=mask)
-    return mask

@@ -49,7 +49,7 @@ import hashlib
 from collections.abc import Callable
 from dataclasses import dataclass
 from enum import IntEnum
-from typing import Any, Union
+from typing import Any, Union, cast
 
 from google.protobuf.message import DecodeError
 
@@ -184,12 +184,8 @@ class AbortReason(IntEnum):
     RESUME_REFUSED = pb.ABORT_REASON_RESUME_REFUSED
 
 
-def role_to_wire(party: Party) -> int:
+def role_to_wire(party: Party) -> pb.Role:
     return pb.ROLE_GARBLER if Party(party) == Party.GARBLER else pb.ROLE_EVALUATOR
-
-
-def role_name(party: Party) -> str:
-    return Party(party).name.lower()
 
 
 class ProtocolError(ValueError):
@@ -393,7 +389,7 @@ def finish_frame(transcript_digest: bytes, signature: bytes) -> bytes:
 
 def abort_frame(reason: AbortReason, message: str) -> bytes:
     frame = pb.Frame()
-    frame.abort.reason = int(reason)
+    frame.abort.reason = cast("pb.AbortReason", int(reason))  # AbortReason's values are the wire enum's
     frame.abort.message = message[:MAX_MESSAGE_CHARS]
     return encode(frame)
 

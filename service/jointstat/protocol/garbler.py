@@ -143,7 +143,17 @@ class GarblerSession(SessionBase):
     def _after_ot(self, ot: CorrelatedOT, replies: list[bytes]) -> tuple[str, list[bytes]]:
         assert isinstance(ot, CorrelatedOTSender)
         self._evaluator_zero = ot.zero_labels  # K of the evaluator's inputs ((0, 2) when it has none)
-        return STREAMING, replies
+        if self._n_in[Party.GARBLER] or self.and_gates_total:
+            return STREAMING, replies
+        # Nothing to stream (no garbler input labels, no tables): the evaluator needs nothing more from us and may
+        # answer at once, so the program runs here and the state leaves 'streaming' with this very reply.
+        assert self._delta is not None
+        self._producing = True
+        for _ in self._payloads(self._delta, self._evaluator_zero):
+            raise ProtocolError(AbortReason.INTERNAL, "a program with no AND gates streamed tables")
+        self._evaluator_zero = None
+        state, more = self._on_tables_sent(None)
+        return state, replies + more
 
     def produce(self) -> Iterator[bytes]:
         """The streamed frames: the garbler's input labels, then the garbled tables, garbled as they are pulled.

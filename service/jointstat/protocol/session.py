@@ -85,9 +85,9 @@ state and the frame; ``abort`` from the peer is accepted in every state before `
 | session   | state                  | event                      | sends                                  | next |
 |-----------|------------------------|----------------------------|----------------------------------------|------|
 | garbler   | new                    | start()                    | hello                                  | awaiting hello |
-| garbler   | awaiting hello         | hello                      | —                                      | base OT, streaming (E has no inputs) |
+| garbler   | awaiting hello         | hello                      | — (as after the OT when E has no inputs) | base OT, streaming, awaiting output labels, awaiting finish (the last three: E has no inputs, as after the OT) |
 | garbler   | base OT                | base_ot (A)                | base_ot (128 points)                   | OT extension |
-| garbler   | OT extension           | ot_extension (columns)     | ot_extension (corrections)             | OT extension, streaming (after the last batch) |
+| garbler   | OT extension           | ot_extension (columns)     | ot_extension (corrections); after the last batch, when nothing is to be streamed, what tables sent sends | OT extension, streaming (after the last batch), awaiting output labels, awaiting finish (after the last batch when G has no inputs and the program no AND gates: nothing to stream, as after tables sent) |
 | garbler   | streaming              | tables sent (from produce) | input labels and tables (produce); decoding and finish if G has no outputs | awaiting output labels, awaiting finish (G has no outputs) |
 | garbler   | streaming              | tables_ack                 | — (drops acknowledged frames)          | streaming |
 | garbler   | streaming              | resume                     | resume (if E initiated), resent frames | streaming |
@@ -180,9 +180,15 @@ GARBLER_TABLE: Mapping[tuple[str, str], Transition] = _with_abort(
     _with_resume(
         {
             (NEW, START): ("_on_start", (AWAITING_HELLO,)),
-            (AWAITING_HELLO, fr.HELLO): ("_on_hello", (BASE_OT, STREAMING)),
+            (AWAITING_HELLO, fr.HELLO): (
+                "_on_hello",
+                (BASE_OT, STREAMING, AWAITING_OUTPUT_LABELS, AWAITING_FINISH),
+            ),
             (BASE_OT, fr.BASE_OT): ("_on_base_ot", (OT_EXTENSION,)),
-            (OT_EXTENSION, fr.OT_EXTENSION): ("_on_ot_extension", (OT_EXTENSION, STREAMING)),
+            (OT_EXTENSION, fr.OT_EXTENSION): (
+                "_on_ot_extension",
+                (OT_EXTENSION, STREAMING, AWAITING_OUTPUT_LABELS, AWAITING_FINISH),
+            ),
             (STREAMING, TABLES_SENT): ("_on_tables_sent", (AWAITING_OUTPUT_LABELS, AWAITING_FINISH)),
             (AWAITING_OUTPUT_LABELS, fr.GARBLER_OUTPUT_LABELS): (
                 "_on_output_labels",
@@ -265,7 +271,7 @@ class Accumulator:
     def complete(self) -> bool:
         return len(self._buf) == self.total
 
-    def add(self, payload: bytes) -> None:
+    def add(self, payload: bytes | memoryview) -> None:
         if not payload:
             raise ProtocolError(AbortReason.MALFORMED_FRAME, f"empty {self.kind} frame")
         if len(self._buf) + len(payload) > self.total:
@@ -285,7 +291,7 @@ class Accumulator:
 def check_inputs(program: Program, party: Party, inputs: object) -> np.ndarray:
     bits = np.asarray(inputs)
     expected = program.n_inputs(party)
-    name = fr.role_name(party)
+    name = Party(party).role_name
     if bits.ndim != 1 or bits.shape[0] != expected:
         raise ValueError(
             f"{name} inputs: expected {expected} bits in a one-dimensional array, got shape {bits.shape}"
@@ -340,7 +346,7 @@ class SessionBase(TableMachine[fr.AnyFrame | None, list[bytes]]):
         self._abort: AbortInfo | None = None
         self._digest: bytes | None = None
         self._peer_signature: bytes | None = None
-        self._who = f"{fr.role_name(self.PARTY)} session"
+        self._who = f"{self.PARTY.role_name} session"
         self._n_in = {p: program.n_inputs(p) for p in Party}
         self._n_out = {p: program.n_outputs(p) for p in Party}
         # Resume (module docstring): the logical frames sent since this side's OT ended and not yet acknowledged.
@@ -707,7 +713,7 @@ class SessionBase(TableMachine[fr.AnyFrame | None, list[bytes]]):
         if hello.role != fr.role_to_wire(peer):
             claimed = pb.Role.Name(hello.role) if hello.role in pb.Role.values() else str(hello.role)
             raise ProtocolError(
-                AbortReason.SESSION_MISMATCH, f"peer claims role {claimed}; expected the {fr.role_name(peer)}"
+                AbortReason.SESSION_MISMATCH, f"peer claims role {claimed}; expected the {peer.role_name}"
             )
         if hello.session_id != self.session_id:
             raise ProtocolError(AbortReason.SESSION_MISMATCH, "peer's hello names another session id")

@@ -79,7 +79,8 @@ class ClientStream:
             if code != grpc.StatusCode.OK:
                 raise StreamLost(f"{code.name}: {await self._call.details() or 'no details'}")
             return None
-        return bytes(data)
+        assert isinstance(data, bytes)  # no deserializer: frames arrive as bytes
+        return data
 
     async def write(self, data: bytes) -> None:
         try:
@@ -87,7 +88,16 @@ class ClientStream:
         except grpc.aio.AioRpcError as exc:
             raise StreamLost(describe_rpc_error(exc)) from None
         except (asyncio.InvalidStateError, grpc.aio.UsageError) as exc:
-            raise StreamLost(f"the stream has closed ({type(exc).__name__})") from None
+            raise StreamLost(await self._why_closed(type(exc).__name__)) from None
+
+    async def _why_closed(self, error: str) -> str:
+        """The call's own status when it has ended (a failed TLS handshake, say), so a write that finds the call
+        closed reports the same reason a read would."""
+        if self._call.done():
+            code = await self._call.code()
+            if code != grpc.StatusCode.OK:
+                return f"{code.name}: {await self._call.details() or 'no details'}"
+        return f"the stream has closed ({error})"
 
     async def close(self, completed: bool) -> None:
         if self._closed:

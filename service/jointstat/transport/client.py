@@ -54,7 +54,9 @@ async def run_client(
 
     async def connect() -> FrameStream:
         channel = grpc.aio.secure_channel(target, credentials, options=options)
-        method = channel.stream_stream(METHOD_PATH, request_serializer=None, response_deserializer=None)
+        method: grpc.aio.StreamStreamMultiCallable[bytes, bytes] = channel.stream_stream(
+            METHOD_PATH, request_serializer=None, response_deserializer=None
+        )
         call = method(timeout=max(end - time.monotonic(), 1.0))
         return ClientStream(call, grace_s=limits.abort_grace_s, channel=channel)
 

@@ -116,7 +116,7 @@ class SessionServer:
         if self._server is not None:
             raise RuntimeError("the server has already been started")
         server = grpc.aio.server(options=[*MESSAGE_OPTIONS, ("grpc.so_reuseport", 0)])
-        handler = grpc.stream_stream_rpc_method_handler(self._exchange)
+        handler: grpc.RpcMethodHandler[bytes, bytes] = grpc.stream_stream_rpc_method_handler(self._exchange)
         server.add_generic_rpc_handlers(
             [grpc.method_handlers_generic_handler(SERVICE_NAME, {METHOD_NAME: handler})]
         )
@@ -214,10 +214,10 @@ class SessionServer:
         except ProtocolError as exc:
             await self._refuse(stream, exc.reason, f"first frame refused: {exc}")
             return
-        if kind == fr.RESUME:
+        if kind == fr.RESUME and not isinstance(frame, fr.TablesFrame):
             await self._resume(stream, first, bytes(frame.resume.session_id), peer)
             return
-        if kind != fr.HELLO:
+        if kind != fr.HELLO or isinstance(frame, fr.TablesFrame):
             await self._refuse(
                 stream, AbortReason.UNEXPECTED_FRAME, f"the first frame must be hello or resume, got {kind!r}"
             )

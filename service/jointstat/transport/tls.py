@@ -37,7 +37,7 @@ address may be an IP address or a name that is not in the certificate.
 from __future__ import annotations
 
 import hashlib
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 
 import grpc
@@ -195,7 +195,7 @@ class NodeTLS:
         return certificate_name(self.pinned_peers[0])
 
 
-def check_peer(auth_context: Mapping[str, Sequence[bytes]], pinned: Iterable[bytes]) -> bytes:
+def check_peer(auth_context: Mapping[str, Iterable[bytes]], pinned: Iterable[bytes]) -> bytes:
     """The peer's certificate fingerprint, after checking TLS 1.3 and pinning; raises ``PeerRefused``."""
     if list(auth_context.get("transport_security_type", [])) != [b"ssl"]:
         raise PeerRefused("the connection is not protected by TLS")

@@ -22,30 +22,28 @@ receives the mean, n ≥ 1 is needed, when it receives a sample variance n ≥ 2
 
 from __future__ import annotations
 
-from typing import Annotated, Literal
+from typing import Literal
 
 from jointstat.circuit.bits import Bits, concat
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.library import blocks
 from jointstat.circuit.library.blocks import Number
-from jointstat.circuit.library.registry import (
+from jointstat.circuit.library.statistic import (
     BuildContext,
     OutputSpec,
     Statistic,
     StatisticResult,
     TableNeeds,
-    register_statistic,
 )
-from jointstat.circuit.manifest import ColumnPair, Problem, StatisticParameters, _between
 from jointstat.circuit.model import Party
-
-MEASURES = ("count", "sum", "mean", "variance")
+from jointstat.circuit.parameters import ColumnPair, PrecisionBits, StatisticParameters
+from jointstat.problems import Problem
 
 
 class _AggregateParameters(StatisticParameters):
     column: ColumnPair | None = None
     where: ColumnPair | None = None  # a boolean column: only rows where it is true count
-    precision_bits: Annotated[int, _between(0, 32)] = 8
+    precision_bits: PrecisionBits = 8
     sample: bool = False  # variance: divide by n − 1 instead of n
 
 
@@ -68,32 +66,27 @@ class VarianceParameters(_AggregateParameters):
     column: ColumnPair
 
 
-class _Aggregate(Statistic):
+class _Aggregate(Statistic[_AggregateParameters]):
     """Shared machinery; ``level`` is how far along count → sum → mean → variance the statistic goes."""
 
     level: int = 0
 
-    @property
-    def p(self) -> _AggregateParameters:
-        return self.params  # type: ignore[return-value]
-
     def problems(self) -> list[Problem]:
         problems: list[Problem] = []
-        if self.p.column is not None:
-            problems += self.check_columns(self.p.column, "statistic.column")
+        if self.params.column is not None:
+            problems += self.check_columns(self.params.column, "statistic.column")
         elif self.level > 0:
             problems.append(Problem("statistic.column", "required field is missing"))
-        if self.p.where is not None:
+        if self.params.where is not None:
             for party in Party:
-                col = self.manifest.table(party).column(self.column_names(self.p.where)[party])
-                if col is None or col.type != "boolean":  # type: ignore[attr-defined]
+                col = self.manifest.table(party).column(self.column_names(self.params.where)[party])
+                if col is None or col.type != "boolean":
                     problems.append(
                         Problem(
-                            "statistic.where",
-                            f"tables.{party.name.lower()} needs a boolean column of that name",
+                            "statistic.where", f"tables.{party.role_name} needs a boolean column of that name"
                         )
                     )
-        if self.p.sample and self.level < 3:
+        if self.params.sample and self.level < 3:
             problems.append(Problem("statistic.sample", "only the variance statistic takes 'sample'"))
         return problems
 
@@ -101,36 +94,26 @@ class _Aggregate(Statistic):
         out = {}
         for party in Party:
             cols = []
-            if self.p.column is not None:
-                cols.append(self.column_names(self.p.column)[party])
-            if self.p.where is not None:
-                name = self.column_names(self.p.where)[party]
+            if self.params.column is not None:
+                cols.append(self.column_names(self.params.column)[party])
+            if self.params.where is not None:
+                name = self.column_names(self.params.where)[party]
                 if name not in cols:
                     cols.append(name)
             out[party] = TableNeeds(tuple(cols))
         return out
 
     # -- widths (declared before building; the build fits its wires to them) ----------------------------------
-    def _rows(self) -> int:
-        return self.manifest.tables.garbler.capacity + self.manifest.tables.evaluator.capacity
-
-    def _value_format(self) -> tuple[int, bool, int]:
-        """(width, signed, fraction bits) of the column after aligning both parties' versions."""
-        assert self.p.column is not None
-        cols = [self.column(party, self.p.column) for party in Party]
-        frac = max(c.frac for c in cols)
-        signed = any(c.signed for c in cols)
-        width = max(c.bits + (frac - c.frac) + (1 if signed and not c.signed else 0) for c in cols)
-        return width, signed, frac
-
     def outputs(self) -> list[OutputSpec]:
-        n = self._rows()
+        n = self.rows()
         specs = [OutputSpec("count", n.bit_length(), description="rows that count")]
         if self.level == 0:
             return specs
-        w, signed, frac = self._value_format()
+        assert self.params.column is not None  # checked by problems()
+        fmt = self.column_format(self.params.column)
+        w, signed, frac = fmt.width, fmt.signed, fmt.frac
         log_n = (n - 1).bit_length()
-        e = self.p.precision_bits
+        e = self.params.precision_bits
         specs.append(OutputSpec("sum", w + log_n, signed, frac, description="sum of the column"))
         if self.level >= 2:
             specs.append(OutputSpec("mean", w + e, signed, frac + e, description="mean, rounded toward zero"))
@@ -145,13 +128,13 @@ class _Aggregate(Statistic):
     # -- circuit ------------------------------------------------------------------------------------------------
     def build(self, ctx: BuildContext) -> StatisticResult:
         bld = ctx.builder
-        specs = {s.name: s for s in self.outputs()}
+        specs = self.output_specs()
         counts = []
         for party in Party:
             t = ctx.table(party)
             flag = t.valid
-            if self.p.where is not None:
-                flag = bld.and_(flag, t.bits(self.column_names(self.p.where)[party])[:, 0])
+            if self.params.where is not None:
+                flag = bld.and_(flag, t.bits(self.column_names(self.params.where)[party])[:, 0])
             counts.append(flag)
         flags = concat(counts)
         n = fit(bld, blocks.count_bits(bld, flags), specs["count"].width)
@@ -159,10 +142,8 @@ class _Aggregate(Statistic):
         ok = bld.ones(())
         if self.level == 0:
             return StatisticResult(values, count=n)
-        assert self.p.column is not None
-        names = self.column_names(self.p.column)
-        nums = blocks.align(bld, *[ctx.table(party).number(names[party]) for party in Party])
-        x = Number(concat([v.wires for v in nums], axis=0), nums[0].signed, nums[0].frac)
+        assert self.params.column is not None
+        x = blocks.concat_rows(self.aligned(ctx, self.params.column))
         masked = bld.and_(x.wires, flags[:, None])
         s = Number(
             fit(bld, blocks.tree_sum(bld, masked, signed=x.signed), specs["sum"].width, x.signed),
@@ -170,14 +151,14 @@ class _Aggregate(Statistic):
             x.frac,
         )
         values["sum"] = s.wires
-        e = self.p.precision_bits
+        e = self.params.precision_bits
         wanted = ctx.wanted
         if "mean" in wanted:
             ok = blocks.at_least(bld, n, 1)
             mean = blocks.divide_fixed(bld, s, n, e, result_bits=specs["mean"].width)
             values["mean"] = fit(bld, mean.wires, specs["mean"].width, x.signed)
         if "variance" in wanted:
-            ok = blocks.at_least(bld, n, 2 if self.p.sample else 1)
+            ok = blocks.at_least(bld, n, 2 if self.params.sample else 1)
             values["variance"] = self._variance(bld, x, masked, s, n, specs["variance"].width)
         return StatisticResult(values, count=n, ok=ok)
 
@@ -190,12 +171,12 @@ class _Aggregate(Statistic):
         s2 = bld.square(s_mag)
         wv = max(nq.shape[-1], s2.shape[-1])
         numerator = bld.sub(bld.extend(nq, wv), bld.extend(s2, wv))
-        if self.p.sample:
+        if self.params.sample:
             den = blocks.multiply_full(bld, n, bld.sub(n, bld.constant_word(1, n.shape[-1])))
         else:
             den = blocks.multiply_full(bld, n, n)
         var = blocks.divide_fixed(
-            bld, Number(numerator, False, 2 * x.frac), den, self.p.precision_bits, width
+            bld, Number(numerator, False, 2 * x.frac), den, self.params.precision_bits, width
         )
         return fit(bld, var.wires, width)
 
@@ -205,7 +186,6 @@ def fit(bld: Builder, wires: Bits, width: int, signed: bool = False) -> Bits:
     return bld.extend(wires, width, signed=signed)
 
 
-@register_statistic
 class Count(_Aggregate):
     name = "count"
     Parameters = CountParameters
@@ -213,7 +193,6 @@ class Count(_Aggregate):
     level = 0
 
 
-@register_statistic
 class Sum(_Aggregate):
     name = "sum"
     Parameters = SumParameters
@@ -221,7 +200,6 @@ class Sum(_Aggregate):
     level = 1
 
 
-@register_statistic
 class Mean(_Aggregate):
     name = "mean"
     Parameters = MeanParameters
@@ -229,7 +207,6 @@ class Mean(_Aggregate):
     level = 2
 
 
-@register_statistic
 class Variance(_Aggregate):
     name = "variance"
     Parameters = VarianceParameters

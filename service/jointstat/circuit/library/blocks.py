@@ -14,8 +14,8 @@ operations of Kolesnikov–Sadeghi–Schneider (CANS 2009); with free XOR only A
   so a bit can later be carried back to where its element came from (``route_back``, one AND per comparator).
 * ``bitonic_merge`` — Batcher's bitonic merger (Batcher 1968): a bitonic sequence of M = 2^L elements becomes
   sorted after L stages of M/2 comparators each, (M/2)·L in all. Two locally sorted lists become bitonic by
-  reversing the second (free rewiring); ``merge_sorted`` does that and pads the middle with the largest key up to
-  a power of two. This is the sort–merge structure of Huang–Evans–Katz (NDSS 2012).
+  reversing the second (free rewiring); ``arrange`` does that and pads the middle with the largest key up to a
+  power of two. This is the sort–merge structure of Huang–Evans–Katz (NDSS 2012).
 * ``tree_sum`` — the sum of many words by a balanced tree of adders whose width grows by one bit per level, so it
   cannot overflow: n words of w bits give w + ⌈log2 n⌉ bits at about n·w AND gates.
 * ``divide`` — restoring division of unsigned words: one subtract-with-borrow and one multiplexer per quotient
@@ -25,15 +25,22 @@ operations of Kolesnikov–Sadeghi–Schneider (CANS 2009); with free XOR only A
   a one-hot vector (about one AND per position: the upper half of each split is v ∧ b, the lower is v ⊕ that),
   then the chosen word is the XOR of the words masked by it (one AND per bit per position).
 * ``gate`` — disclosure gating: every result bit ANDed with the permission bit, so a refused result is all zero.
+* ``at_least`` — a word against a public bound (a release condition, a threshold, a bin edge): the comparator
+  against a constant folds, and a bound outside the word's range is a constant with no gate at all;
+  ``encoded_bound`` turns a decimal bound written in a manifest into the integer on a column's encoded scale.
 
 Numbers (``Number``) carry their wires with their signedness and fraction bits (the value is the two's-complement
-integer over 2^fraction_bits); ``align`` brings two numbers to one scale and width by free rewiring.
+integer over 2^fraction_bits); ``common_format`` is the one scale and width a set of formats fits without loss, and
+``align`` brings numbers to it by free rewiring (statistics use ``common_format`` to declare their output widths
+before building, ``align`` when they build).
 """
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from dataclasses import dataclass
+from decimal import Decimal
 
 import numpy as np
 
@@ -43,6 +50,24 @@ from jointstat.circuit.builder import Builder
 from jointstat.circuit.model import Party
 
 # -- numbers ---------------------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class NumberFormat:
+    """How a number is encoded: ``width`` bits, two's complement when ``signed``, ``frac`` fraction bits."""
+
+    width: int
+    signed: bool
+    frac: int = 0
+
+
+def common_format(*formats: NumberFormat) -> NumberFormat:
+    """The one format all of these numbers fit without loss: the most fraction bits, signed if any is, and the
+    widest of them after rescaling (an unsigned number made signed gains a zero top bit)."""
+    frac = max(f.frac for f in formats)
+    signed = any(f.signed for f in formats)
+    width = max(f.width + (frac - f.frac) + (1 if signed and not f.signed else 0) for f in formats)
+    return NumberFormat(width, signed, frac)
 
 
 @dataclass(frozen=True)
@@ -56,6 +81,10 @@ class Number:
     @property
     def width(self) -> int:
         return int(self.wires.shape[-1])
+
+    @property
+    def format(self) -> NumberFormat:
+        return NumberFormat(self.width, self.signed, self.frac)
 
     def with_wires(self, wires: Bits) -> Number:
         return Number(wires, self.signed, self.frac)
@@ -85,11 +114,13 @@ def widen(bld: Builder, x: Number, width: int, *, signed: bool | None = None) ->
 
 def align(bld: Builder, *xs: Number) -> list[Number]:
     """Bring numbers to common fraction bits, signedness and width (all free rewiring)."""
-    frac = max(x.frac for x in xs)
-    signed = any(x.signed for x in xs)
-    scaled = [rescale(bld, x, frac) for x in xs]
-    width = max(x.width + (1 if signed and not x.signed else 0) for x in scaled)
-    return [widen(bld, x, width, signed=signed) for x in scaled]
+    fmt = common_format(*(x.format for x in xs))
+    return [widen(bld, rescale(bld, x, fmt.frac), fmt.width, signed=fmt.signed) for x in xs]
+
+
+def concat_rows(xs: list[Number]) -> Number:
+    """Numbers of one format (``align``) one after another along the lanes (axis 0), as one number."""
+    return Number(concat([x.wires for x in xs], axis=0), xs[0].signed, xs[0].frac)
 
 
 def order_key(bld: Builder, x: Number) -> Bits:
@@ -462,11 +493,21 @@ def gate(bld: Builder, wires: Bits, allow: Bits) -> Bits:
     return bld.and_(wires, allow)
 
 
-def at_least(bld: Builder, value: Bits, bound: int) -> Bits:
-    """value ≥ bound for an unsigned word and a public bound (constant-folded comparator)."""
+def at_least(bld: Builder, value: Bits, bound: int, *, signed: bool = False) -> Bits:
+    """value ≥ bound for words (two's complement when ``signed``) and a public integer bound: a comparator against
+    a constant (it folds to fewer AND gates), or a constant where the bound is outside the words' range."""
     w = value.shape[-1]
-    if bound <= 0:
-        return bld.ones(value.shape[:-1])
-    if bound >= 1 << w:
-        return bld.zeros(value.shape[:-1])
-    return bld.greater_equal(value, bld.constant_word(bound, w).broadcast_to((*value.shape[:-1], w)))
+    lanes = value.shape[:-1]
+    lo, hi = (-(1 << (w - 1)), (1 << (w - 1)) - 1) if signed else (0, (1 << w) - 1)
+    if bound <= lo:
+        return bld.ones(lanes)
+    if bound > hi:
+        return bld.zeros(lanes)
+    return bld.greater_equal(value, bld.constant_word(bound, w).broadcast_to((*lanes, w)), signed=signed)
+
+
+def encoded_bound(value: float, frac: int, *, strict: bool = False) -> int:
+    """The smallest encoded integer v with v / 2^frac ≥ value (> value when ``strict``), the value read as the
+    decimal written (a threshold or a bin edge of a manifest)."""
+    scaled = Decimal(repr(float(value))) * (1 << frac)
+    return math.floor(scaled) + 1 if strict else math.ceil(scaled)

@@ -13,30 +13,18 @@ disclosure count.
 
 from __future__ import annotations
 
-import math
-from decimal import Decimal
 from typing import Annotated, Literal
 
 from pydantic import Field, field_validator
 
-from jointstat.circuit.bits import concat, stack
+from jointstat.circuit.bits import stack
 from jointstat.circuit.library import blocks
-from jointstat.circuit.library.join import const_at_least
-from jointstat.circuit.library.registry import (
-    BuildContext,
-    OutputSpec,
-    Statistic,
-    StatisticResult,
-    TableNeeds,
-    register_statistic,
-)
-from jointstat.circuit.manifest import ColumnPair, Problem, StatisticParameters
-from jointstat.circuit.model import Party
+from jointstat.circuit.library.statistic import BuildContext, ColumnStatistic, OutputSpec, StatisticResult
+from jointstat.circuit.parameters import ColumnParameters
 
 
-class HistogramParameters(StatisticParameters):
+class HistogramParameters(ColumnParameters):
     name: Literal["histogram"]
-    column: ColumnPair
     edges: Annotated[list[float], Field(min_length=2, max_length=257)]
 
     @field_validator("edges")
@@ -49,31 +37,20 @@ class HistogramParameters(StatisticParameters):
 
 
 def edge_thresholds(edges: list[float], frac: int) -> list[int]:
-    """The k + 1 encoded thresholds t_i with bin i = [x ≥ t_i] ⊕ [x ≥ t_{i+1}]."""
-    scaled = [Decimal(repr(float(e))) * (1 << frac) for e in edges]
-    return [math.ceil(s) for s in scaled[:-1]] + [math.floor(scaled[-1]) + 1]
+    """The k + 1 encoded thresholds t_i with bin i = [x ≥ t_i] ⊕ [x ≥ t_{i+1}] (the last bin holds its top edge)."""
+    return [blocks.encoded_bound(e, frac) for e in edges[:-1]] + [
+        blocks.encoded_bound(edges[-1], frac, strict=True)
+    ]
 
 
-@register_statistic
-class Histogram(Statistic):
+class Histogram(ColumnStatistic[HistogramParameters]):
     name = "histogram"
     Parameters = HistogramParameters
     description = "counts of both parties' values in public bins (numpy.histogram's bins)"
 
-    @property
-    def p(self) -> HistogramParameters:
-        return self.params  # type: ignore[return-value]
-
-    def problems(self) -> list[Problem]:
-        return list(self.check_columns(self.p.column, "statistic.column"))
-
-    def needs(self) -> dict[Party, TableNeeds]:
-        names = self.column_names(self.p.column)
-        return {party: TableNeeds((names[party],)) for party in Party}
-
     def outputs(self) -> list[OutputSpec]:
-        n = sum(self.manifest.table(p).capacity for p in Party)
-        bins = len(self.p.edges) - 1
+        n = self.rows()
+        bins = len(self.params.edges) - 1
         return [
             OutputSpec("counts", n.bit_length(), shape=(bins,), description="rows per bin"),
             OutputSpec("count", n.bit_length(), description="rows in some bin"),
@@ -81,13 +58,11 @@ class Histogram(Statistic):
 
     def build(self, ctx: BuildContext) -> StatisticResult:
         bld = ctx.builder
-        names = self.column_names(self.p.column)
-        nums = blocks.align(bld, *[ctx.table(party).number(names[party]) for party in Party])
-        x = blocks.Number(concat([v.wires for v in nums], axis=0), nums[0].signed, nums[0].frac)
-        valid = concat([ctx.table(p).valid for p in Party])
-        ge = stack([const_at_least(bld, x, t) for t in edge_thresholds(self.p.edges, x.frac)], axis=-1)
-        in_bin = bld.and_(bld.xor(ge[:, :-1], ge[:, 1:]), valid[:, None])  # (rows, bins)
-        width = sum(self.manifest.table(p).capacity for p in Party).bit_length()
+        x = blocks.concat_rows(self.aligned(ctx, self.params.column))
+        thresholds = edge_thresholds(self.params.edges, x.frac)
+        ge = stack([blocks.at_least(bld, x.wires, t, signed=x.signed) for t in thresholds], axis=-1)
+        in_bin = bld.and_(bld.xor(ge[:, :-1], ge[:, 1:]), ctx.valid()[:, None])  # (rows, bins)
+        width = self.rows().bit_length()
         counts = stack(
             [bld.extend(blocks.count_bits(bld, in_bin[:, i]), width) for i in range(in_bin.shape[1])]
         )

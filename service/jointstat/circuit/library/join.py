@@ -26,39 +26,21 @@ w + ⌈log2 c⌉ bits.
 
 from __future__ import annotations
 
-import math
-from decimal import Decimal
-from typing import Annotated, Literal
+from typing import Literal
 
 from jointstat.circuit.bits import Bits, concat
-from jointstat.circuit.builder import Builder
 from jointstat.circuit.library import blocks
 from jointstat.circuit.library.blocks import Number
-from jointstat.circuit.library.registry import (
-    ROLES,
+from jointstat.circuit.library.statistic import (
     BuildContext,
     OutputSpec,
     Statistic,
     StatisticResult,
     TableNeeds,
-    register_statistic,
-)
-from jointstat.circuit.manifest import (
-    ColumnPair,
-    Identifier,
-    Problem,
-    StatisticParameters,
-    StrictModel,
-    _between,
 )
 from jointstat.circuit.model import Party
-
-
-class PartyColumn(StrictModel):
-    """A column of one party's table."""
-
-    party: Literal["garbler", "evaluator"]
-    column: Identifier
+from jointstat.circuit.parameters import ColumnPair, PartyColumn, PrecisionBits, StatisticParameters
+from jointstat.problems import Problem
 
 
 class JoinParameters(StatisticParameters):
@@ -66,65 +48,41 @@ class JoinParameters(StatisticParameters):
     key: ColumnPair
     value: PartyColumn | None = None
     threshold: float | None = None  # ``above`` counts matched rows whose value is at least this
-    precision_bits: Annotated[int, _between(0, 32)] = 8
+    precision_bits: PrecisionBits = 8
 
 
-def scaled_threshold(threshold: float, frac: int) -> int:
-    """The smallest encoded integer v with v / 2^frac ≥ threshold (the threshold read as the decimal written)."""
-    return math.ceil(Decimal(repr(float(threshold))) * (1 << frac))
-
-
-def const_at_least(bld: Builder, x: Number, bound: int) -> Bits:
-    """x ≥ bound for a public integer bound on x's encoded scale; constant where the bound is out of range."""
-    w = x.width
-    lo, hi = (-(1 << (w - 1)), (1 << (w - 1)) - 1) if x.signed else (0, (1 << w) - 1)
-    lanes = x.wires.shape[:-1]
-    if bound <= lo:
-        return bld.ones(lanes)
-    if bound > hi:
-        return bld.zeros(lanes)
-    c = bld.constant_word(bound, w).broadcast_to((*lanes, w))
-    return bld.greater_equal(x.wires, c, signed=x.signed)
-
-
-@register_statistic
-class KeyedJoin(Statistic):
+class KeyedJoin(Statistic[JoinParameters]):
     name = "keyed_join"
     Parameters = JoinParameters
     description = "matches, sum, mean and threshold count of a value over the keys both parties hold"
 
-    @property
-    def p(self) -> JoinParameters:
-        return self.params  # type: ignore[return-value]
-
     def value_party(self) -> Party | None:
-        return None if self.p.value is None else Party[self.p.value.party.upper()]
+        return None if self.params.value is None else Party[self.params.value.party.upper()]
 
     def problems(self) -> list[Problem]:
-        problems = list(self.check_columns(self.p.key, "statistic.key", numeric=False))
+        problems = list(self.check_columns(self.params.key, "statistic.key", numeric=False))
         if problems:
             return problems
-        cols = [self.column(party, self.p.key) for party in Party]
+        cols = [self.column(party, self.params.key) for party in Party]
         for party, col in zip(Party, cols, strict=True):
-            if col.type != "key":  # type: ignore[attr-defined]
+            if col.type != "key":
                 problems.append(
-                    Problem("statistic.key", f"tables.{ROLES[party]} column {col.name!r} is not a key")
+                    Problem("statistic.key", f"tables.{party.role_name} column {col.name!r} is not a key")
                 )
         if not problems and cols[0].bits != cols[1].bits:
             problems.append(
                 Problem("statistic.key", f"the key columns differ in width ({cols[0].bits}, {cols[1].bits})")
             )
-        if self.p.value is not None:
-            party = self.value_party()
-            assert party is not None
-            col = self.manifest.table(party).column(self.p.value.column)
-            if col is None:
+        vp = self.value_party()
+        if vp is not None and self.params.value is not None:
+            value = self.manifest.table(vp).column(self.params.value.column)
+            if value is None:
                 problems.append(
-                    Problem("statistic.value.column", f"tables.{ROLES[party]} has no such column")
+                    Problem("statistic.value.column", f"tables.{vp.role_name} has no such column")
                 )
-            elif not col.numeric or col.type == "boolean":  # type: ignore[attr-defined]
-                problems.append(Problem("statistic.value.column", f"{col.name!r} is not a number column"))
-        if self.p.threshold is not None and self.p.value is None:
+            elif not value.number:
+                problems.append(Problem("statistic.value.column", f"{value.name!r} is not a number column"))
+        if self.params.threshold is not None and self.params.value is None:
             problems.append(Problem("statistic.threshold", "a threshold needs a value column"))
         return problems
 
@@ -132,10 +90,10 @@ class KeyedJoin(Statistic):
         out = {}
         vp = self.value_party()
         for party in Party:
-            key = self.column_names(self.p.key)[party]
+            key = self.column_names(self.params.key)[party]
             cols = [key]
-            if party == vp and self.p.value is not None and self.p.value.column != key:
-                cols.append(self.p.value.column)
+            if party == vp and self.params.value is not None and self.params.value.column != key:
+                cols.append(self.params.value.column)
             out[party] = TableNeeds(tuple(cols), sort_by=key, unique=key)
         return out
 
@@ -143,19 +101,19 @@ class KeyedJoin(Statistic):
         caps = [self.manifest.table(p).capacity for p in Party]
         specs = [OutputSpec("matches", min(caps).bit_length(), description="keys both parties hold")]
         vp = self.value_party()
-        if vp is None or self.p.value is None:
+        if vp is None or self.params.value is None:
             return specs
-        col = self.manifest.table(vp).column(self.p.value.column)
+        col = self.manifest.table(vp).column(self.params.value.column)
         assert col is not None
         cap = self.manifest.table(vp).capacity
-        w, e = col.bits, self.p.precision_bits
+        w, e = col.bits, self.params.precision_bits
         specs.append(
             OutputSpec(
                 "sum", w + (cap - 1).bit_length(), col.signed, col.frac, description="sum over matches"
             )
         )
         specs.append(OutputSpec("mean", w + e, col.signed, col.frac + e, description="mean over matches"))
-        if self.p.threshold is not None:
+        if self.params.threshold is not None:
             specs.append(
                 OutputSpec("above", min(caps).bit_length(), description="matches with value ≥ threshold")
             )
@@ -163,8 +121,8 @@ class KeyedJoin(Statistic):
 
     def build(self, ctx: BuildContext) -> StatisticResult:
         bld = ctx.builder
-        specs = {s.name: s for s in self.outputs()}
-        names = self.column_names(self.p.key)
+        specs = self.output_specs()
+        names = self.column_names(self.params.key)
         elements = []
         for party in Party:
             t = ctx.table(party)
@@ -189,13 +147,13 @@ class KeyedJoin(Statistic):
         values: dict[str, Bits] = {"matches": matches}
         ok: Bits | None = None
         vp = self.value_party()
-        if vp is not None and self.p.value is not None and ctx.wanted & {"sum", "mean", "above"}:
+        if vp is not None and self.params.value is not None and ctx.wanted & {"sum", "mean", "above"}:
             # m_i = match_{i−1} ⊕ match_i, with match_{−1} = match_{M−1} = 0
             zero = bld.zeros(1)
             flag = bld.xor(concat([match, zero]), concat([zero, match]))
             back = blocks.route_back(bld, flag, swaps)
             mine = back[layout.first] if vp == Party.GARBLER else back[layout.second][::-1]
-            v = ctx.table(vp).number(self.p.value.column)
+            v = ctx.table(vp).number(self.params.value.column)
             masked = bld.and_(v.wires, mine[:, None])
             s = Number(
                 bld.extend(
@@ -206,11 +164,12 @@ class KeyedJoin(Statistic):
             )
             values["sum"] = s.wires
             if "mean" in ctx.wanted:
-                mean = blocks.divide_fixed(bld, s, matches, self.p.precision_bits, specs["mean"].width)
+                mean = blocks.divide_fixed(bld, s, matches, self.params.precision_bits, specs["mean"].width)
                 values["mean"] = mean.wires
                 ok = blocks.at_least(bld, matches, 1)
-            if "above" in ctx.wanted and self.p.threshold is not None:
-                ge = const_at_least(bld, v, scaled_threshold(self.p.threshold, v.frac))
+            if "above" in ctx.wanted and self.params.threshold is not None:
+                bound = blocks.encoded_bound(self.params.threshold, v.frac)
+                ge = blocks.at_least(bld, v.wires, bound, signed=v.signed)
                 above = blocks.count_bits(bld, bld.and_(ge, mine))
                 values["above"] = bld.extend(above, specs["above"].width)
         return StatisticResult(values, count=matches, ok=ok, extra=extra)

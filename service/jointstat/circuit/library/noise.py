@@ -364,9 +364,9 @@ def _plan(eps: Fraction, sens: int, precision: int, field: str) -> NoiseParamete
             width = z + relative
             if (high - low) * (1 << (width + _INTERVAL_SLACK)) > 1:
                 return None
-            mid = (low + high) / 2 * (1 << width)
+            centre = (low + high) / 2 * (1 << width)
             threshold = int(
-                mid + Fraction(1, 2)
+                centre + Fraction(1, 2)
             )  # round half up; any integer near p_i·2^w is exact-accounted
             bits.append(BiasedBit(i, width, threshold, low, high))
         rounding = sum((b.log_error for b in bits), Fraction(0))

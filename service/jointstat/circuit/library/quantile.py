@@ -32,24 +32,16 @@ from pydantic import Field, field_validator
 from jointstat.circuit.bits import Bits, concat
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.library import blocks
-from jointstat.circuit.library.registry import (
-    BuildContext,
-    OutputSpec,
-    Statistic,
-    StatisticResult,
-    TableNeeds,
-    register_statistic,
-)
-from jointstat.circuit.manifest import ColumnPair, Problem, StatisticParameters, _between
+from jointstat.circuit.library.statistic import BuildContext, ColumnStatistic, OutputSpec, StatisticResult
 from jointstat.circuit.model import Party
+from jointstat.circuit.parameters import ColumnParameters, PrecisionBits
 
 
-class QuantileParameters(StatisticParameters):
+class QuantileParameters(ColumnParameters):
     name: Literal["quantile"]
-    column: ColumnPair
     percentiles: Annotated[list[float], Field(min_length=1, max_length=16)]
     method: Literal["lower", "higher", "midpoint", "linear"] = "linear"
-    precision_bits: Annotated[int, _between(0, 32)] = 8
+    precision_bits: PrecisionBits = 8
 
     @field_validator("percentiles")
     @classmethod
@@ -73,47 +65,29 @@ def rank_fraction(p: float) -> Fraction:
     return Fraction(repr(float(p))) / 100
 
 
-@register_statistic
-class Quantile(Statistic):
+class Quantile(ColumnStatistic[QuantileParameters]):
     name = "quantile"
     Parameters = QuantileParameters
     description = "percentiles of the union of both parties' values (oblivious merge and selection)"
-
-    @property
-    def p(self) -> QuantileParameters:
-        return self.params  # type: ignore[return-value]
-
-    def problems(self) -> list[Problem]:
-        return list(self.check_columns(self.p.column, "statistic.column"))
-
-    def needs(self) -> dict[Party, TableNeeds]:
-        names = self.column_names(self.p.column)
-        return {party: TableNeeds((names[party],), sort_by=names[party]) for party in Party}
-
-    def _format(self) -> tuple[int, bool, int]:
-        cols = [self.column(party, self.p.column) for party in Party]
-        frac = max(c.frac for c in cols)
-        signed = any(c.signed for c in cols)
-        width = max(c.bits + (frac - c.frac) + (1 if signed and not c.signed else 0) for c in cols)
-        return width, signed, frac
+    sorted_rows = True  # each party's values ascending: the merge needs them so
 
     def outputs(self) -> list[OutputSpec]:
-        n = sum(self.manifest.table(p).capacity for p in Party)
-        w, signed, frac = self._format()
-        if self.p.method == "midpoint":
+        n = self.rows()
+        fmt = self.column_format(self.params.column)
+        w, signed, frac = fmt.width, fmt.signed, fmt.frac
+        if self.params.method == "midpoint":
             w, frac = w + 1, frac + 1
-        elif self.p.method == "linear":
-            w, frac = w + self.p.precision_bits, frac + self.p.precision_bits
+        elif self.params.method == "linear":
+            w, frac = w + self.params.precision_bits, frac + self.params.precision_bits
         specs = [OutputSpec("count", n.bit_length(), description="values in the union")]
-        for q in self.p.percentiles:
+        for q in self.params.percentiles:
             specs.append(OutputSpec(percentile_name(q), w, signed, frac, description=f"percentile {q:g}"))
         return specs
 
     def build(self, ctx: BuildContext) -> StatisticResult:
         bld = ctx.builder
-        specs = {s.name: s for s in self.outputs()}
-        names = self.column_names(self.p.column)
-        nums = blocks.align(bld, *[ctx.table(party).number(names[party]) for party in Party])
+        specs = self.output_specs()
+        nums = self.aligned(ctx, self.params.column)
         signed, w = nums[0].signed, nums[0].width
         elements = []
         for party, x in zip(Party, nums, strict=True):
@@ -124,12 +98,11 @@ class Quantile(Statistic):
         merged = blocks.bitonic_merge(bld, seq)
         sorted_vals = blocks.from_order_key(bld, merged.keys[:, :w], signed)
         m = layout.size
-        valid = concat([ctx.table(p).valid for p in Party])
-        n = bld.extend(blocks.count_bits(bld, valid), specs["count"].width)
+        n = bld.extend(blocks.count_bits(bld, ctx.valid()), specs["count"].width)
         values: dict[str, Bits] = {"count": n}
         n_minus_1 = bld.sub(n, bld.constant_word(1, n.shape[-1]))
         idx_bits = max(1, (m - 1).bit_length())
-        for q in self.p.percentiles:
+        for q in self.params.percentiles:
             name = percentile_name(q)
             if name not in ctx.wanted:
                 continue
@@ -169,7 +142,7 @@ class Quantile(Statistic):
         signed: bool,
         spec: OutputSpec,
     ) -> Bits:
-        method = self.p.method
+        method = self.params.method
         if method == "lower":
             return x_j
         higher = bld.select(r_nonzero, x_j, x_next)
@@ -178,7 +151,7 @@ class Quantile(Statistic):
         w = x_j.shape[-1]
         if method == "midpoint":
             return bld.add(bld.extend(x_j, w + 1, signed=signed), bld.extend(higher, w + 1, signed=signed))
-        e = self.p.precision_bits
+        e = self.params.precision_bits
         if r.shape[-1] == 0:  # the rank is always whole
             return bld.extend(concat([bld.zeros(e), x_j]), spec.width, signed=signed)
         # x_{j+1} ≥ x_j whenever r > 0, so the difference is unsigned; when r = 0 it is multiplied by zero.

@@ -277,8 +277,9 @@ class ConsoleServer:
         config.include_server_header = False
         config.graceful_timeout = GRACEFUL_S
         self._task = asyncio.create_task(
-            serve(self.app, config, shutdown_trigger=self._stop.wait),
-            name="jointstat-console",  # type: ignore[arg-type]
+            # Starlette's ASGI callable and Hypercorn's typed ASGI protocols describe the same interface differently.
+            serve(self.app, config, shutdown_trigger=self._stop.wait),  # type: ignore[arg-type]
+            name="jointstat-console",
         )
         self._task.add_done_callback(_report_end)
         self.port = port

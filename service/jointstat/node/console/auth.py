@@ -35,7 +35,8 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
-from jointstat.node.config import ConfigError, console_token_problem
+from jointstat.node.config import ConfigError
+from jointstat.node.keys import console_token_problem
 from jointstat.node.secrets import SecretFileError, read_secret_file, write_private_file
 from jointstat.problems import Problem
 

@@ -34,7 +34,7 @@ from typing import Any
 from jointstat.audit.records import SessionState, decode_b64, transcript_signature_ok
 from jointstat.audit.verify import CompareReport, VerifyReport, compare_logs, verify_log
 from jointstat.node.console.view import LogKeys, NodeView
-from jointstat.node.jobs import REFUSAL_CODES
+from jointstat.transport.proposals import REFUSAL_CODES
 
 REFUSAL_REASONS = frozenset(REFUSAL_CODES.values())  # the reasons a proposal is refused with (the wire enum)
 
