@@ -6,7 +6,9 @@ outputs and one transcript both sides signed; the cuts and resumes are recorded 
 wrong proof, or from a client certificate other than the one the session started with (even one the server pins),
 is refused on its own stream and logged, and the session goes on; once the grace period has passed both sides fail
 with ``connection lost`` (no output anywhere) and a late resume is refused and logged. A garbler whose evaluator
-stops acknowledging holds at most its replay limit.
+stops acknowledging holds at most its replay limit. A session cut before its OT has ended cannot be resumed and
+fails at once as restartable (the initiator starts a fresh one); one cut after its OT that is not resumed in time is
+not restartable.
 """
 
 from __future__ import annotations
@@ -30,7 +32,7 @@ from jointstat.protocol import frames as fr
 from jointstat.statements import RESUME, Statement, session_text
 from jointstat.transport import Limits, SessionServer, run_client
 from jointstat.transport.channel import MESSAGE_OPTIONS, METHOD_PATH, ClientStream
-from jointstat.transport.driver import CUT, REFUSED, RESUMED, drive
+from jointstat.transport.driver import CUT, REFUSED, RESUMED, StreamLost, drive
 from jointstat.transport.pki import issue, new_ca
 from jointstat.transport.tls import NodeTLS
 
@@ -281,3 +283,59 @@ async def test_a_garbler_whose_evaluator_stops_acknowledging_holds_at_most_its_r
     task.cancel()
     with pytest.raises(asyncio.CancelledError):
         await task
+
+
+class Severed:
+    """The evaluator's stream with the garbler played in line; reading fails the first time a frame of kind
+    ``cut_before`` comes from the garbler (so that frame never arrives)."""
+
+    def __init__(self, garbler: GarblerSession, cut_before: str) -> None:
+        self.garbler = garbler
+        self.cut_before = cut_before
+        self.inbox: asyncio.Queue[bytes | None] = asyncio.Queue()
+        for data in garbler.start():
+            self.inbox.put_nowait(data)
+
+    async def read(self) -> bytes | None:
+        data = await self.inbox.get()
+        if data is not None and fr.decode(data)[0] == self.cut_before:
+            raise StreamLost("the test cut the stream")
+        return data
+
+    async def write(self, data: bytes) -> None:
+        if self.garbler.ended:
+            return
+        for reply in self.garbler.receive(data):
+            self.inbox.put_nowait(reply)
+        if self.garbler.ready_to_stream:
+            for frame in self.garbler.produce():
+                self.inbox.put_nowait(frame)
+
+    async def close(self, completed: bool) -> None:
+        pass
+
+    def cancel(self) -> None:
+        pass
+
+    def peer_gone(self) -> bool:
+        return False
+
+
+@pytest.mark.parametrize(
+    ("cut_before", "restartable"),
+    [(fr.OT_EXTENSION, True), (fr.GARBLED_TABLES, False)],
+    ids=["during OT", "after OT"],
+)
+async def test_only_a_session_cut_before_its_ot_ended_is_restartable(
+    cut_before: str, restartable: bool
+) -> None:
+    small = wide_program(1 << 12, 256)
+    garbler, evaluator, _ = sessions(small, b"orchards-restart", replay_limit=1 << 22)
+    lim = Limits(deadline_s=30, idle_timeout_s=10, abort_grace_s=1, resume_grace_s=0.3)
+    result = await asyncio.wait_for(drive(evaluator, Severed(garbler, cut_before), lim), 30)
+    assert not result.completed and result.outputs is None
+    assert result.abort is not None and result.abort.reason == AbortReason.CONNECTION_LOST
+    assert result.events and result.events[0].kind == CUT
+    assert result.restartable is restartable and result.cut_before_ot is restartable
+    # Not resumable before OT: it fails at once; after OT it waited the grace period for a resume.
+    assert ("grace period" in result.abort.message) is not restartable

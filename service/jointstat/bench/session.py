@@ -174,7 +174,7 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> None:
             for _session, expected in waiting:
                 result = await expected
                 results.append(result)
-                if result.completed or not _restartable(result):
+                if result.completed or not _may_restart(result):
                     break
             for session, _ in waiting[len(results) :]:
                 server.withdraw(session.session_id)
@@ -222,7 +222,14 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> None:
 
 
 def _restartable(result: Any) -> bool:
-    """A session lost to a cut it could not resume from (before OT, or no resume in time): start a fresh one."""
+    """The evaluator (it connects): its session was lost to a cut before its OT had ended
+    (``SessionResult.restartable``), so it starts a fresh one."""
+    return bool(result.restartable)
+
+
+def _may_restart(result: Any) -> bool:
+    """The garbler (it serves): its session was lost with its connection, so the evaluator may start a fresh one
+    (the evaluator decides; its OT ends after the garbler's)."""
     from jointstat.protocol import AbortReason
 
     return result.abort is not None and result.abort.reason == AbortReason.CONNECTION_LOST

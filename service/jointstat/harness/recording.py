@@ -122,6 +122,7 @@ def recording_session(secrets: Secrets, chunk_bytes: int | None = None) -> Calla
             session = RecordingGarbler(**kwargs)
         else:
             kwargs.pop("chunk_bytes", None)
+            kwargs.pop("replay_limit_bytes", None)
             session = RecordingEvaluator(**kwargs)
         session.secrets = secrets
         return session

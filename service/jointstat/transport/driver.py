@@ -162,6 +162,7 @@ class _Driver:
         self._ot_flow_seen = (0, 0)
         self._checks: list[asyncio.Task[None]] = []
         self._finished = False
+        self._cut_before_ot = False
         session.use_hash_factory(self._hasher.new)
 
     # -- helpers ----------------------------------------------------------------------------------------------------
@@ -311,17 +312,10 @@ class _Driver:
             self._room.set()
         session = self.session
         if isinstance(session, GarblerSession) and session.ready_to_stream and self._producer is None:
-            # The first streamed frame is pulled before the next frame is taken: with nothing to stream (no inputs,
-            # no AND gates) it moves the state past 'streaming' before the evaluator's reply is taken.
-            frames = session.produce()
-            try:
-                first = await self._call(self._next_frame, frames)
-            except ProtocolError as exc:
-                self._abort_first(exc.frame)
-                return
-            if first is not None:
-                link.outbox.put_nowait(first)
-            self._producer = asyncio.create_task(self._produce(frames), name="jointstat-producer")
+            # The producer is a task of the session, not of this link, and is made here with no await before it:
+            # a cut that cancels this link's processor cannot leave the session streaming with no producer. (With
+            # nothing to stream the garbler never enters 'streaming': it leaves it with the reply that ends the OT.)
+            self._producer = asyncio.create_task(self._produce(session.produce()), name="jointstat-producer")
         self._check_ended()
         self._notify()
 
@@ -646,6 +640,7 @@ class _Driver:
             self._event(CUT, link.why)
             if not self._can_resume:
                 if not self.session.ended:
+                    self._cut_before_ot = not self.session.resumable and self.session.state != "new"
                     await self._call(self.session.fail, AbortReason.CONNECTION_LOST, link.why)
                 self._check_ended()
                 return
@@ -713,7 +708,7 @@ class _Driver:
             window_bytes=self._flow.window_bytes,
             samples=self._flow.samples,
         )
-        result = result_of(self.session, self.counters, tuple(self.events), flow)
+        result = result_of(self.session, self.counters, tuple(self.events), flow, self._cut_before_ot)
         self._notify()
         if cancelled:
             raise asyncio.CancelledError

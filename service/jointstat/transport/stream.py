@@ -72,10 +72,6 @@ class Shutdown:
         self._idle.set()
         self._running = 0
 
-    @property
-    def requested(self) -> bool:
-        return self._requested.is_set()
-
     def request(self) -> None:
         """Ask every session driven with this signal, now or later, to abort with ``peer_shutdown``."""
         self._requested.set()
@@ -178,6 +174,13 @@ class SessionResult:
     counters: WireCounters = field(default_factory=WireCounters)
     events: tuple[LinkEvent, ...] = ()
     flow: FlowFigures | None = None
+    cut_before_ot: bool = False  # it failed because its connection was cut before this side's OT had ended
+
+    @property
+    def restartable(self) -> bool:
+        """Lost to a cut before this side's OT had ended: nothing can have been released on either side (this side
+        had sent no finish), so the initiator starts a fresh session at once (a new id, fresh randomness)."""
+        return not self.completed and self.cut_before_ot
 
     @property
     def cuts(self) -> int:
@@ -201,6 +204,7 @@ def result_of(
     counters: WireCounters,
     events: tuple[LinkEvent, ...] = (),
     flow: FlowFigures | None = None,
+    cut_before_ot: bool = False,
 ) -> SessionResult:
     done = session.done
     return SessionResult(
@@ -213,6 +217,7 @@ def result_of(
         counters=counters,
         events=events,
         flow=flow,
+        cut_before_ot=cut_before_ot,
     )
 
 
