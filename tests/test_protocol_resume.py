@@ -1,8 +1,9 @@
 """Acknowledgements, the replay buffer and resume after a cut, on the in-memory pipe with scripted cuts.
 
-Specification: the evaluator acknowledges every frame of input labels and tables it has taken; the garbler keeps the
-frames sent after OT and not yet acknowledged in a replay buffer that never passes its limit (the garbler waits
-when it is full, as when the evaluator stalls). A cut after both sides' OT has ended is resumed: the initiator's
+Specification: the evaluator acknowledges every frame of input labels and tables it has taken; each acknowledgement
+counts more frames than the last (a repeated one is malformed); the garbler keeps the frames sent after OT and not
+yet acknowledged in a replay buffer that never passes its limit (the garbler waits when it is full, as when the
+evaluator stalls). A cut after both sides' OT has ended is resumed: the initiator's
 signed resume frame, the other side's answer, and each side resends exactly the frames the other lacks, the same
 bytes — the resumed session equals, frame for frame and in its transcript, the same session (same random bytes)
 without a cut, at every phase boundary and in the middle of the table stream, with either side initiating. A cut
@@ -26,7 +27,14 @@ from jointstat.circuit.backend import PlainBackend
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.model import Party
 from jointstat.circuit.program import Program
-from jointstat.protocol import EvaluatorSession, GarblerSession, ResumeRefused, signer, verifier
+from jointstat.protocol import (
+    EvaluatorSession,
+    GarblerSession,
+    NoOutputError,
+    ResumeRefused,
+    signer,
+    verifier,
+)
 from jointstat.protocol import frames as fr
 from jointstat.protocol.pipe import run_in_memory
 from jointstat.statements import RESUME, Statement, session_text
@@ -307,3 +315,16 @@ def test_no_output_is_released_twice_or_on_one_side_only_whatever_the_cut(
             replies = garbler.receive(evaluator.resume_frame(5))
             assert fr.decode(replies[0])[0] == fr.RESUME
             assert np.array_equal(garbler.outputs, outputs) and garbler.done
+
+
+def test_a_repeated_acknowledgement_is_malformed_and_fails_the_garbler(
+    program: Program, inputs: dict[Party, np.ndarray]
+) -> None:
+    garbler, _ = mid_stream(program, inputs)
+    repeated = fr.tables_ack_frame(garbler.peer_acked)
+    with pytest.raises(fr.ProtocolError, match="already acknowledged") as info:
+        garbler.receive(repeated)
+    assert info.value.reason == fr.AbortReason.MALFORMED_FRAME
+    assert garbler.ended and not garbler.done
+    with pytest.raises(NoOutputError):
+        garbler.outputs  # noqa: B018 (the property refuses)

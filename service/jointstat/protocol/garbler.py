@@ -265,7 +265,13 @@ class GarblerSession(SessionBase):
 
     def _on_ack(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
         assert isinstance(frame, pb.Frame)
-        self._acknowledged(frame.tables_ack.frames, "tables_ack")
+        count = frame.tables_ack.frames
+        if count <= self._peer_acked:  # the evaluator acknowledges each frame it takes once, in order
+            raise ProtocolError(
+                AbortReason.MALFORMED_FRAME,
+                f"tables_ack acknowledges {count} frames; {self._peer_acked} were already acknowledged",
+            )
+        self._acknowledged(count, "tables_ack")
         return self._state, []
 
     def _on_tables_sent(self, _frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:

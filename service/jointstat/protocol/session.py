@@ -39,7 +39,8 @@ Flow (G garbler, E evaluator; every arrow is one or more frames, see ``proto/joi
 
 Acknowledgements and the replay buffer: after each ``garbler_input_labels`` and ``garbled_tables`` frame it has
 taken (the tables evaluated), E sends ``tables_ack`` with the number of G's logical frames it has taken
-(``frames``). From the end of its OT on, each side keeps every logical frame it sends in its *replay buffer* until
+(``frames``); each acknowledges more than the last (a repeated or older count is malformed). From the end of its
+OT on, each side keeps every logical frame it sends in its *replay buffer* until
 the peer has acknowledged it — G drops frames as the acknowledgements come; E's buffer holds only its output labels
 and finish. ``replay_bytes`` is what G's buffer holds; ``can_stream`` says whether ``produce()`` may hand out the
 next frame without the buffer passing ``replay_limit_bytes`` (the transport waits for acknowledgements otherwise;

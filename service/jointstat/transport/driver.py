@@ -211,7 +211,8 @@ class _Driver:
         self._abort_first(abort)
 
     @property
-    def _can_resume(self) -> bool:
+    def can_resume(self) -> bool:
+        """Whether a cut now would be followed by a wait for a resume (a grace period, and OT has ended)."""
         return self.limits.resume_grace_s > 0 and self.session.resumable
 
     def offer(self, stream: FrameStream, first: bytes, *, resuming: bool) -> asyncio.Future[None]:
@@ -432,14 +433,14 @@ class _Driver:
         if producer is not None and not producer.done():
             with contextlib.suppress(TimeoutError, Exception):
                 await asyncio.wait_for(asyncio.shield(producer), timeout=self.limits.idle_timeout_s)
-        if not await self._flush(link, self.limits.idle_timeout_s) and self._can_resume:
+        if not await self._flush(link, self.limits.idle_timeout_s) and self.can_resume:
             await self._close_link(link, completed=False)
             return False
         if self._connect is not None or self.limits.resume_grace_s == 0:
             try:
                 await link.stream.close(True)
             except (StreamLost, TimeoutError) as exc:
-                if self._connect is not None and self._can_resume:
+                if self._connect is not None and self.can_resume:
                     link.lose(f"the end of the call did not come back: {exc}")
                     await self._close_link(link, completed=False)
                     return False
@@ -502,7 +503,7 @@ class _Driver:
             idle = self._loop.time() - self._last_progress
             link = self._link
             if idle >= limit and self._connected.is_set() and link is not None:
-                if self._can_resume:
+                if self.can_resume:
                     link.lose(f"nothing was sent or received for {limit:g} s")
                     self._progress()
                 else:
@@ -638,7 +639,7 @@ class _Driver:
                 return
             self._connected.clear()
             self._event(CUT, link.why)
-            if not self._can_resume:
+            if not self.can_resume:
                 if not self.session.ended:
                     self._cut_before_ot = not self.session.resumable and self.session.state != "new"
                     await self._call(self.session.fail, AbortReason.CONNECTION_LOST, link.why)

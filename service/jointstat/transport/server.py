@@ -257,6 +257,7 @@ class SessionServer:
         self._running[sid] = _Running(driver, peer, task)
         task.add_done_callback(lambda done: self._session_ended(sid, entry, done))
         await self._hand_over(driver, stream, first, resuming=False)
+        await self._after_link(driver, task)
 
     def _session_ended(self, sid: bytes, entry: _Expected, task: asyncio.Task[SessionResult]) -> None:
         self._running.pop(sid, None)
@@ -300,3 +301,13 @@ class SessionServer:
             )
             return
         await self._hand_over(running.driver, stream, first, resuming=True)
+        await self._after_link(running.driver, running.task)
+
+    @staticmethod
+    async def _after_link(driver: Driver, task: asyncio.Task[SessionResult]) -> None:
+        """The driver is done with this call's stream: if the session has ended or cannot be resumed, the call ends
+        once the session's result is known (so whoever sees the call end sees the result); if it may await a
+        resume, at once."""
+        if (driver.session.ended or not driver.can_resume) and not task.done():
+            with contextlib.suppress(Exception, asyncio.CancelledError):
+                await asyncio.shield(task)
