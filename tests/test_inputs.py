@@ -35,10 +35,21 @@ TYPES = table(
     {"name": "s", "type": "signed", "width": 8},
     {"name": "f", "type": "fixed", "width": 8, "fraction_bits": 2},
     {"name": "b", "type": "boolean"},
-    {"name": "k", "type": "key", "width": 16},
+    {"name": "k", "type": "identifier", "width": 16},
+)
+ROUNDED_TABLE = table(
+    3,
+    *(
+        {"name": mode, "type": "fixed", "width": 8, "fraction_bits": 2, "rounding": mode}
+        for mode in ("nearest", "down", "up", "toward_zero")
+    ),
+    {"name": "i", "type": "signed", "width": 8, "rounding": "nearest"},
 )
 TYPES_MANIFEST = manifest({"garbler": TYPES, "evaluator": TYPES}, {"name": "count"}, {"garbler": ["count"]})
 TABLE = TYPES_MANIFEST.tables.garbler
+ROUNDED = manifest(
+    {"garbler": ROUNDED_TABLE, "evaluator": ROUNDED_TABLE}, {"name": "count"}, {"garbler": ["count"]}
+).tables.garbler
 
 
 def write(tmp_path: Path, text: str, name: str = "rows.csv") -> Path:
@@ -53,12 +64,66 @@ def test_a_valid_csv_is_read_with_every_type(tmp_path: Path) -> None:
     assert rec.columns["u"] == [255, 0] and rec.columns["s"] == [-128, 127]
     assert rec.columns["f"] == [-128, 127] and rec.columns["b"] == [1, 0]
     assert rec.columns["k"] == [hash_key(SECRET, "Alice", 16), hash_key(SECRET, "bob", 16)]
-    assert rec.rows == [1, 2]
+    assert rec.rows == [2, 3]  # file line numbers: the header is line 1
 
 
-def test_fixed_point_values_round_to_the_nearest_step_ties_to_even(tmp_path: Path) -> None:
-    path = write(tmp_path, "f\n0.125\n0.375\n-0.1\n")  # 0.5, 1.5 and −0.4 quarter-steps
-    assert read_csv(path, TABLE, columns=["f"]).columns["f"] == [0, 2, 0]
+def test_records_are_numbered_by_file_line_and_trailing_blank_lines_are_accepted(tmp_path: Path) -> None:
+    rec = read_csv(write(tmp_path, "u\n7\n3\n\n\n"), TABLE, columns=["u"])
+    assert rec.columns["u"] == [7, 3] and rec.rows == [2, 3]
+    rec = read_csv(write(tmp_path, "u\r\n7\r\n\r\n"), TABLE, columns=["u"])
+    assert rec.columns["u"] == [7] and rec.rows == [2]
+
+
+def test_a_blank_line_between_records_is_refused_with_its_line(tmp_path: Path) -> None:
+    path = write(tmp_path, "u\n7\n\n3\n")
+    with pytest.raises(InputError, match="line 3: the line is blank, and records follow it") as info:
+        read_csv(path, TABLE, columns=["u"])
+    assert info.value.row == 3
+
+
+def test_a_value_finer_than_the_column_is_refused_without_a_rounding_rule(tmp_path: Path) -> None:
+    path = write(tmp_path, "f\n1.25\n41.26\n")  # quarter steps: 41.26 is not a multiple of 0.25
+    with pytest.raises(InputError) as info:
+        read_csv(path, TABLE, columns=["f"])
+    assert (info.value.row, info.value.column) == (3, "f")
+    assert "more precision than the column holds (steps of 2^-2 = 0.25)" in str(info.value)
+    assert "41.26" not in str(info.value)
+    with pytest.raises(InputError, match=r"line 2, column 'u': .*more precision"):
+        read_csv(write(tmp_path, "u\n3.5\n"), TABLE, columns=["u"])
+    assert read_csv(write(tmp_path, "f\n-1.75\n2.000\n"), TABLE, columns=["f"]).columns["f"] == [-7, 8]
+
+
+@pytest.mark.parametrize(
+    "text", ["0.125", "0.375", "-0.1", "-0.125", "41.26", "-41.26", "0.3", "31.8", "-31.9"]
+)
+def test_each_rounding_rule_rounds_as_the_decimal_module_does(tmp_path: Path, text: str) -> None:
+    # Outside reference: decimal.Decimal.quantize with ROUND_HALF_EVEN / ROUND_FLOOR / ROUND_CEILING / ROUND_DOWN
+    # on the value × 4 (quarter steps), the rounding modes of the General Decimal Arithmetic specification.
+    import decimal
+
+    modes = {
+        "nearest": decimal.ROUND_HALF_EVEN,
+        "down": decimal.ROUND_FLOOR,
+        "up": decimal.ROUND_CEILING,
+        "toward_zero": decimal.ROUND_DOWN,
+    }
+    columns = list(modes)
+    path = write(tmp_path, ",".join(columns) + "\n" + ",".join([text] * len(columns)) + "\n")
+    scaled = decimal.Decimal(text) * 4
+    expected = [int(scaled.quantize(decimal.Decimal(1), rounding=modes[m])) for m in columns]
+    in_range = all(-128 <= v <= 127 for v in expected)
+    if not in_range:
+        with pytest.raises(InputError, match="outside the range"):
+            read_csv(path, ROUNDED, columns=columns)
+        return
+    rec = read_csv(path, ROUNDED, columns=columns)
+    assert [rec.columns[m][0] for m in columns] == expected
+
+
+def test_an_integer_column_with_a_rounding_rule_rounds_decimals(tmp_path: Path) -> None:
+    # Outside reference: Python's round(), which rounds half to even as the `nearest` rule does.
+    rec = read_csv(write(tmp_path, "i\n2.5\n3.5\n-2.5\n"), ROUNDED, columns=["i"])
+    assert rec.columns["i"] == [round(2.5), round(3.5), round(-2.5)] == [2, 4, -2]
 
 
 def test_key_hash_is_truncated_hmac_sha256() -> None:
@@ -74,16 +139,15 @@ def test_key_hash_is_truncated_hmac_sha256() -> None:
 @pytest.mark.parametrize(
     ("text", "row", "column", "what"),
     [
-        ("u\n12\nabc\n", 2, "u", "not an integer"),
-        ("u\n256\n", 1, "u", "outside the range of this unsigned 8-bit column (0 to 255)"),
-        ("s\n-129\n", 1, "s", "outside the range of this signed 8-bit column (-128 to 127)"),
-        ("f\n32\n", 1, "f", "outside the range of this fixed-point column (-32 to 31.75)"),
-        ("f\n1e\n", 1, "f", "not a number"),
-        ("b\nmaybe\n", 1, "b", "not a boolean"),
-        ("u,s\n7,\n", 1, "s", "the value is missing"),
-        ("u\n7\n\n3\n", 2, "u", "the row has no value"),
-        ("u,s\n1\n", 1, "s", "the row has no value"),
-        ("k\n  \n", 1, "k", "the value is missing"),
+        ("u\n12\nabc\n", 3, "u", "not an integer"),
+        ("u\n256\n", 2, "u", "outside the range of this unsigned 8-bit column (0 to 255)"),
+        ("s\n-129\n", 2, "s", "outside the range of this signed 8-bit column (-128 to 127)"),
+        ("f\n32\n", 2, "f", "outside the range of this fixed-point column (-32 to 31.75)"),
+        ("f\n1e\n", 2, "f", "not a number"),
+        ("b\nmaybe\n", 2, "b", "not a boolean"),
+        ("u,s\n7,\n", 2, "s", "the value is missing"),
+        ("u,s\n1\n", 2, "s", "the row has no value"),
+        ("k,u\n  ,1\n", 2, "k", "the value is missing"),
     ],
 )
 def test_bad_values_name_file_row_and_column_but_not_the_value(
@@ -104,7 +168,7 @@ def test_bad_values_name_file_row_and_column_but_not_the_value(
 def test_a_missing_column_and_more_rows_than_the_capacity(tmp_path: Path) -> None:
     with pytest.raises(InputError, match=r"column 'u': the column is missing"):
         read_csv(write(tmp_path, "x\n1\n"), TABLE, columns=["u"])
-    with pytest.raises(InputError, match=r"row 4: more rows than the table's capacity of 3"):
+    with pytest.raises(InputError, match=r"line 5: more rows than the table's capacity of 3"):
         read_csv(write(tmp_path, "u\n1\n2\n3\n4\n"), TABLE, columns=["u"])
     with pytest.raises(InputError, match="cannot read the file"):
         read_csv(tmp_path / "absent.csv", TABLE)
@@ -127,8 +191,10 @@ def test_duplicate_keys_are_refused_where_the_statistic_forbids_them(tmp_path: P
     rec = read_csv(path, JOIN.tables.garbler, columns=["email"], key_secret=SECRET)  # fold_case: x = X
     with pytest.raises(InputError) as info:
         encode_inputs(compiled, Party.GARBLER, rec)
-    assert (info.value.row, info.value.column) == (3, "email")
-    assert "duplicate value (also in row 1)" in str(info.value) and "x@example" not in str(info.value).lower()
+    assert (info.value.row, info.value.column) == (4, "email")  # file lines
+    assert (
+        "duplicate value (also in line 2)" in str(info.value) and "x@example" not in str(info.value).lower()
+    )
 
 
 def test_distinct_keys_whose_hashes_collide_are_reported_as_a_collision(tmp_path: Path) -> None:
@@ -144,15 +210,15 @@ def test_distinct_keys_whose_hashes_collide_are_reported_as_a_collision(tmp_path
     assert pair is not None
     m = manifest(
         {
-            "garbler": table(4, {"name": "k", "type": "key", "width": 16}),
-            "evaluator": table(4, {"name": "k", "type": "key", "width": 16}),
+            "garbler": table(4, {"name": "k", "type": "identifier", "width": 16}),
+            "evaluator": table(4, {"name": "k", "type": "identifier", "width": 16}),
         },
         {"name": "keyed_join", "key": "k"},
         {"garbler": ["matches"]},
         matching={"max_false_matches": 1.0},  # 16-bit keys on purpose: 4 × 4 / 2^16 ≈ 2.4e-4 expected
     )
     rec = read_csv(write(tmp_path, f"k\n{pair[0]}\n{pair[1]}\n"), m.tables.garbler, key_secret=SECRET)
-    with pytest.raises(InputError, match="same 16-bit hash; use a wider key"):
+    with pytest.raises(InputError, match="same 16-bit hash; use a wider identifier column"):
         encode_inputs(compile_manifest(m), Party.GARBLER, rec)
 
 

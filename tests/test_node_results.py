@@ -72,6 +72,31 @@ def test_a_withheld_result_reads_back_as_withheld_with_no_values(tmp_path: Path)
     assert got.withheld is True and got.outputs == {"count": None} and got.role == "evaluator"
 
 
+def test_which_rule_withheld_which_output_is_kept_apart_from_the_values(tmp_path: Path) -> None:
+    path = write_result(
+        job(tmp_path),
+        session_id="c3" * 16,
+        party=Party.EVALUATOR,
+        digest=bytes(32),
+        scheduled_for=MIDNIGHT,
+        finished_at=MIDNIGHT,
+        outputs={
+            "withheld": False,
+            "withheld_by": {"spend.mean": "no_rows"},
+            "members.count": 0,
+            "spend.mean": None,
+        },
+    )
+    got = read_result(path)
+    assert got.withheld is False and got.withheld_by == {"spend.mean": "no_rows"}
+    assert got.outputs == {"members.count": 0, "spend.mean": None}
+    body = json.loads(path.read_text())
+    body["withheld_by"] = {"spend.mean": 3}
+    path.write_text(json.dumps(body))
+    with pytest.raises(ResultFileError, match="withheld_by is not an object of output names and rules"):
+        read_result(path)
+
+
 def test_the_newest_files_are_listed_oldest_first_and_other_files_are_ignored(tmp_path: Path) -> None:
     j = job(tmp_path)
     for day in range(5):

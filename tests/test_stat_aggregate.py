@@ -56,12 +56,20 @@ def truncate(value: Fraction, frac: int) -> int:
 
 def check_against_statistics(raw: dict[str, object], union: list[Fraction], sample: bool) -> None:
     """The evaluator's raw outputs against the statistics module on the exact union of both parties' values."""
-    if len(union) < (2 if sample else 1):
-        assert raw["withheld"] is True and raw["sum"] == 0  # gated to zero inside the program
-        return
+    # Each output is released or withheld on its own: the count and the sum always, the mean when there is a
+    # row, the variance when there are enough rows (two for a sample variance); a withheld value is zero.
     assert raw["withheld"] is False and raw["count"] == len(union)
     assert Fraction(raw["sum"], 4) == sum(union)  # type: ignore[arg-type]
-    assert raw["mean"] == truncate(statistics.mean(union), 2 + 5)  # statistics.mean
+    if not union:
+        assert raw["mean:no_rows"] is True and raw["mean"] == 0
+    else:
+        assert raw["mean:no_rows"] is False
+        assert raw["mean"] == truncate(statistics.mean(union), 2 + 5)  # statistics.mean
+    rule = "variance:too_few_rows" if sample else "variance:no_rows"
+    if len(union) < (2 if sample else 1):
+        assert raw[rule] is True and raw["variance"] == 0  # gated to zero inside the program
+        return
+    assert raw[rule] is False
     var = statistics.variance(union) if sample else statistics.pvariance(union)  # statistics.(p)variance
     assert raw["variance"] == truncate(var, 4 + 5)
 
@@ -113,15 +121,13 @@ def test_plain_garbled_and_statistics_agree_for_every_aggregate_and_any_capaciti
     if name == "variance":
         check_against_statistics(raw, union, sample)
         return
-    needed = 1 if name == "mean" else 0
-    if len(union) < needed:
-        assert raw["withheld"] is True
-        return
     assert raw["withheld"] is False and raw["count"] == len(union)
     if name != "count":
         assert Fraction(raw["sum"], 4) == sum(union)  # Python's exact sum of fractions
     if name == "mean":
-        assert raw["mean"] == truncate(statistics.mean(union), 2 + 5)  # statistics.mean
+        assert raw["mean:no_rows"] is (not union)  # withheld on its own, the count and sum still released
+        expected = truncate(statistics.mean(union), 2 + 5) if union else 0  # statistics.mean
+        assert raw["mean"] == expected
 
 
 def test_decoded_values_are_numbers_on_the_output_scale() -> None:
@@ -140,14 +146,24 @@ def test_decoded_values_are_numbers_on_the_output_scale() -> None:
     assert run_garbled(variance_circuit(), g, e) == got
 
 
-def test_all_rows_padding_withholds_the_mean() -> None:
+def test_all_rows_padding_withholds_the_mean_and_variance_but_not_the_count_and_sum() -> None:
     got = run_plain(variance_circuit(), records("g", x=[]), records("e", y=[]))
     assert got[Party.EVALUATOR] == {
-        "withheld": True,
-        "count": None,
-        "sum": None,
+        "withheld": False,
+        "withheld_by": {"mean": "no_rows", "variance": "no_rows"},
+        "count": 0,
+        "sum": 0.0,
         "mean": None,
         "variance": None,
+    }
+    assert got[Party.GARBLER] == {"withheld": True, "withheld_by": {"mean": "no_rows"}, "mean": None}
+
+
+def test_the_disclosure_rule_says_it_withheld_every_output() -> None:
+    got = run_plain(variance_circuit(min_count=3), records("g", x=[4]), records("e", y=[1]))
+    assert got[Party.EVALUATOR]["withheld"] is True
+    assert got[Party.EVALUATOR]["withheld_by"] == {
+        name: "min_count" for name in ("count", "sum", "mean", "variance")
     }
 
 

@@ -93,7 +93,12 @@ def test_plain_garbled_and_exact_comparison_agree_for_any_column_types(
     plain = run_plain(c, g_rec, e_rec)
     assert run_garbled(c, g_rec, e_rec) == plain
     if not all(present):  # both values are needed
-        assert plain[Party.EVALUATOR] == {"withheld": True, "larger": None, "gap": None}
+        assert plain[Party.EVALUATOR] == {
+            "withheld": True,
+            "withheld_by": {"larger": "missing_value", "gap": "missing_value"},
+            "larger": None,
+            "gap": None,
+        }
         return
     gv, ev = Fraction(g, 2**g_frac), Fraction(e)
     assert plain[Party.EVALUATOR] == {"withheld": False, "larger": larger(gv, ev), "gap": float(abs(gv - ev))}
@@ -104,7 +109,11 @@ def test_equal_values_and_a_missing_value() -> None:
     c = compare_circuit(False)
     assert run_plain(c, records("g", rate=[40]), records("e", rate=[5]))[Party.EVALUATOR]["larger"] == "equal"
     missing = run_plain(c, records("g", rate=[]), records("e", rate=[5]))
-    assert missing[Party.EVALUATOR] == {"withheld": True, "larger": None}
+    assert missing[Party.EVALUATOR] == {
+        "withheld": True,
+        "withheld_by": {"larger": "missing_value"},
+        "larger": None,
+    }
     assert run_garbled(c, records("g", rate=[]), records("e", rate=[5])) == missing
 
 

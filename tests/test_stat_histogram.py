@@ -81,7 +81,7 @@ def test_values_at_the_bin_edges() -> None:
 def test_the_disclosure_rule_withholds_every_bin() -> None:
     c = histogram_circuit(min_count=3)
     got = run_plain(c, records("g", x=[0]), records("e", x=[1, 50]))
-    assert got[Party.GARBLER] == {"withheld": True, "counts": None}
+    assert got[Party.GARBLER] == {"withheld": True, "withheld_by": {"counts": "min_count"}, "counts": None}
     assert run_garbled(c, records("g", x=[0]), records("e", x=[1, 50])) == got
 
 

@@ -84,8 +84,15 @@ def test_join_matches_the_clear_computation(
     )
     ref = clear_join(g_keys, e_keys, spend)
     ev = got[Party.EVALUATOR]
-    if ref["matches"] == 0:  # a mean over no rows withholds everything
-        assert ev == {"withheld": True, "matches": None, "sum": None, "mean": None, "above": None}
+    if ref["matches"] == 0:  # a mean over no rows withholds the mean only (issue 14: rules per output)
+        assert ev == {
+            "withheld": False,
+            "withheld_by": {"mean": "no_rows"},
+            "matches": 0,
+            "sum": 0.0,
+            "mean": None,
+            "above": 0,
+        }
         return
     assert ev == {"withheld": False, **ref}
     assert got[Party.GARBLER] == {"withheld": False, "matches": ref["matches"]}
@@ -106,12 +113,14 @@ def test_plain_garbled_and_the_clear_join_agree_for_any_capacities(
     ref = clear_join(g_keys, e_keys, spend)
     if ref["matches"] == 0:
         assert plain[Party.EVALUATOR] == {
-            "withheld": True,
-            "matches": None,
-            "sum": None,
+            "withheld": False,
+            "withheld_by": {"mean": "no_rows"},
+            "matches": 0,
+            "sum": 0.0,
             "mean": None,
-            "above": None,
+            "above": 0,
         }
+        assert plain[Party.GARBLER] == {"withheld": False, "matches": 0}
     else:
         assert plain[Party.EVALUATOR] == {"withheld": False, **ref}
         assert plain[Party.GARBLER] == {"withheld": False, "matches": ref["matches"]}
@@ -157,6 +166,7 @@ def test_disclosure_rule_withholds_small_joins_inside_the_circuit() -> None:
     )
     assert two[Party.EVALUATOR]["withheld"] is True and two[Party.GARBLER] == {
         "withheld": True,
+        "withheld_by": {"matches": "min_count"},
         "matches": None,
     }
     three = run_plain(

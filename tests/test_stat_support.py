@@ -63,9 +63,11 @@ def key_records(
 
 
 def encode(compiled: CompiledStatistic, g: Records, e: Records) -> dict[Party, np.ndarray]:
+    """Both parties' input bits; the random bits of any noise come from a fixed seed, so that a plain and a
+    garbled run of the same records draw the same noise (a node draws them from the OS on every encoding)."""
     return {
-        Party.GARBLER: encode_inputs(compiled, Party.GARBLER, g),
-        Party.EVALUATOR: encode_inputs(compiled, Party.EVALUATOR, e),
+        Party.GARBLER: encode_inputs(compiled, Party.GARBLER, g, random_source=np.random.default_rng(1)),
+        Party.EVALUATOR: encode_inputs(compiled, Party.EVALUATOR, e, random_source=np.random.default_rng(2)),
     }
 
 

@@ -20,10 +20,13 @@ from jointstat.circuit.library import blocks
 from jointstat.circuit.library.registry import register_statistic
 from jointstat.circuit.library.statistic import BuildContext, ColumnStatistic, OutputSpec, StatisticResult
 from jointstat.circuit.parameters import ColumnParameters
+from pydantic import Field
 
 
 class SpreadParameters(ColumnParameters):
-    name: Literal["spread"]
+    name: Literal["spread"] = Field(
+        description="spread: the largest value minus the smallest, over both tables"
+    )
 
 
 def tree_reduce(bld: Builder, keys: Bits, take_larger: bool) -> Bits:

@@ -65,10 +65,39 @@ def _mapping(loader: yaml.SafeLoader, node: yaml.MappingNode, deep: bool = False
 _UniqueKeyLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _mapping)
 
 
-def read_yaml(text: str) -> Any:
-    """Parse YAML safely, refusing duplicate keys; raises ``ValueError`` with "not valid YAML: line L, column C: …"."""
+class WrittenFloat(float):
+    """A YAML decimal number that remembers the text it was written as (``text``), for fields that take the
+    decimal exactly (a privacy parameter, a threshold): as a binary float 0.1 is no longer one tenth."""
+
+    text: str
+
+    def __new__(cls, value: float, text: str) -> WrittenFloat:
+        number = super().__new__(cls, value)
+        number.text = text
+        return number
+
+
+class _TextKeepingLoader(_UniqueKeyLoader):
+    pass
+
+
+def _written_float(loader: yaml.SafeLoader, node: yaml.ScalarNode) -> float:
+    value = loader.construct_yaml_float(node)
+    text = str(node.value).replace("_", "")
+    return WrittenFloat(value, text) if value == value and abs(value) != float("inf") else value
+
+
+_TextKeepingLoader.add_constructor("tag:yaml.org,2002:float", _written_float)
+
+
+def read_yaml(text: str, *, keep_number_text: bool = False) -> Any:
+    """Parse YAML safely, refusing duplicate keys; raises ``ValueError`` with "not valid YAML: line L, column C: …".
+
+    With ``keep_number_text`` every finite decimal number is a ``WrittenFloat`` carrying the text as written.
+    """
+    loader = _TextKeepingLoader if keep_number_text else _UniqueKeyLoader
     try:
-        return yaml.load(text, Loader=_UniqueKeyLoader)  # a SafeLoader subclass
+        return yaml.load(text, Loader=loader)  # a SafeLoader subclass
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         where = f"line {mark.line + 1}, column {mark.column + 1}: " if mark is not None else ""
@@ -80,22 +109,34 @@ def field_path(loc: tuple[Any, ...], data: Any = None) -> str:
     """('jobs', 1, 'schedule', 'cron') → 'jobs[1].schedule.cron'.
 
     Union members' descriptions that pydantic puts in the location are dropped; with ``data`` (the validated input)
-    so are discriminator tags (the value of a ``type`` or ``name`` field that chose the union member).
+    so are discriminator tags (the value of a ``type``, ``name`` or ``compute`` field that chose the union member).
     """
     out = ""
     node = data
-    for item in loc:
+    for i, item in enumerate(loc):
+        if data is not None and _union_tag(node, item, last=i == len(loc) - 1):
+            continue
         if isinstance(item, int):
             out += f"[{item}]"
             node = node[item] if isinstance(node, list) and 0 <= item < len(node) else None
             continue
-        if isinstance(node, dict) and item not in node and item in (node.get("type"), node.get("name")):
+        tags = (node.get("type"), node.get("name"), node.get("compute")) if isinstance(node, dict) else ()
+        if isinstance(node, dict) and item not in node and item in tags:
             continue
         if "[" in str(item) or "," in str(item):
             continue
         out += ("." if out else "") + str(item)
         node = node.get(item) if isinstance(node, dict) else None
     return out
+
+
+def _union_tag(node: Any, item: Any, *, last: bool) -> bool:
+    """Whether ``item`` of an error location is a union member's tag rather than a key or index of the data: a
+    name that is not a key of the mapping it is read from (unless it is the last item: a missing field), or a name
+    read from a list or a single value."""
+    if isinstance(node, dict):
+        return item not in node and not last
+    return isinstance(item, str) and isinstance(node, list | str | int | float)
 
 
 def pydantic_message(err: Any) -> str:

@@ -6,12 +6,19 @@ Theory of operation
 built in) read the columns the statistic needs and check every value against its column's type:
 
 * ``unsigned`` / ``signed`` — a decimal integer inside the column's range;
-* ``fixed`` — a decimal number, scaled by 2^fraction_bits and rounded to the nearest integer (ties to even),
-  whose scaled value is inside the column's range;
+* ``fixed`` — a decimal number, scaled by 2^fraction_bits, whose scaled value is inside the column's range. A value
+  with more precision than the column holds (41.26 in a column with one fraction bit, whose steps are halves) is
+  refused, unless the column says how to round it: ``rounding: nearest`` (a tie to the even neighbour), ``down``
+  (toward −∞), ``up`` (toward +∞) or ``toward_zero``; integer columns take the same rule for a decimal such as 3.5;
 * ``boolean`` — true/false, yes/no, 1/0 (any case);
-* ``key`` — any non-empty text (surrounding spaces removed; letter case folded when the column says
-  ``fold_case``), hashed as HMAC-SHA-256(secret, "jointstat key v1" ‖ 0x00 ‖ UTF-8 text) and truncated to the
-  column's width: the first 8 bytes of the MAC as a big-endian integer, shifted right by 64 − width.
+* ``identifier`` (formerly ``key``) — any non-empty text (surrounding spaces removed; letter case folded when the
+  column says ``fold_case``), hashed as HMAC-SHA-256(secret, "jointstat key v1" ‖ 0x00 ‖ UTF-8 text) and
+  truncated to the column's width: the first 8 bytes of the MAC as a big-endian integer, shifted right by
+  64 − width.
+
+CSV files: a header row, then one record per line; a record is numbered by the file line it starts on (the header
+is line 1), so errors point at the line an editor shows. Blank lines at the end of the file are ignored; a blank
+line followed by more records is refused (it is more likely a missing record than decoration).
 
 The key secret is shared by the two organisations (each node holds it in a secret file; it is not in the
 manifest); without it the hashed keys cannot be linked to identifiers. Collisions: two distinct identifiers share
@@ -21,15 +28,17 @@ keyed join counts about n_g·n_e/2^w false matches in expectation — at 32 bits
 is about 1, at 48 bits about 2^-16. ``collision_probability`` computes the first; ``manifest.expected_false_matches``
 the second, and a manifest bounds it (``matching.max_false_matches``).
 
-Any problem raises ``InputError`` naming the file (or the query, with the URL's password hidden), the row and the
-column — never the value, which is private — and nothing is encoded, so nothing reaches the peer.
+Any problem raises ``InputError`` naming the file and line (or the query, with the URL's password hidden, and
+the row) and the column — never the value, which is private — and nothing is encoded, so nothing reaches the peer.
 
-``encode_inputs`` then sorts the rows when the statistic needs them sorted (ascending by the encoded value, ties
-in file order), checks uniqueness when it forbids duplicate keys, pads to the table's capacity and lays the bits
-out exactly as ``jointstat.circuit.compile`` declares them: one validity bit per row (1 for a record, 0 for
-padding), then each column as rows × bits, least significant bit first; padding rows are all zero. The circuit
-therefore reveals the capacity, never the true count. Encoding is deterministic: the same records, secret and
-manifest always give the same bits.
+``encode_inputs`` then checks uniqueness where a statistic forbids duplicate keys, and lays the bits out exactly as
+``jointstat.circuit.compile`` declares them: one validity bit per row (1 for a record, 0 for padding), then, for
+each row order, each column as rows × bits, least significant bit first, the rows sorted in that order
+(ascending by the encoded value, ties in file order) and padded to the table's capacity with all-zero rows. The
+circuit therefore reveals the capacity, never the true count. The table's part of the encoding is deterministic:
+the same records, secret and manifest always give the same bits. When the manifest noises an output, the layout
+ends with the party's random bits for the noise: drawn fresh from the operating system's CSPRNG (``os.urandom``)
+at every encoding, so every attempt of a run draws new noise; they are never logged, stored or reused.
 """
 
 from __future__ import annotations
@@ -41,15 +50,16 @@ import math
 import re
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
-from decimal import ROUND_HALF_EVEN, Decimal, InvalidOperation
+from decimal import ROUND_CEILING, ROUND_DOWN, ROUND_FLOOR, ROUND_HALF_EVEN, Decimal, InvalidOperation
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from jointstat.circuit.agreement import BaseColumn, KeyColumn, Table
-from jointstat.circuit.compile import CompiledStatistic
+from jointstat.circuit.agreement import BaseColumn, IdentifierColumn, Table
+from jointstat.circuit.compile import COLUMN, RANDOM, VALID, CompiledStatistic
 from jointstat.circuit.encode import int_to_bits
+from jointstat.circuit.library.noise import random_bits
 from jointstat.circuit.model import Party
 
 KEY_DOMAIN = b"jointstat key v1\x00"
@@ -57,17 +67,25 @@ MIN_SECRET_BYTES = 16
 _INTEGER = re.compile(r"[+-]?\d+")
 _DECIMAL = re.compile(r"[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d+)?")
 _TRUE = {"1", "true", "t", "yes", "y"}
+ROUNDING_MODES = {
+    "nearest": ROUND_HALF_EVEN,
+    "down": ROUND_FLOOR,
+    "up": ROUND_CEILING,
+    "toward_zero": ROUND_DOWN,
+}
 _FALSE = {"0", "false", "f", "no", "n"}
 
 
 class InputError(ValueError):
-    """Bad input: names the source (file or query), the row and the column, never the value."""
+    """Bad input: names the source (file or query), the line or row and the column, never the value."""
 
-    def __init__(self, source: str, message: str, row: int | None = None, column: str | None = None) -> None:
-        self.source, self.row, self.column = source, row, column
+    def __init__(
+        self, source: str, message: str, row: int | None = None, column: str | None = None, unit: str = "row"
+    ) -> None:
+        self.source, self.row, self.column, self.unit = source, row, column, unit
         where = source
         if row is not None:
-            where += f", row {row}"
+            where += f", {unit} {row}"
         if column is not None:
             where += f", column {column!r}"
         super().__init__(f"{where}: {message}")
@@ -79,8 +97,9 @@ class Records:
 
     source: str
     columns: dict[str, list[int]]
-    rows: list[int]  # the source row number of each record (1 = first data row)
+    rows: list[int]  # where each record is: its file line (CSV, the header is line 1) or its row number (SQL)
     keys: dict[str, list[str]] = field(default_factory=dict, repr=False)  # normalised identifiers (private)
+    unit: str = "row"  # "line" for a file, "row" for a query result
 
     def __len__(self) -> int:
         return len(self.rows)
@@ -123,10 +142,10 @@ def _parse(col: BaseColumn, value: Any, secret: bytes | None) -> tuple[int, str 
     kind = col.type
     if value is None or (isinstance(value, str) and not value.strip()):
         raise ValueError("the value is missing")
-    if isinstance(col, KeyColumn):
+    if isinstance(col, IdentifierColumn):
         text = normalise_key(str(value), col.fold_case)
         if not text:
-            raise ValueError("the key is empty")
+            raise ValueError("the identifier is empty")
         assert secret is not None
         return hash_key(secret, text, col.bits), text
     if kind == "boolean":
@@ -139,51 +158,64 @@ def _parse(col: BaseColumn, value: Any, secret: bytes | None) -> tuple[int, str 
             return 0, None
         raise ValueError("not a boolean (true/false, yes/no or 1/0)")
     lo, hi = col.range()
-    if kind in ("unsigned", "signed"):
-        if isinstance(value, bool):
-            raise ValueError("not an integer")
-        if isinstance(value, int):
-            v = value
-        elif isinstance(value, float | Decimal):
-            if not math.isfinite(float(value)) or value != int(value):
-                raise ValueError("not an integer")
-            v = int(value)
-        else:
-            text = str(value).strip()
-            if not _INTEGER.fullmatch(text):
-                raise ValueError("not an integer")
-            v = int(text)
-        what = f"{kind} {col.bits}-bit column"
-    else:  # fixed
-        if isinstance(value, bool):
-            raise ValueError("not a number")
-        text = repr(value) if isinstance(value, float) else str(value).strip()
-        if not _DECIMAL.fullmatch(text):
-            raise ValueError("not a number")
-        try:
-            scaled = (Decimal(text) * (1 << col.frac)).quantize(Decimal(1), rounding=ROUND_HALF_EVEN)
-        except InvalidOperation:
-            raise ValueError("not a number") from None
-        v = int(scaled)
-        step = Decimal(1) / (1 << col.frac)
-        lo_v, hi_v = Decimal(lo) * step, Decimal(hi) * step
-        what = f"fixed-point column ({lo_v.normalize():f} to {hi_v.normalize():f})"
-        if not lo <= v <= hi:
-            raise ValueError(f"the value is outside the range of this {what}")
-        return v, None
+    if isinstance(value, bool):
+        raise ValueError("not an integer" if kind != "fixed" else "not a number")
+    if kind in ("unsigned", "signed") and isinstance(value, int):
+        v = value
+    elif kind in ("unsigned", "signed") and isinstance(value, str) and _INTEGER.fullmatch(value.strip()):
+        v = int(value.strip())
+    else:
+        v = _scaled(col, value)
     if not lo <= v <= hi:
-        raise ValueError(f"the value is outside the range of this {what} ({lo} to {hi})")
+        if kind == "fixed":
+            step = Decimal(1) / (1 << col.frac)
+            lo_v, hi_v = (Decimal(lo) * step).normalize(), (Decimal(hi) * step).normalize()
+            raise ValueError(
+                f"the value is outside the range of this fixed-point column ({lo_v:f} to {hi_v:f})"
+            )
+        raise ValueError(
+            f"the value is outside the range of this {kind} {col.bits}-bit column ({lo} to {hi})"
+        )
     return v, None
+
+
+def _scaled(col: BaseColumn, value: Any) -> int:
+    """A decimal value × 2^fraction_bits as an integer, rounded only as the column's ``rounding`` says."""
+    what = "not a number" if col.type == "fixed" else "not an integer"
+    if isinstance(value, float | Decimal) and not math.isfinite(float(value)):
+        raise ValueError(what)
+    text = repr(value) if isinstance(value, float) else str(value).strip()
+    if not _DECIMAL.fullmatch(text):
+        raise ValueError(what)
+    try:
+        scaled = Decimal(text) * (1 << col.frac)
+        whole = scaled.to_integral_value()
+    except InvalidOperation:
+        raise ValueError(what) from None
+    if whole == scaled:
+        return int(whole)
+    rule = col.rounding_rule
+    if rule is None:
+        step = (
+            "whole numbers" if col.frac == 0 else f"steps of 2^-{col.frac} = {Decimal(1) / (1 << col.frac)}"
+        )
+        raise ValueError(
+            f"the value has more precision than the column holds ({step}); round it in the source, or say in the "
+            "manifest how the column rounds (rounding: nearest, down, up or toward_zero)"
+        )
+    return int(scaled.quantize(Decimal(1), rounding=ROUNDING_MODES[rule]))
 
 
 def _records(
     source: str,
     header: Sequence[str],
-    rows: Iterable[Sequence[Any]],
+    rows: Iterable[tuple[int, Sequence[Any]]],
     table: Table,
     columns: Sequence[str] | None,
     secret: bytes | None,
+    unit: str = "row",
 ) -> Records:
+    """Validated records from numbered rows (each row's number is where it is: a file line or a result row)."""
     names = [c.name for c in table.columns] if columns is None else list(columns)
     index: dict[str, int] = {}
     for name in names:
@@ -195,26 +227,53 @@ def _records(
         if len(positions) > 1:
             raise InputError(source, "the header names this column more than once", column=name)
         index[name] = positions[0]
-    cols = {name: table.column(name) for name in names}
-    if any(c.type == "key" for c in cols.values()):  # type: ignore[union-attr]
+    cols: dict[str, BaseColumn] = {}
+    for name in names:
+        col = table.column(name)
+        assert col is not None
+        cols[name] = col
+    if any(c.identifier for c in cols.values()):
         secret = check_secret(secret, source)
-    out = Records(source, {n: [] for n in names}, [], {n: [] for n in names if cols[n].type == "key"})  # type: ignore[union-attr]
-    for number, row in enumerate(rows, start=1):
+    out = Records(source, {n: [] for n in names}, [], {n: [] for n in names if cols[n].identifier}, unit)
+    for number, row in rows:
         if len(out) >= table.capacity:
-            raise InputError(source, f"more rows than the table's capacity of {table.capacity}", row=number)
+            raise InputError(
+                source, f"more rows than the table's capacity of {table.capacity}", row=number, unit=unit
+            )
         for name in names:
             pos = index[name]
             if pos >= len(row):
-                raise InputError(source, "the row has no value for this column", row=number, column=name)
+                raise InputError(
+                    source, "the row has no value for this column", row=number, column=name, unit=unit
+                )
             try:
-                value, key_text = _parse(cols[name], row[pos], secret)  # type: ignore[arg-type]
+                value, key_text = _parse(cols[name], row[pos], secret)
             except ValueError as exc:
-                raise InputError(source, str(exc), row=number, column=name) from None
+                raise InputError(source, str(exc), row=number, column=name, unit=unit) from None
             out.columns[name].append(value)
             if key_text is not None:
                 out.keys[name].append(key_text)
         out.rows.append(number)
     return out
+
+
+def _csv_rows(reader: Any, source: str) -> Iterable[tuple[int, list[str]]]:
+    """Each record with the file line it starts on; blank lines at the end are skipped, others refused."""
+    blank: int | None = None
+    line = reader.line_num  # the lines read so far (the header's)
+    for row in reader:
+        start, line = line + 1, reader.line_num
+        if not row or (len(row) == 1 and not row[0].strip()):
+            blank = start if blank is None else blank
+            continue
+        if blank is not None:
+            raise InputError(
+                source,
+                "the line is blank, and records follow it (only blank lines at the end are ignored)",
+                row=blank,
+                unit="line",
+            )
+        yield start, row
 
 
 def read_csv(
@@ -228,7 +287,7 @@ def read_csv(
             header = next(reader, None)
             if header is None:
                 raise InputError(source, "the file is empty (a header row is expected)")
-            return _records(source, header, reader, table, columns, key_secret)
+            return _records(source, header, _csv_rows(reader, source), table, columns, key_secret, "line")
     except OSError as exc:
         raise InputError(source, f"cannot read the file: {exc.strerror or exc}") from None
     except UnicodeDecodeError:
@@ -273,7 +332,8 @@ def read_sql(
         with engine.connect() as conn:
             result = conn.execute(text(query))
             header = list(result.keys())
-            return _records(source, header, (tuple(r) for r in result), table, columns, key_secret)
+            numbered = ((i, tuple(r)) for i, r in enumerate(result, start=1))
+            return _records(source, header, numbered, table, columns, key_secret)
     except SQLAlchemyError as exc:
         detail = str(getattr(exc, "orig", None) or type(exc).__name__).splitlines()[0]
         raise InputError(source, f"the query failed: {detail}") from None
@@ -284,29 +344,51 @@ def read_sql(
 # -- encoding ------------------------------------------------------------------------------------------------------
 
 
-def encode_inputs(compiled: CompiledStatistic, party: Party, records: Records) -> np.ndarray:
-    """The party's input bits for the compiled circuit (layout in ``jointstat.circuit.compile``)."""
+def encode_inputs(
+    compiled: CompiledStatistic,
+    party: Party,
+    records: Records,
+    *,
+    random_source: np.random.Generator | None = None,
+) -> np.ndarray:
+    """The party's input bits for the compiled job (layout in ``jointstat.circuit.compile``). The random bits of
+    the noise, if any, come from the OS CSPRNG (``random_source`` only in tests, to repeat a run)."""
     party = Party(party)
     layout = compiled.inputs[party]
     table = compiled.manifest.table(party)
     n = len(records)
     if n > layout.capacity:
-        raise InputError(records.source, f"more rows than the table's capacity of {layout.capacity}", row=n)
+        raise InputError(
+            records.source,
+            f"more rows than the table's capacity of {layout.capacity}",
+            row=n,
+            unit=records.unit,
+        )
     for name in layout.columns:
         if name not in records.columns:
             raise InputError(records.source, "the records do not include this column", column=name)
-    order = list(range(n))
-    needs = layout.needs
-    if needs.unique:
-        _check_unique(records, needs.unique, table.column(needs.unique))  # type: ignore[arg-type]
-    if needs.sort_by:
-        keys = records.columns[needs.sort_by]
-        order.sort(key=lambda i: keys[i])
-    parts = [np.zeros(layout.capacity, dtype=np.uint8)]
-    parts[0][:n] = 1
-    for f in layout.fields[1:]:
-        values = [records.columns[f.name][i] for i in order] + [0] * (layout.capacity - n)
-        parts.append(int_to_bits(values, f.width).reshape(-1))
+    for name in layout.unique:
+        col = table.column(name)
+        assert col is not None
+        _check_unique(records, name, col)
+    orders: dict[str | None, list[int]] = {}
+    parts = []
+    for f in layout.fields:
+        if f.kind == VALID:
+            valid = np.zeros(layout.capacity, dtype=np.uint8)
+            valid[:n] = 1
+            parts.append(valid)
+        elif f.kind == COLUMN:
+            if f.order not in orders:
+                order = list(range(n))
+                if f.order is not None:
+                    keys = records.columns[f.order]
+                    order.sort(key=lambda i: keys[i])
+                orders[f.order] = order
+            values = [records.columns[f.name][i] for i in orders[f.order]] + [0] * (layout.capacity - n)
+            parts.append(int_to_bits(values, f.width).reshape(-1))
+        elif f.kind == RANDOM:
+            parts.append(random_bits(1, f.width, random_source).reshape(-1))
     bits = np.concatenate(parts)
     if bits.shape[0] != layout.bits:
         raise AssertionError(
@@ -324,18 +406,20 @@ def _check_unique(records: Records, name: str, col: BaseColumn) -> None:
         if j is None:
             seen[v] = i
             continue
-        first, again = records.rows[j], records.rows[i]
+        first, again, unit = records.rows[j], records.rows[i], records.unit
         if texts is not None and texts[i] != texts[j]:
             raise InputError(
                 records.source,
-                f"different keys in rows {first} and {again} have the same {col.bits}-bit hash; use a wider key"
-                " column (see the collision note in jointstat.circuit.inputs)",
+                f"different identifiers in {unit}s {first} and {again} have the same {col.bits}-bit hash; use a"
+                " wider identifier column (see the collision note in jointstat.circuit.inputs)",
                 row=again,
                 column=name,
+                unit=unit,
             )
         raise InputError(
             records.source,
-            f"duplicate value (also in row {first}); this statistic needs each value once per party",
+            f"duplicate value (also in {unit} {first}); this statistic needs each value once per party",
             row=again,
             column=name,
+            unit=unit,
         )

@@ -20,6 +20,12 @@ bandwidth; the OT and output bytes are added at the bandwidth. It leaves out net
 computation and the base OTs' public-key work (tens of milliseconds); both parties are assumed to be as fast as
 this machine.
 
+Several statistics (``statistics:``) run as one program in one session: the totals are the job's, and
+``statistics`` breaks the AND gates (and the garbled-table bytes they cost) down by statistic, each counted where
+its work was first done (work two statistics share counts once, for the first), with the release gates apart;
+each statistic's ε and the run's total ε (``CompiledStatistic.epsilon``, exact decimals) say what one run spends
+of a privacy budget.
+
 Memory: a party holds the labels of the bits its program holds (``ProgramSize.label_bytes``: 16 bytes per bit at
 the program's peak, its input labels and the temporaries of its widest call) plus the process itself
 (``PROCESS_BYTES``, measured). ``check_limits`` refuses a job above a node's memory or time limit with the
@@ -34,6 +40,7 @@ from dataclasses import dataclass
 
 from jointstat.circuit.compile import CompiledStatistic
 from jointstat.circuit.model import Party
+from jointstat.exact import decimal_text
 
 LABEL_BYTES = 16
 TABLE_BYTES_PER_AND = 32
@@ -121,7 +128,10 @@ def plan(compiled: CompiledStatistic, bandwidth: float, speed: Speed) -> dict[st
     rest = (g_to_e - tables + e_to_g) / bandwidth
     return {
         "job": compiled.manifest.job.name,
-        "statistic": compiled.statistic.name,
+        "statistic": compiled.kinds,
+        "statistics": breakdown(compiled),
+        "and_gates_release": int(size.extra.get("and_gates_release", 0)),
+        "epsilon": decimal_text(compiled.epsilon()),
         "and_gates": and_gates,
         "xor_gates": size.xor_gates + size.not_gates,
         "and_depth": size.and_depth,
@@ -139,6 +149,27 @@ def plan(compiled: CompiledStatistic, bandwidth: float, speed: Speed) -> dict[st
             " bytes at the given bandwidth; no latency, OT-extension computation or base-OT public-key work"
         ),
     }
+
+
+def breakdown(compiled: CompiledStatistic) -> list[dict[str, object]]:
+    """Each statistic's share of the job: its name and kind, AND gates, garbled-table bytes, outputs each party
+    receives (by address) and ε (module docstring)."""
+    by_statistic = compiled.size().extra.get("and_gates_by_statistic", {})
+    out: list[dict[str, object]] = []
+    for part in compiled.parts:
+        use = part.use
+        and_gates = int(by_statistic.get(use.label or use.kind, 0))
+        out.append(
+            {
+                "name": use.label or use.kind,
+                "kind": use.kind,
+                "and_gates": and_gates,
+                "table_bytes": TABLE_BYTES_PER_AND * and_gates,
+                "outputs": {p.role_name: [use.address(n) for n in part.received(p)] for p in Party},
+                "epsilon": decimal_text(part.statistic.epsilon()),
+            }
+        )
+    return out
 
 
 def memory_bytes(compiled: CompiledStatistic) -> int:

@@ -1,4 +1,4 @@
-"""``jointstat manifest schema|check|digest`` and ``jointstat plan``."""
+"""``jointstat manifest schema|check|digest|diff|reference`` and ``jointstat plan``."""
 
 from __future__ import annotations
 
@@ -8,6 +8,7 @@ import sys
 from pathlib import Path
 from typing import TYPE_CHECKING
 
+from jointstat.exact import decimal_text
 from jointstat.problems import UserError
 
 if TYPE_CHECKING:
@@ -58,26 +59,39 @@ def _false_matches_line(manifest: Manifest) -> str | None:
 
 
 def _check(args: argparse.Namespace) -> int:
+    from jointstat.circuit.manifest import deprecations
     from jointstat.circuit.plan import LimitError, check_limits, memory_bytes
 
     compiled = _compile(args.file)
     m = compiled.manifest
     size = compiled.size()
-    print(f"{args.file}: ok — job {m.job.name} version {m.job.version}, statistic {compiled.statistic.name}")
+    what = "statistic" if len(compiled.parts) == 1 else "statistics"
+    print(f"{args.file}: ok — job {m.job.name} version {m.job.version}, {what} {compiled.kinds}")
     print(
         f"  program: {size.and_gates:,} AND gates, {size.xor_gates + size.not_gates:,} free XOR/NOT gates,"
         f" about {_size(memory_bytes(compiled))} of memory per party"
     )
     for role in ("garbler", "evaluator"):
-        names = getattr(m.outputs, role)
+        names = [part.use.address(n) for part in compiled.parts for n in getattr(part.use.outputs, role)]
         print(
             f"  {role} ({getattr(m.parties, role).name}) receives: {', '.join(['withheld', *names]) if names else '—'}"
         )
-    if m.disclosure.min_count:
-        print(f"  disclosure: every result withheld below a count of {m.disclosure.min_count}")
+    for part in compiled.parts:
+        rule = part.use.disclosure.min_count
+        if rule:
+            whose = "every result" if len(compiled.parts) == 1 else f"every output of {part.title}"
+            print(f"  disclosure: {whose} withheld below a count of {rule}")
+    for address, eps in compiled.noisy_outputs.items():
+        print(f"  noise: {address} with discrete Laplace noise at ε = {decimal_text(eps)}")
+    if compiled.noisy_outputs:
+        print(
+            f"  privacy: one run spends ε = {decimal_text(compiled.epsilon())} (the sum over its noisy outputs)"
+        )
     line = _false_matches_line(m)
     if line is not None:
         print(f"  {line}")
+    for note in deprecations(m):
+        print(f"  note: {note}")
     try:
         check_limits(compiled)
     except LimitError as exc:
@@ -87,6 +101,72 @@ def _check(args: argparse.Namespace) -> int:
 
 def _digest(args: argparse.Namespace) -> int:
     print(_compile(args.file).digest)
+    return 0
+
+
+def _diff(args: argparse.Namespace) -> int:
+    """Field by field, where two manifests' canonical forms differ; exit 0 when their digests agree, 1 when not."""
+    from jointstat.circuit.compile import compile_manifest
+    from jointstat.circuit.manifest import canonical_differences
+
+    a, b = _load(args.a), _load(args.b)
+    differences = canonical_differences(a, b)
+    same_digest = compile_manifest(a).digest == compile_manifest(b).digest
+    if args.json:
+        json.dump(
+            {
+                "same_digest": same_digest,
+                "differences": [{"field": f, "a": x, "b": y} for f, x, y in differences],
+            },
+            sys.stdout,
+            ensure_ascii=False,
+        )
+        sys.stdout.write("\n")
+        return 0 if same_digest else 1
+    if same_digest:
+        print(f"{args.a} and {args.b} have the same digest: both describe the same job")
+        return 0
+    if not differences:
+        print(
+            f"{args.a} and {args.b} have the same canonical form but different programs: the two nodes run "
+            "different versions of jointstat (compare `jointstat --version` on both)"
+        )
+        return 1
+    print(f"{len(differences)} field{'s' if len(differences) != 1 else ''} differ ({args.a} | {args.b}):")
+    for path, x, y in differences:
+        print(f"  {path}: {_shown(x)} | {_shown(y)}")
+    return 1
+
+
+def _shown(value: object) -> str:
+    from jointstat.circuit.manifest import ABSENT
+
+    return "(absent)" if value is ABSENT else json.dumps(value, ensure_ascii=False, sort_keys=True)
+
+
+def _reference(args: argparse.Namespace) -> int:
+    """Write (or with --check compare) the manifest reference page."""
+    from jointstat.circuit.reference_page import render
+
+    text = render()
+    out = Path(args.out)
+    if args.check:
+        try:
+            current = out.read_text(encoding="utf-8")
+        except OSError as exc:
+            raise UserError(f"{out}: cannot read the page: {exc.strerror}") from None
+        if current != text:
+            raise UserError(f"{out} is out of date: run `jointstat manifest reference --out {out}`")
+        print(f"{out} is up to date")
+        return 0
+    tmp = out.with_name(out.name + ".tmp")
+    try:
+        tmp.write_text(text, encoding="utf-8")
+        tmp.replace(out)  # whole or not at all
+    except OSError as exc:
+        tmp.unlink(missing_ok=True)
+        raise UserError(f"{out}: cannot write the page: {exc.strerror}") from None
+    print(f"wrote {out}")
     return 0
 
 
@@ -118,9 +198,9 @@ def _plan(args: argparse.Namespace) -> int:
             print(f"jointstat: {refused}", file=sys.stderr)
             return 2
         return 0
-    print(
-        f"plan for {args.file} (job {figures['job']}, statistic {figures['statistic']}) at {args.bandwidth}"
-    )
+    several = len(compiled.parts) > 1
+    what = "statistics" if several else "statistic"
+    print(f"plan for {args.file} (job {figures['job']}, {what} {figures['statistic']}) at {args.bandwidth}")
     rows = [
         ("AND gates", f"{figures['and_gates']:,}"),
         ("XOR/NOT gates (free)", f"{figures['xor_gates']:,}"),
@@ -131,10 +211,22 @@ def _plan(args: argparse.Namespace) -> int:
         ("memory per party", _size(int(figures["memory_bytes"]))),  # type: ignore[arg-type]
         ("garbling speed here", f"{figures['garble_and_per_s']:,} AND/s"),
         ("estimated time", f"{figures['est_seconds']:,} s"),
+        ("privacy ε per run", str(figures["epsilon"])),
     ]
     width = max(len(k) for k, _ in rows)
     for key, value in rows:
         print(f"  {key:<{width}}  {value}")
+    if several:
+        print("  by statistic (AND gates where its work was first done; the release gates apart):")
+        parts: list[dict[str, object]] = figures["statistics"]  # type: ignore[assignment]
+        name_width = max(len(str(p["name"])) for p in parts)
+        for p in parts:
+            print(
+                f"    {p['name']!s:<{name_width}}  {p['kind']!s:<10}  {p['and_gates']:>12,} AND  "
+                f"{_size(int(p['table_bytes'])):>24}  ε {p['epsilon']}"  # type: ignore[call-overload]
+            )
+        release = int(figures["and_gates_release"])  # type: ignore[call-overload]
+        print(f"    {'release rules':<{name_width}}  {'':<10}  {release:>12,} AND")
     print(f"  assumes: {figures['assumes']}")
     line = _false_matches_line(compiled.manifest)
     if line is not None:
@@ -163,6 +255,20 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     digest = which.add_parser("digest", help="print the digest pinning the manifest and its program")
     digest.add_argument("file")
     digest.set_defaults(handler=_digest)
+
+    diff = which.add_parser(
+        "diff", help="list the fields where two manifests differ (why their digests differ)"
+    )
+    diff.add_argument("a", metavar="A")
+    diff.add_argument("b", metavar="B")
+    diff.add_argument("--json", action="store_true", help="print one JSON object")
+    diff.set_defaults(handler=_diff)
+    reference = which.add_parser("reference", help="write the manifest reference page (docs/manifest.md)")
+    reference.add_argument(
+        "--out", default="docs/manifest.md", help="where to write it (default docs/manifest.md)"
+    )
+    reference.add_argument("--check", action="store_true", help="only say whether the page is up to date")
+    reference.set_defaults(handler=_reference)
 
     plan = sub.add_parser("plan", help="gate counts, traffic and time estimate of a manifest's job")
     plan.add_argument("file")

@@ -37,14 +37,43 @@ Sink = Callable[[memoryview], None]
 Source = Callable[[int], memoryview]
 
 
-class TableProducer:
-    """Runs a garbling program and hands out its tables chunk by chunk (module docstring)."""
+class _Resumable:
+    """A program run in a greenlet that switches back to whoever resumed it (module docstring)."""
 
-    def __init__(self, run: Callable[[Sink], Any]) -> None:
-        self._run = run
+    def __init__(self) -> None:
         self._glet: greenlet | None = None
         self.finished = False
         self.result: Any = None
+
+    def _body(self) -> None:
+        raise NotImplementedError
+
+    def _step(self) -> Any:
+        """Run the program until it switches back (returns what it passed) or ends (None, ``finished`` set)."""
+        if self.finished:
+            return None
+        if self._glet is None:
+            self._glet = greenlet(self._body)
+        self._glet.parent = getcurrent()  # the program switches back to its parent: this caller
+        try:
+            out = self._glet.switch()
+        except BaseException:
+            self.finished = True  # a failed program is not run again
+            self._glet = None
+            raise
+        if self._glet.dead:
+            self.finished = True
+            self._glet = None
+            return None
+        return out
+
+
+class TableProducer(_Resumable):
+    """Runs a garbling program and hands out its tables chunk by chunk (module docstring)."""
+
+    def __init__(self, run: Callable[[Sink], Any]) -> None:
+        super().__init__()
+        self._run = run
         self.bytes_out = 0
 
     def _body(self) -> None:
@@ -66,37 +95,21 @@ class TableProducer:
 
     def next_chunk(self) -> bytes | None:
         """The next chunk of tables, garbling as far as needed; None once the program has finished."""
-        if self.finished:
-            return None
-        if self._glet is None:
-            self._glet = greenlet(self._body)
-        self._glet.parent = getcurrent()  # the program switches back to its parent: this caller
-        try:
-            out = self._glet.switch()
-        except BaseException:
-            self.finished = True  # a failed program is not run again
-            self._glet = None
-            raise
-        if self._glet.dead:
-            self.finished = True
-            self._glet = None
-            return None
+        out: bytes | None = self._step()
         return out
 
 
-class TableConsumer:
+class TableConsumer(_Resumable):
     """Runs an evaluating program, feeding it the table stream as it arrives (module docstring)."""
 
     def __init__(self, run: Callable[[Source], Any], total: int | None = None) -> None:
+        super().__init__()
         self._run = run
         self._total = total
         self._pieces: deque[memoryview] = deque()
         self._offset = 0  # bytes of the first piece already taken
         self._available = 0
         self._closed = False
-        self._glet: greenlet | None = None
-        self.finished = False
-        self.result: Any = None
         self.bytes_in = 0
         self.bytes_taken = 0
 
@@ -139,22 +152,11 @@ class TableConsumer:
     def _resume(self) -> None:
         if self.finished:
             return
-        if self._glet is None:
-            self._glet = greenlet(self._body)
-        self._glet.parent = getcurrent()  # the program switches back to its parent: this caller
-        try:
-            self._glet.switch()
-        except BaseException:
-            self.finished = True  # a failed program is not run again
-            self._glet = None
-            raise
-        if self._glet.dead:
-            self.finished = True
-            self._glet = None
-            if self._available:
-                raise GarbleError(
-                    f"received {self._available} table bytes more than the program's AND gates need"
-                )
+        self._step()
+        if self.finished and self._available:
+            raise GarbleError(
+                f"received {self._available} table bytes more than the program's AND gates need"
+            )
 
     def start(self) -> None:
         """Run the program as far as it goes before it needs tables (to the end if it needs none)."""

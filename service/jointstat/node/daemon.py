@@ -352,7 +352,10 @@ class Node:
         for task in list(self._jobs):
             task.cancel()
         if self._server is not None:
-            await self._server.stop(None)
+            # A graceful stop: calls that have ended keep their last frames (the abort saying why) until the peer
+            # has read them; an immediate stop would cancel them on the peer's side with an internal error.
+            grace = state.limits.abort_grace_s if state is not None else None
+            await self._server.stop(grace)
         pending = set(self._jobs) | (set(self.runner.served) if self.runner is not None else set())
         if pending:
             _, left = await asyncio.wait(pending, timeout=STOP_TIMEOUT_S)

@@ -6,7 +6,9 @@ The node writes one JSON file per completed run (``write_result``, format ``join
 result directory, owner-only and atomically (``secrets.write_private_file``: a reader sees the whole file or
 none), named ``<UTC time>-<session id>.json`` so that names sort by time. It holds the job, the session, this
 node's role, the manifest digest, the times, ``withheld`` (the disclosure rule's flag, or null when this node
-receives no output) and the named outputs as the compiled manifest decoded them. ``read_result`` parses
+receives no output), ``withheld_by`` (each withheld output and the rule that withheld it, e.g. ``{"spend.mean":
+"no_rows"}``; empty when nothing is) and the named outputs as the compiled manifest decoded them (addressed
+``<statistic>.<output>`` when the manifest lists several statistics). ``read_result`` parses
 one file strictly: the format tag, the job, the session, the role, the times, the ``withheld`` flag and the named
 outputs; anything else is a ``ResultFileError`` naming the file and the field (never a value). ``job_results``
 lists the newest ``limit`` files of a directory and reads each, giving them oldest first by their finish time
@@ -20,7 +22,7 @@ from __future__ import annotations
 
 import json
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -57,6 +59,7 @@ class ResultRecord:
     finished_at: datetime
     withheld: bool | None  # None: this node receives no output of the job (only the peer does)
     outputs: dict[str, OutputValue]
+    withheld_by: dict[str, str] = field(default_factory=dict)  # output → the rule that withheld it
 
 
 def write_result(
@@ -81,7 +84,8 @@ def write_result(
         "scheduled_for": scheduled_for.astimezone(UTC).isoformat(),
         "finished_at": finished_at.astimezone(UTC).isoformat(),
         "withheld": outputs.get("withheld") if outputs else None,
-        "outputs": {k: v for k, v in outputs.items() if k != "withheld"},
+        "withheld_by": dict(outputs.get("withheld_by") or {}),
+        "outputs": {k: v for k, v in outputs.items() if k not in ("withheld", "withheld_by")},
     }
     data = (json.dumps(body, indent=2) + "\n").encode("utf-8")
     return write_private_file(directory / f"{stamp}-{session_id}.json", data)
@@ -130,6 +134,11 @@ def read_result(path: str | Path) -> ResultRecord:
     outputs = body.get("outputs")
     if not isinstance(outputs, dict) or not all(isinstance(k, str) for k in outputs):
         raise ResultFileError(p, "outputs is not an object of named values")
+    withheld_by = body.get("withheld_by", {})
+    if not isinstance(withheld_by, dict) or not all(
+        isinstance(k, str) and isinstance(v, str) for k, v in withheld_by.items()
+    ):
+        raise ResultFileError(p, "withheld_by is not an object of output names and rules")
     return ResultRecord(
         path=p,
         job=_text(p, body, "job"),
@@ -139,6 +148,7 @@ def read_result(path: str | Path) -> ResultRecord:
         finished_at=_time(p, body, "finished_at"),
         withheld=withheld,
         outputs=dict(outputs),
+        withheld_by=dict(withheld_by),
     )
 
 

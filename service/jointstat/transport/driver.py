@@ -35,7 +35,10 @@ half-closes and waits for the end of the call; the other side, when it can resum
 for that half-close, which tells it the initiator is done too. On a local failure the abort frame jumps the queue
 (frames still waiting are dropped), is given ``abort_grace_s`` to leave, then the stream is closed. Cancelling the
 task that runs ``drive`` fails the session with ``cancelled`` (``connection lost`` if the peer went away), sends the
-abort if it can and cancels the stream. ``Shutdown`` fails it with ``peer_shutdown``.
+abort if it can and cancels the stream. ``Shutdown`` fails it with ``peer_shutdown``. A link whose write fails is
+called lost only once the reader has had ``abort_grace_s`` to deliver a peer's abort frame that arrived before the
+stream closed (or has found the stream lost itself), so the recorded reason is the peer's (``peer_shutdown``, say)
+rather than the closed stream.
 
 Cuts and resume. A link is *lost* when its stream fails, ends before the session did, or goes quiet for
 ``idle_timeout_s``. If the session cannot be resumed — ``resume_grace_s`` is 0, or this side's OT has not ended
@@ -357,6 +360,10 @@ class _Driver:
             try:
                 await link.stream.write(data)
             except StreamLost as exc:
+                # The peer may have ended the stream right after an abort frame that says why (a node shutting
+                # down, say): give the reader ``abort_grace_s`` to hand it over, or to find the stream lost itself,
+                # before calling the link lost here.
+                await self._reader_catches_up(link)
                 link.lose(f"sending failed: {exc}")
                 return
             self.counters.bytes_sent += len(data) + GRPC_MESSAGE_PREFIX
@@ -366,6 +373,18 @@ class _Driver:
             self._room.set()
             self._progress()
             self._notify()
+
+    async def _reader_catches_up(self, link: _Link) -> None:
+        """Wait up to ``abort_grace_s`` until the session has ended or the reader has lost the link."""
+        ended = asyncio.create_task(self._ended.wait())
+        lost = asyncio.create_task(link.lost.wait())
+        try:
+            await asyncio.wait(
+                {ended, lost}, timeout=self.limits.abort_grace_s, return_when=asyncio.FIRST_COMPLETED
+            )
+        finally:
+            ended.cancel()
+            lost.cancel()
 
     async def _close_link(self, link: _Link, *, completed: bool) -> None:
         for task in link.tasks:

@@ -28,6 +28,15 @@ operations of Kolesnikov–Sadeghi–Schneider (CANS 2009); with free XOR only A
 * ``at_least`` — a word against a public bound (a release condition, a threshold, a bin edge): the comparator
   against a constant folds, and a bound outside the word's range is a constant with no gate at all;
   ``encoded_bound`` turns a decimal bound written in a manifest into the integer on a column's encoded scale.
+* ``compare_constant`` — a number against an exact decimal v with an operator, exactly on the values the number
+  can hold: with F fraction bits the stored integer X stands for X/2^F, so x ≥ v ⇔ X ≥ ⌈v·2^F⌉,
+  x > v ⇔ X ≥ ⌊v·2^F⌋ + 1, x ≤ v and x < v are their negations (free), and x == v needs v·2^F to be a whole
+  number k (then X == k, n − 1 AND gates; otherwise it never holds). ``clamp`` bounds numbers to [L, U] with
+  two comparisons against constants and two multiplexers.
+* ``percentile`` — the p-th percentile of a sorted list of numbers whose first n are valid (n secret): the rank
+  j = ⌊(n − 1)·a/b⌋ and remainder r for p/100 = a/b, an oblivious selection of x_j and x_{j+1}, and the method's
+  combination (numpy.percentile's lower, higher, midpoint and linear); used by the pooled quantile (after the
+  merge) and by compare on each party's own sorted rows.
 
 Numbers (``Number``) carry their wires with their signedness and fraction bits (the value is the two's-complement
 integer over 2^fraction_bits); ``common_format`` is the one scale and width a set of formats fits without loss, and
@@ -41,6 +50,7 @@ import math
 from collections.abc import Callable
 from dataclasses import dataclass
 from decimal import Decimal
+from fractions import Fraction
 
 import numpy as np
 
@@ -511,3 +521,135 @@ def encoded_bound(value: float, frac: int, *, strict: bool = False) -> int:
     decimal written (a threshold or a bin edge of a manifest)."""
     scaled = Decimal(repr(float(value))) * (1 << frac)
     return math.floor(scaled) + 1 if strict else math.ceil(scaled)
+
+
+def compare_constant(bld: Builder, x: Number, op: str, value: Fraction) -> Bits:
+    """x op value per lane, exactly on the values x can hold (see the module docstring); op is one of
+    >, >=, <, <=, ==, !=."""
+    scaled = value * (1 << x.frac)
+    floor = scaled.numerator // scaled.denominator
+    ceil = -((-scaled.numerator) // scaled.denominator)
+    if op in (">=", "<"):
+        holds = at_least(bld, x.wires, ceil, signed=x.signed)
+        return holds if op == ">=" else bld.not_(holds)
+    if op in (">", "<="):
+        holds = at_least(bld, x.wires, floor + 1, signed=x.signed)
+        return holds if op == ">" else bld.not_(holds)
+    if op not in ("==", "!="):
+        raise ValueError(f"compare_constant: unknown operator {op!r}")
+    w = x.width
+    lanes = x.wires.shape[:-1]
+    lo, hi = (-(1 << (w - 1)), (1 << (w - 1)) - 1) if x.signed else (0, (1 << w) - 1)
+    if scaled.denominator != 1 or not lo <= floor <= hi:
+        equal = bld.zeros(lanes)
+    else:
+        equal = bld.equal(x.wires, bld.constant_word(floor % (1 << w), w).broadcast_to((*lanes, w)))
+    return equal if op == "==" else bld.not_(equal)
+
+
+def clamp(bld: Builder, x: Number, low: int, high: int) -> Number:
+    """Each lane's value bounded to [low, high] (encoded integers, low ≤ high): below low it is low, above high
+    it is high. Both comparisons read x itself (x < low implies x ≤ high), then two multiplexers."""
+    w = x.width
+    lanes = x.wires.shape[:-1]
+
+    def word(v: int) -> Bits:
+        return bld.constant_word(v % (1 << w), w).broadcast_to((*lanes, w))
+
+    lo, hi = (-(1 << (w - 1)), (1 << (w - 1)) - 1) if x.signed else (0, (1 << w) - 1)
+    below = bld.not_(at_least(bld, x.wires, low, signed=x.signed))
+    above = at_least(bld, x.wires, high + 1, signed=x.signed)
+    wires = x.wires
+    if low > lo:
+        wires = bld.select(below, wires, word(max(low, lo)))
+    if high < hi:
+        wires = bld.select(above, wires, word(min(high, hi)))
+    return x.with_wires(wires)
+
+
+# -- percentiles of a sorted list ---------------------------------------------------------------------------------
+
+
+def rank_fraction(p: float) -> Fraction:
+    """p / 100 as an exact fraction of the decimal written in the manifest."""
+    return Fraction(repr(float(p))) / 100
+
+
+def percentile_width(width: int, frac: int, method: str, precision_bits: int) -> tuple[int, int]:
+    """(bits, fraction bits) of a percentile of numbers of ``width`` bits and ``frac`` fraction bits."""
+    if method == "midpoint":
+        return width + 1, frac + 1
+    if method == "linear":
+        return width + precision_bits, frac + precision_bits
+    return width, frac
+
+
+def percentile(
+    bld: Builder,
+    values: Bits,
+    n_minus_1: Bits,
+    fraction: Fraction,
+    *,
+    method: str,
+    signed: bool,
+    precision_bits: int,
+    width: int,
+) -> Bits:
+    """The percentile p (``fraction`` = p/100) of ``values`` (m, w) sorted ascending whose first n are the valid
+    ones, given n − 1 (see the module docstring); ``width`` bits as ``percentile_width`` says."""
+    m = values.shape[0]
+    idx_bits = max(1, (m - 1).bit_length())
+    j, r, denominator = _rank(bld, n_minus_1, fraction, idx_bits)
+    onehot = one_hot(bld, j, m)
+    x_j = select(bld, onehot, values)
+    x_next = select(bld, onehot[:-1], values[1:]) if m > 1 else x_j
+    r_nonzero = bld.reduce_or(r) if r.shape[-1] else bld.zeros(())
+    return _interpolate(bld, method, x_j, x_next, r, r_nonzero, denominator, signed, precision_bits, width)
+
+
+def _rank(bld: Builder, n_minus_1: Bits, frac: Fraction, idx_bits: int) -> tuple[Bits, Bits, int]:
+    """(j, r, b) with j = ⌊(n − 1)·a/b⌋ (``idx_bits`` bits) and r = (n − 1)·a mod b."""
+    a, b = frac.numerator, frac.denominator
+    if a == 0:
+        return bld.zeros(idx_bits), bld.zeros(0), 1
+    t = multiply_full(bld, n_minus_1, bld.constant_word(a, a.bit_length()))
+    if b == 1:
+        return bld.extend(t, idx_bits), bld.zeros(0), 1
+    if b & (b - 1) == 0:
+        s = b.bit_length() - 1
+        return bld.extend(t[s:], idx_bits), t[:s], b
+    # j < n ≤ 2^idx_bits, so the low idx_bits quotient bits are the whole quotient.
+    q, r = divide(bld, t, bld.constant_word(b, b.bit_length()), quotient_bits=idx_bits)
+    return q, r, b
+
+
+def _interpolate(
+    bld: Builder,
+    method: str,
+    x_j: Bits,
+    x_next: Bits,
+    r: Bits,
+    r_nonzero: Bits,
+    b: int,
+    signed: bool,
+    e: int,
+    width: int,
+) -> Bits:
+    if method == "lower":
+        return x_j
+    higher = bld.select(r_nonzero, x_j, x_next)
+    if method == "higher":
+        return higher
+    w = x_j.shape[-1]
+    if method == "midpoint":
+        return bld.add(bld.extend(x_j, w + 1, signed=signed), bld.extend(higher, w + 1, signed=signed))
+    if r.shape[-1] == 0:  # the rank is always whole
+        return bld.extend(concat([bld.zeros(e), x_j]), width, signed=signed)
+    # x_{j+1} ≥ x_j whenever r > 0, so the difference is unsigned; when r = 0 it is multiplied by zero.
+    d = bld.sub(x_next, x_j)
+    prod = multiply_full(bld, d, r)
+    shifted = concat([bld.zeros(e), prod])
+    part, _ = divide(bld, shifted, bld.constant_word(b, b.bit_length()), quotient_bits=w + e)
+    base = bld.extend(concat([bld.zeros(e), x_j]), w + e + 1, signed=signed)
+    total = bld.add(base, bld.extend(part, w + e + 1))
+    return bld.extend(total, width, signed=signed)

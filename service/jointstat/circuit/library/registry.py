@@ -63,6 +63,11 @@ def parameter_models() -> list[type[StatisticParameters]]:
     return [cls.Parameters for _, cls in sorted(_REGISTRY.items())]
 
 
+def statistics_for(manifest: Manifest) -> list[Statistic[Any]]:
+    """Every statistic of the manifest, in order, each knowing where the manifest wrote it."""
+    return [_REGISTRY[use.kind](use.params, manifest, use) for use in manifest.uses()]
+
+
 def statistic_for(manifest: Manifest) -> Statistic[Any]:
-    cls = _REGISTRY[manifest.statistic.name]
-    return cls(manifest.statistic, manifest)
+    """The first statistic (the only one of a single-statistic manifest)."""
+    return statistics_for(manifest)[0]
