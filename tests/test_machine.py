@@ -19,8 +19,8 @@ import pytest
 from jointstat import machine
 from jointstat.machine import DONE, FAILED, NEW, START, TableMachine, Transition
 from jointstat.ot import base, extension
+from jointstat.protocol import evaluator, garbler, session
 from jointstat.protocol import frames as fr
-from jointstat.protocol import session
 
 # -- the dispatch ------------------------------------------------------------------------------------------------------
 
@@ -219,8 +219,8 @@ def test_the_table_parser_reads_conditions_and_event_details_as_the_tables_write
         extension.ExtensionReceiver,
         extension.CorrelatedOTSender,
         extension.CorrelatedOTReceiver,
-        session.GarblerSession,
-        session.EvaluatorSession,
+        garbler.GarblerSession,
+        evaluator.EvaluatorSession,
     ],
 )
 def test_every_party_is_run_by_the_one_table_machine_and_names_only_handlers_it_has(cls: type) -> None:

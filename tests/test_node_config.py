@@ -678,3 +678,60 @@ def test_node_check_reports_field_problems_before_looking_at_files(
         f"{path}: jobs[0].schedule.cron: not a five-field cron expression "
         "(minute hour day-of-month month day-of-week)"
     ]
+
+
+# -- resuming after a cut (node.resume) ----------------------------------------------------------------------------
+
+
+def test_resume_defaults_keep_a_cut_session_a_minute_with_a_64_mib_replay_buffer() -> None:
+    from jointstat.node.jobs import session_limits
+
+    config = parse_node_config(yaml.safe_dump(base_config()), "node.yaml", Path("/srv/alpha"))
+    resume = config.node.resume
+    assert (resume.grace_seconds, resume.replay_buffer_bytes, resume.restarts) == (60.0, 64 * 2**20, 3)
+    limits = session_limits(config.node)
+    assert (limits.deadline_s, limits.resume_grace_s) == (3600.0, 60.0)
+    assert (limits.reconnect_initial_s, limits.reconnect_max_s) == (0.25, 10.0)
+
+
+def test_resume_settings_reach_the_transports_limits() -> None:
+    from jointstat.node.jobs import session_limits
+
+    data = base_config()
+    data["node"]["resume"] = {
+        "grace_seconds": 0,
+        "replay_buffer_mib": 16,
+        "reconnect_first_seconds": 0.5,
+        "reconnect_max_seconds": 4,
+        "restarts": 0,
+    }
+    config = parse_node_config(yaml.safe_dump(data), "node.yaml", Path("/srv/alpha"))
+    limits = session_limits(config.node)
+    assert (limits.resume_grace_s, limits.reconnect_initial_s, limits.reconnect_max_s) == (0.0, 0.5, 4.0)
+    assert config.node.resume.replay_buffer_bytes == 16 * 2**20 and config.node.resume.restarts == 0
+
+
+def test_resume_problems_name_their_field_paths() -> None:
+    data = base_config()
+    data["node"]["resume"] = {
+        "grace_seconds": -1,
+        "replay_buffer_mib": 1,
+        "reconnect_first_seconds": "fast",
+        "restarts": 1000,
+        "keep_forever": True,
+    }
+    assert problems_of(data) == [
+        "node.resume.grace_seconds: must be between 0 and 86400",
+        "node.resume.replay_buffer_mib: must be between 4 and 65536",
+        "node.resume.reconnect_first_seconds: input should be a valid number",
+        "node.resume.restarts: must be between 0 and 100",
+        "node.resume.keep_forever: unknown field",
+    ]
+
+
+def test_the_longest_reconnection_wait_may_not_be_shorter_than_the_first() -> None:
+    data = base_config()
+    data["node"]["resume"] = {"reconnect_first_seconds": 5, "reconnect_max_seconds": 1}
+    assert problems_of(data) == [
+        "node.resume.reconnect_max_seconds: must be at least reconnect_first_seconds (5)"
+    ]

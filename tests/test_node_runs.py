@@ -6,7 +6,8 @@ with the reason, who ended it and the phase, and the store's reason reads ``<cod
 later outcome (a cancellation after the conclusion) changes nothing. The live view and the metrics show the outcome
 only once the log and the store hold it. A detail the log will not take keeps its reason with no words; long hex
 tokens are cut from a detail. A failure of the node's own machinery is stored as ``failed`` (``internal``) and
-leaves the log as it was.
+leaves the log as it was. The cuts, resumes and refused resume attempts of a session's connection are logged as
+``link_event`` records inside the one session, in order, once, and counted in the metrics.
 """
 
 from __future__ import annotations
@@ -41,6 +42,7 @@ from jointstat.node.runs import (
 from jointstat.node.spending import Budgets
 from jointstat.node.store import JobStore
 from jointstat.transport import pki
+from jointstat.transport import stream as link
 
 NODE, PEER, JOB = "saltmarsh-gauges", "teal-valley-weather", "rainfall-totals"  # invented
 NOW = datetime(2026, 4, 1, 3, 5, tzinfo=UTC)
@@ -254,3 +256,36 @@ async def test_a_failure_of_the_nodes_machinery_is_stored_as_internal_and_leaves
     assert [r["kind"] for r in bench.logged(run)] == ["session_started"]
     assert bench.stored(run).reason == "internal: OSError: no space left on device"
     assert (bench.sessions[run.sid].status, bench.aborted_count("internal")) == ("failed", 1.0)
+
+
+async def test_a_sessions_cuts_resumes_and_refused_attempts_are_logged_inside_it_once_and_counted(
+    bench: Bench,
+) -> None:
+    run = bench.run(9)
+    await bench.recorders.opened(run)
+    bench.recorders.followed(run)
+    await bench.recorders.announced(run)
+    events = (
+        link.LinkEvent(link.CUT, 1.25, 40, 38, "receiving failed: UNAVAILABLE: Socket closed"),
+        link.LinkEvent(link.REFUSED, 1.5, 40, 38, f"the resume proof does not verify ({'cd' * 20})"),
+        link.LinkEvent(link.RESUMED, 1.75, 40, 38, "resumed on attempt 1 (3 frames resent)"),
+    )
+    await bench.recorders.linked(run, events)
+    await bench.recorders.linked(run, events)  # once only
+    await bench.recorders.ended(run, Outcome(ABORTED, "deadline", "the session deadline passed"))
+    records = [r for r in bench.logged(run) if r["kind"] == "link_event"]
+    assert [(r["body"]["event"], r["body"]["at_us"]) for r in records] == [
+        ("cut", 1_250_000),
+        ("resume_refused", 1_500_000),
+        ("resumed", 1_750_000),
+    ]
+    assert records[1]["body"]["detail"] == "the resume proof does not verify (…)"
+    labels = {"job": JOB, "role": "evaluator"}
+    counted = [
+        bench.metrics.registry.get_sample_value(f"jointstat_link_{name}_total", labels)
+        for name in ("cuts", "resumes", "resumes_refused")
+    ]
+    assert counted == [1.0, 1.0, 1.0]
+    bench.log.close()
+    report = verify_log(bench.log_path.read_bytes())
+    assert report.ok and (report.sessions[run.sid].cuts, report.sessions[run.sid].resumes) == (1, 1)

@@ -33,8 +33,8 @@ def test_a_hello_round_trips_with_every_field_and_its_signature_covers_them() ->
     kind, frame = fr.decode(data)
     assert kind == fr.HELLO
     assert (
-        frame.hello.protocol_version == fr.PROTOCOL_VERSION == 3
-    )  # 2: signed hellos; 3: programs and their digest
+        frame.hello.protocol_version == fr.PROTOCOL_VERSION == 4
+    )  # 2: signed hellos; 3: programs and their digest; 4: acknowledgements and resume
     assert frame.hello.session_id == SID and frame.hello.manifest_digest == bytes(range(32))
     assert frame.hello.program_digest == program_digest
     assert frame.hello.role == fr.role_to_wire(Party.EVALUATOR)

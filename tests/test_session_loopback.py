@@ -27,7 +27,7 @@ from jointstat.circuit.program import Program
 from jointstat.circuit.reference import aes128, sha256
 from jointstat.protocol import AbortReason, EvaluatorSession, GarblerSession, signer, verifier
 from jointstat.protocol import frames as fr
-from jointstat.protocol.session import Session
+from jointstat.protocol.sides import Session
 from jointstat.statements import transcript_signature_ok
 from jointstat.transport import Limits, SessionIds, SessionRefused, SessionServer, run_client
 from jointstat.transport.channel import MESSAGE_OPTIONS, METHOD_PATH, ClientStream

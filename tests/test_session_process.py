@@ -16,7 +16,7 @@ import grpc
 import numpy as np
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 from jointstat.bench.garble import wide_program
-from jointstat.bench.session import SESSION_ID, node_process, node_specs
+from jointstat.bench.session import node_process, node_specs, session_id
 from jointstat.circuit.model import Party
 from jointstat.protocol import AbortReason, EvaluatorSession, signer, verifier
 from jointstat.protocol import frames as fr
@@ -53,9 +53,11 @@ async def test_killing_the_garbler_process_mid_stream_aborts_the_evaluator_with_
     try:
         assert parent.poll(120), "the garbler process did not start"
         port = parent.recv()["port"]
+        parent.send({"run": 1, "linked": False})  # the garbler process expects the session of run 1
+        assert parent.poll(60) and parent.recv() == {"ready": 1}
         program = wide_program(1 << 18, 4096)  # the program the garbler process measures and runs
         evaluator = EvaluatorSession(
-            session_id=SESSION_ID,
+            session_id=session_id(1, 1),
             program=program,
             manifest_digest=e_spec["manifest_digest"],
             inputs=np.zeros(program.n_inputs(Party.EVALUATOR), dtype=np.uint8),

@@ -32,7 +32,7 @@ from jointstat.garble.halfgates import TABLE_BYTES
 from jointstat.protocol import AbortReason, EvaluatorSession, GarblerSession, signer, verifier
 from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import Transcript
-from jointstat.protocol.session import Session
+from jointstat.protocol.sides import Session
 from jointstat.transport.driver import BackgroundHasher, Limits, SessionResult, Shutdown, StreamLost, drive
 
 from tests.circuits import random_bits

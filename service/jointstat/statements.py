@@ -1,13 +1,17 @@
-"""The statements a node signs with its Ed25519 key in a session: its hello and the transcript digest.
+"""The statements a node signs with its Ed25519 key in a session: its hello, each resume and the transcript digest.
 
 Theory of operation
 -------------------
-A node's long-term signing key (Ed25519, RFC 8032, through ``cryptography``) signs two statements in every
-session, and nothing else of the session:
+A node's long-term signing key (Ed25519, RFC 8032, through ``cryptography``) signs these statements in a session,
+and nothing else of the session:
 
 * ``hello`` — at the first frame, over the SHA-256 of the hello's fields (``protocol.frames.hello_digest``): it
   proves that the peer holds the signing key this node has configured for it, before any oblivious transfer and
   before any decoding information moves;
+* ``resume`` — at the first frame of a stream that resumes the session after a cut, over the SHA-256 of the resume
+  frame's fields and of the transcript digest through the oblivious transfer (``protocol.frames.resume_digest``):
+  it proves that the node resuming the session is the one that ran it (it holds the peer's signing key and the
+  transcript so far), for this attempt only;
 * ``transcript`` — at the last frame, over the transcript digest (``protocol.frames.Transcript``): both nodes
   attest to the same run; the session log records both signatures and an auditor checks them again.
 
@@ -33,16 +37,18 @@ from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey,
 from jointstat.canonical import canonicalize
 
 HELLO: Final = "hello"
+RESUME: Final = "resume"
 TRANSCRIPT: Final = "transcript"
 CONTEXTS: dict[str, bytes] = {
     HELLO: b"jointstat hello v1\x00",
+    RESUME: b"jointstat resume v1\x00",
     TRANSCRIPT: b"jointstat transcript v1\x00",
 }
 DIGEST_BYTES = 32
 MAX_SESSION_CHARS = 128
 SIGNATURE_BYTES = 64
 
-StatementKind = Literal["hello", "transcript"]
+StatementKind = Literal["hello", "resume", "transcript"]
 
 
 @dataclass(frozen=True)
@@ -104,6 +110,7 @@ def transcript_signature_ok(key: Ed25519PublicKey, session_id: str, digest: byte
 __all__ = [
     "CONTEXTS",
     "HELLO",
+    "RESUME",
     "TRANSCRIPT",
     "Statement",
     "session_text",

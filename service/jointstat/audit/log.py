@@ -280,6 +280,26 @@ class SessionLog:
         body: dict[str, object] = {"reason": reason, "by": by, "phase": phase, "detail": detail}
         return self._typed(Kind.SESSION_ABORTED, session_id, body)
 
+    def link_event(
+        self,
+        session_id: str,
+        *,
+        event: Literal["cut", "resumed", "resume_refused", "resume_attempt_failed"],
+        at_us: int,
+        frames_sent: int,
+        frames_received: int,
+        detail: str = "",
+    ) -> int:
+        """Record a cut of the session's connection, a resume, or a refused or failed resume attempt."""
+        body: dict[str, object] = {
+            "event": event,
+            "at_us": at_us,
+            "frames_sent": frames_sent,
+            "frames_received": frames_received,
+            "detail": detail,
+        }
+        return self._typed(Kind.LINK_EVENT, session_id, body)
+
     def close(self) -> None:
         """Sign a closing checkpoint (unless the last record is one) and close the file."""
         with self._lock:

@@ -21,9 +21,11 @@ The session rules (:class:`SessionRules`) are shared by the writer, which refuse
 which reports a log that does: a session starts once; phases may follow; one ``transcript`` record (the node's own
 digest and its signature over it); then one ``peer_attestation`` (the peer's signature over the same digest, from
 the finish frame); then ``session_completed``. ``session_aborted`` may end a session at any point before that.
-Nothing follows a session's end. A session of a job with a privacy budget also records its spend, anywhere while it
-is open: ``privacy_budget`` ``reserved`` (once, before anything can be released), then at most one ``spent`` (the
-result was released) or ``returned`` (nothing was), of the same ε.
+``link_event`` records — a cut of the session's connection, a resume, a refused resume attempt — may come anywhere
+while the session is open: a resumed session is one session with one transcript, and its cuts and resumes are
+recorded inside it. A session of a job with a privacy budget also records its spend, anywhere while it is open:
+``privacy_budget`` ``reserved`` (once, before anything can be released), then at most one ``spent`` (the result was
+released) or ``returned`` (nothing was), of the same ε. Nothing follows a session's end.
 
 The transcript statement both nodes sign (and send in their finish frames) is defined once, in
 ``jointstat.statements``, which the protocol and this package both use (``statements.sign_transcript`` and
@@ -76,6 +78,7 @@ class Kind(StrEnum):
     PEER_ATTESTATION = "peer_attestation"
     SESSION_COMPLETED = "session_completed"
     SESSION_ABORTED = "session_aborted"
+    LINK_EVENT = "link_event"
     CHECKPOINT = "checkpoint"
     PRIVACY_BUDGET = "privacy_budget"
 
@@ -150,6 +153,34 @@ class SessionCompleted(RecordBody):
     duration_us: Count
 
 
+def _check_plain_detail(detail: str) -> str:
+    if any(ord(c) < 0x20 for c in detail):
+        raise ValueError("control characters are not allowed")
+    if _looks_like_key_material(detail):
+        raise ValueError(
+            "contains a long hex or base64 token, which could be key material or a label; "
+            "write a fixed message and put digests in their own fields"
+        )
+    return detail
+
+
+class LinkEventRecord(RecordBody):
+    """A cut of the session's connection, a resume on a new one, or a resume attempt refused or failed
+    (``transport.driver.LinkEvent``): when (microseconds since the session started), the logical frames this node
+    had sent and taken then, and how."""
+
+    event: Literal["cut", "resumed", "resume_refused", "resume_attempt_failed"]
+    at_us: Count
+    frames_sent: Count
+    frames_received: Count
+    detail: Annotated[str, StringConstraints(max_length=MAX_DETAIL)]
+
+    @field_validator("detail")
+    @classmethod
+    def _plain_detail(cls, detail: str) -> str:
+        return _check_plain_detail(detail)
+
+
 class SessionAborted(RecordBody):
     reason: Word
     by: Literal["self", "peer"]
@@ -159,14 +190,7 @@ class SessionAborted(RecordBody):
     @field_validator("detail")
     @classmethod
     def _plain_detail(cls, detail: str) -> str:
-        if any(ord(c) < 0x20 for c in detail):
-            raise ValueError("control characters are not allowed")
-        if _looks_like_key_material(detail):
-            raise ValueError(
-                "contains a long hex or base64 token, which could be key material or a label; "
-                "write a fixed message and put digests in their own fields"
-            )
-        return detail
+        return _check_plain_detail(detail)
 
 
 class PrivacyBudget(RecordBody):
@@ -196,6 +220,7 @@ BODIES: dict[Kind, type[RecordBody]] = {
     Kind.PEER_ATTESTATION: PeerAttestation,
     Kind.SESSION_COMPLETED: SessionCompleted,
     Kind.SESSION_ABORTED: SessionAborted,
+    Kind.LINK_EVENT: LinkEventRecord,
     Kind.CHECKPOINT: Checkpoint,
     Kind.PRIVACY_BUDGET: PrivacyBudget,
 }
@@ -305,6 +330,8 @@ class SessionState:
     aborted_by: str | None = None
     budget: str | None = None  # the last privacy_budget action of the session, if any
     epsilon: str | None = None
+    cuts: int = 0  # link_event records of cuts and resumes (a resumed session is still one session)
+    resumes: int = 0
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -320,6 +347,8 @@ class SessionState:
             "aborted_by": self.aborted_by,
             "privacy_budget": self.budget,
             "epsilon": self.epsilon,
+            "cuts": self.cuts,
+            "resumes": self.resumes,
         }
 
 
@@ -389,6 +418,12 @@ class SessionRules:
             assert isinstance(body, PhaseFinished)
             if commit:
                 state.phases.append(body.model_dump())
+        elif kind is Kind.LINK_EVENT:
+            assert isinstance(body, LinkEventRecord)
+            if commit and body.event == "cut":
+                state.cuts += 1
+            elif commit and body.event == "resumed":
+                state.resumes += 1
         elif kind is Kind.TRANSCRIPT:
             assert isinstance(body, Transcript)
             if state.digest is not None:

@@ -1,4 +1,5 @@
-"""``jointstat bench session``: a whole two-party session between two node processes on loopback, over TLS.
+"""``jointstat bench session``: a whole two-party session between two node processes, over TLS on loopback or
+through the link emulator.
 
 Theory of operation: the benchmark makes a private CA, two node certificates and two Ed25519 signing keys, then
 starts two processes (``spawn``, so each is a fresh interpreter with its own memory): the garbler serves on
@@ -16,9 +17,23 @@ high-water mark), ``*_session_peak_rss_mib`` the peak during the session alone (
 through ``/proc/self/clear_refs``, just before; None where the kernel does not allow it). Each side checks its own
 outputs against the same program on the plain backend after the session (``outputs_correct``).
 
-Link: after the session the evaluator pulls ``PUMP_BYTES`` from the garbler over a fresh stream of the same kind
-(gRPC, mutual TLS, 1 MiB messages, loopback, the same two processes) and times it: ``link_bytes_per_s`` is what
-the transport itself carries here, and ``link_utilisation`` the session's bytes per second over that.
+Link, on loopback (no ``--link``): after the session the evaluator pulls ``PUMP_BYTES`` from the garbler over a
+fresh stream of the same kind (gRPC, mutual TLS, 1 MiB messages, loopback, the same two processes) and times it:
+``link_bytes_per_s`` is what the transport itself carries here, and ``link_utilisation`` the session's bytes per
+second over that.
+
+Link, emulated (``--link RATE --rtt TIME``): the evaluator connects through the link emulator in a process of its
+own (``harness.link.LinkProcess``: that rate each way, half the round trip as each one-way delay), the garbler
+serves behind it; sessions may resume after a cut (``resume_grace_s`` 30 s). ``link_bytes_per_s`` is the emulated
+rate, ``link_utilisation`` the session's bytes in its busier direction (garbler to evaluator: the tables) per
+second of ``wall_s`` over that rate, ``link_carried_utilisation`` the same from the emulator's own count of the
+bytes it delivered (TLS and HTTP/2 framing included); ``link_mean_late_us``/``link_max_late_us`` how late the
+emulator's delivery timers fired (its error on the delay), ``flow_*`` what the garbler's flow window measured
+(``transport.flow``). With ``--cuts N`` the same session runs twice in the same two processes, first through an
+uncut link, then through one that cuts every connection (TCP resets) after each N+1-th of the tables has reached
+the evaluator: the figures are the cut run's, ``slowdown`` its wall time over the uncut run's
+(``baseline_wall_s``), ``resumed`` the resumes the evaluator made, ``restarted`` the sessions started afresh after
+a cut before OT had ended (a new session id, fresh randomness), ``outputs_correct`` both runs' outputs.
 """
 
 from __future__ import annotations
@@ -42,6 +57,8 @@ PUMP_MESSAGE = 1 << 20
 PUMP_PATH = "/jointstat.bench.Pump/Stream"
 SESSION_ID = b"bench-session-loopback"
 CHILD_TIMEOUT_S = 1800.0
+RESUME_GRACE_S = 30.0
+MAX_ATTEMPTS = 3  # a session and up to two restarts after cuts before OT
 
 
 def _peak_rss_mib() -> float:
@@ -67,24 +84,44 @@ def _reset_peak_rss() -> bool:
 
 
 def node_process(spec: dict[str, Any], conn: Connection) -> None:
-    """One node process: build the circuit, run one side of the session, send the figures back."""
+    """One node process: build the program, then run the sessions the parent asks for, sending the figures back."""
     try:
-        conn.send(asyncio.run(_node_async(spec, conn)))
+        asyncio.run(_node_async(spec, conn))
     except BaseException as exc:
         conn.send({"error": f"{spec['role']}: {type(exc).__name__}: {exc}"})
     finally:
         conn.close()
 
 
-async def _node_async(spec: dict[str, Any], conn: Connection) -> dict[str, Any]:
+def session_id(run: int, attempt: int) -> bytes:
+    """The id of a node process's session: run ``run`` (1, 2: uncut and cut), attempt ``attempt`` (1 + restarts)."""
+    return SESSION_ID + f"-{run}-{attempt}".encode()
+
+
+def _limits(linked: bool) -> Any:
+    from jointstat.transport import Limits
+
+    if not linked:
+        return Limits(deadline_s=CHILD_TIMEOUT_S, idle_timeout_s=120.0)
+    return Limits(
+        deadline_s=CHILD_TIMEOUT_S,
+        idle_timeout_s=30.0,
+        resume_grace_s=RESUME_GRACE_S,
+        reconnect_initial_s=0.02,
+        reconnect_max_s=1.0,
+    )
+
+
+async def _node_async(spec: dict[str, Any], conn: Connection) -> None:
     from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 
     from jointstat.bench.garble import wide_program
     from jointstat.circuit.model import Party
     from jointstat.protocol import EvaluatorSession, GarblerSession, signer, verifier
-    from jointstat.transport import Limits, SessionServer, run_client
+    from jointstat.transport import SessionServer, run_client
     from jointstat.transport.tls import NodeTLS
 
+    loop = asyncio.get_running_loop()
     t0 = time.monotonic()
     program = wide_program(spec["and_gates"], spec["width"])
     setup_s = time.monotonic() - t0
@@ -94,66 +131,108 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> dict[str, Any]:
     key = Ed25519PrivateKey.from_private_bytes(spec["signing_key"])
     peer = Ed25519PublicKey.from_public_bytes(spec["peer_public_key"])
     common = {
-        "session_id": SESSION_ID,
         "program": program,
         "manifest_digest": spec["manifest_digest"],
         "sign": signer(key),
         "verify": verifier(peer),
     }
-    limits = Limits(deadline_s=CHILD_TIMEOUT_S, idle_timeout_s=120.0)
     setup_peak = _peak_rss_mib()
-    gc.collect()
-    separate_peak = _reset_peak_rss()
-    session: GarblerSession | EvaluatorSession
-    if spec["role"] == "garbler":
-        party = Party.GARBLER
-        session = GarblerSession(inputs=bits[party], chunk_bytes=spec["chunk_bytes"], **common)
-        server = SessionServer(tls, address="127.0.0.1:0", limits=limits, services=[_add_pump])
-        port = await server.start()
-        expected = server.expect(session)
-        conn.send({"port": port})
-        result = await expected
-        start = float("nan")
-        end = time.monotonic()
-        await asyncio.get_running_loop().run_in_executor(None, conn.poll, CHILD_TIMEOUT_S)  # the pump is done
-        conn.recv()
-        await server.stop(1.0)
-    else:
-        party = Party.EVALUATOR
-        session = EvaluatorSession(inputs=bits[party], **common)
-        start = time.monotonic()
-        result = await run_client(session, f"127.0.0.1:{spec['port']}", tls, limits=limits)
-        end = time.monotonic()
-    session_peak = _peak_rss_mib() if separate_peak else None
-    peak = max(
-        setup_peak, _peak_rss_mib()
-    )  # before the link measurement, whose buffers are not the session's
-    pump_s = await _pump(f"127.0.0.1:{spec['port']}", tls) if party == Party.EVALUATOR else None
-    figures: dict[str, Any] = {
-        "role": spec["role"],
-        "completed": result.completed,
-        "abort": None if result.abort is None else f"{result.abort.reason.name}: {result.abort.message}",
-        "start": start,
-        "end": end,
-        "setup_s": setup_s,
-        "bytes_sent": result.counters.bytes_sent,
-        "bytes_received": result.counters.bytes_received,
-        "frames": result.counters.frames_sent + result.counters.frames_received,
-        "peak_rss_mib": peak,
-        "session_peak_rss_mib": session_peak,
-        "and_gates": program.size.and_gates,
-        "evaluator_inputs": program.n_inputs(Party.EVALUATOR),
-        "pump_s": pump_s,
-    }
-    if result.completed and spec["check"]:
-        assert result.outputs is not None  # a completed session carries its own outputs
-        from jointstat.circuit.backend import PlainBackend
-        from jointstat.circuit.builder import Builder
+    garbler = spec["role"] == "garbler"
+    party = Party.GARBLER if garbler else Party.EVALUATOR
+    plain: np.ndarray | None = None
+    server: SessionServer | None = None
+    if garbler:
+        server = SessionServer(tls, address="127.0.0.1:0", limits=_limits(True), services=[_add_pump])
+        conn.send({"port": await server.start()})
 
-        plain = PlainBackend(bits)
-        program.run(Builder(plain))
-        figures["outputs_correct"] = bool(np.array_equal(plain.outputs(party), result.outputs))
-    return figures
+    def new(run: int, attempt: int) -> Any:
+        sid = session_id(run, attempt)
+        if garbler:
+            return GarblerSession(
+                session_id=sid, inputs=bits[party], chunk_bytes=spec["chunk_bytes"], **common
+            )
+        return EvaluatorSession(session_id=sid, inputs=bits[party], **common)
+
+    while True:
+        order = await loop.run_in_executor(None, conn.recv)
+        if order.get("stop"):
+            break
+        if "pump" in order:
+            conn.send({"pump_s": await _pump(f"127.0.0.1:{order['pump']}", tls)})
+            continue
+        run, limits = order["run"], _limits(order["linked"])
+        gc.collect()
+        separate_peak = _reset_peak_rss()
+        results = []
+        start = time.monotonic()
+        if server is not None:
+            waiting = []
+            for attempt in range(1, MAX_ATTEMPTS + 1):
+                session = new(run, attempt)
+                waiting.append((session, server.expect(session, limits=limits)))
+            conn.send({"ready": run})
+            for _session, expected in waiting:
+                result = await expected
+                results.append(result)
+                if result.completed or not _may_restart(result):
+                    break
+            for session, _ in waiting[len(results) :]:
+                server.withdraw(session.session_id)
+        else:
+            for attempt in range(1, MAX_ATTEMPTS + 1):
+                result = await run_client(new(run, attempt), f"127.0.0.1:{order['port']}", tls, limits=limits)
+                results.append(result)
+                if result.completed or not _restartable(result):
+                    break
+        end = time.monotonic()
+        result = results[-1]
+        figures: dict[str, Any] = {
+            "role": spec["role"],
+            "completed": result.completed,
+            "abort": None if result.abort is None else f"{result.abort.reason.name}: {result.abort.message}",
+            "start": start,
+            "end": end,
+            "setup_s": setup_s,
+            "bytes_sent": sum(r.counters.bytes_sent for r in results),
+            "bytes_received": sum(r.counters.bytes_received for r in results),
+            "frames": sum(r.counters.frames_sent + r.counters.frames_received for r in results),
+            "peak_rss_mib": max(setup_peak, _peak_rss_mib()),
+            "session_peak_rss_mib": _peak_rss_mib() if separate_peak else None,
+            "and_gates": program.size.and_gates,
+            "evaluator_inputs": program.n_inputs(Party.EVALUATOR),
+            "cuts": sum(r.cuts for r in results),
+            "resumed": sum(r.resumes for r in results),
+            "restarted": len(results) - 1,
+            "events": [f"{e.at_s:.3f}s {e.kind}: {e.detail}" for r in results for e in r.events],
+            "flow": None if result.flow is None else vars(result.flow),
+        }
+        if result.completed and spec["check"]:
+            assert result.outputs is not None  # a completed session carries its own outputs
+            if plain is None:
+                from jointstat.circuit.backend import PlainBackend
+                from jointstat.circuit.builder import Builder
+
+                backend = PlainBackend(bits)
+                program.run(Builder(backend))
+                plain = backend.outputs(party)
+            figures["outputs_correct"] = bool(np.array_equal(plain, result.outputs))
+        conn.send(figures)
+    if server is not None:
+        await server.stop(1.0)
+
+
+def _restartable(result: Any) -> bool:
+    """The evaluator (it connects): its session was lost to a cut before its OT had ended
+    (``SessionResult.restartable``), so it starts a fresh one."""
+    return bool(result.restartable)
+
+
+def _may_restart(result: Any) -> bool:
+    """The garbler (it serves): its session was lost with its connection, so the evaluator may start a fresh one
+    (the evaluator decides; its OT ends after the garbler's)."""
+    from jointstat.protocol import AbortReason
+
+    return result.abort is not None and result.abort.reason == AbortReason.CONNECTION_LOST
 
 
 def _add_pump(server: Any) -> None:
@@ -254,51 +333,90 @@ def node_specs(
     return g_spec, e_spec
 
 
-def measure(
-    and_gates: int, *, width: int = DEFAULT_WIDTH, chunk_bytes: int = DEFAULT_CHUNK_BYTES
-) -> dict[str, Any]:
-    """Run the two-process session and return each side's figures."""
-    g_spec, e_spec = node_specs(and_gates, width=width, chunk_bytes=chunk_bytes)
+def _start_nodes(g_spec: dict[str, Any], e_spec: dict[str, Any]) -> tuple[Any, Any, Any, Any]:
     ctx = mp.get_context("spawn")
     g_parent, g_child = ctx.Pipe()
     e_parent, e_child = ctx.Pipe()
     garbler = ctx.Process(target=node_process, args=(g_spec, g_child), name="jointstat-bench-garbler")
-    evaluator: mp.process.BaseProcess | None = None
+    evaluator = ctx.Process(target=node_process, args=(e_spec, e_child), name="jointstat-bench-evaluator")
     garbler.start()
+    evaluator.start()
+    return garbler, evaluator, g_parent, e_parent
+
+
+def _session_run(
+    g_parent: Connection, e_parent: Connection, run: int, port: int, linked: bool
+) -> dict[str, Any]:
+    g_parent.send({"run": run, "linked": linked})
+    _receive(g_parent, "garbler")  # ready: it expects the session
+    e_parent.send({"run": run, "port": port, "linked": linked})
+    e_fig = _receive(e_parent, "evaluator")
+    g_fig = _receive(g_parent, "garbler")
+    if not (g_fig["completed"] and e_fig["completed"]):
+        raise RuntimeError(
+            f"session did not complete: garbler {g_fig['abort']}; evaluator {e_fig['abort']}; "
+            f"events {e_fig['events'][-3:]}"
+        )
+    return {"garbler": g_fig, "evaluator": e_fig}
+
+
+def measure(
+    and_gates: int,
+    *,
+    width: int = DEFAULT_WIDTH,
+    chunk_bytes: int = DEFAULT_CHUNK_BYTES,
+    link: Any = None,
+    cuts: int = 0,
+) -> dict[str, Any]:
+    """Run the two-process session (twice with ``cuts``: uncut, then cut) and return each run's figures.
+
+    ``link`` is a ``harness.link.LinkConfig`` (None: loopback, and the transport's own speed is measured).
+    """
+    from jointstat.harness.link import CutAfterBytes, LinkConfig, LinkProcess
+
+    g_spec, e_spec = node_specs(and_gates, width=width, chunk_bytes=chunk_bytes)
+    garbler, evaluator, g_parent, e_parent = _start_nodes(g_spec, e_spec)
+    out: dict[str, Any] = {}
     try:
-        e_spec["port"] = _receive(g_parent, "garbler")["port"]
-        evaluator = ctx.Process(target=node_process, args=(e_spec, e_child), name="jointstat-bench-evaluator")
-        evaluator.start()
-        e_fig = _receive(e_parent, "evaluator")
-        g_parent.send({"pump": "done"})
-        g_fig = _receive(g_parent, "garbler")
+        port = _receive(g_parent, "garbler")["port"]
+        if link is None:
+            out["run"] = _session_run(g_parent, e_parent, 1, port, False)
+            e_parent.send({"pump": port})
+            out["pump_s"] = _receive(e_parent, "evaluator")["pump_s"]
+        else:
+            table_bytes = 32 * and_gates
+            plans: list[tuple[str, tuple[CutAfterBytes, ...]]] = [("baseline", ())] if cuts else []
+            spread = tuple(
+                CutAfterBytes("to_client", table_bytes * k // (cuts + 1)) for k in range(1, cuts + 1)
+            )
+            plans.append(("run", spread))
+            for number, (name, plan) in enumerate(plans, start=1):
+                config = LinkConfig(link.to_server, link.to_client, plan, link.cut_mode, link.handshake)
+                with LinkProcess(config, ("127.0.0.1", port)) as emulator:
+                    out[name] = _session_run(g_parent, e_parent, number, emulator.port, True)
+                    out[name]["link"] = emulator.counters()
+        for parent in (g_parent, e_parent):
+            parent.send({"stop": True})
     finally:
         for proc in (evaluator, garbler):
-            if proc is not None:
-                proc.join(timeout=30)
-                if proc.is_alive():
-                    proc.kill()
-                    proc.join()
-    if not (g_fig["completed"] and e_fig["completed"]):
-        raise RuntimeError(f"session did not complete: garbler {g_fig['abort']}; evaluator {e_fig['abort']}")
-    return {"garbler": g_fig, "evaluator": e_fig}
+            proc.join(timeout=30)
+            if proc.is_alive():
+                proc.kill()
+                proc.join()
+    return out
 
 
 def _round(value: float | None) -> float | None:
     return None if value is None else round(value, 1)
 
 
-def run(and_gates: int, as_json: bool) -> int:
-    from jointstat.problems import UserError
-
-    if and_gates < 1:
-        raise UserError(f"bench session: --and-gates must be at least 1, got {and_gates}")
-    sides = measure(and_gates)
+def _figures(sides: dict[str, Any]) -> dict[str, Any]:
+    """Today's keys from one run's figures of both sides."""
     g, e = sides["garbler"], sides["evaluator"]
     wall = max(g["end"], e["end"]) - e["start"]
     n_and = g["and_gates"]
     on_wire = g["bytes_sent"] + g["bytes_received"]
-    figures: dict[str, Any] = {
+    return {
         "and_gates": n_and,
         "wall_s": round(wall, 3),
         "and_per_s": round(n_and / wall, 1),
@@ -314,10 +432,73 @@ def run(and_gates: int, as_json: bool) -> int:
         "frames": g["frames"],
         "evaluator_inputs_by_ot": g["evaluator_inputs"],
         "setup_s": round(max(g["setup_s"], e["setup_s"]), 3),
+        "outputs_correct": bool(g.get("outputs_correct") and e.get("outputs_correct")),
     }
-    link = PUMP_BYTES / e["pump_s"]
-    figures["link_bytes_per_s"] = round(link, 1)
-    figures["link_utilisation"] = round((on_wire / wall) / link, 3)
-    figures["outputs_correct"] = bool(g.get("outputs_correct") and e.get("outputs_correct"))
-    emit("session benchmark (two node processes on loopback, mutual TLS)", figures, as_json)
-    return 1 if figures["outputs_correct"] is False else 0
+
+
+def run(
+    and_gates: int, as_json: bool, *, link: str | None = None, rtt: str | None = None, cuts: int = 0
+) -> int:
+    from jointstat.harness.link import LinkConfig, LinkSettingsError
+    from jointstat.problems import UserError
+
+    if and_gates < 1:
+        raise UserError(f"bench session: --and-gates must be at least 1, got {and_gates}")
+    if (link is None) != (rtt is None):
+        raise UserError(
+            "bench session: --link and --rtt go together (for example --link 100Mbit/s --rtt 40ms)"
+        )
+    if cuts < 0 or (cuts and link is None):
+        raise UserError("bench session: --cuts N needs --link and --rtt, and N must be 0 or more")
+    if link is None:
+        out = measure(and_gates)
+        figures = _figures(out["run"])
+        rate = PUMP_BYTES / out["pump_s"]
+        figures["link_bytes_per_s"] = round(rate, 1)
+        figures["link_utilisation"] = round((figures["bytes_on_wire"] / figures["wall_s"]) / rate, 3)
+        emit("session benchmark (two node processes on loopback, mutual TLS)", figures, as_json)
+        return 0 if figures["outputs_correct"] else 1
+    assert rtt is not None
+    try:
+        config = LinkConfig.from_words(link, rtt)
+    except LinkSettingsError as exc:
+        raise UserError(f"bench session: {exc}") from None
+    out = measure(and_gates, link=config, cuts=cuts)
+    main = out["run"]
+    figures = _figures(main)
+    rate = config.to_client.rate_bytes_per_s
+    counters = main["link"]
+    g, e = main["garbler"], main["evaluator"]
+    flow = g["flow"] or {}
+    figures.update(
+        {
+            "link_rate": link,
+            "link_rtt": rtt,
+            "link_bytes_per_s": round(rate, 1),
+            "link_utilisation": round(figures["garbler_to_evaluator_bytes"] / figures["wall_s"] / rate, 3),
+            "link_carried_utilisation": round(counters.to_client_bytes / figures["wall_s"] / rate, 3),
+            "link_mean_late_us": round(counters.mean_late_us, 1),
+            "link_max_late_us": counters.max_late_us,
+            "link_cuts": counters.cuts,
+            "cuts": cuts,
+            "resumed": e["resumed"],
+            "restarted": e["restarted"],
+            "flow_rtt_min_ms": None if flow.get("rtt_min_s") is None else round(1000 * flow["rtt_min_s"], 2),
+            "flow_rate_mbit_per_s": round(8 * flow.get("rate_bytes_per_s", 0.0) / 1e6, 1),
+            "flow_window_bytes": flow.get("window_bytes"),
+            "events": e["events"],
+        }
+    )
+    if cuts:
+        base = _figures(out["baseline"])
+        figures["baseline_wall_s"] = base["wall_s"]
+        figures["baseline_link_utilisation"] = round(
+            base["garbler_to_evaluator_bytes"] / base["wall_s"] / rate, 3
+        )
+        figures["slowdown"] = round(figures["wall_s"] / base["wall_s"], 3)
+        # bytes sent again after the cuts (frames in flight or unacknowledged when the link went down)
+        figures["resent_bytes"] = figures["garbler_to_evaluator_bytes"] - base["garbler_to_evaluator_bytes"]
+        figures["outputs_correct"] = figures["outputs_correct"] and base["outputs_correct"]
+    title = f"session benchmark (two node processes through the link emulator: {link}, {rtt} RTT"
+    emit(title + (f", {cuts} cuts)" if cuts else ")"), figures, as_json)
+    return 0 if figures["outputs_correct"] else 1

@@ -20,7 +20,7 @@ def _ot(args: argparse.Namespace) -> int:
 def _session(args: argparse.Namespace) -> int:
     from jointstat.bench.session import run
 
-    return run(and_gates=args.and_gates, as_json=args.json)
+    return run(and_gates=args.and_gates, as_json=args.json, link=args.link, rtt=args.rtt, cuts=args.cuts)
 
 
 def _faults(args: argparse.Namespace) -> int:
@@ -70,9 +70,21 @@ def add_commands(sub: argparse._SubParsersAction) -> None:
     ot.add_argument("--json", action="store_true", help="print one JSON object")
     ot.set_defaults(handler=_ot)
 
-    session = which.add_parser("session", help="a whole session between two node processes over loopback TLS")
+    session = which.add_parser(
+        "session", help="a whole session between two node processes over TLS, on loopback or an emulated link"
+    )
     session.add_argument(
         "--and-gates", type=int, default=1 << 22, help="AND gates in the program (default 2^22)"
+    )
+    session.add_argument(
+        "--link", metavar="RATE", help="through the link emulator at this rate (e.g. 100Mbit/s)"
+    )
+    session.add_argument("--rtt", metavar="TIME", help="the emulated link's round-trip time (e.g. 40ms)")
+    session.add_argument(
+        "--cuts",
+        type=int,
+        default=0,
+        help="cut the link N times in the table stream (runs an uncut session first)",
     )
     session.add_argument("--json", action="store_true", help="print one JSON object")
     session.set_defaults(handler=_session)

@@ -153,6 +153,9 @@ class NodeCampaign:
             ],
             max_sessions=self.max_sessions,
             session_deadline_seconds=self.node_deadline_s,
+            # The campaign checks that a fault ends the attempt cleanly and the scheduled retry starts afresh;
+            # resuming and restarting after a cut are checked by tests/test_node_resume.py.
+            resume={"grace_seconds": 0, "restarts": 0},
         )
         path = write_config(self.workdir / f"{NODE_NAME}.yaml", config)
         self.node = Node(load_node_config(path), session_factory=recording_session(self.secrets))

@@ -39,7 +39,7 @@ from jointstat.harness.recording import sid_text
 from jointstat.harness.scanner import Secrets
 from jointstat.harness.scenario import FINISH, PHASES, frames_per_phase, phase_of
 from jointstat.protocol import frames as fr
-from jointstat.protocol.session import Session
+from jointstat.protocol.sides import Session
 from jointstat.transport.channel import MESSAGE_OPTIONS, METHOD_PATH, ClientStream, SessionIds
 from jointstat.transport.driver import Limits, SessionResult, StreamLost, drive
 from jointstat.transport.tls import NodeTLS

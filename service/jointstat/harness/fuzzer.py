@@ -43,8 +43,10 @@ from jointstat.harness.recording import RecordingEvaluator, RecordingGarbler
 from jointstat.harness.scanner import Finding, Secrets, scan_for_secrets
 from jointstat.harness.watch import CrashWatch
 from jointstat.protocol import frames as fr
+from jointstat.protocol.evaluator import EvaluatorSession
 from jointstat.protocol.frames import AbortReason
-from jointstat.protocol.session import EvaluatorSession, GarblerSession, Session
+from jointstat.protocol.garbler import GarblerSession
+from jointstat.protocol.sides import Session
 from jointstat.transport.channel import METHOD_PATH
 from jointstat.transport.driver import Limits, SessionResult
 from jointstat.transport.server import SessionServer

@@ -10,11 +10,12 @@ Theory of operation
   the frame's tag) or, half the time, that of the body's first field when it is length-delimited — by one byte, by
   up to a mebibyte, or by a huge value (2^31 − 1 up to 2^64 − 1); one time in a hundred, instead, the whole frame
   made larger than the 4 MiB frame limit;
-- ``unknown_type``: the frame's tag replaced by that of a field number this version does not know (10–15,
+- ``unknown_type``: the frame's tag replaced by that of a field number this version does not know (12–15,
   16–2047, or the largest, 2^29 − 1), or — one time in five — by a known frame type with the wrong wire type (a
   number instead of a message);
 - ``out_of_order``: a valid frame in the wrong place: a frame of another type sent first, the same type of frame
-  from another session sent instead, or this session's previous frame sent again first.
+  from another session sent instead (one that differs: acknowledgements of the same count are the same bytes in
+  every session), or this session's previous frame sent again first.
 
 Tags and lengths follow the protobuf encoding (varints of 7 bits per byte, least significant group first; a tag is
 field number × 8 + wire type).
@@ -25,6 +26,7 @@ from __future__ import annotations
 import numpy as np
 
 from jointstat.protocol import frames as fr
+from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
 BIT_FLIP, TRUNCATE, OVERSIZED, UNKNOWN_TYPE, OUT_OF_ORDER = (
     "bit_flip",
@@ -35,6 +37,7 @@ BIT_FLIP, TRUNCATE, OVERSIZED, UNKNOWN_TYPE, OUT_OF_ORDER = (
 )
 MUTATIONS = (BIT_FLIP, TRUNCATE, OVERSIZED, UNKNOWN_TYPE, OUT_OF_ORDER)
 HUGE_LENGTHS = (2**31 - 1, 2**32 + 5, 2**63 - 1, 2**64 - 1)
+KNOWN_FRAME_TYPES = max(f.number for f in pb.Frame.DESCRIPTOR.fields)  # the frame types are fields 1 to this
 
 
 def varint(value: int) -> bytes:
@@ -90,14 +93,17 @@ def mutate(
         assert parsed is not None
         _, after = parsed
         if rng.random() < 0.2:  # a known frame type with the wrong wire type (a number, not a message)
-            field_number = int(rng.integers(1, 10))
+            field_number = int(rng.integers(1, KNOWN_FRAME_TYPES + 1))
             return [varint(field_number << 3) + varint(int(rng.integers(1 << 20))) + data[after:]]
-        field_number = int(rng.choice([int(rng.integers(10, 16)), int(rng.integers(16, 2048)), 2**29 - 1]))
+        first_unknown = KNOWN_FRAME_TYPES + 1
+        field_number = int(
+            rng.choice([int(rng.integers(first_unknown, 16)), int(rng.integers(16, 2048)), 2**29 - 1])
+        )
         return [varint(field_number << 3 | 2) + data[after:]]
     if how == OUT_OF_ORDER:
         kind = fr.decode(data)[0]
         choice = rng.random()
-        same = [r for r in references if fr.decode(r)[0] == kind]
+        same = [r for r in references if fr.decode(r)[0] == kind and r != data]  # a copy would change nothing
         other = [r for r in references if fr.decode(r)[0] not in (kind, fr.ABORT)]
         if choice < 0.4 and other:  # a valid frame of another type first
             return [other[int(rng.integers(len(other)))], data]

@@ -12,7 +12,8 @@ from dataclasses import dataclass
 from typing import Any
 
 from jointstat.circuit.model import Party
-from jointstat.protocol.session import NoOutputError, Session
+from jointstat.protocol.session import NoOutputError
+from jointstat.protocol.sides import Session
 from jointstat.transport.driver import Limits, SessionResult
 
 SCHEDULING_ALLOWANCE_S = 3.0  # beyond deadline + grace, for a loaded two-core machine

@@ -37,7 +37,7 @@ from jointstat.harness.recording import recording_session
 from jointstat.harness.scanner import Secrets
 from jointstat.harness.scenario import JOB_ACCEPTED, JOB_INITIATED, NODE_NAME, PEER_NAME, PeerJob
 from jointstat.protocol.frames import AbortReason
-from jointstat.protocol.session import Session
+from jointstat.protocol.sides import Session
 from jointstat.transport.channel import SERVICE_NAME, SessionIds
 from jointstat.transport.driver import Limits, SessionResult
 from jointstat.transport.server import SessionServer

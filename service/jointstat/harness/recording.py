@@ -33,7 +33,10 @@ from jointstat.garble.backends import EvaluatorBackend
 from jointstat.harness.scanner import Secrets
 from jointstat.primitives.blocks import BLOCK_DTYPE
 from jointstat.protocol import frames as fr
-from jointstat.protocol.session import CorrelatedOT, EvaluatorSession, GarblerSession, Session
+from jointstat.protocol.evaluator import EvaluatorSession
+from jointstat.protocol.garbler import GarblerSession
+from jointstat.protocol.session import CorrelatedOT
+from jointstat.protocol.sides import Session
 
 
 def sid_text(session_id: bytes) -> str:
@@ -119,6 +122,7 @@ def recording_session(secrets: Secrets, chunk_bytes: int | None = None) -> Calla
             session = RecordingGarbler(**kwargs)
         else:
             kwargs.pop("chunk_bytes", None)
+            kwargs.pop("replay_limit_bytes", None)
             session = RecordingEvaluator(**kwargs)
         session.secrets = secrets
         return session

@@ -38,6 +38,7 @@ PHASE_OF_FRAME = {
     fr.OT_EXTENSION: EXTENSION,
     fr.GARBLER_INPUT_LABELS: TABLES,
     fr.GARBLED_TABLES: TABLES,
+    fr.TABLES_ACK: TABLES,  # the evaluator's acknowledgement of each labels and tables frame
     fr.GARBLER_OUTPUT_LABELS: OUTPUT_LABELS,
     fr.EVALUATOR_OUTPUT_DECODING: OUTPUT_LABELS,
     fr.FINISH: FINISH,
@@ -76,7 +77,7 @@ PEER_METRES = (124_418_995_072, 117_062_340_589, 129_953_781_206)
 
 
 def phase_of(kind: str) -> str | None:
-    """The protocol phase a frame type belongs to (None for ``abort``)."""
+    """The protocol phase a frame type belongs to (None for ``abort`` and ``resume``)."""
     return PHASE_OF_FRAME.get(kind)
 
 
@@ -141,7 +142,8 @@ def frames_per_phase(program: Program, chunk_bytes: int) -> dict[str, int]:
         HELLO: 2,
         BASE_OT: 2 if n_in_e else 0,
         EXTENSION: 2 * batches,
-        TABLES: -(-labels // fr.MAX_PAYLOAD_BYTES) + -(-TABLE_BYTES * program.size.and_gates // chunk_bytes),
+        # labels and tables in frames of chunk_bytes, each acknowledged by the evaluator
+        TABLES: 2 * (-(-labels // chunk_bytes) + -(-TABLE_BYTES * program.size.and_gates // chunk_bytes)),
         OUTPUT_LABELS: int(program.n_outputs(Party.GARBLER) > 0)
         + int(program.n_outputs(Party.EVALUATOR) > 0),
         FINISH: 2,

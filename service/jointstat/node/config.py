@@ -19,7 +19,12 @@ Sections and defaults (all paths relative to the config file's directory unless 
   need more memory per party, as ``jointstat plan`` estimates it, is refused before its input is read),
   ``console`` (host:port of the operator console in the browser; off when absent; loopback only unless
   ``console_behind_proxy`` is true), ``console_token_file`` (the console's login token, secret; default
-  ``<data_dir>/console.token``, made at the console's first start).
+  ``<data_dir>/console.token``, made at the console's first start), ``resume`` (how a session outlives a cut of
+  its connection, ``transport.driver``: ``grace_seconds`` both nodes keep a session whose OT has ended, default 60,
+  0 turns resuming off; ``replay_buffer_mib`` the garbler's buffer of frames not yet acknowledged, which also caps
+  the flow window, default 64; ``reconnect_first_seconds`` 0.25 doubling up to ``reconnect_max_seconds`` 10, the
+  initiator's waits between reconnection attempts; ``restarts`` 3, how many times an initiated run whose connection
+  was cut before its OT ended starts again at once with a fresh session).
 * ``tls`` — ``certificate`` (this node's, PEM) and ``private_key`` (secret). There is no CA setting: the transport
   trusts only the pinned peer certificates (``jointstat.transport.tls``), never an issuer.
 * ``signing_key`` (secret), ``key_hashing_secret`` (secret, optional; needed by manifests with identifier keys).
@@ -329,6 +334,30 @@ def _derived(data: dict[str, Any], key: str) -> str:
     return value if _path_problem(value) is None else "."
 
 
+class ResumeConfig(StrictModel):
+    """How a session outlives a cut of its connection (``transport.driver``; module docstring)."""
+
+    grace_seconds: Annotated[float, between(0, 86400)] = 60.0
+    replay_buffer_mib: Annotated[int, between(4, 1 << 16)] = 64
+    reconnect_first_seconds: Annotated[float, between(0.01, 3600)] = 0.25
+    reconnect_max_seconds: Annotated[float, between(0.01, 3600)] = 10.0
+    restarts: Annotated[int, between(0, 100)] = 3
+
+    @property
+    def replay_buffer_bytes(self) -> int:
+        return self.replay_buffer_mib * 2**20
+
+    def problems(self) -> list[Problem]:
+        if self.reconnect_max_seconds < self.reconnect_first_seconds:
+            return [
+                Problem(
+                    "node.resume.reconnect_max_seconds",
+                    f"must be at least reconnect_first_seconds ({self.reconnect_first_seconds:g})",
+                )
+            ]
+        return []
+
+
 class NodeSection(StrictModel):
     """Who this node is and where it listens and keeps its files."""
 
@@ -347,6 +376,7 @@ class NodeSection(StrictModel):
     console: BindAddress | None = None
     console_behind_proxy: bool = False
     console_token_file: ConfigPath | None = None
+    resume: ResumeConfig = ResumeConfig()
 
     @property
     def session_memory_bytes(self) -> int:
@@ -638,6 +668,7 @@ class NodeConfig(StrictModel):
                 problems.append(Problem(f"jobs[{i}].schedule", str(exc)))
         problems += self._address_problems()
         problems += self.node.console_problems()
+        problems += self.node.resume.problems()
         if self.node.job_store == self.node.session_log:
             problems.append(Problem("node.session_log", "must be a different file from node.job_store"))
         return problems

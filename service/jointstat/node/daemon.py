@@ -52,14 +52,13 @@ from jointstat.audit.records import AuditError
 from jointstat.node.admin import NodeAdmin, admin_handler
 from jointstat.node.clock import Clock, SystemClock
 from jointstat.node.config import ConfigError, JobConfig, NodeConfig, UnixSocket
-from jointstat.node.jobs import JobRunner, NodeState, new_session_id
+from jointstat.node.jobs import JobRunner, NodeState, new_session_id, session_limits
 from jointstat.node.keys import NodeKeys, load_node_keys
 from jointstat.node.metrics import NodeMetrics
 from jointstat.node.secrets import SecretFileError
 from jointstat.node.spending import Budgets
 from jointstat.node.store import JobStore, StoreError
-from jointstat.protocol.session import Session, new_session
-from jointstat.transport.driver import Limits
+from jointstat.protocol.sides import Session, new_session
 from jointstat.transport.proposals import proposal_service
 from jointstat.transport.server import SessionServer
 from jointstat.units import plural
@@ -141,7 +140,7 @@ class Node:
             session_log=session_log,
             clock=self.clock,
             metrics=self.metrics,
-            limits=Limits(deadline_s=float(node.session_deadline_seconds)),
+            limits=session_limits(node),
             new_session=self._session_factory,
             budgets=await asyncio.to_thread(Budgets, config.jobs, store),
         )

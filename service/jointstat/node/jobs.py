@@ -36,7 +36,15 @@ hence fresh Δ, labels and OT secrets:
 
 ``run_job`` repeats a failed attempt after the configured backoff (``schedule.Planner.retry_at``) while the window
 is open; failures and refusals that retrying cannot cure (``NOT_RETRIED``: bad data, an unusable manifest, a
-configuration the two nodes disagree on, an exhausted budget) are not retried.
+configuration the two nodes disagree on, an exhausted budget) are not retried. An attempt whose connection was cut
+before this node's OT had ended (``SessionResult.restartable``: no output can have been released on either side)
+is restarted at once, up to ``node.resume.restarts`` times per run, as a new attempt with a fresh session id; the
+restarts do not use up the configured retries.
+
+Cuts after OT: the session is resumed within ``node.resume.grace_seconds`` (``session_limits``: the transport's
+reconnection backoff and grace period; the garbler's replay buffer is ``node.resume.replay_buffer_mib``). A resumed
+session is one session in the log, with a ``link_event`` for each cut, resume and refused attempt
+(``runs.RunRecorders.linked``).
 
 *Accepting* (``JobRunner.on_proposal``, called by the peer-facing server with the authenticated peer): the pure
 decision ``acceptance.decide`` says refuse, prepare (compile the manifest, read the input, then ask again) or
@@ -79,7 +87,7 @@ from jointstat.circuit.compile import CompiledStatistic
 from jointstat.node.acceptance import USED_BEFORE, Prepare, Refuse, Situation, Terms, decide
 from jointstat.node.budget import BUDGET_EXHAUSTED, BudgetError, BudgetExhausted
 from jointstat.node.clock import Clock
-from jointstat.node.config import JobConfig, NodeConfig
+from jointstat.node.config import JobConfig, NodeConfig, NodeSection
 from jointstat.node.keys import NodeKeys, PeerIdentity, session_signing
 from jointstat.node.metrics import NodeMetrics
 from jointstat.node.prepare import (
@@ -106,7 +114,7 @@ from jointstat.node.schedule import Planner
 from jointstat.node.spending import Budgets
 from jointstat.node.store import JobStore
 from jointstat.protocol.frames import AbortReason
-from jointstat.protocol.session import Session, new_session
+from jointstat.protocol.sides import Session, new_session
 from jointstat.transport.channel import SessionIds, describe_rpc_error
 from jointstat.transport.client import run_client
 from jointstat.transport.driver import Limits, SessionResult, Shutdown
@@ -139,6 +147,17 @@ T = TypeVar("T")
 
 def new_session_id() -> bytes:
     return secrets.token_bytes(SESSION_ID_BYTES)
+
+
+def session_limits(node: NodeSection) -> Limits:
+    """The transport's limits for this node's sessions: the deadline, and resuming after a cut (``node.resume``)."""
+    resume = node.resume
+    return Limits(
+        deadline_s=float(node.session_deadline_seconds),
+        resume_grace_s=float(resume.grace_seconds),
+        reconnect_initial_s=float(resume.reconnect_first_seconds),
+        reconnect_max_s=float(resume.reconnect_max_seconds),
+    )
 
 
 def abort_code(reason: AbortReason) -> str:
@@ -220,11 +239,22 @@ class JobRunner:
     ) -> str:
         """All attempts at one scheduled (or operator-triggered) run; returns the last attempt's status."""
         attempt, sid = 1, first_session_id or new_session_id()
+        restarts = 0
         while True:
             outcome = await self.attempt(job, scheduled_for, attempt, trigger, sid)
             if outcome.status == COMPLETED or self.state.stopping or outcome.reason in NOT_RETRIED:
                 return outcome.status
-            at = self.planner.retry_at(job.name, scheduled_for, attempt, self.state.clock.now())
+            if outcome.restart and restarts < self.state.config.node.resume.restarts:
+                restarts += 1
+                self.recorders.metrics.restarted(job.name)
+                log.info(
+                    "job %s: attempt %d was cut before its OT had ended; starting a fresh session",
+                    job.name,
+                    attempt,
+                )
+                attempt, sid = attempt + 1, new_session_id()
+                continue
+            at = self.planner.retry_at(job.name, scheduled_for, attempt - restarts, self.state.clock.now())
             if at is None:
                 return outcome.status
             log.info(
@@ -344,12 +374,14 @@ class JobRunner:
             inputs=prepared.inputs,
             sign=sign,
             verify=verify,
+            replay_limit_bytes=state.config.node.resume.replay_buffer_bytes,
         )
         self.recorders.progress.attached(run, session)
         return session
 
     async def _conclude(self, run: Run, result: SessionResult, prepared: Prepared) -> Outcome:
         """The session is over: record its abort, or check and keep its result (see the module docstring)."""
+        await self.recorders.linked(run, result.events)
         if not result.completed or result.peer_signature is None:
             abort = result.abort
             reason = abort_code(abort.reason) if abort is not None else "internal"
@@ -359,7 +391,8 @@ class JobRunner:
                 # The transport may see this node's own stop as a lost stream; the log says what happened.
                 reason, detail = "cancelled", "the node was stopped during the session"
             log.warning("job %s: session %s aborted: %s", run.job, run.sid, reason)
-            return await self.recorders.ended(run, Outcome(ABORTED, reason, detail, by=by))
+            restart = result.restartable and run.trigger != "peer" and not self.state.stopping
+            return await self.recorders.ended(run, Outcome(ABORTED, reason, detail, by=by, restart=restart))
         finished = self.state.clock.now()
         outputs = prepared.compiled.decode(prepared.party, result.outputs)
         await self.recorders.exchange_over(run)
@@ -561,4 +594,5 @@ __all__ = [
     "NodeState",
     "abort_code",
     "new_session_id",
+    "session_limits",
 ]

@@ -12,7 +12,12 @@ abort reasons — never an input value, a key or a result.
 - ``jointstat_and_gates_per_second{job}``: AND gates per second of the job's latest session;
 - ``jointstat_last_success_timestamp_seconds{job}``: when the job last completed (Unix time; from the job store
   at start-up);
-- ``jointstat_sessions_running``: sessions running now.
+- ``jointstat_sessions_running``: sessions running now;
+- ``jointstat_link_cuts_total{job,role}``, ``jointstat_link_resumes_total{job,role}``,
+  ``jointstat_link_resumes_refused_total{job,role}``: cuts of a session's connection, resumes on a new one, and
+  resume attempts refused (``transport.driver``'s link events, counted as a session ends);
+- ``jointstat_session_restarts_total{job}``: initiated sessions started afresh at once after a cut before their
+  OT had ended.
 """
 
 from __future__ import annotations
@@ -58,6 +63,21 @@ class NodeMetrics:
             registry=r,
         )
         self.running = Gauge("jointstat_sessions_running", "Sessions running now", registry=r)
+        self.cuts = Counter(
+            "jointstat_link_cuts", "Cuts of a session's connection", ["job", "role"], registry=r
+        )
+        self.resumes = Counter(
+            "jointstat_link_resumes", "Sessions resumed on a new connection", ["job", "role"], registry=r
+        )
+        self.resumes_refused = Counter(
+            "jointstat_link_resumes_refused", "Resume attempts refused", ["job", "role"], registry=r
+        )
+        self.restarts = Counter(
+            "jointstat_session_restarts",
+            "Initiated sessions started afresh after a cut before their OT had ended",
+            ["job"],
+            registry=r,
+        )
         self._server: object | None = None
         self._thread: threading.Thread | None = None
 
@@ -84,6 +104,14 @@ class NodeMetrics:
             self.bytes_received.labels(job).inc(bytes_received)
         if rate is not None:
             self.gates_per_second.labels(job).set(rate)
+
+    def link_events(self, *, job: str, role: str, cuts: int, resumes: int, refused: int) -> None:
+        if cuts:
+            self.cuts.labels(job, role).inc(cuts)
+        if resumes:
+            self.resumes.labels(job, role).inc(resumes)
+        if refused:
+            self.resumes_refused.labels(job, role).inc(refused)
 
     def serve(self, host: str, port: int) -> int:
         """Start the HTTP endpoint; returns the bound port."""

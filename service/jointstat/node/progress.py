@@ -27,7 +27,7 @@ from datetime import datetime
 from typing import Any
 
 from jointstat.circuit.model import Party
-from jointstat.protocol.session import Session
+from jointstat.protocol.sides import Session
 from jointstat.transport.driver import WireCounters
 
 _PHASES: dict[str, str] = {

@@ -14,6 +14,9 @@ step              who hears of it, in this order
 ``followed``      progress: a ``SessionTracker`` operators see; metrics: sessions running
 ``announced``     the session log: ``session_started`` (a session id it has seen is refused: ``AuditError``, and
                   nothing else hears of it); metrics: sessions started
+``linked``        the session log: a ``link_event`` per cut of the session's connection, resume and resume
+                  attempt refused or failed, in order (a resumed session stays one session); metrics: cuts,
+                  resumes, refused resumes
 ``exchange_over`` progress: the open phase closed; the session log: a ``phase_finished`` per phase
 ``reserved``      the job's privacy budget (``node.spending``), if the job has one and the run spends ε: the store's
                   ``budget_spends`` row, then the session log's ``privacy_budget reserved``
@@ -55,7 +58,15 @@ from jointstat.node.prepare import MAX_MESSAGE
 from jointstat.node.progress import COMPLETED, PROPOSING, SessionTracker
 from jointstat.node.spending import RELEASING_PHASES, Budgets, Held, epsilon_text
 from jointstat.node.store import JobStore
-from jointstat.protocol.session import Session
+from jointstat.protocol.sides import Session
+from jointstat.transport.stream import CUT, REFUSED, RESUMED, LinkEvent
+
+LINK_EVENT_WORDS: dict[str, Literal["cut", "resumed", "resume_refused", "resume_attempt_failed"]] = {
+    "cut": "cut",
+    "resumed": "resumed",
+    "resume_refused": "resume_refused",
+    "resume_attempt_failed": "resume_attempt_failed",
+}
 
 
 @dataclass(frozen=True)
@@ -69,6 +80,7 @@ class Outcome:
     phase: str | None = None  # the phase the log names; None: the phase the session was in
     stored_detail: str | None = None  # the store's words, where they differ from the log's
     result_path: Path | None = None
+    restart: bool = False  # lost to a cut before OT had ended: the initiator starts a fresh session at once
 
     @property
     def stored_reason(self) -> str | None:
@@ -96,6 +108,7 @@ class Run:
     tracker: SessionTracker | None = None  # what operators see of it, once followed
     announced: bool = False  # its session_started is in the session log
     phases_closed: bool = False
+    links_recorded: bool = False
     outcome: Outcome | None = None
     held: Held | None = None  # its hold on the job's privacy budget, once reserved
     budget_logged: bool = False  # the reservation is in the session log
@@ -196,6 +209,18 @@ class MetricsRecorder:
     def announced(self, run: Run) -> None:
         self._metrics.started.labels(run.job, run.party.role_name).inc()
 
+    def restarted(self, job: str) -> None:
+        self._metrics.restarts.labels(job).inc()
+
+    def linked(self, run: Run, events: tuple[LinkEvent, ...]) -> None:
+        self._metrics.link_events(
+            job=run.job,
+            role=run.party.role_name,
+            cuts=sum(1 for e in events if e.kind == CUT),
+            resumes=sum(1 for e in events if e.kind == RESUMED),
+            refused=sum(1 for e in events if e.kind == REFUSED),
+        )
+
     def ended(self, run: Run) -> None:
         tracker, outcome = run.tracker, run.outcome
         if tracker is None or outcome is None:
@@ -233,6 +258,26 @@ class LogRecorder:
             peer_certificate_der=run.peer.certificate_der,
         )
         run.announced = True
+
+    async def linked(self, run: Run, events: tuple[LinkEvent, ...]) -> None:
+        """A ``link_event`` per cut, resume and refused or failed resume attempt of the session."""
+        if not run.announced:
+            return
+        for e in events:
+            try:
+                await asyncio.to_thread(self._link_event, run, e, plain_detail(e.detail))
+            except AuditError:  # a detail the log will not take: keep the event, drop the words
+                await asyncio.to_thread(self._link_event, run, e, "")
+
+    def _link_event(self, run: Run, e: LinkEvent, detail: str) -> None:
+        self._log.link_event(
+            run.sid,
+            event=LINK_EVENT_WORDS[e.kind],
+            at_us=max(0, round(e.at_s * 1e6)),
+            frames_sent=e.frames_sent,
+            frames_received=e.frames_received,
+            detail=detail,
+        )
 
     async def exchange_over(self, run: Run) -> None:
         if not run.announced or run.tracker is None:
@@ -348,6 +393,15 @@ class RunRecorders:
     async def announced(self, run: Run) -> None:
         await self.log.announced(run)
         self.metrics.announced(run)
+
+    async def linked(self, run: Run, events: tuple[LinkEvent, ...]) -> None:
+        """The session is over: the cuts, resumes and refused attempts of its connection are logged and counted
+        (once)."""
+        if run.links_recorded:
+            return
+        run.links_recorded = True
+        self.metrics.linked(run, events)
+        await self.log.linked(run, events)
 
     async def exchange_over(self, run: Run) -> None:
         """The session's frames are over: its phases are closed and logged (once)."""

@@ -154,8 +154,10 @@ def node_config(
     admin: str | None = None,
     max_sessions: int = 2,
     session_deadline_seconds: int = 600,
+    resume: dict[str, Any] | None = None,
 ) -> dict[str, Any]:
-    """A node config mapping for one trial node on loopback (absolute paths)."""
+    """A node config mapping for one trial node on loopback (absolute paths); ``resume`` is its ``node.resume``
+    section (the defaults when None)."""
     d = keys.directory
     node: dict[str, Any] = {
         "name": name,
@@ -169,6 +171,8 @@ def node_config(
         node["health"] = f"127.0.0.1:{health_port}"
     if admin is not None:
         node["admin"] = admin
+    if resume is not None:
+        node["resume"] = resume
     return {
         "node": node,
         "tls": {"certificate": str(d / tls_cert_file(name)), "private_key": str(d / tls_key_file(name))},

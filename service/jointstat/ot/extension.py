@@ -25,7 +25,8 @@ indices). S's view — the columns u^i — is G(k_i^0) ⊕ G(k_i^1) ⊕ r with o
 hence pseudo-random whatever r is; R's view of K_j ⊕ Δ for an unchosen label needs H(t_j ⊕ s, j) for the
 secret s.
 
-Streaming: R sends at most ``window`` batches ahead of the corrections it has received, each batch message
+Streaming: R sends at most ``window`` batches ahead of the corrections it has received (``set_window`` changes
+the window between messages: the columns, and so the bytes on the wire, are the same, only their timing moves), each batch message
 is at most 128 · ``batch`` / 8 bytes (1 MiB by default, 4 MiB at the largest batch), and both sides keep
 only O(batch) working memory besides their output arrays.
 
@@ -43,9 +44,9 @@ extension phase alone), the evaluator's ``CorrelatedOTReceiver`` (``ExtensionRec
 | ExtensionSender      | receiving columns       | ot_extension_columns, batch b     | ot_extension_corrections, b         | receiving columns, done (after the last batch) |
 | CorrelatedOTReceiver | new                     | start()                           | base_ot_sender_point, 32 B          | awaiting base OT points, done (count = 0) |
 | CorrelatedOTReceiver | awaiting base OT points | base_ot_receiver_points, 4096 B   | columns of batches 0 … window − 1   | extending |
-| CorrelatedOTReceiver | extending               | ot_extension_corrections, batch b | columns of batch b + window, if any | extending, done (after the last batch) |
+| CorrelatedOTReceiver | extending               | ot_extension_corrections, batch b | columns up to batch b + window, if any | extending, done (after the last batch) |
 | ExtensionReceiver    | new                     | start()                           | columns of batches 0 … window − 1   | extending, done (count = 0) |
-| ExtensionReceiver    | extending               | ot_extension_corrections, batch b | columns of batch b + window, if any | extending, done (after the last batch) |
+| ExtensionReceiver    | extending               | ot_extension_corrections, batch b | columns up to batch b + window, if any | extending, done (after the last batch) |
 
 ``ExtensionSender``/``ExtensionReceiver`` are the extension phase alone, started from base-OT keys
 obtained elsewhere (the benchmark times the two phases separately with them); the session layer uses the
@@ -329,6 +330,18 @@ class ExtensionReceiver(OTMachine):
         self._sent = b + 1
         return OTMessage(EXTENSION_COLUMNS, u.tobytes())
 
+    @property
+    def batches_sent(self) -> int:
+        return self._sent
+
+    @property
+    def batches_done(self) -> int:
+        return self._finished
+
+    def set_window(self, window: int) -> None:
+        """Keep ``window`` batches in flight from the next corrections on (the columns are the same bytes)."""
+        self._window = _check_window(window)
+
     def _on_corrections(self, message: OTMessage | None) -> tuple[str, list[OTMessage]]:
         assert message is not None
         b = self._finished
@@ -340,7 +353,8 @@ class ExtensionReceiver(OTMachine):
         if self._finished == self._batches.total:
             self._streams0 = self._streams1 = SeedStreams([])
             return DONE, []
-        replies = [self._columns(self._sent)] if self._sent < self._batches.total else []
+        last = min(self._batches.total, self._finished + self._window)
+        replies = [self._columns(b) for b in range(self._sent, last)]
         return EXTENDING, replies
 
 
@@ -476,6 +490,20 @@ class CorrelatedOTReceiver(OTMachine):
         if self._extension is None:
             return np.empty((0, 2), dtype=BLOCK_DTYPE)
         return self._extension.labels
+
+    @property
+    def batches_sent(self) -> int:
+        return 0 if self._extension is None else self._extension.batches_sent
+
+    @property
+    def batches_done(self) -> int:
+        return 0 if self._extension is None else self._extension.batches_done
+
+    def set_window(self, window: int) -> None:
+        """Keep ``window`` batches of columns in flight from the next corrections on (``ExtensionReceiver``)."""
+        self._window = _check_window(window)
+        if self._extension is not None:
+            self._extension.set_window(window)
 
     def _on_start(self, _message: OTMessage | None) -> tuple[str, list[OTMessage]]:
         if self._choices.size == 0:

@@ -1,9 +1,10 @@
 """The two-party session protocol, sans-I/O: garbler and evaluator state machines exchanging frames.
 
-See ``jointstat.protocol.session`` for the flow and the state tables, ``jointstat.protocol.frames`` for the frame
+See ``jointstat.protocol.session`` for the flow, the state tables and resume (``garbler``, ``evaluator``: each side), ``jointstat.protocol.frames`` for the frame
 encoding and the transcript, and ``jointstat.protocol.signing`` for the Ed25519 transcript signatures.
 """
 
+from jointstat.protocol.evaluator import EvaluatorSession
 from jointstat.protocol.frames import (
     MAX_FRAME_BYTES,
     MAX_PAYLOAD_BYTES,
@@ -12,17 +13,16 @@ from jointstat.protocol.frames import (
     AbortReason,
     ProtocolError,
 )
+from jointstat.protocol.garbler import GarblerSession
 from jointstat.protocol.session import (
     EVALUATOR_TABLE,
     GARBLER_TABLE,
-    EvaluatorSession,
-    GarblerSession,
     NoOutputError,
-    Session,
+    ResumeRefused,
     Sign,
     Verify,
-    new_session,
 )
+from jointstat.protocol.sides import Session, new_session
 from jointstat.protocol.signing import signer, verifier
 
 __all__ = [
@@ -37,6 +37,7 @@ __all__ = [
     "GarblerSession",
     "NoOutputError",
     "ProtocolError",
+    "ResumeRefused",
     "Session",
     "Sign",
     "Verify",

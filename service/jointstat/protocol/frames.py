@@ -15,14 +15,29 @@ the encoding the protobuf library itself produces for that message, see the prot
 ``decode`` recognises exactly that layout and hands out a view of the payload inside the received bytes, with no
 copy. Any other layout goes through the protobuf library as before.
 
-Transcript: each side keeps two running SHA-256 hashes (FIPS 180-4), one per direction, over every frame except
-``finish`` and ``abort``, each frame hashed as its 8-byte little-endian length followed by its bytes. A gRPC stream
-keeps each direction in order but the interleaving of the two directions is seen differently at the two ends, so
-the digest is taken per direction and combined as
-SHA-256("jointstat transcript v1" ‖ len(sid) ‖ sid ‖ H(garbler → evaluator) ‖ H(evaluator → garbler)). Both sides
-therefore compute the same 32 bytes exactly when they sent and received the same frames in the same order.
+Logical frames and the transcript (protocol version 4). A session's *logical frames* are every frame but
+``tables_ack``, ``resume`` and ``abort``; each direction numbers its logical frames 0, 1, 2… from the hello on.
+Acknowledgements (``tables_ack``: "I have taken your first n logical frames"), resume frames and aborts are about
+the connection, not the computation: they are not numbered, never resent, and not hashed. After a cut each side
+resends, byte for byte, its logical frames from the number the peer's ``resume`` names, so each logical frame is
+taken by the receiver exactly once however often the connection was cut, and both sides hash the same sequence.
 
-Hello: each side signs its hello (protocol version 2). The signed digest is
+Transcript: each side keeps two running SHA-256 hashes (FIPS 180-4), one per direction, over every logical frame
+except ``finish`` (so over hello, the OT frames, the input labels, the tables, the output labels and the decoding),
+each frame hashed once — when it is first sent and when it is taken — as its 8-byte little-endian length followed
+by its bytes; a resent frame is not hashed again. A gRPC stream keeps each direction in order but the
+interleaving of the two directions is seen differently at the two ends, so the digest is taken per direction and
+combined as SHA-256("jointstat transcript v1" ‖ len(sid) ‖ sid ‖ H(garbler → evaluator) ‖ H(evaluator → garbler)).
+Both sides therefore compute the same 32 bytes exactly when they sent and took the same logical frames in the same
+order, whether or not the session was resumed: a resumed session is one session with one transcript.
+
+Resume: the resume statement (``jointstat.statements``) signs ``resume_digest`` = SHA-256("jointstat resume v1" ‖
+version ‖ role ‖ attempt ‖ frames received (8 bytes) ‖ anchor ‖ len(sid) ‖ sid), numbers 4 bytes big-endian unless
+said, where the *anchor* is the transcript digest through the oblivious transfer: taken by each side when its OT
+ends (the garbler after sending the last corrections, the evaluator after taking them), it covers the same frames
+on both sides — the hellos and every OT frame — and a session resumes only after that point, so both sides hold it.
+
+Hello: each side signs its hello (since protocol version 2). The signed digest is
 SHA-256("jointstat hello v1" ‖ version ‖ role ‖ len(sid) ‖ sid ‖ len(m) ‖ m ‖ len(c) ‖ c), with m and c the
 manifest and circuit digests and every number 4 bytes big-endian — every field but the signature, each of fixed
 size or length-prefixed — and the signature is over the ``hello`` statement of ``jointstat.statements`` for it.
@@ -41,9 +56,9 @@ from google.protobuf.message import DecodeError
 from jointstat.circuit.model import Party
 from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
-PROTOCOL_VERSION = (
-    3  # 2: hellos are signed; 3: programs instead of circuit lists (program digest, no constants)
-)
+# 2: hellos are signed; 3: programs instead of circuit lists (program digest, no constants); 4: acknowledgements,
+# a replay buffer and resume after a cut
+PROTOCOL_VERSION = 4
 MAX_FRAME_BYTES = 4 * 1024 * 1024
 MAX_PAYLOAD_BYTES = MAX_FRAME_BYTES - 64  # room for the frame's field tags and length prefixes
 MAX_SESSION_ID_BYTES = 64
@@ -59,6 +74,8 @@ GARBLER_OUTPUT_LABELS = "garbler_output_labels"
 EVALUATOR_OUTPUT_DECODING = "evaluator_output_decoding"
 FINISH = "finish"
 ABORT = "abort"
+TABLES_ACK = "tables_ack"
+RESUME = "resume"
 
 FRAME_TYPES = (
     HELLO,
@@ -70,6 +87,8 @@ FRAME_TYPES = (
     EVALUATOR_OUTPUT_DECODING,
     FINISH,
     ABORT,
+    TABLES_ACK,
+    RESUME,
 )
 # The bytes field of each payload-carrying frame type.
 PAYLOAD_FIELD = {
@@ -80,7 +99,8 @@ PAYLOAD_FIELD = {
     GARBLER_OUTPUT_LABELS: "labels",
     EVALUATOR_OUTPUT_DECODING: "decoding",
 }
-_UNHASHED = frozenset({FINISH, ABORT})
+UNNUMBERED = frozenset({TABLES_ACK, RESUME, ABORT})  # not logical frames: never numbered, resent or hashed
+_UNHASHED = UNNUMBERED | {FINISH}
 _TABLES_TAG = (5 << 3) | 2  # Frame.garbled_tables, length-delimited
 _TABLES_FIELD_TAG = (1 << 3) | 2  # GarbledTables.tables, length-delimited
 
@@ -139,6 +159,7 @@ def _tables_payload(data: memoryview) -> memoryview | None:
 
 _TRANSCRIPT_LABEL = b"jointstat transcript v1"
 _HELLO_LABEL = b"jointstat hello v1"
+_RESUME_LABEL = b"jointstat resume v1"
 
 
 class AbortReason(IntEnum):
@@ -160,6 +181,7 @@ class AbortReason(IntEnum):
     CONNECTION_LOST = pb.ABORT_REASON_CONNECTION_LOST
     INTERNAL = pb.ABORT_REASON_INTERNAL
     PEER_SHUTDOWN = pb.ABORT_REASON_PEER_SHUTDOWN
+    RESUME_REFUSED = pb.ABORT_REASON_RESUME_REFUSED
 
 
 def role_to_wire(party: Party) -> pb.Role:
@@ -302,6 +324,62 @@ def hello_frame(
     return encode(frame)
 
 
+def tables_ack_frame(frames: int) -> bytes:
+    """An acknowledgement of the peer's first ``frames`` logical frames."""
+    frame = pb.Frame()
+    frame.tables_ack.frames = frames
+    return encode(frame)
+
+
+def resume_digest(
+    *, version: int, role: int, session_id: bytes, attempt: int, frames_received: int, anchor: bytes
+) -> bytes:
+    """The digest a resume's signature covers (module docstring): its fields and the transcript through OT."""
+    h = hashlib.sha256(_RESUME_LABEL)
+    h.update(int(version).to_bytes(4, "big"))
+    h.update(int(role).to_bytes(4, "big", signed=True))
+    h.update(int(attempt).to_bytes(4, "big"))
+    h.update(int(frames_received).to_bytes(8, "big"))
+    h.update(bytes(anchor))
+    h.update(len(session_id).to_bytes(4, "big"))
+    h.update(bytes(session_id))
+    return h.digest()
+
+
+def resume_digest_of(resume: pb.Resume, anchor: bytes) -> bytes:
+    """``resume_digest`` of a resume frame's own fields, with the anchor the checking side holds."""
+    return resume_digest(
+        version=resume.protocol_version,
+        role=resume.role,
+        session_id=bytes(resume.session_id),
+        attempt=resume.attempt,
+        frames_received=resume.frames_received,
+        anchor=anchor,
+    )
+
+
+def resume_frame(
+    *,
+    party: Party,
+    session_id: bytes,
+    attempt: int,
+    frames_received: int,
+    anchor: bytes,
+    sign: Callable[[bytes], bytes],
+    version: int = PROTOCOL_VERSION,
+) -> bytes:
+    """A resume frame signed over its ``resume_digest`` by ``sign(digest) -> signature``."""
+    frame = pb.Frame()
+    r = frame.resume
+    r.protocol_version = version
+    r.session_id = session_id
+    r.role = role_to_wire(party)
+    r.attempt = attempt
+    r.frames_received = frames_received
+    r.signature = sign(resume_digest_of(r, anchor))
+    return encode(frame)
+
+
 def finish_frame(transcript_digest: bytes, signature: bytes) -> bytes:
     frame = pb.Frame()
     frame.finish.transcript_digest = transcript_digest
@@ -350,6 +428,8 @@ class Transcript:
         self._received = hash_factory()
         self.frames_sent = 0
         self.frames_received = 0
+        self.logical_sent = 0  # logical frames (numbered, module docstring) sent for the first time
+        self.logical_received = 0  # logical frames taken from the peer
 
     @staticmethod
     def _add(h: Any, data: bytes | memoryview) -> None:
@@ -357,12 +437,17 @@ class Transcript:
         h.update(data)
 
     def sent(self, kind: str, data: bytes | memoryview) -> None:
+        """A frame sent for the first time (a resent frame is not recorded again)."""
         self.frames_sent += 1
+        if kind not in UNNUMBERED:
+            self.logical_sent += 1
         if kind not in _UNHASHED:
             self._add(self._sent, data)
 
     def received(self, kind: str, data: bytes | memoryview) -> None:
         self.frames_received += 1
+        if kind not in UNNUMBERED:
+            self.logical_received += 1
         if kind not in _UNHASHED:
             self._add(self._received, data)
 

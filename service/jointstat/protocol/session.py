@@ -1,4 +1,6 @@
-"""The two-party session as sans-I/O state machines: a garbler session and an evaluator session.
+"""The two-party session as sans-I/O state machines: what both sides share, and the one transition table.
+
+The garbler's side is ``protocol.garbler``, the evaluator's ``protocol.evaluator``; ``protocol.sides`` makes either.
 
 Theory of operation
 -------------------
@@ -35,6 +37,28 @@ Flow (G garbler, E evaluator; every arrow is one or more frames, see ``proto/joi
    ``transcript`` statement), and checks the peer's: same digest, valid signature. Only then is the output
    released (``outputs``).
 
+Acknowledgements and the replay buffer: after each ``garbler_input_labels`` and ``garbled_tables`` frame it has
+taken (the tables evaluated), E sends ``tables_ack`` with the number of G's logical frames it has taken
+(``frames``); each acknowledges more than the last (a repeated or older count is malformed). From the end of its
+OT on, each side keeps every logical frame it sends in its *replay buffer* until
+the peer has acknowledged it — G drops frames as the acknowledgements come; E's buffer holds only its output labels
+and finish. ``replay_bytes`` is what G's buffer holds; ``can_stream`` says whether ``produce()`` may hand out the
+next frame without the buffer passing ``replay_limit_bytes`` (the transport waits for acknowledgements otherwise;
+``produce()`` refuses to pass the limit). So the tables in flight are bounded by the replay limit, and the
+transport sizes its window within it (``transport.flow``).
+
+Resume after a cut: when the connection drops after this side's OT has ended (``resumable``), the transport keeps
+the session. The initiator of the new stream sends ``resume_frame(attempt)`` — the logical frames it has taken and
+its Ed25519 signature over the resume statement (``frames.resume_digest``: the session id, the attempt, the count
+and the transcript digest through OT) — and the other side, after checking it (``receive`` raises
+``ResumeRefused`` and changes nothing when the version, session id, role, attempt, count or signature is wrong),
+answers with its own resume frame followed by the frames the initiator lacks; the initiator checks the answer the
+same way and resends what the other side lacks. Frames are resent from the replay buffer, the very bytes sent
+before: nothing is garbled twice, no randomness is drawn again, and the transcript (``frames.Transcript``) takes
+each logical frame once. A session that is done still answers a resume, without changing state, with the frames
+the peer lacks (its finish): the one event a done session takes. Before OT has ended there is nothing to resume:
+the transport fails the session and the node starts a fresh one.
+
 Any error — an unexpected frame, a malformed one, an OT or output check that fails, a local failure reported by
 ``fail()`` — moves the session to ``failed``, raises ``ProtocolError`` whose ``frame`` is the abort frame for the
 peer, and releases no output. A peer's ``abort`` moves the session to ``failed`` likewise.
@@ -57,7 +81,7 @@ States and transitions (the two ``TABLE`` dictionaries below are the single sour
 ``jointstat.machine``, and ``tests/test_machine.py`` checks this table against them: "next" lists every state the
 dictionary allows, a parenthesis says when; every (state, event) pair not listed raises ``ProtocolError`` naming the
 state and the frame; ``abort`` from the peer is accepted in every state before ``done``/``failed`` and leads to
-``failed``)
+``failed``; a ``resume`` in ``done`` is answered without a change of state, as said above)
 
 | session   | state                  | event                      | sends                                  | next |
 |-----------|------------------------|----------------------------|----------------------------------------|------|
@@ -66,33 +90,40 @@ state and the frame; ``abort`` from the peer is accepted in every state before `
 | garbler   | base OT                | base_ot (A)                | base_ot (128 points)                   | OT extension |
 | garbler   | OT extension           | ot_extension (columns)     | ot_extension (corrections); after the last batch, when nothing is to be streamed, what tables sent sends | OT extension, streaming (after the last batch), awaiting output labels, awaiting finish (after the last batch when G has no inputs and the program no AND gates: nothing to stream, as after tables sent) |
 | garbler   | streaming              | tables sent (from produce) | input labels and tables (produce); decoding and finish if G has no outputs | awaiting output labels, awaiting finish (G has no outputs) |
+| garbler   | streaming              | tables_ack                 | — (drops acknowledged frames)          | streaming |
+| garbler   | streaming              | resume                     | resume (if E initiated), resent frames | streaming |
 | garbler   | awaiting output labels | garbler_output_labels      | when all arrived: decoding, finish     | awaiting output labels, awaiting finish (all arrived) |
+| garbler   | awaiting output labels | tables_ack                 | — (drops acknowledged frames)          | awaiting output labels |
+| garbler   | awaiting output labels | resume                     | resume (if E initiated), resent frames | awaiting output labels |
 | garbler   | awaiting finish        | finish                     | —                                      | done |
+| garbler   | awaiting finish        | tables_ack                 | — (drops acknowledged frames)          | awaiting finish |
+| garbler   | awaiting finish        | resume                     | resume (if E initiated), resent frames | awaiting finish |
 | evaluator | new                    | start()                    | hello                                  | awaiting hello |
 | evaluator | awaiting hello         | hello                      | base_ot (A)                            | base OT, awaiting input labels, evaluating, awaiting decoding, awaiting finish (all but base OT: E has no inputs, as after the OT) |
 | evaluator | base OT                | base_ot (128 points)       | ot_extension (first window)            | OT extension |
 | evaluator | OT extension           | ot_extension (corrections) | ot_extension (next batch, if any)      | OT extension, awaiting input labels, evaluating, awaiting decoding, awaiting finish (after the last batch; the last three when G has no inputs, as after the input labels) |
-| evaluator | awaiting input labels  | garbler_input_labels       | — (after the last: runs the program)   | awaiting input labels, evaluating, awaiting decoding, awaiting finish (the last two when the program has no AND gates, as after the last table) |
-| evaluator | evaluating             | garbled_tables             | after the last: garbler_output_labels; finish if E has no outputs | evaluating, awaiting decoding, awaiting finish (E has no outputs) |
+| evaluator | awaiting input labels  | garbler_input_labels       | tables_ack (after the last: runs the program) | awaiting input labels, evaluating, awaiting decoding, awaiting finish (the last two when the program has no AND gates, as after the last table) |
+| evaluator | awaiting input labels  | resume                     | resume (if G initiated), resent frames | awaiting input labels |
+| evaluator | evaluating             | garbled_tables             | tables_ack; after the last: garbler_output_labels; finish if E has no outputs | evaluating, awaiting decoding, awaiting finish (E has no outputs) |
+| evaluator | evaluating             | resume                     | resume (if G initiated), resent frames | evaluating |
 | evaluator | awaiting decoding      | evaluator_output_decoding  | when all arrived: finish               | awaiting decoding, awaiting finish (all arrived) |
+| evaluator | awaiting decoding      | resume                     | resume (if G initiated), resent frames | awaiting decoding |
 | evaluator | awaiting finish        | finish                     | —                                      | done |
+| evaluator | awaiting finish        | resume                     | resume (if G initiated), resent frames | awaiting finish |
 """
 
 from __future__ import annotations
 
 import os
-from collections.abc import Callable, Iterator, Mapping
+from collections import deque
+from collections.abc import Callable, Mapping
 from typing import Any, ClassVar, NoReturn
 
 import numpy as np
 
-from jointstat.circuit.builder import Builder
 from jointstat.circuit.model import Party
 from jointstat.circuit.program import Program
-from jointstat.garble.backends import DEFAULT_CHUNK_BYTES, EvaluatorBackend, GarblerBackend
-from jointstat.garble.halfgates import TABLE_BYTES, GarbleError, fresh_delta
-from jointstat.garble.outputs import OutputDecoding, decode, decode_returned, make_decoding
-from jointstat.garble.streams import Sink, Source, TableConsumer, TableProducer
+from jointstat.garble.halfgates import GarbleError
 from jointstat.machine import DONE, FAILED, NEW, START, TableMachine, Transition
 from jointstat.ot import (
     BASE_OT_RECEIVER_POINTS,
@@ -104,10 +135,9 @@ from jointstat.ot import (
     OTError,
     OTMessage,
 )
-from jointstat.primitives.blocks import BLOCK_BYTES, BLOCK_DTYPE
 from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import AbortInfo, AbortReason, ProtocolError, Transcript
-from jointstat.statements import HELLO, TRANSCRIPT, Statement, session_text
+from jointstat.statements import HELLO, RESUME, TRANSCRIPT, Statement, session_text
 from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
 # ``sign(statement) -> signature`` with this node's key; ``verify(signature, statement)`` against the peer's key
@@ -136,50 +166,68 @@ def _with_abort(table: dict[tuple[str, str], Transition]) -> dict[tuple[str, str
     return {**table, **{(state, fr.ABORT): ("_on_abort", (FAILED,)) for state in sorted(states)}}
 
 
+def _with_resume(
+    table: dict[tuple[str, str], Transition], states: tuple[str, ...], acks: bool = False
+) -> dict[tuple[str, str], Transition]:
+    """The table plus, in each of ``states`` (those after OT), the peer's ``resume`` and, if ``acks``, its
+    ``tables_ack``, both keeping the state."""
+    more: dict[tuple[str, str], Transition] = {(s, fr.RESUME): ("_on_resume", (s,)) for s in states}
+    if acks:
+        more.update({(s, fr.TABLES_ACK): ("_on_ack", (s,)) for s in states})
+    return {**table, **more}
+
+
 GARBLER_TABLE: Mapping[tuple[str, str], Transition] = _with_abort(
-    {
-        (NEW, START): ("_on_start", (AWAITING_HELLO,)),
-        (AWAITING_HELLO, fr.HELLO): (
-            "_on_hello",
-            (BASE_OT, STREAMING, AWAITING_OUTPUT_LABELS, AWAITING_FINISH),
-        ),
-        (BASE_OT, fr.BASE_OT): ("_on_base_ot", (OT_EXTENSION,)),
-        (OT_EXTENSION, fr.OT_EXTENSION): (
-            "_on_ot_extension",
-            (OT_EXTENSION, STREAMING, AWAITING_OUTPUT_LABELS, AWAITING_FINISH),
-        ),
-        (STREAMING, TABLES_SENT): ("_on_tables_sent", (AWAITING_OUTPUT_LABELS, AWAITING_FINISH)),
-        (AWAITING_OUTPUT_LABELS, fr.GARBLER_OUTPUT_LABELS): (
-            "_on_output_labels",
-            (AWAITING_OUTPUT_LABELS, AWAITING_FINISH),
-        ),
-        (AWAITING_FINISH, fr.FINISH): ("_on_finish", (DONE,)),
-    }
+    _with_resume(
+        {
+            (NEW, START): ("_on_start", (AWAITING_HELLO,)),
+            (AWAITING_HELLO, fr.HELLO): (
+                "_on_hello",
+                (BASE_OT, STREAMING, AWAITING_OUTPUT_LABELS, AWAITING_FINISH),
+            ),
+            (BASE_OT, fr.BASE_OT): ("_on_base_ot", (OT_EXTENSION,)),
+            (OT_EXTENSION, fr.OT_EXTENSION): (
+                "_on_ot_extension",
+                (OT_EXTENSION, STREAMING, AWAITING_OUTPUT_LABELS, AWAITING_FINISH),
+            ),
+            (STREAMING, TABLES_SENT): ("_on_tables_sent", (AWAITING_OUTPUT_LABELS, AWAITING_FINISH)),
+            (AWAITING_OUTPUT_LABELS, fr.GARBLER_OUTPUT_LABELS): (
+                "_on_output_labels",
+                (AWAITING_OUTPUT_LABELS, AWAITING_FINISH),
+            ),
+            (AWAITING_FINISH, fr.FINISH): ("_on_finish", (DONE,)),
+        },
+        (STREAMING, AWAITING_OUTPUT_LABELS, AWAITING_FINISH),
+        acks=True,
+    )
 )
 
 EVALUATOR_TABLE: Mapping[tuple[str, str], Transition] = _with_abort(
-    {
-        (NEW, START): ("_on_start", (AWAITING_HELLO,)),
-        (AWAITING_HELLO, fr.HELLO): (
-            "_on_hello",
-            (BASE_OT, AWAITING_INPUT_LABELS, EVALUATING, AWAITING_DECODING, AWAITING_FINISH),
-        ),
-        (BASE_OT, fr.BASE_OT): ("_on_base_ot", (OT_EXTENSION,)),
-        (OT_EXTENSION, fr.OT_EXTENSION): (
-            "_on_ot_extension",
-            (OT_EXTENSION, AWAITING_INPUT_LABELS, EVALUATING, AWAITING_DECODING, AWAITING_FINISH),
-        ),
-        (AWAITING_INPUT_LABELS, fr.GARBLER_INPUT_LABELS): (
-            "_on_input_labels",
-            (AWAITING_INPUT_LABELS, EVALUATING, AWAITING_DECODING, AWAITING_FINISH),
-        ),
-        (EVALUATING, fr.GARBLED_TABLES): ("_on_tables", (EVALUATING, AWAITING_DECODING, AWAITING_FINISH)),
-        (AWAITING_DECODING, fr.EVALUATOR_OUTPUT_DECODING): (
-            "_on_decoding",
-            (AWAITING_DECODING, AWAITING_FINISH),
-        ),
-        (AWAITING_FINISH, fr.FINISH): ("_on_finish", (DONE,)),
-    }
+    _with_resume(
+        {
+            (NEW, START): ("_on_start", (AWAITING_HELLO,)),
+            (AWAITING_HELLO, fr.HELLO): (
+                "_on_hello",
+                (BASE_OT, AWAITING_INPUT_LABELS, EVALUATING, AWAITING_DECODING, AWAITING_FINISH),
+            ),
+            (BASE_OT, fr.BASE_OT): ("_on_base_ot", (OT_EXTENSION,)),
+            (OT_EXTENSION, fr.OT_EXTENSION): (
+                "_on_ot_extension",
+                (OT_EXTENSION, AWAITING_INPUT_LABELS, EVALUATING, AWAITING_DECODING, AWAITING_FINISH),
+            ),
+            (AWAITING_INPUT_LABELS, fr.GARBLER_INPUT_LABELS): (
+                "_on_input_labels",
+                (AWAITING_INPUT_LABELS, EVALUATING, AWAITING_DECODING, AWAITING_FINISH),
+            ),
+            (EVALUATING, fr.GARBLED_TABLES): ("_on_tables", (EVALUATING, AWAITING_DECODING, AWAITING_FINISH)),
+            (AWAITING_DECODING, fr.EVALUATOR_OUTPUT_DECODING): (
+                "_on_decoding",
+                (AWAITING_DECODING, AWAITING_FINISH),
+            ),
+            (AWAITING_FINISH, fr.FINISH): ("_on_finish", (DONE,)),
+        },
+        (AWAITING_INPUT_LABELS, EVALUATING, AWAITING_DECODING, AWAITING_FINISH),
+    )
 )
 
 
@@ -193,11 +241,25 @@ OT_MESSAGE_OF: Mapping[Party, Mapping[str, str]] = {
 CorrelatedOT = CorrelatedOTSender | CorrelatedOTReceiver
 
 
+DEFAULT_REPLAY_LIMIT_BYTES = (
+    64 * 2**20
+)  # the garbler's replay buffer: 2 × BDP of 1 Gbit/s at 200 ms (common practice)
+
+
 class NoOutputError(RuntimeError):
     """Asked for the output of a session that has not completed (it is released only in ``done``)."""
 
 
-class _Accumulator:
+class ResumeRefused(ProtocolError):
+    """A resume this session cannot accept; the session itself is unchanged (``frame``: the abort for that stream)."""
+
+    def __init__(self, message: str) -> None:
+        super().__init__(
+            AbortReason.RESUME_REFUSED, message, fr.abort_frame(AbortReason.RESUME_REFUSED, message)
+        )
+
+
+class Accumulator:
     """Collects a payload of known total size that arrives split over frames of one type."""
 
     def __init__(self, kind: str, total: int, unit: str) -> None:
@@ -210,7 +272,7 @@ class _Accumulator:
     def complete(self) -> bool:
         return len(self._buf) == self.total
 
-    def add(self, payload: bytes) -> None:
+    def add(self, payload: bytes | memoryview) -> None:
         if not payload:
             raise ProtocolError(AbortReason.MALFORMED_FRAME, f"empty {self.kind} frame")
         if len(self._buf) + len(payload) > self.total:
@@ -227,7 +289,7 @@ class _Accumulator:
         return data
 
 
-def _check_inputs(program: Program, party: Party, inputs: object) -> np.ndarray:
+def check_inputs(program: Program, party: Party, inputs: object) -> np.ndarray:
     bits = np.asarray(inputs)
     expected = program.n_inputs(party)
     name = Party(party).role_name
@@ -242,8 +304,9 @@ def _check_inputs(program: Program, party: Party, inputs: object) -> np.ndarray:
     return np.ascontiguousarray(bits, dtype=np.uint8)
 
 
-class _Session(TableMachine[fr.AnyFrame | None, list[bytes]]):
-    """What both sessions share: how they fail, hello checks, transcript, finish and output release.
+class SessionBase(TableMachine[fr.AnyFrame | None, list[bytes]]):
+    """What both sessions share: how they fail, hello checks, transcript, replay buffer, resume, finish and output
+    release.
 
     The table dispatch itself is ``jointstat.machine``'s; the hooks below make every failure a ``ProtocolError``
     carrying the abort frame for the peer.
@@ -272,7 +335,7 @@ class _Session(TableMachine[fr.AnyFrame | None, list[bytes]]):
         self.manifest_digest = fr.check_digest(manifest_digest, "manifest digest")
         self.program = program
         self.program_digest = program.digest
-        self._inputs = _check_inputs(program, self.PARTY, inputs)
+        self._inputs = check_inputs(program, self.PARTY, inputs)
         self._sign = sign
         self._verify = verify
         self._random_bytes = random_bytes
@@ -287,6 +350,17 @@ class _Session(TableMachine[fr.AnyFrame | None, list[bytes]]):
         self._who = f"{self.PARTY.role_name} session"
         self._n_in = {p: program.n_inputs(p) for p in Party}
         self._n_out = {p: program.n_outputs(p) for p in Party}
+        # Resume (module docstring): the logical frames sent since this side's OT ended and not yet acknowledged.
+        self._replay: deque[bytes] = deque()
+        self._replay_first = 0  # the number of the first frame in the replay buffer
+        self._replay_bytes = 0
+        self._keeping = False  # True once this side's OT has ended: the session can be resumed from then on
+        self._anchor: bytes | None = None  # the transcript digest through OT, which a resume statement names
+        self._peer_acked = 0  # own logical frames the peer has acknowledged (tables_ack or resume)
+        self._last_attempt = 0  # the latest resume attempt accepted
+        self._offered_attempt = 0  # the attempt of the resume frame this side sent and awaits an answer to
+        self.resumes = 0  # resumes completed on this side
+        self._resent_upto = 0  # every logical frame numbered below this has been handed out by a resume
 
     # -- public view ----------------------------------------------------------------------------------------------
     @property
@@ -351,6 +425,31 @@ class _Session(TableMachine[fr.AnyFrame | None, list[bytes]]):
     def frames_received(self) -> int:
         return self._transcript.frames_received
 
+    @property
+    def logical_sent(self) -> int:
+        """Logical frames sent so far (``frames``: every frame but tables_ack, resume and abort), each once."""
+        return self._transcript.logical_sent
+
+    @property
+    def logical_received(self) -> int:
+        """Logical frames taken from the peer so far: what this side acknowledges and names in a resume."""
+        return self._transcript.logical_received
+
+    @property
+    def peer_acked(self) -> int:
+        """This side's logical frames the peer has acknowledged (by tables_ack or in a resume)."""
+        return self._peer_acked
+
+    @property
+    def replay_bytes(self) -> int:
+        """Bytes of the frames held in the replay buffer (sent, not yet acknowledged)."""
+        return self._replay_bytes
+
+    @property
+    def resumable(self) -> bool:
+        """True once this side's OT has ended, until the session fails: a cut can then be resumed."""
+        return self._keeping and self._state != FAILED
+
     # -- driving --------------------------------------------------------------------------------------------------
     def use_hash_factory(self, factory: Callable[[], Any]) -> None:
         """Hash the transcript with objects from ``factory`` (``update``/``digest``, SHA-256); before ``start``."""
@@ -361,9 +460,11 @@ class _Session(TableMachine[fr.AnyFrame | None, list[bytes]]):
         self._transcript = Transcript(self.PARTY, self.session_id, factory)
 
     def release(self) -> None:
-        """Drop the engines (and stop a program paused in its greenlet) once the session has ended."""
+        """Drop the engines, the replay buffer (and stop a program paused in its greenlet) once the session has
+        ended; a done session can no longer answer a resume afterwards."""
         if self.ended:
             self._release_engines()
+            self._drop_replay()
 
     def start(self) -> list[bytes]:
         """The frames this side sends first (its hello)."""
@@ -375,6 +476,12 @@ class _Session(TableMachine[fr.AnyFrame | None, list[bytes]]):
         Raises ``ProtocolError`` when the frame ends the session in failure; send its ``frame`` (if any) to the peer.
         After a peer's ``abort`` the session is ``failed`` and the list is empty.
         """
+        if self._state == DONE and self._keeping:  # a done session still answers a resume (module docstring)
+            kind, frame = fr.decode(data)
+            if kind == fr.RESUME:
+                self._check_resume(frame)
+                self._transcript.received(kind, data)
+                return self._resume_replies(frame)
         if self.ended:
             raise ProtocolError(
                 AbortReason.UNEXPECTED_FRAME, f"{self._who} has ended ({self._state}); frame refused"
@@ -383,8 +490,44 @@ class _Session(TableMachine[fr.AnyFrame | None, list[bytes]]):
             kind, frame = fr.decode(data)
         except ProtocolError as exc:
             raise self._failure(exc.reason, f"{self._who} in state {self._state!r}: {exc}") from None
+        if kind == fr.RESUME:
+            self._check_resume(frame)  # a refused resume leaves the session as it was
         self._transcript.received(kind, data)
         return self._dispatch(kind, frame)
+
+    def check_resume(self, data: bytes) -> None:
+        """Check a peer's resume frame without taking it: raises ``ResumeRefused`` when ``receive`` would."""
+        kind, frame = fr.decode(data)
+        if kind != fr.RESUME:
+            raise ResumeRefused(f"{self._who}: a {kind!r} frame is not a resume")
+        self._check_resume(frame)
+
+    def resume_frame(self, attempt: int) -> bytes:
+        """The resume frame this side opens a new stream with, for reconnection ``attempt`` (1, 2, … increasing).
+
+        Raises ``ResumeRefused`` when there is nothing to resume (before OT has ended, or after a failure).
+        """
+        if not self.resumable:
+            raise ResumeRefused(
+                f"{self._who} in state {self._state!r}: nothing to resume before OT has ended"
+            )
+        if not isinstance(attempt, int) or attempt <= self._last_attempt:
+            raise ValueError(f"resume attempt must be above {self._last_attempt}, got {attempt!r}")
+        self._offered_attempt = attempt
+        return self._own_resume(attempt)
+
+    def _own_resume(self, attempt: int) -> bytes:
+        assert self._anchor is not None
+        data = fr.resume_frame(
+            party=self.PARTY,
+            session_id=self.session_id,
+            attempt=attempt,
+            frames_received=self._transcript.logical_received,
+            anchor=self._anchor,
+            sign=lambda digest: self._signature(RESUME, digest),
+        )
+        self._transcript.sent(fr.RESUME, data)
+        return data
 
     def fail(self, reason: AbortReason, message: str) -> bytes | None:
         """End the session for a reason found outside it (deadline, lost connection, shutdown).
@@ -401,6 +544,7 @@ class _Session(TableMachine[fr.AnyFrame | None, list[bytes]]):
         self._abort = AbortInfo(reason=AbortReason(reason), message=message, by_peer=False)
         self._result = None
         self._release_engines()
+        self._drop_replay()
         return ProtocolError(reason, message, fr.abort_frame(reason, message))
 
     def _release_engines(self) -> None:
@@ -447,9 +591,88 @@ class _Session(TableMachine[fr.AnyFrame | None, list[bytes]]):
         )
 
     def _emit(self, kind: str, data: bytes) -> bytes:
-        """Record an outgoing frame in the transcript and hand it out."""
+        """Record an outgoing frame in the transcript (and, after OT, the replay buffer) and hand it out."""
         self._transcript.sent(kind, data)
+        if self._keeping and kind not in fr.UNNUMBERED:
+            self._replay.append(data)
+            self._replay_bytes += len(data)
         return data
+
+    # -- replay buffer and resume ----------------------------------------------------------------------------------
+    def _start_keeping(self) -> None:
+        """This side's OT has ended: take the anchor and keep every logical frame sent from now on."""
+        self._anchor = self._transcript.digest()
+        self._keeping = True
+        self._replay_first = self._transcript.logical_sent
+        self._peer_acked = max(self._peer_acked, self._replay_first)
+
+    def _drop_replay(self) -> None:
+        self._replay.clear()
+        self._replay_bytes = 0
+        self._keeping = False
+
+    def _acknowledged(self, count: int, what: str) -> None:
+        """The peer has taken this side's first ``count`` logical frames: drop them from the replay buffer."""
+        sent = self._transcript.logical_sent
+        if count > sent:
+            raise ProtocolError(
+                AbortReason.MALFORMED_FRAME, f"{what} acknowledges {count} frames; only {sent} were sent"
+            )
+        if count < self._peer_acked:
+            raise ProtocolError(
+                AbortReason.MALFORMED_FRAME,
+                f"{what} acknowledges {count} frames after {self._peer_acked} were acknowledged",
+            )
+        self._peer_acked = count
+        while self._replay and self._replay_first < count:
+            self._replay_bytes -= len(self._replay.popleft())
+            self._replay_first += 1
+
+    def _check_resume(self, frame: fr.AnyFrame) -> None:
+        """Check a peer's resume before anything changes; raises ``ResumeRefused`` (module docstring)."""
+        assert isinstance(frame, pb.Frame)
+        r = frame.resume
+        where = f"{self._who} in state {self._state!r}: resume refused"
+        if not self._keeping or self._anchor is None or self._state == FAILED:
+            raise ResumeRefused(f"{where}: nothing to resume (OT has not ended here, or the session failed)")
+        if r.protocol_version != fr.PROTOCOL_VERSION:
+            raise ResumeRefused(f"{where}: protocol version {r.protocol_version}, not {fr.PROTOCOL_VERSION}")
+        if bytes(r.session_id) != self.session_id or r.role != fr.role_to_wire(self.PEER):
+            raise ResumeRefused(f"{where}: it names another session or role")
+        expected = self._offered_attempt if self._offered_attempt else None
+        if expected is not None and r.attempt != expected:
+            raise ResumeRefused(f"{where}: the answer is for attempt {r.attempt}, this side sent {expected}")
+        if expected is None and r.attempt <= self._last_attempt:
+            raise ResumeRefused(
+                f"{where}: attempt {r.attempt} is not above the last accepted ({self._last_attempt})"
+            )
+        if not self._signature_ok(RESUME, bytes(r.signature), fr.resume_digest_of(r, self._anchor)):
+            raise ResumeRefused(
+                f"{where}: the resume proof does not verify against the peer's signing key and this session's "
+                "transcript"
+            )
+        sent = self._transcript.logical_sent
+        if not self._replay_first <= r.frames_received <= sent or r.frames_received < self._peer_acked:
+            raise ResumeRefused(
+                f"{where}: the peer has taken {r.frames_received} frames; this side sent {sent}, acknowledged "
+                f"{self._peer_acked} and can resend from {self._replay_first}"
+            )
+
+    def _resume_replies(self, frame: fr.AnyFrame) -> list[bytes]:
+        """After a checked resume: (the answering resume, when the peer initiated, then) the frames it lacks."""
+        assert isinstance(frame, pb.Frame)
+        r = frame.resume
+        answer = [] if self._offered_attempt else [self._own_resume(r.attempt)]
+        self._offered_attempt = 0
+        self._last_attempt = r.attempt
+        self.resumes += 1
+        self._acknowledged(r.frames_received, "the peer's resume")
+        self._resent_upto = self._transcript.logical_sent
+        return answer + list(self._replay)
+
+    def _on_resume(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
+        assert frame is not None
+        return self._state, self._resume_replies(frame)
 
     def _emit_payload(self, kind: str, payload: bytes) -> list[bytes]:
         return [self._emit(kind, f) for f in fr.chunked_frames(kind, payload)]
@@ -558,6 +781,7 @@ class _Session(TableMachine[fr.AnyFrame | None, list[bytes]]):
         if not ot.done:
             return next_state, replies
         self._ot = None
+        self._start_keeping()
         return self._after_ot(ot, replies)
 
     def _finish_frame(self) -> bytes:
@@ -588,389 +812,5 @@ class _Session(TableMachine[fr.AnyFrame | None, list[bytes]]):
         self._abort = fr.abort_of(frame)
         self._result = None
         self._release_engines()
+        self._drop_replay()
         return FAILED, []
-
-
-class GarblerSession(_Session):
-    """The garbler's side of one session: fresh Δ and labels, garbled tables streamed by ``produce()``.
-
-    ``inputs`` are the garbler's input bits (in the program's garbler input order). After ``done``, ``outputs``
-    holds the garbler's output bits. ``chunk_bytes`` bounds the tables per frame.
-    """
-
-    PARTY = Party.GARBLER
-    PEER = Party.EVALUATOR
-    TABLE = GARBLER_TABLE
-
-    def __init__(
-        self,
-        *,
-        session_id: bytes,
-        program: Program,
-        manifest_digest: bytes,
-        inputs: object,
-        sign: Sign,
-        verify: Verify,
-        random_bytes: RandomBytes = os.urandom,
-        chunk_bytes: int = DEFAULT_CHUNK_BYTES,
-    ) -> None:
-        if not isinstance(chunk_bytes, int) or not TABLE_BYTES <= chunk_bytes <= fr.MAX_PAYLOAD_BYTES:
-            raise ValueError(f"chunk_bytes must be an integer from {TABLE_BYTES} to {fr.MAX_PAYLOAD_BYTES}")
-        super().__init__(
-            session_id=session_id,
-            program=program,
-            manifest_digest=manifest_digest,
-            inputs=inputs,
-            sign=sign,
-            verify=verify,
-            random_bytes=random_bytes,
-        )
-        self._chunk_bytes = chunk_bytes
-        self._delta: np.ndarray | None = None
-        self._evaluator_zero: np.ndarray | None = None
-        self._backend: GarblerBackend | None = None
-        self._producer: TableProducer | None = None
-        self._gates_garbled = 0  # once the program has ended (the backend is gone)
-        self._producing = False
-        self._output_zero: dict[Party, np.ndarray] | None = None
-        self._returned = _Accumulator(
-            fr.GARBLER_OUTPUT_LABELS, BLOCK_BYTES * self._n_out[Party.GARBLER], "16 bytes per garbler output"
-        )
-
-    @property
-    def and_gates_done(self) -> int:
-        backend = self._backend
-        return self._gates_garbled if backend is None else backend.next_gate
-
-    @property
-    def ready_to_stream(self) -> bool:
-        """True once OT is done and ``produce()`` should be run (once)."""
-        return self._state == STREAMING and not self._producing
-
-    def _release_engines(self) -> None:
-        self._ot = None
-        if self._backend is not None:  # how far the program got, for the progress of a failed session
-            self._gates_garbled = self._backend.next_gate
-        self._backend = None
-        self._delta = None
-        self._evaluator_zero = None
-        self._output_zero = None
-        if self._producer is not None:
-            self._producer.close()
-            self._producer = None
-
-    def _new_ot(self) -> CorrelatedOTSender:
-        self._delta = fresh_delta(self._random_bytes)
-        n = self._n_in[Party.EVALUATOR]
-        return CorrelatedOTSender(self.session_id, self._delta, n, random_bytes=self._random_bytes)
-
-    def _after_ot(self, ot: CorrelatedOT, replies: list[bytes]) -> tuple[str, list[bytes]]:
-        assert isinstance(ot, CorrelatedOTSender)
-        self._evaluator_zero = ot.zero_labels  # K of the evaluator's inputs ((0, 2) when it has none)
-        if self._n_in[Party.GARBLER] or self.and_gates_total:
-            return STREAMING, replies
-        # Nothing to stream (no garbler input labels, no tables): the evaluator needs nothing more from us and may
-        # answer at once, so the program runs here and the state leaves 'streaming' with this very reply.
-        assert self._delta is not None
-        self._producing = True
-        for _ in self._payloads(self._delta, self._evaluator_zero):
-            raise ProtocolError(AbortReason.INTERNAL, "a program with no AND gates streamed tables")
-        self._evaluator_zero = None
-        state, more = self._on_tables_sent(None)
-        return state, replies + more
-
-    def produce(self) -> Iterator[bytes]:
-        """The streamed frames: the garbler's input labels, then the garbled tables, garbled as they are pulled.
-
-        Valid once, in state ``streaming``. If the session fails meanwhile, the iterator stops. The state leaves
-        ``streaming`` before the last frame is handed out (and, when the garbler has no outputs, the decoding and
-        finish frames follow).
-        """
-        if self._state != STREAMING or self._producing or self._evaluator_zero is None or self._delta is None:
-            raise ProtocolError(
-                AbortReason.INTERNAL,
-                f"{self._who} in state {self._state!r}: produce() is valid once, in streaming",
-            )
-        self._producing = True
-        payloads = self._payloads(self._delta, self._evaluator_zero)
-        self._evaluator_zero = None
-        try:
-            current = next(payloads, None)
-            if current is None:  # no garbler inputs and no AND gates: nothing to stream
-                yield from self._dispatch(TABLES_SENT, None)
-                return
-            while current is not None:
-                # Pull the next chunk first: it runs the program further, and after the last one the program has
-                # ended (its output labels are known) before the state may leave 'streaming'.
-                upcoming = next(payloads, None)
-                if self._state != STREAMING:
-                    return
-                kind, payload = current
-                data = self._emit(kind, fr.payload_frame(kind, payload))
-                extra = self._dispatch(TABLES_SENT, None) if upcoming is None else []
-                yield data
-                yield from extra
-                current = upcoming
-        except ProtocolError:
-            raise
-        except GarbleError as exc:
-            raise self._failure(
-                AbortReason.INTERNAL, f"{self._who} in state {self._state!r}: {exc}"
-            ) from None
-        except Exception as exc:
-            raise self._failure(
-                AbortReason.INTERNAL,
-                f"{self._who} in state {self._state!r}: garbling failed ({type(exc).__name__})",
-            ) from exc
-
-    def _payloads(self, delta: np.ndarray, evaluator_zero: np.ndarray) -> Iterator[tuple[str, bytes]]:
-        own_zero = np.frombuffer(
-            bytearray(self._random_bytes(BLOCK_BYTES * self._n_in[Party.GARBLER])), dtype=BLOCK_DTYPE
-        ).reshape(-1, 2)
-        mask = (self._inputs.astype(np.uint64) * np.uint64(0xFFFFFFFFFFFFFFFF)).reshape(-1, 1)
-        raw = (own_zero ^ (np.broadcast_to(delta, own_zero.shape) & mask)).tobytes()
-        for i in range(0, len(raw), fr.MAX_PAYLOAD_BYTES):
-            yield fr.GARBLER_INPUT_LABELS, raw[i : i + fr.MAX_PAYLOAD_BYTES]
-        program = self.program
-
-        def garble(sink: Sink) -> GarblerBackend:
-            backend = GarblerBackend(
-                delta=delta,
-                input_labels={Party.GARBLER: own_zero, Party.EVALUATOR: evaluator_zero},
-                sink=sink,
-                chunk_bytes=self._chunk_bytes,
-            )
-            self._backend = backend
-            program.run(Builder(backend))
-            backend.check_inputs_used()
-            backend.flush()
-            return backend
-
-        producer = self._producer = TableProducer(garble)
-        while True:
-            chunk = producer.next_chunk()
-            if chunk is None:
-                break
-            yield fr.GARBLED_TABLES, chunk
-        if self.ended:  # the session ended meanwhile and stopped the program: nothing more to stream
-            return
-        backend = producer.result
-        if backend.and_gates != self.and_gates_total:
-            raise GarbleError(
-                f"the program garbled {backend.and_gates} AND gates but measured {self.and_gates_total}"
-            )
-        self._output_zero = {p: backend.output_labels(p) for p in Party}
-        self._gates_garbled = backend.next_gate
-        self._backend = None
-        self._producer = None
-
-    def _on_tables_sent(self, _frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
-        if self._n_out[Party.GARBLER] == 0:
-            self._result = np.zeros(0, dtype=np.uint8)
-            return AWAITING_FINISH, self._decoding_and_finish()
-        return AWAITING_OUTPUT_LABELS, []
-
-    def _on_output_labels(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None and self._output_zero is not None and self._delta is not None
-        self._returned.add(fr.payload_of(fr.GARBLER_OUTPUT_LABELS, frame))
-        if not self._returned.complete:
-            return AWAITING_OUTPUT_LABELS, []
-        labels = np.frombuffer(self._returned.take(), dtype=BLOCK_DTYPE).reshape(-1, 2)
-        self._result = decode_returned(self._output_zero[Party.GARBLER], self._delta, labels)
-        return AWAITING_FINISH, self._decoding_and_finish()
-
-    def _decoding_and_finish(self) -> list[bytes]:
-        assert self._output_zero is not None and self._delta is not None
-        decoding = make_decoding(self._output_zero[Party.EVALUATOR], self._delta).to_bytes()
-        self._output_zero = None
-        self._delta = None
-        out = self._emit_payload(fr.EVALUATOR_OUTPUT_DECODING, decoding)
-        out.append(self._finish_frame())
-        return out
-
-
-class EvaluatorSession(_Session):
-    """The evaluator's side of one session: OT for its input labels, evaluation of the table stream.
-
-    ``inputs`` are the evaluator's input bits (its choice bits in OT). After ``done``, ``outputs`` holds the
-    evaluator's output bits.
-    """
-
-    PARTY = Party.EVALUATOR
-    PEER = Party.GARBLER
-    TABLE = EVALUATOR_TABLE
-
-    def __init__(
-        self,
-        *,
-        session_id: bytes,
-        program: Program,
-        manifest_digest: bytes,
-        inputs: object,
-        sign: Sign,
-        verify: Verify,
-        random_bytes: RandomBytes = os.urandom,
-    ) -> None:
-        super().__init__(
-            session_id=session_id,
-            program=program,
-            manifest_digest=manifest_digest,
-            inputs=inputs,
-            sign=sign,
-            verify=verify,
-            random_bytes=random_bytes,
-        )
-        self._own_labels: np.ndarray | None = None
-        self._consumer: TableConsumer | None = None
-        self._backend: EvaluatorBackend | None = None
-        self._table_bytes_total = TABLE_BYTES * program.size.and_gates
-        self._table_bytes_left = self._table_bytes_total
-        self._given = _Accumulator(
-            fr.GARBLER_INPUT_LABELS,
-            BLOCK_BYTES * self._n_in[Party.GARBLER],
-            "16 bytes for each garbler input",
-        )
-        n = self._n_out[Party.EVALUATOR]
-        self._decoding = _Accumulator(
-            fr.EVALUATOR_OUTPUT_DECODING,
-            OutputDecoding.size(n),
-            "packed decoding bits and two 8-byte tags per output",
-        )
-
-    @property
-    def and_gates_done(self) -> int:
-        backend = self._backend
-        if backend is not None:
-            return backend.next_gate
-        return (self._table_bytes_total - self._table_bytes_left) // TABLE_BYTES
-
-    def _unexpected_note(self, event: str) -> str:
-        total, left = self._table_bytes_total, self._table_bytes_left
-        if self._state == EVALUATING:  # another frame type while tables are still due: the stream ended short
-            return f"; the garbled tables stopped {left} bytes short of the {total} bytes the program needs"
-        if event == fr.GARBLED_TABLES and total and not left:
-            return f"; all {total} bytes of garbled tables the program needs had already arrived"
-        return ""
-
-    def _release_engines(self) -> None:
-        self._ot = None
-        self._own_labels = None
-        self._backend = None
-        if self._consumer is not None:
-            self._consumer.close_quietly()
-            self._consumer = None
-
-    def _new_ot(self) -> CorrelatedOTReceiver:
-        return CorrelatedOTReceiver(self.session_id, self._inputs, random_bytes=self._random_bytes)
-
-    def _after_ot(self, ot: CorrelatedOT, replies: list[bytes]) -> tuple[str, list[bytes]]:
-        assert isinstance(ot, CorrelatedOTReceiver)
-        self._own_labels = ot.labels  # K ⊕ x·Δ of its own inputs ((0, 2) when it has none)
-        if self._given.total == 0:  # the garbler has no inputs: nothing to wait for
-            state, more = self._start_program(np.zeros((0, 2), dtype=BLOCK_DTYPE))
-            return state, replies + more
-        return AWAITING_INPUT_LABELS, replies
-
-    def _on_input_labels(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None
-        self._given.add(fr.payload_of(fr.GARBLER_INPUT_LABELS, frame))
-        if not self._given.complete:
-            return AWAITING_INPUT_LABELS, []
-        return self._start_program(np.frombuffer(self._given.take(), dtype=BLOCK_DTYPE).reshape(-1, 2))
-
-    def _start_program(self, given: np.ndarray) -> tuple[str, list[bytes]]:
-        assert self._own_labels is not None
-        own, self._own_labels = self._own_labels, None
-        program = self.program
-
-        def evaluate(source: Source) -> EvaluatorBackend:
-            backend = EvaluatorBackend(
-                input_labels={Party.GARBLER: given, Party.EVALUATOR: own}, source=source
-            )
-            self._backend = backend
-            program.run(Builder(backend))
-            backend.check_inputs_used()
-            return backend
-
-        self._consumer = TableConsumer(evaluate, total=self._table_bytes_total)
-        self._consumer.start()
-        if self._consumer.finished:
-            return self._after_tables()
-        return EVALUATING, []
-
-    def _on_tables(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None and self._consumer is not None
-        tables = fr.payload_of(fr.GARBLED_TABLES, frame)
-        if not len(tables):
-            raise ProtocolError(AbortReason.MALFORMED_FRAME, "empty garbled_tables frame")
-        if len(tables) > self._table_bytes_left:
-            raise ProtocolError(
-                AbortReason.MALFORMED_FRAME,
-                f"garbled_tables frame of {len(tables)} bytes exceeds the {self._table_bytes_left} bytes of tables "
-                "the program still needs",
-            )
-        self._table_bytes_left -= len(tables)
-        self._consumer.feed(tables)
-        if self._table_bytes_left == 0:
-            self._consumer.close()  # a program that wants more tables than it declared fails here
-        if self._consumer.finished:
-            return self._after_tables()
-        return EVALUATING, []
-
-    def _after_tables(self) -> tuple[str, list[bytes]]:
-        assert self._consumer is not None
-        backend: EvaluatorBackend = self._consumer.result
-        if self._table_bytes_left:
-            raise GarbleError(
-                f"the program ended with {self._table_bytes_left} bytes of tables still due from the garbler"
-            )
-        self._consumer = None
-        self._backend = backend
-        returned = backend.output_labels(Party.GARBLER).tobytes()
-        out = self._emit_payload(fr.GARBLER_OUTPUT_LABELS, returned)
-        if self._decoding.total == 0:
-            self._result = np.zeros(0, dtype=np.uint8)
-            self._backend = None
-            out.append(self._finish_frame())
-            return AWAITING_FINISH, out
-        return AWAITING_DECODING, out
-
-    def _on_decoding(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None and self._backend is not None
-        self._decoding.add(fr.payload_of(fr.EVALUATOR_OUTPUT_DECODING, frame))
-        if not self._decoding.complete:
-            return AWAITING_DECODING, []
-        decoding = OutputDecoding.from_bytes(self._decoding.take(), self._n_out[Party.EVALUATOR])
-        self._result = decode(self._backend.output_labels(Party.EVALUATOR), decoding)
-        self._backend = None
-        return AWAITING_FINISH, [self._finish_frame()]
-
-
-Session = GarblerSession | EvaluatorSession
-
-
-def new_session(
-    party: Party,
-    *,
-    session_id: bytes,
-    program: Program,
-    manifest_digest: bytes,
-    inputs: object,
-    sign: Sign,
-    verify: Verify,
-    random_bytes: RandomBytes = os.urandom,
-    chunk_bytes: int = DEFAULT_CHUNK_BYTES,
-) -> Session:
-    """A session for ``party`` with the given program, digest and own inputs (``chunk_bytes``: garbler only)."""
-    common = {
-        "session_id": session_id,
-        "program": program,
-        "manifest_digest": manifest_digest,
-        "inputs": inputs,
-        "sign": sign,
-        "verify": verify,
-        "random_bytes": random_bytes,
-    }
-    if Party(party) == Party.GARBLER:
-        return GarblerSession(chunk_bytes=chunk_bytes, **common)  # type: ignore[arg-type]
-    return EvaluatorSession(**common)  # type: ignore[arg-type]

@@ -61,10 +61,13 @@ def describe_rpc_error(exc: grpc.aio.AioRpcError) -> str:
 class ClientStream:
     """``FrameStream`` over a client-side stream-stream call."""
 
-    def __init__(self, call: grpc.aio.StreamStreamCall, grace_s: float) -> None:
+    def __init__(
+        self, call: grpc.aio.StreamStreamCall, grace_s: float, channel: grpc.aio.Channel | None = None
+    ) -> None:
         self._call = call
         self._grace_s = grace_s
         self._closed = False
+        self._channel = channel  # closed by ``release`` when this stream owns its channel
 
     async def read(self) -> bytes | None:
         try:
@@ -105,11 +108,23 @@ class ClientStream:
         except (grpc.aio.AioRpcError, asyncio.InvalidStateError, grpc.aio.UsageError):
             return
         # Wait for the server to end the call, so the last frames (the finish, or an abort) are through before the
-        # channel closes or the call is cancelled; a server that has gone quiet gets ``grace_s``.
-        await asyncio.wait_for(self._call.code(), timeout=self._grace_s)
+        # channel closes or the call is cancelled; a server that has gone quiet gets ``grace_s``. A call that does
+        # not end well means the server may lack the last frames: ``StreamLost`` (the driver may resume).
+        try:
+            code = await asyncio.wait_for(self._call.code(), timeout=self._grace_s)
+        except TimeoutError:
+            raise StreamLost(f"the server did not end the call within {self._grace_s:g} s") from None
+        if completed and code != grpc.StatusCode.OK:
+            raise StreamLost(f"the call ended with {code.name}")
 
     def cancel(self) -> None:
         self._call.cancel()
+
+    async def release(self) -> None:
+        """Close the channel this stream owns (one per connection attempt), if any."""
+        channel, self._channel = self._channel, None
+        if channel is not None:
+            await channel.close()
 
     def peer_gone(self) -> bool:
         return False
@@ -126,11 +141,19 @@ class ServerStream:
         self._context = context
         self._stopping = stopping
 
+    @staticmethod
+    def _cancelled_here() -> bool:
+        """Whether the running task itself is being cancelled (else gRPC cancelled the call under it)."""
+        task = asyncio.current_task()
+        return task is not None and task.cancelling() > 0
+
     async def read(self) -> bytes | None:
         try:
             data = await self._context.read()
         except asyncio.CancelledError:
-            raise
+            if self._cancelled_here():
+                raise
+            raise StreamLost("the call was cancelled (the peer went away)") from None
         except Exception as exc:
             raise StreamLost(f"reading the stream failed ({type(exc).__name__}: {exc})") from None
         if data is grpc.aio.EOF:
@@ -143,7 +166,9 @@ class ServerStream:
         try:
             await self._context.write(data)
         except asyncio.CancelledError:
-            raise
+            if self._cancelled_here():
+                raise
+            raise StreamLost("the call was cancelled (the peer went away)") from None
         except Exception as exc:
             raise StreamLost(f"writing to the stream failed ({type(exc).__name__})") from None
 

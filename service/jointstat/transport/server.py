@@ -1,4 +1,5 @@
-"""The session server: accepts a peer's stream over mutual TLS and runs the session it was told to expect.
+"""The session server: accepts a peer's stream over mutual TLS and runs the session it was told to expect, and the
+streams that resume it after a cut.
 
 Theory of operation: the node registers each session it will serve with ``expect(session)`` and gets a future
 for its result. When a peer opens ``jointstat.v1.Session/Exchange`` — which it can only do with a pinned
@@ -6,8 +7,14 @@ certificate, since the pinned certificates are the TLS trust anchors — the han
 more (TLS 1.3, pinned fingerprint; ``tls.check_peer``) and refuses the call with PERMISSION_DENIED before reading
 anything. It then reads the first frame, which must be a hello, and looks up its session id: an id used before, or
 one nobody expects, is refused with an abort frame; a session expected from another peer certificate likewise.
-Otherwise the id is claimed (it can never run again) and the driver runs the session to its end; the future gets
-the result, including when the stream is cancelled under it.
+Otherwise the id is claimed (it can never run again) and a driver runs the session in a task of its own, to its
+end; the future gets the result. The stream's handler lasts as long as the session uses its stream.
+
+Resume: a stream whose first frame is ``resume`` names a session this server runs. It is refused (an abort frame
+``resume_refused``, and a line in ``refused``) when no session of that id is running here — it ended, its grace
+period passed, or it never ran — or when the stream's client certificate is not the one the session started with
+(even another pinned peer's); otherwise the stream is handed to the session's driver, which checks the resume frame
+itself (proof, attempt, counts: ``protocol.session``) and refuses or resumes (``transport.driver``).
 
 ``shutdown`` (``driver.Shutdown``) lets the node end the sessions it serves with ``peer_shutdown`` before it stops
 the server. ``services`` lets the node register more services on the same port before it starts (its run proposals and the
@@ -27,7 +34,7 @@ import grpc
 
 from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import AbortReason, ProtocolError
-from jointstat.protocol.session import Session
+from jointstat.protocol.sides import Session
 from jointstat.transport.channel import (
     MESSAGE_OPTIONS,
     METHOD_NAME,
@@ -37,13 +44,16 @@ from jointstat.transport.channel import (
     SessionRefused,
 )
 from jointstat.transport.driver import (
+    REFUSED,
+    Driver,
     Limits,
     SessionResult,
     Shutdown,
     StreamLost,
     WireCounters,
-    drive,
+    new_driver,
     result_of,
+    run_driver,
 )
 from jointstat.transport.tls import NodeTLS, PeerRefused, check_peer
 
@@ -58,6 +68,13 @@ class _Expected:
     future: asyncio.Future[SessionResult]
     counters: WireCounters = field(default_factory=WireCounters)
     on_progress: Callable[[], None] | None = None
+
+
+@dataclass
+class _Running:
+    driver: Driver
+    peer: bytes
+    task: asyncio.Task[SessionResult]
 
 
 class SessionServer:
@@ -80,6 +97,7 @@ class SessionServer:
         self._limits = limits or Limits()
         self._ids = session_ids if session_ids is not None else SessionIds()
         self._expected: dict[bytes, _Expected] = {}
+        self._running: dict[bytes, _Running] = {}
         self._server: grpc.aio.Server | None = None
         self._port: int | None = None
         self._stopping = False
@@ -113,8 +131,16 @@ class SessionServer:
         return port
 
     async def stop(self, grace: float | None = None) -> None:
-        """Stop serving; running sessions get ``grace`` seconds, then their streams are cancelled."""
+        """Stop serving; running sessions get ``grace`` seconds, then they are cancelled (their peers are told)."""
         self._stopping = True
+        tasks = [running.task for running in self._running.values()]
+        if tasks and grace:
+            await asyncio.wait(tasks, timeout=grace)
+        for task in tasks:
+            task.cancel()
+        for task in tasks:
+            with contextlib.suppress(BaseException):
+                await task
         if self._server is not None:
             await self._server.stop(grace)
             self._server = None
@@ -188,9 +214,12 @@ class SessionServer:
         except ProtocolError as exc:
             await self._refuse(stream, exc.reason, f"first frame refused: {exc}")
             return
+        if kind == fr.RESUME and not isinstance(frame, fr.TablesFrame):
+            await self._resume(stream, first, bytes(frame.resume.session_id), peer)
+            return
         if kind != fr.HELLO or isinstance(frame, fr.TablesFrame):
             await self._refuse(
-                stream, AbortReason.UNEXPECTED_FRAME, f"the first frame must be hello, got {kind!r}"
+                stream, AbortReason.UNEXPECTED_FRAME, f"the first frame must be hello or resume, got {kind!r}"
             )
             return
         sid = bytes(frame.hello.session_id)
@@ -217,21 +246,68 @@ class SessionServer:
             await self._refuse(stream, AbortReason.SESSION_REFUSED, str(exc))
             entry.future.cancel()
             return
-        counters = entry.counters
+        driver = new_driver(
+            entry.session,
+            entry.limits,
+            counters=entry.counters,
+            on_progress=entry.on_progress,
+            shutdown=self._shutdown,
+        )
+        task = asyncio.create_task(run_driver(driver, None, None), name="jointstat-session")
+        self._running[sid] = _Running(driver, peer, task)
+        task.add_done_callback(lambda done: self._session_ended(sid, entry, done))
+        await self._hand_over(driver, stream, first, resuming=False)
+        await self._after_link(driver, task)
+
+    def _session_ended(self, sid: bytes, entry: _Expected, task: asyncio.Task[SessionResult]) -> None:
+        self._running.pop(sid, None)
+        if entry.future.done():
+            return
+        if task.cancelled() or task.exception() is not None:
+            entry.future.set_result(result_of(entry.session, entry.counters))
+        else:
+            entry.future.set_result(task.result())
+
+    async def _hand_over(self, driver: Driver, stream: ServerStream, first: bytes, *, resuming: bool) -> None:
+        """Give the stream to the session's driver and keep the call open while the session uses it."""
+        seen = len(driver.events)
+        over = driver.offer(stream, first, resuming=resuming)
         try:
-            result = await drive(
-                entry.session,
-                stream,
-                entry.limits,
-                counters=counters,
-                first_frame=first,
-                on_progress=entry.on_progress,
-                shutdown=self._shutdown,
-            )
-        except BaseException:  # cancelled (the driver has failed the session) or a transport failure
-            entry.session.fail(AbortReason.INTERNAL, "the session transport failed")
-            if not entry.future.done():
-                entry.future.set_result(result_of(entry.session, counters))
+            await over
+        except asyncio.CancelledError:
+            driver.stream_gone(stream, "the call was cancelled (the peer went away, or the server stops)")
             raise
-        if not entry.future.done():
-            entry.future.set_result(result)
+        finally:
+            for event in driver.events[seen:]:
+                if event.kind == REFUSED:  # the driver refused this resume (proof, attempt or counts)
+                    self.refused.append(event.detail)
+
+    async def _resume(self, stream: ServerStream, first: bytes, sid: bytes, peer: bytes) -> None:
+        running = self._running.get(sid)
+        if running is None:
+            await self._refuse(
+                stream,
+                AbortReason.RESUME_REFUSED,
+                f"resume of session {sid.hex()[:32]} refused: no such session is running here (it ended, its grace "
+                "period passed, or it never ran)",
+            )
+            return
+        if running.peer != peer:
+            await self._refuse(
+                stream,
+                AbortReason.RESUME_REFUSED,
+                f"resume of session {sid.hex()[:32]} refused: the client certificate is not the one the session "
+                "started with",
+            )
+            return
+        await self._hand_over(running.driver, stream, first, resuming=True)
+        await self._after_link(running.driver, running.task)
+
+    @staticmethod
+    async def _after_link(driver: Driver, task: asyncio.Task[SessionResult]) -> None:
+        """The driver is done with this call's stream: if the session has ended or cannot be resumed, the call ends
+        once the session's result is known (so whoever sees the call end sees the result); if it may await a
+        resume, at once."""
+        if (driver.session.ended or not driver.can_resume) and not task.done():
+            with contextlib.suppress(Exception, asyncio.CancelledError):
+                await asyncio.shield(task)

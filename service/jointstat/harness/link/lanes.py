@@ -235,7 +235,11 @@ class Flow:
         assert dest is not None and dest.transport is not None
         self.eof_delivered = True
         if dest.transport.can_write_eof():
-            dest.transport.write_eof()
+            try:
+                dest.transport.write_eof()
+            except OSError:  # the receiver's socket has failed: the other endpoint sees a reset, as over TCP
+                self.conn.teardown(reset=True)
+                return
         self.conn.eof_delivered()
 
     def stop(self) -> None:

@@ -30,6 +30,7 @@ class AbortReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     ABORT_REASON_CONNECTION_LOST: _ClassVar[AbortReason]
     ABORT_REASON_INTERNAL: _ClassVar[AbortReason]
     ABORT_REASON_PEER_SHUTDOWN: _ClassVar[AbortReason]
+    ABORT_REASON_RESUME_REFUSED: _ClassVar[AbortReason]
 
 class RefusalReason(int, metaclass=_enum_type_wrapper.EnumTypeWrapper):
     __slots__ = ()
@@ -65,6 +66,7 @@ ABORT_REASON_CANCELLED: AbortReason
 ABORT_REASON_CONNECTION_LOST: AbortReason
 ABORT_REASON_INTERNAL: AbortReason
 ABORT_REASON_PEER_SHUTDOWN: AbortReason
+ABORT_REASON_RESUME_REFUSED: AbortReason
 REFUSAL_REASON_UNSPECIFIED: RefusalReason
 REFUSAL_REASON_JOB_NOT_CONFIGURED: RefusalReason
 REFUSAL_REASON_DIGEST_MISMATCH: RefusalReason
@@ -139,6 +141,28 @@ class Finish(_message.Message):
     signature: bytes
     def __init__(self, transcript_digest: _Optional[bytes] = ..., signature: _Optional[bytes] = ...) -> None: ...
 
+class TablesAck(_message.Message):
+    __slots__ = ("frames",)
+    FRAMES_FIELD_NUMBER: _ClassVar[int]
+    frames: int
+    def __init__(self, frames: _Optional[int] = ...) -> None: ...
+
+class Resume(_message.Message):
+    __slots__ = ("protocol_version", "session_id", "role", "attempt", "frames_received", "signature")
+    PROTOCOL_VERSION_FIELD_NUMBER: _ClassVar[int]
+    SESSION_ID_FIELD_NUMBER: _ClassVar[int]
+    ROLE_FIELD_NUMBER: _ClassVar[int]
+    ATTEMPT_FIELD_NUMBER: _ClassVar[int]
+    FRAMES_RECEIVED_FIELD_NUMBER: _ClassVar[int]
+    SIGNATURE_FIELD_NUMBER: _ClassVar[int]
+    protocol_version: int
+    session_id: bytes
+    role: Role
+    attempt: int
+    frames_received: int
+    signature: bytes
+    def __init__(self, protocol_version: _Optional[int] = ..., session_id: _Optional[bytes] = ..., role: _Optional[_Union[Role, str]] = ..., attempt: _Optional[int] = ..., frames_received: _Optional[int] = ..., signature: _Optional[bytes] = ...) -> None: ...
+
 class Abort(_message.Message):
     __slots__ = ("reason", "message")
     REASON_FIELD_NUMBER: _ClassVar[int]
@@ -148,7 +172,7 @@ class Abort(_message.Message):
     def __init__(self, reason: _Optional[_Union[AbortReason, str]] = ..., message: _Optional[str] = ...) -> None: ...
 
 class Frame(_message.Message):
-    __slots__ = ("hello", "base_ot", "ot_extension", "garbler_input_labels", "garbled_tables", "garbler_output_labels", "evaluator_output_decoding", "finish", "abort")
+    __slots__ = ("hello", "base_ot", "ot_extension", "garbler_input_labels", "garbled_tables", "garbler_output_labels", "evaluator_output_decoding", "finish", "abort", "tables_ack", "resume")
     HELLO_FIELD_NUMBER: _ClassVar[int]
     BASE_OT_FIELD_NUMBER: _ClassVar[int]
     OT_EXTENSION_FIELD_NUMBER: _ClassVar[int]
@@ -158,6 +182,8 @@ class Frame(_message.Message):
     EVALUATOR_OUTPUT_DECODING_FIELD_NUMBER: _ClassVar[int]
     FINISH_FIELD_NUMBER: _ClassVar[int]
     ABORT_FIELD_NUMBER: _ClassVar[int]
+    TABLES_ACK_FIELD_NUMBER: _ClassVar[int]
+    RESUME_FIELD_NUMBER: _ClassVar[int]
     hello: Hello
     base_ot: BaseOT
     ot_extension: OTExtension
@@ -167,7 +193,9 @@ class Frame(_message.Message):
     evaluator_output_decoding: EvaluatorOutputDecoding
     finish: Finish
     abort: Abort
-    def __init__(self, hello: _Optional[_Union[Hello, _Mapping]] = ..., base_ot: _Optional[_Union[BaseOT, _Mapping]] = ..., ot_extension: _Optional[_Union[OTExtension, _Mapping]] = ..., garbler_input_labels: _Optional[_Union[GarblerInputLabels, _Mapping]] = ..., garbled_tables: _Optional[_Union[GarbledTables, _Mapping]] = ..., garbler_output_labels: _Optional[_Union[GarblerOutputLabels, _Mapping]] = ..., evaluator_output_decoding: _Optional[_Union[EvaluatorOutputDecoding, _Mapping]] = ..., finish: _Optional[_Union[Finish, _Mapping]] = ..., abort: _Optional[_Union[Abort, _Mapping]] = ...) -> None: ...
+    tables_ack: TablesAck
+    resume: Resume
+    def __init__(self, hello: _Optional[_Union[Hello, _Mapping]] = ..., base_ot: _Optional[_Union[BaseOT, _Mapping]] = ..., ot_extension: _Optional[_Union[OTExtension, _Mapping]] = ..., garbler_input_labels: _Optional[_Union[GarblerInputLabels, _Mapping]] = ..., garbled_tables: _Optional[_Union[GarbledTables, _Mapping]] = ..., garbler_output_labels: _Optional[_Union[GarblerOutputLabels, _Mapping]] = ..., evaluator_output_decoding: _Optional[_Union[EvaluatorOutputDecoding, _Mapping]] = ..., finish: _Optional[_Union[Finish, _Mapping]] = ..., abort: _Optional[_Union[Abort, _Mapping]] = ..., tables_ack: _Optional[_Union[TablesAck, _Mapping]] = ..., resume: _Optional[_Union[Resume, _Mapping]] = ...) -> None: ...
 
 class RunProposal(_message.Message):
     __slots__ = ("protocol_version", "job", "manifest_digest", "session_id", "scheduled_for_us", "role", "attempt", "trigger")
