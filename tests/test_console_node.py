@@ -177,7 +177,7 @@ async def test_runs_started_from_the_console_complete_and_no_page_of_either_node
     assert f"{expected['sum']:,}" in fleet_results and ">6<" in fleet_results.replace(" ", "")
     baths_results = dict(pages[BATHS])["/results"].split(f'id="job-{SMALL_JOB}"')[1].split("</section>")[0]
     assert all(f"<figcaption>{name}</figcaption>" in baths_results for name in ("matches", "sum", "mean"))
-    assert "<figcaption>above</figcaption>" in baths_results  # a count of members above the threshold
+    assert "<figcaption>at_least</figcaption>" in baths_results  # members with at least the threshold
 
     # What they never show.
     assert len(secrets.deltas) == 3 and len(secrets.blocks) > 1000
