@@ -363,7 +363,8 @@ class AdminClient:
     def call(self, method: str, **request: Any) -> dict[str, Any]:
         if method not in METHODS:
             raise ValueError(f"no admin method {method!r}; the methods are {', '.join(METHODS)}")
-        rpc = self._channel.unary_unary(
+        # No (de)serialiser: the request and the answer are the raw bytes of JSON objects.
+        rpc: grpc.UnaryUnaryMultiCallable[bytes, bytes] = self._channel.unary_unary(
             f"/{SERVICE}/{method}", request_serializer=None, response_deserializer=None
         )
         try:

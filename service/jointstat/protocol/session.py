@@ -763,8 +763,9 @@ class SessionBase(TableMachine[fr.AnyFrame | None, list[bytes]]):
         return self._on_ot(fr.OT_EXTENSION, frame)
 
     def _on_ot(self, kind: str, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None and self._ot is not None
-        message = OTMessage(OT_MESSAGE_OF[self.PARTY][kind], fr.payload_of(kind, frame))
+        assert isinstance(frame, pb.Frame) and self._ot is not None  # OT frames are always protobuf-decoded
+        payload = bytes(fr.payload_of(kind, frame))  # already bytes: the same object, not a copy
+        message = OTMessage(OT_MESSAGE_OF[self.PARTY][kind], payload)
         return self._ot_replies(self._ot, self._ot.receive(message), OT_EXTENSION)
 
     def _ot_replies(
@@ -791,7 +792,7 @@ class SessionBase(TableMachine[fr.AnyFrame | None, list[bytes]]):
         return self._emit(fr.FINISH, fr.finish_frame(digest, signature))
 
     def _on_finish(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None and self._digest is not None
+        assert isinstance(frame, pb.Frame) and self._digest is not None
         finish = frame.finish
         if bytes(finish.transcript_digest) != self._digest:
             raise ProtocolError(

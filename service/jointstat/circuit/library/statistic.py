@@ -439,6 +439,8 @@ class Statistic(ABC, Generic[P]):
             name = self.column_names(cond.column)[party]
             col = t.schema[name]
             if col.number:
+                # where_problems refuses true or false for a number column
+                assert not isinstance(cond.value, bool)
                 holds = blocks.compare_constant(bld, t.number(name), cond.op, exact(cond.value))
             else:
                 bit = t.bits(name)[:, 0]
