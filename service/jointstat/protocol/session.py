@@ -117,7 +117,7 @@ from __future__ import annotations
 import os
 from collections import deque
 from collections.abc import Callable, Mapping
-from typing import Any, ClassVar, NoReturn
+from typing import Any, ClassVar, NoReturn, NotRequired, TypedDict
 
 import numpy as np
 
@@ -145,6 +145,19 @@ from jointstat.wire.jointstat.v1 import session_pb2 as pb
 Sign = Callable[[Statement], bytes]
 Verify = Callable[[bytes, Statement], bool]
 RandomBytes = Callable[[int], bytes]
+
+
+class SessionArgs(TypedDict):
+    """The keyword arguments of ``SessionBase``, as the garbler's constructor and ``new_session`` pass them on."""
+
+    session_id: bytes
+    program: Program
+    manifest_digest: bytes
+    inputs: object
+    sign: Sign
+    verify: Verify
+    random_bytes: NotRequired[RandomBytes]
+
 
 TABLES_SENT = "tables sent"
 
@@ -361,6 +374,11 @@ class SessionBase(TableMachine[fr.AnyFrame | None, list[bytes]]):
         self._offered_attempt = 0  # the attempt of the resume frame this side sent and awaits an answer to
         self.resumes = 0  # resumes completed on this side
         self._resent_upto = 0  # every logical frame numbered below this has been handed out by a resume
+        self._setup()
+
+    def _setup(self) -> None:
+        """Make this side's own state, once the shared state above is made (overridden by each side)."""
+        raise NotImplementedError
 
     # -- public view ----------------------------------------------------------------------------------------------
     @property
