@@ -126,14 +126,16 @@ from jointstat.circuit.program import Program
 from jointstat.garble.halfgates import GarbleError
 from jointstat.machine import DONE, FAILED, NEW, START, TableMachine, Transition
 from jointstat.ot import (
-    BASE_OT_RECEIVER_POINTS,
-    BASE_OT_SENDER_POINT,
-    EXTENSION_COLUMNS,
-    EXTENSION_CORRECTIONS,
     CorrelatedOTReceiver,
     CorrelatedOTSender,
     OTError,
     OTMessage,
+)
+from jointstat.ot.messages import (
+    BASE_OT_RECEIVER_POINTS,
+    BASE_OT_SENDER_POINT,
+    EXTENSION_COLUMNS,
+    EXTENSION_CORRECTIONS,
 )
 from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import AbortInfo, AbortReason, ProtocolError, Transcript
