@@ -8,8 +8,6 @@ import itertools
 import numpy as np
 import pytest
 from jointstat.ot import (
-    BASE_OT_RECEIVER_POINTS,
-    BASE_OT_SENDER_POINT,
     BaseOTReceiver,
     BaseOTSender,
     OTError,
@@ -18,6 +16,7 @@ from jointstat.ot import (
     run_pipe,
 )
 from jointstat.ot.base import random_choice_bits
+from jointstat.ot.messages import BASE_OT_RECEIVER_POINTS, BASE_OT_SENDER_POINT
 from jointstat.primitives import group
 
 SID = b"session-0001"

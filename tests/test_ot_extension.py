@@ -5,10 +5,6 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from jointstat.ot import (
-    BASE_OT_RECEIVER_POINTS,
-    BASE_OT_SENDER_POINT,
-    EXTENSION_COLUMNS,
-    EXTENSION_CORRECTIONS,
     MAX_BATCH,
     MAX_PAYLOAD_BYTES,
     BaseOTReceiver,
@@ -24,6 +20,12 @@ from jointstat.ot import (
 )
 from jointstat.ot.base import random_choice_bits
 from jointstat.ot.extension import SeedStreams
+from jointstat.ot.messages import (
+    BASE_OT_RECEIVER_POINTS,
+    BASE_OT_SENDER_POINT,
+    EXTENSION_COLUMNS,
+    EXTENSION_CORRECTIONS,
+)
 from jointstat.primitives import group
 from jointstat.primitives.aes import prg_expand
 from jointstat.primitives.blocks import random_blocks, select_mask

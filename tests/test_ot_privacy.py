@@ -21,7 +21,6 @@ import math
 
 import numpy as np
 from jointstat.ot import (
-    EXTENSION_COLUMNS,
     BaseOTReceiver,
     BaseOTSender,
     ExtensionReceiver,
@@ -30,6 +29,7 @@ from jointstat.ot import (
     run_pipe,
 )
 from jointstat.ot.base import random_choice_bits
+from jointstat.ot.messages import EXTENSION_COLUMNS
 from jointstat.primitives.aes import prg_expand
 from jointstat.primitives.blocks import random_blocks
 

@@ -33,7 +33,7 @@ from typing import Any
 import numpy as np
 import yaml
 
-from jointstat.bench.report import emit, peak_rss_mib
+from jointstat.bench.report import emit, peak_rss_mib, session_outcome
 
 SEED = 20261202
 VALUE_BITS = 24
@@ -170,11 +170,7 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> dict[str, Any]:
         result = await run_client(session, f"127.0.0.1:{spec['port']}", tls, limits=limits)
         end = time.monotonic()
     figures: dict[str, Any] = {
-        "role": spec["role"],
-        "completed": result.completed,
-        "abort": None if result.abort is None else f"{result.abort.reason.name}: {result.abort.message}",
-        "start": start,
-        "end": end,
+        **session_outcome(spec["role"], result, start, end),
         "encode_s": encode_s,
         "peak_rss_mib": _peak_rss_mib(),
         "and_gates": program.size.and_gates,

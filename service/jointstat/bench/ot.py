@@ -31,8 +31,6 @@ import numpy as np
 
 from jointstat.bench.report import emit, peak_rss_mib
 from jointstat.ot import (
-    EXTENSION_COLUMNS,
-    EXTENSION_CORRECTIONS,
     BaseOTReceiver,
     BaseOTSender,
     CorrelatedOTReceiver,
@@ -42,6 +40,7 @@ from jointstat.ot import (
     run_pipe,
 )
 from jointstat.ot.base import random_choice_bits
+from jointstat.ot.messages import EXTENSION_COLUMNS, EXTENSION_CORRECTIONS
 from jointstat.primitives.blocks import random_blocks, select_mask
 
 BASE_RUNS = 3

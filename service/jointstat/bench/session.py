@@ -48,7 +48,7 @@ from typing import Any
 
 import numpy as np
 
-from jointstat.bench.report import emit
+from jointstat.bench.report import emit, session_outcome
 
 DEFAULT_WIDTH = 1 << 14
 DEFAULT_CHUNK_BYTES = 1 << 20
@@ -187,11 +187,7 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> None:
         end = time.monotonic()
         result = results[-1]
         figures: dict[str, Any] = {
-            "role": spec["role"],
-            "completed": result.completed,
-            "abort": None if result.abort is None else f"{result.abort.reason.name}: {result.abort.message}",
-            "start": start,
-            "end": end,
+            **session_outcome(spec["role"], result, start, end),
             "setup_s": setup_s,
             "bytes_sent": sum(r.counters.bytes_sent for r in results),
             "bytes_received": sum(r.counters.bytes_received for r in results),

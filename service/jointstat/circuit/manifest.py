@@ -77,7 +77,7 @@ def entry_model(params: type[StatisticParameters]) -> type[StatisticParameters]:
     ``name`` (the entry's own), ``compute`` (the statistic), ``outputs`` and ``disclosure``."""
     if params not in _entry_cache:
         kind = params.model_fields["name"].annotation.__args__[0]  # type: ignore[union-attr]
-        _entry_cache[params] = create_model(  # type: ignore[call-overload]
+        _entry_cache[params] = create_model(
             params.__name__.removesuffix("Parameters") + "Entry",
             __base__=params,
             __doc__=f"An entry of `statistics:` computing {kind}.",
@@ -93,7 +93,7 @@ def manifest_model(models: tuple[type[StatisticParameters], ...] | None = None) 
     if models not in _model_cache:
         single: Any = models[0] if len(models) == 1 else Annotated[Union[models], Field(discriminator="name")]  # noqa: UP007
         entries = tuple(entry_model(m) for m in models)
-        union = Union[entries]  # noqa: UP007
+        union: Any = Union[entries]  # noqa: UP007
         entry: Any = entries[0] if len(entries) == 1 else Annotated[union, Field(discriminator="compute")]
         base = Manifest.model_fields
         _model_cache[models] = create_model(

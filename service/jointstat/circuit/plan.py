@@ -48,6 +48,7 @@ import math
 import re
 import time
 from dataclasses import dataclass
+from typing import TypedDict
 
 from jointstat.circuit.compile import CompiledStatistic
 from jointstat.circuit.model import Party
@@ -127,11 +128,51 @@ def round_trips(ot_count: int) -> float:
     return proposal + session
 
 
+class StatisticShare(TypedDict):
+    """One statistic's share of a job (``breakdown``)."""
+
+    name: str
+    kind: str
+    and_gates: int
+    table_bytes: int
+    outputs: dict[str, list[str]]  # by the receiving party's role name
+    epsilon: str  # an exact decimal
+
+
+class PlanFigures(TypedDict):
+    """The figures of ``plan``: sizes in bytes, times in seconds, speeds per second, ε as an exact decimal."""
+
+    job: str
+    statistic: str
+    statistics: list[StatisticShare]
+    and_gates_release: int
+    epsilon: str
+    and_gates: int
+    xor_gates: int
+    and_depth: int
+    ot_count: int
+    bytes_garbler_to_evaluator: int
+    bytes_evaluator_to_garbler: int
+    memory_bytes: int
+    est_seconds: float
+    tables_seconds: float
+    ot_seconds: float
+    round_trips: float
+    rtt_seconds: float
+    latency_seconds: float
+    startup_seconds: float
+    bandwidth_bytes_per_s: float
+    garble_and_per_s: int
+    evaluate_and_per_s: int
+    count_seconds: float
+    assumes: str
+
+
 class LimitError(ValueError):
     """A job that would need more memory or time than the node allows; the message gives the figures."""
 
 
-def plan(compiled: CompiledStatistic, bandwidth: float, speed: Speed, rtt: float = 0.0) -> dict[str, object]:
+def plan(compiled: CompiledStatistic, bandwidth: float, speed: Speed, rtt: float = 0.0) -> PlanFigures:
     """The figures of ``jointstat plan`` at ``bandwidth`` (bytes/s) and round-trip time ``rtt`` (seconds); see the
     module docstring for what they assume."""
     t0 = time.perf_counter()
@@ -190,11 +231,11 @@ def plan(compiled: CompiledStatistic, bandwidth: float, speed: Speed, rtt: float
     }
 
 
-def breakdown(compiled: CompiledStatistic) -> list[dict[str, object]]:
+def breakdown(compiled: CompiledStatistic) -> list[StatisticShare]:
     """Each statistic's share of the job: its name and kind, AND gates, garbled-table bytes, outputs each party
     receives (by address) and ε (module docstring)."""
     by_statistic = compiled.size().extra.get("and_gates_by_statistic", {})
-    out: list[dict[str, object]] = []
+    out: list[StatisticShare] = []
     for part in compiled.parts:
         use = part.use
         and_gates = int(by_statistic.get(use.label or use.kind, 0))

@@ -244,11 +244,24 @@ def explain(name: str, got: Any, plain: dict[str, Any]) -> str:
 
 def plain_answer(manifest_path: Path, garbler_csv: Path, evaluator_csv: Path) -> dict[str, Any]:
     """The keyed join computed in the clear from both invented files (what neither node could ever do)."""
+    from jointstat.circuit.library.join import JoinParameters
     from jointstat.circuit.manifest import load_manifest
+    from jointstat.circuit.parameters import Threshold
+    from jointstat.problems import UserError
 
     manifest = load_manifest(manifest_path)
     stat = manifest.statistic
-    key, value_col = stat.key, stat.value.column  # type: ignore[attr-defined]
+    if not (
+        isinstance(stat, JoinParameters)
+        and isinstance(stat.key, str)
+        and stat.value is not None
+        and isinstance(stat.threshold, Threshold)
+    ):
+        raise UserError(
+            f"{manifest_path}: the demo answers a keyed_join with one key column for both tables, a value column"
+            " and a threshold {op, value}"
+        )
+    key, value_col = stat.key, stat.value.column
     fold = {c.name: getattr(c, "fold_case", False) for c in manifest.tables.garbler.columns}
 
     def norm(text: str) -> str:
@@ -261,11 +274,11 @@ def plain_answer(manifest_path: Path, garbler_csv: Path, evaluator_csv: Path) ->
         evaluator = {norm(row[key]): float(row[value_col]) for row in csv.DictReader(fh)}
     shared = [evaluator[k] for k in evaluator if k in garbler]
     total = sum(Fraction(str(v)) for v in shared)
-    threshold = Fraction(str(stat.threshold.value))  # type: ignore[attr-defined]
+    threshold = Fraction(stat.threshold.value)
     column = manifest.tables.evaluator.columns[
         [c.name for c in manifest.tables.evaluator.columns].index(value_col)
     ]
-    step = 2.0 ** -(getattr(column, "fraction_bits", 0) + stat.precision_bits)  # type: ignore[attr-defined]
+    step = 2.0 ** -(getattr(column, "fraction_bits", 0) + stat.precision_bits)
     return {
         "mean_step": step,
         "matches": len(shared),

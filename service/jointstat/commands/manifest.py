@@ -195,10 +195,10 @@ def _plan(args: argparse.Namespace) -> int:
     from jointstat.circuit.manifest import key_matching
 
     manifest = _load(args.file)
-    rows = max(manifest.tables.garbler.capacity, manifest.tables.evaluator.capacity)
-    if rows > BIG_PLAN_ROWS:
+    capacity = max(manifest.tables.garbler.capacity, manifest.tables.evaluator.capacity)
+    if capacity > BIG_PLAN_ROWS:
         print(
-            f"jointstat plan: tables of up to {rows:,} rows a side; counting the program first takes time and memory"
+            f"jointstat plan: tables of up to {capacity:,} rows a side; counting the program first takes time and memory"
             " in proportion (seconds to minutes, up to a few GiB); the figures below include what it took",
             file=sys.stderr,
             flush=True,
@@ -207,21 +207,24 @@ def _plan(args: argparse.Namespace) -> int:
     base_ot_seconds, ot_per_s = measured_ot_speed()
     speed = dataclasses.replace(measured_speed(), base_ot_seconds=base_ot_seconds, ot_per_s=ot_per_s)
     figures = plan(compiled, rate, speed, rtt)
-    figures["planner_seconds"] = round(
-        time.perf_counter() - started, 6
-    )  # counting, measuring speeds, all of it
-    figures["planner_peak_memory_bytes"] = round(peak_rss_mib() * 2**20)
+    planner_seconds = round(time.perf_counter() - started, 6)  # counting, measuring speeds, all of it
+    planner_peak_memory_bytes = round(peak_rss_mib() * 2**20)
     matching = key_matching(compiled.manifest)
-    figures["expected_false_matches"] = None if matching is None else matching.expected
-    figures["max_false_matches"] = compiled.manifest.matching.max_false_matches
     refused = None
     try:
-        check_limits(compiled, est_seconds=float(figures["est_seconds"]))  # type: ignore[arg-type]
+        check_limits(compiled, est_seconds=figures["est_seconds"])
     except LimitError as exc:
         refused = str(exc)
-    figures["refused"] = refused
     if args.json:
-        json.dump(figures, sys.stdout)
+        report = {
+            **figures,
+            "planner_seconds": planner_seconds,
+            "planner_peak_memory_bytes": planner_peak_memory_bytes,
+            "expected_false_matches": None if matching is None else matching.expected,
+            "max_false_matches": compiled.manifest.matching.max_false_matches,
+            "refused": refused,
+        }
+        json.dump(report, sys.stdout)
         sys.stdout.write("\n")
         if refused:
             print(f"jointstat: {refused}", file=sys.stderr)
@@ -235,9 +238,9 @@ def _plan(args: argparse.Namespace) -> int:
         ("XOR/NOT gates (free)", f"{figures['xor_gates']:,}"),
         ("AND depth (at most)", f"{figures['and_depth']:,}"),
         ("oblivious transfers", f"{figures['ot_count']:,}"),
-        ("garbler → evaluator", _size(int(figures["bytes_garbler_to_evaluator"]))),  # type: ignore[arg-type]
-        ("evaluator → garbler", _size(int(figures["bytes_evaluator_to_garbler"]))),  # type: ignore[arg-type]
-        ("memory per party", _size(int(figures["memory_bytes"]))),  # type: ignore[arg-type]
+        ("garbler → evaluator", _size(figures["bytes_garbler_to_evaluator"])),
+        ("evaluator → garbler", _size(figures["bytes_evaluator_to_garbler"])),
+        ("memory per party", _size(figures["memory_bytes"])),
         ("garbling speed here", f"{figures['garble_and_per_s']:,} AND/s"),
         ("estimated time", f"{figures['est_seconds']:,.3f} s, of which"),
         ("  tables", f"{figures['tables_seconds']:,.3f} s (garbling, transfer and evaluation overlapping)"),
@@ -249,8 +252,8 @@ def _plan(args: argparse.Namespace) -> int:
         ("  start-up", f"{figures['startup_seconds']:,.3f} s (compiling and counting the program)"),
         (
             "this plan used",
-            f"{figures['planner_seconds']:,.2f} s and {_size(int(figures['planner_peak_memory_bytes']))} of memory (peak)",
-        ),  # type: ignore[arg-type]
+            f"{planner_seconds:,.2f} s and {_size(planner_peak_memory_bytes)} of memory (peak)",
+        ),
         ("privacy ε per run", str(figures["epsilon"])),
     ]
     width = max(len(k) for k, _ in rows)
@@ -258,14 +261,14 @@ def _plan(args: argparse.Namespace) -> int:
         print(f"  {key:<{width}}  {value}")
     if several:
         print("  by statistic (AND gates where its work was first done; the release gates apart):")
-        parts: list[dict[str, object]] = figures["statistics"]  # type: ignore[assignment]
-        name_width = max(len(str(p["name"])) for p in parts)
+        parts = figures["statistics"]
+        name_width = max(len(p["name"]) for p in parts)
         for p in parts:
             print(
                 f"    {p['name']!s:<{name_width}}  {p['kind']!s:<10}  {p['and_gates']:>12,} AND  "
-                f"{_size(int(p['table_bytes'])):>24}  ε {p['epsilon']}"  # type: ignore[call-overload]
+                f"{_size(p['table_bytes']):>24}  ε {p['epsilon']}"
             )
-        release = int(figures["and_gates_release"])  # type: ignore[call-overload]
+        release = figures["and_gates_release"]
         print(f"    {'release rules':<{name_width}}  {'':<10}  {release:>12,} AND")
     print(f"  assumes: {figures['assumes']}")
     line = _false_matches_line(compiled.manifest)

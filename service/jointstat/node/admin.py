@@ -35,7 +35,8 @@ from __future__ import annotations
 import asyncio
 import json
 import logging
-from collections.abc import Awaitable, Callable
+from collections.abc import Awaitable, Callable, Iterable
+from contextlib import AbstractContextManager
 from typing import TYPE_CHECKING, Any
 
 import grpc
@@ -254,20 +255,7 @@ class NodeAdmin:
         live = list(state.sessions.values())[::-1]
         out: list[dict[str, Any]] = [_brief(t) for t in live]
         seen = {t.session_id for t in live}
-        for r in await asyncio.to_thread(state.store.runs, None, limit):
-            if r.session_id and r.session_id not in seen:
-                seen.add(r.session_id)
-                out.append(
-                    {
-                        "session": r.session_id,
-                        "job": r.job,
-                        "role": r.role,
-                        "status": r.status,
-                        "started_at": r.started_at.isoformat(),
-                        "reason": r.reason,
-                        "live": False,
-                    }
-                )
+        out += past_sessions(await asyncio.to_thread(state.store.runs, None, limit), seen)
         out.sort(key=lambda s: s["started_at"], reverse=True)
         return {"sessions": out[:limit]}
 
@@ -319,6 +307,23 @@ def resolve_session(given: str, known: list[str], node: str) -> str:
     return matches[0]
 
 
+def past_sessions(
+    runs: Iterable[RunRecord], seen: set[str], peer_of: Callable[[str], str | None] | None = None
+) -> list[dict[str, Any]]:
+    """The sessions of ``runs`` not in ``seen`` (which grows by them), each from its first run, as the admin API
+    lists a session that is not live; with ``peer_of`` (a job's peer), the session's peer and trigger too."""
+    out: list[dict[str, Any]] = []
+    for r in runs:
+        if r.session_id and r.session_id not in seen:
+            seen.add(r.session_id)
+            entry: dict[str, Any] = {"session": r.session_id, "job": r.job, "role": r.role}
+            if peer_of is not None:
+                entry.update(peer=peer_of(r.job), trigger=r.trigger)
+            entry.update(status=r.status, started_at=r.started_at.isoformat(), reason=r.reason, live=False)
+            out.append(entry)
+    return out
+
+
 def run_dict(r: RunRecord) -> dict[str, Any]:
     """A job-store run as the admin API shows it."""
     return {
@@ -343,8 +348,9 @@ def _brief(t: SessionTracker) -> dict[str, Any]:
     return {**{k: snap[k] for k in keys}, "live": True}
 
 
-class AdminClient:
-    """Blocking client of a node's admin API at a gRPC target (``unix:PATH`` or ``127.0.0.1:PORT``)."""
+class AdminClient(AbstractContextManager["AdminClient"]):
+    """Blocking client of a node's admin API at a gRPC target (``unix:PATH`` or ``127.0.0.1:PORT``); closed when
+    its ``with`` block ends."""
 
     def __init__(self, target: str, *, timeout: float = CALL_TIMEOUT_S) -> None:
         self.target = target
@@ -354,16 +360,14 @@ class AdminClient:
     def close(self) -> None:
         self._channel.close()
 
-    def __enter__(self) -> AdminClient:
-        return self
-
     def __exit__(self, *_exc: object) -> None:
         self.close()
 
     def call(self, method: str, **request: Any) -> dict[str, Any]:
         if method not in METHODS:
             raise ValueError(f"no admin method {method!r}; the methods are {', '.join(METHODS)}")
-        rpc = self._channel.unary_unary(
+        # No (de)serialiser: the request and the answer are the raw bytes of JSON objects.
+        rpc: grpc.UnaryUnaryMultiCallable[bytes, bytes] = self._channel.unary_unary(
             f"/{SERVICE}/{method}", request_serializer=None, response_deserializer=None
         )
         try:

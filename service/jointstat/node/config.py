@@ -305,14 +305,15 @@ def _database_url(value: str, info: ValidationInfo) -> str:
     if url.password is not None:
         raise ValueError("holds a password; put the password in a file named by password_file (owner-only)")
     database, base = url.database, _base(info)
-    relative_file = bool(database) and database != ":memory:" and not str(database).startswith("file:")
     if (
         url.drivername.startswith("sqlite")
-        and relative_file
+        and database  # a file, not an in-memory database nor a file: URI
+        and database != ":memory:"
+        and not database.startswith("file:")
         and base is not None
         and not Path(database).is_absolute()
     ):
-        url = url.set(database=str(resolve_path(str(database), base)))
+        url = url.set(database=str(resolve_path(database, base)))
     return url.render_as_string(hide_password=False)
 
 
@@ -331,7 +332,7 @@ Text = Annotated[str, AfterValidator(_non_empty)]
 def _derived(data: dict[str, Any], key: str) -> str:
     """A raw path field usable as the base of a derived default, else ``.`` (its own error is reported)."""
     value = data.get(key)
-    return value if _path_problem(value) is None else "."
+    return value if isinstance(value, str) and _path_problem(value) is None else "."
 
 
 class ResumeConfig(StrictModel):
@@ -605,8 +606,10 @@ class NodeConfig(StrictModel):
         for job in data["jobs"]:
             if isinstance(job, dict) and "results" not in job:
                 name = job.get("name")
-                ok = isinstance(name, str) and JOB_NAME.fullmatch(name)
-                job = {**job, "results": posixpath.join(results_dir, name) if ok else "."}
+                results = "."  # a name that is missing or wrong has its own error
+                if isinstance(name, str) and JOB_NAME.fullmatch(name):
+                    results = posixpath.join(results_dir, name)
+                job = {**job, "results": results}
             jobs.append(job)
         return {**data, "jobs": jobs}
 

@@ -14,10 +14,11 @@ The answers have the admin API's shapes (``admin.run_dict`` and the session dict
 from __future__ import annotations
 
 import json
+from contextlib import AbstractContextManager
 from pathlib import Path
 from typing import Any
 
-from jointstat.node.admin import resolve_session, run_dict
+from jointstat.node.admin import past_sessions, resolve_session, run_dict
 from jointstat.node.config import NodeConfig
 from jointstat.node.store import JobStore, StoreError
 
@@ -26,8 +27,9 @@ class OfflineError(Exception):
     """The node's files cannot be read, or hold no such session; the message says which."""
 
 
-class StoppedNode:
-    """The records of a node that is not running (see the module docstring)."""
+class StoppedNode(AbstractContextManager["StoppedNode"]):
+    """The records of a node that is not running (see the module docstring); closed when its ``with`` block
+    ends."""
 
     def __init__(self, config: NodeConfig) -> None:
         self.config = config
@@ -38,9 +40,6 @@ class StoppedNode:
 
     def close(self) -> None:
         self._store.close()
-
-    def __enter__(self) -> StoppedNode:
-        return self
 
     def __exit__(self, *_exc: object) -> None:
         self.close()
@@ -55,24 +54,7 @@ class StoppedNode:
             return None
 
     def sessions(self, limit: int = 50) -> list[dict[str, Any]]:
-        out: list[dict[str, Any]] = []
-        seen: set[str] = set()
-        for r in self._store.runs(None, 10_000):
-            if r.session_id and r.session_id not in seen:
-                seen.add(r.session_id)
-                out.append(
-                    {
-                        "session": r.session_id,
-                        "job": r.job,
-                        "role": r.role,
-                        "peer": self._peer(r.job),
-                        "trigger": r.trigger,
-                        "status": r.status,
-                        "started_at": r.started_at.isoformat(),
-                        "reason": r.reason,
-                        "live": False,
-                    }
-                )
+        out = past_sessions(self._store.runs(None, 10_000), set(), peer_of=self._peer)
         out.sort(key=lambda s: s["started_at"], reverse=True)
         return out[:limit]
 

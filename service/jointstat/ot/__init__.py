@@ -4,7 +4,8 @@ Theory of operation: the evaluator must obtain the wire labels of its own input 
 learning those bits. 128 public-key base OTs (``base``) seed the IKNP extension (``extension``), which
 then produces any number of correlated OTs — the garbler ends with K_j, the evaluator with K_j ⊕ r_j·Δ —
 at the cost of a few AES calls and 32 bytes of traffic per OT. Everything is sans-I/O: parties take
-``OTMessage`` values in and give them out; ``pipe.run_pipe`` connects two parties in memory.
+``OTMessage`` values (their kinds in ``messages``) in and give them out; ``pipe.run_pipe`` connects two
+parties in memory.
 """
 
 from jointstat.ot.base import BASE_OT_COUNT, BaseOTReceiver, BaseOTSender
@@ -17,25 +18,13 @@ from jointstat.ot.extension import (
     ExtensionReceiver,
     ExtensionSender,
 )
-from jointstat.ot.messages import (
-    BASE_OT_RECEIVER_POINTS,
-    BASE_OT_SENDER_POINT,
-    EXTENSION_COLUMNS,
-    EXTENSION_CORRECTIONS,
-    MAX_PAYLOAD_BYTES,
-    OTError,
-    OTMessage,
-)
+from jointstat.ot.messages import MAX_PAYLOAD_BYTES, OTError, OTMessage
 from jointstat.ot.pipe import PipeStats, run_pipe
 
 __all__ = [
     "BASE_OT_COUNT",
-    "BASE_OT_RECEIVER_POINTS",
-    "BASE_OT_SENDER_POINT",
     "DEFAULT_BATCH",
     "DEFAULT_WINDOW",
-    "EXTENSION_COLUMNS",
-    "EXTENSION_CORRECTIONS",
     "MAX_BATCH",
     "MAX_PAYLOAD_BYTES",
     "BaseOTReceiver",

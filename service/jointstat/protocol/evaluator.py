@@ -12,13 +12,10 @@ garbler's output labels and decodes its own outputs (``protocol.session`` for th
 
 from __future__ import annotations
 
-import os
-
 import numpy as np
 
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.model import Party
-from jointstat.circuit.program import Program
 from jointstat.garble.backends import EvaluatorBackend
 from jointstat.garble.halfgates import TABLE_BYTES, GarbleError
 from jointstat.garble.outputs import OutputDecoding, decode
@@ -36,10 +33,7 @@ from jointstat.protocol.session import (
     EVALUATOR_TABLE,
     Accumulator,
     CorrelatedOT,
-    RandomBytes,
     SessionBase,
-    Sign,
-    Verify,
 )
 
 
@@ -54,31 +48,12 @@ class EvaluatorSession(SessionBase):
     PEER = Party.GARBLER
     TABLE = EVALUATOR_TABLE
 
-    def __init__(
-        self,
-        *,
-        session_id: bytes,
-        program: Program,
-        manifest_digest: bytes,
-        inputs: object,
-        sign: Sign,
-        verify: Verify,
-        random_bytes: RandomBytes = os.urandom,
-    ) -> None:
-        super().__init__(
-            session_id=session_id,
-            program=program,
-            manifest_digest=manifest_digest,
-            inputs=inputs,
-            sign=sign,
-            verify=verify,
-            random_bytes=random_bytes,
-        )
+    def _setup(self) -> None:
         self._own_labels: np.ndarray | None = None
         self._ot_window = DEFAULT_WINDOW
         self._consumer: TableConsumer | None = None
         self._backend: EvaluatorBackend | None = None
-        self._table_bytes_total = TABLE_BYTES * program.size.and_gates
+        self._table_bytes_total = TABLE_BYTES * self.program.size.and_gates
         self._table_bytes_left = self._table_bytes_total
         self._given = Accumulator(
             fr.GARBLER_INPUT_LABELS,

@@ -12,14 +12,13 @@ then checks and decodes the output labels the evaluator returns, and sends the d
 
 from __future__ import annotations
 
-import os
 from collections.abc import Iterator
+from typing import Unpack
 
 import numpy as np
 
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.model import Party
-from jointstat.circuit.program import Program
 from jointstat.garble.backends import DEFAULT_CHUNK_BYTES, GarblerBackend
 from jointstat.garble.halfgates import TABLE_BYTES, GarbleError, fresh_delta
 from jointstat.garble.outputs import decode_returned, make_decoding
@@ -37,10 +36,8 @@ from jointstat.protocol.session import (
     TABLES_SENT,
     Accumulator,
     CorrelatedOT,
-    RandomBytes,
+    SessionArgs,
     SessionBase,
-    Sign,
-    Verify,
 )
 from jointstat.wire.jointstat.v1 import session_pb2 as pb
 
@@ -62,15 +59,9 @@ class GarblerSession(SessionBase):
     def __init__(
         self,
         *,
-        session_id: bytes,
-        program: Program,
-        manifest_digest: bytes,
-        inputs: object,
-        sign: Sign,
-        verify: Verify,
-        random_bytes: RandomBytes = os.urandom,
         chunk_bytes: int = DEFAULT_CHUNK_BYTES,
         replay_limit_bytes: int = DEFAULT_REPLAY_LIMIT_BYTES,
+        **args: Unpack[SessionArgs],
     ) -> None:
         if not isinstance(chunk_bytes, int) or not TABLE_BYTES <= chunk_bytes <= fr.MAX_PAYLOAD_BYTES:
             raise ValueError(f"chunk_bytes must be an integer from {TABLE_BYTES} to {fr.MAX_PAYLOAD_BYTES}")
@@ -81,17 +72,11 @@ class GarblerSession(SessionBase):
             raise ValueError(
                 f"replay_limit_bytes must hold two frames of chunk_bytes ({least} bytes), got {replay_limit_bytes}"
             )
-        super().__init__(
-            session_id=session_id,
-            program=program,
-            manifest_digest=manifest_digest,
-            inputs=inputs,
-            sign=sign,
-            verify=verify,
-            random_bytes=random_bytes,
-        )
         self._chunk_bytes = chunk_bytes
         self.replay_limit_bytes = replay_limit_bytes
+        super().__init__(**args)
+
+    def _setup(self) -> None:
         self._delta: np.ndarray | None = None
         self._evaluator_zero: np.ndarray | None = None
         self._backend: GarblerBackend | None = None

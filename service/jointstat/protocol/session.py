@@ -117,7 +117,7 @@ from __future__ import annotations
 import os
 from collections import deque
 from collections.abc import Callable, Mapping
-from typing import Any, ClassVar, NoReturn
+from typing import Any, ClassVar, NoReturn, NotRequired, TypedDict
 
 import numpy as np
 
@@ -126,14 +126,16 @@ from jointstat.circuit.program import Program
 from jointstat.garble.halfgates import GarbleError
 from jointstat.machine import DONE, FAILED, NEW, START, TableMachine, Transition
 from jointstat.ot import (
-    BASE_OT_RECEIVER_POINTS,
-    BASE_OT_SENDER_POINT,
-    EXTENSION_COLUMNS,
-    EXTENSION_CORRECTIONS,
     CorrelatedOTReceiver,
     CorrelatedOTSender,
     OTError,
     OTMessage,
+)
+from jointstat.ot.messages import (
+    BASE_OT_RECEIVER_POINTS,
+    BASE_OT_SENDER_POINT,
+    EXTENSION_COLUMNS,
+    EXTENSION_CORRECTIONS,
 )
 from jointstat.protocol import frames as fr
 from jointstat.protocol.frames import AbortInfo, AbortReason, ProtocolError, Transcript
@@ -145,6 +147,19 @@ from jointstat.wire.jointstat.v1 import session_pb2 as pb
 Sign = Callable[[Statement], bytes]
 Verify = Callable[[bytes, Statement], bool]
 RandomBytes = Callable[[int], bytes]
+
+
+class SessionArgs(TypedDict):
+    """The keyword arguments of ``SessionBase``, as the garbler's constructor and ``new_session`` pass them on."""
+
+    session_id: bytes
+    program: Program
+    manifest_digest: bytes
+    inputs: object
+    sign: Sign
+    verify: Verify
+    random_bytes: NotRequired[RandomBytes]
+
 
 TABLES_SENT = "tables sent"
 
@@ -361,6 +376,11 @@ class SessionBase(TableMachine[fr.AnyFrame | None, list[bytes]]):
         self._offered_attempt = 0  # the attempt of the resume frame this side sent and awaits an answer to
         self.resumes = 0  # resumes completed on this side
         self._resent_upto = 0  # every logical frame numbered below this has been handed out by a resume
+        self._setup()
+
+    def _setup(self) -> None:
+        """Make this side's own state, once the shared state above is made (overridden by each side)."""
+        raise NotImplementedError
 
     # -- public view ----------------------------------------------------------------------------------------------
     @property
@@ -763,8 +783,9 @@ class SessionBase(TableMachine[fr.AnyFrame | None, list[bytes]]):
         return self._on_ot(fr.OT_EXTENSION, frame)
 
     def _on_ot(self, kind: str, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None and self._ot is not None
-        message = OTMessage(OT_MESSAGE_OF[self.PARTY][kind], fr.payload_of(kind, frame))
+        assert isinstance(frame, pb.Frame) and self._ot is not None  # OT frames are always protobuf-decoded
+        payload = bytes(fr.payload_of(kind, frame))  # already bytes: the same object, not a copy
+        message = OTMessage(OT_MESSAGE_OF[self.PARTY][kind], payload)
         return self._ot_replies(self._ot, self._ot.receive(message), OT_EXTENSION)
 
     def _ot_replies(
@@ -791,7 +812,7 @@ class SessionBase(TableMachine[fr.AnyFrame | None, list[bytes]]):
         return self._emit(fr.FINISH, fr.finish_frame(digest, signature))
 
     def _on_finish(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
-        assert frame is not None and self._digest is not None
+        assert isinstance(frame, pb.Frame) and self._digest is not None
         finish = frame.finish
         if bytes(finish.transcript_digest) != self._digest:
             raise ProtocolError(

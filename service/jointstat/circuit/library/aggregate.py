@@ -42,13 +42,13 @@ from jointstat.circuit.bits import Bits, concat
 from jointstat.circuit.builder import Builder
 from jointstat.circuit.library import blocks
 from jointstat.circuit.library.blocks import Number
-from jointstat.circuit.library.noise import NoiseError, noisy_width
+from jointstat.circuit.library.noise import NoiseError
 from jointstat.circuit.library.statistic import (
     BuildContext,
     NoiseDraw,
     OutputSpec,
-    Statistic,
     StatisticResult,
+    SummedStatistic,
     TableNeeds,
 )
 from jointstat.circuit.model import Party
@@ -116,11 +116,12 @@ class VarianceParameters(_AggregateParameters):
     )
 
 
-class _Aggregate(Statistic[_AggregateParameters]):
+class _Aggregate(SummedStatistic[_AggregateParameters]):
     """Shared machinery; ``level`` is how far along count → sum → mean → variance the statistic goes."""
 
     level: int = 0
     count_output = "count"
+    noisy_mean_description = "noisy sum ÷ noisy count, rounded toward zero"
 
     def ok_rule(self) -> str | None:
         return None  # every release condition is an output's own
@@ -190,43 +191,25 @@ class _Aggregate(Statistic[_AggregateParameters]):
         return specs
 
     # -- noise ----------------------------------------------------------------------------------------------------
+    def counted_outputs(self) -> set[str]:
+        return {"count"}
+
+    def count_sensitivity(self) -> int:
+        return self.rows_per_person()
+
+    def sum_magnitude(self) -> int | None:
+        clamp, column = self.params.clamp, self.params.column
+        if clamp is None or column is None:
+            return None
+        return self.clamp_magnitude(clamp, self.column_format(column).frac)
+
+    def mean_precision_bits(self) -> int:
+        return self.params.precision_bits
+
     def noise_draws(self, output: str, epsilon: Fraction) -> list[NoiseDraw]:
-        r = self.rows_per_person()
-        if output == "count":
-            return [self.draw(output, "count", epsilon, r)]
         if output == "variance":
             raise NoiseError("the variance is not offered with noise; noise the count and the sum instead")
-        if output not in ("sum", "mean"):
-            raise NoiseError(f"{self.name} has no output {output!r}")
-        clamp = self.params.clamp
-        if clamp is None or self.params.column is None:
-            raise NoiseError(
-                f"a noisy {output} needs clamping bounds: add clamp: {{min: …, max: …}} to the statistic (without "
-                "them one person could move the sum by any amount)"
-            )
-        magnitude = self.clamp_magnitude(clamp, self.column_format(self.params.column).frac)
-        if magnitude == 0:
-            raise NoiseError("clamping bounds of 0 and 0 leave nothing to add noise to")
-        if output == "sum":
-            return [self.draw(output, "sum", epsilon, r * magnitude)]
-        half = epsilon / 2
-        return [self.draw(output, "mean.sum", half, r * magnitude), self.draw(output, "mean.count", half, r)]
-
-    def noisy_output(self, spec: OutputSpec) -> OutputSpec:
-        if spec.name != "mean":
-            return super().noisy_output(spec)
-        exact = {s.name: s for s in self.outputs()}["sum"]
-        draw = self.draws["mean"][0]
-        sum_width = noisy_width(exact.width, exact.signed, draw.params)
-        e = self.params.precision_bits
-        return OutputSpec(
-            "mean",
-            sum_width + e,
-            True,
-            exact.frac + e,
-            description="noisy sum ÷ noisy count, rounded toward zero",
-            rule="no_rows",
-        )
+        return super().noise_draws(output, epsilon)
 
     # -- circuit ------------------------------------------------------------------------------------------------
     def build(self, ctx: BuildContext) -> StatisticResult:

@@ -44,13 +44,11 @@ from pydantic import Field
 from jointstat.circuit.bits import Bits, concat
 from jointstat.circuit.library import blocks
 from jointstat.circuit.library.blocks import Number, NumberFormat
-from jointstat.circuit.library.noise import NoiseError, noisy_width
 from jointstat.circuit.library.statistic import (
     BuildContext,
-    NoiseDraw,
     OutputSpec,
-    Statistic,
     StatisticResult,
+    SummedStatistic,
     TableNeeds,
 )
 from jointstat.circuit.model import Party
@@ -91,7 +89,7 @@ class JoinParameters(StatisticParameters):
     )
 
 
-class KeyedJoin(Statistic[JoinParameters]):
+class KeyedJoin(SummedStatistic[JoinParameters]):
     name = "keyed_join"
     Parameters = JoinParameters
     description = "matches, sum, mean and threshold count of a value over the keys both parties hold"
@@ -102,6 +100,7 @@ class KeyedJoin(Statistic[JoinParameters]):
         "3.16)"
     )
     count_output = "matches"
+    noisy_mean_description = "noisy sum ÷ noisy matches"
 
     def ok_rule(self) -> str | None:
         return None  # every release condition is an output's own
@@ -193,43 +192,23 @@ class KeyedJoin(Statistic[JoinParameters]):
         return specs
 
     # -- noise ----------------------------------------------------------------------------------------------------
-    def noise_draws(self, output: str, epsilon: Fraction) -> list[NoiseDraw]:
+    def counted_outputs(self) -> set[str]:
         threshold = self.threshold()
-        if output == "matches" or (threshold is not None and output == threshold[0]):
-            return [self.draw(output, output, epsilon, 1)]
-        if output not in ("sum", "mean"):
-            raise NoiseError(f"{self.name} has no output {output!r}")
-        clamp = self.params.clamp
-        vp = self.value_party()
-        if clamp is None or vp is None or self.params.value is None:
-            raise NoiseError(
-                f"a noisy {output} needs clamping bounds: add clamp: {{min: …, max: …}} to the statistic (without "
-                "them one person could move the sum by any amount)"
-            )
-        col = self.manifest.table(vp).column(self.params.value.column)
-        assert col is not None
-        magnitude = self.clamp_magnitude(clamp, col.frac)
-        if magnitude == 0:
-            raise NoiseError("clamping bounds of 0 and 0 leave nothing to add noise to")
-        if output == "sum":
-            return [self.draw(output, "sum", epsilon, magnitude)]
-        half = epsilon / 2
-        return [self.draw(output, "mean.sum", half, magnitude), self.draw(output, "mean.count", half, 1)]
+        return {"matches"} if threshold is None else {"matches", threshold[0]}
 
-    def noisy_output(self, spec: OutputSpec) -> OutputSpec:
-        if spec.name != "mean":
-            return super().noisy_output(spec)
-        exact_sum = {s.name: s for s in self.outputs()}["sum"]
-        sum_width = noisy_width(exact_sum.width, exact_sum.signed, self.draws["mean"][0].params)
-        e = self.params.precision_bits
-        return OutputSpec(
-            "mean",
-            sum_width + e,
-            True,
-            exact_sum.frac + e,
-            description="noisy sum ÷ noisy matches",
-            rule="no_rows",
-        )
+    def count_sensitivity(self) -> int:
+        return 1  # identifiers are unique per table: one person is at most one match
+
+    def sum_magnitude(self) -> int | None:
+        clamp, vp, value = self.params.clamp, self.value_party(), self.params.value
+        if clamp is None or vp is None or value is None:
+            return None
+        col = self.manifest.table(vp).column(value.column)
+        assert col is not None
+        return self.clamp_magnitude(clamp, col.frac)
+
+    def mean_precision_bits(self) -> int:
+        return self.params.precision_bits
 
     # -- circuit ------------------------------------------------------------------------------------------------
     def carries_back(self) -> bool:

@@ -38,7 +38,10 @@ or its negation.
 Noise: a statistic that can noise an output gives, in ``noise_draws``, the draws of discrete Laplace noise it
 needs (each with its ε, its sensitivity on the output's encoded integer scale and its lanes; see
 docs/privacy-noise.md), and adds them in ``build`` with ``ctx.noisy``. The compiler feeds each party's fresh random
-bits for the draws as extra inputs.
+bits for the draws as extra inputs. ``SummedStatistic`` gives the draws of a statistic that counts rows and sums a
+clamped column over them (aggregate, keyed_join): counts at the rows one person can add, the sum at that times
+max(|L|, |U|) (ℓ1 sensitivity, Dwork–Roth 2014 definition 3.1), a mean as a noisy sum over a noisy count at ε/2
+each (composition, theorem 3.16).
 """
 
 from __future__ import annotations
@@ -439,6 +442,8 @@ class Statistic(ABC, Generic[P]):
             name = self.column_names(cond.column)[party]
             col = t.schema[name]
             if col.number:
+                # where_problems refuses true or false for a number column
+                assert not isinstance(cond.value, bool)
                 holds = blocks.compare_constant(bld, t.number(name), cond.op, exact(cond.value))
             else:
                 bit = t.bits(name)[:, 0]
@@ -473,6 +478,67 @@ class Statistic(ABC, Generic[P]):
         """max(|L|, |U|) on the encoded integer scale (values × 2^frac): how much one row can add to a sum."""
         low, high = clamp.bounds()
         return int(max(abs(low), abs(high)) * (1 << frac))
+
+
+class SummedStatistic(Statistic[P]):
+    """A statistic that counts rows and sums a column clamped to public bounds over them: the noise of its counts,
+    its sum and its mean (module docstring, "Noise")."""
+
+    noisy_mean_description: ClassVar[str] = "noisy sum ÷ noisy count"
+
+    @abstractmethod
+    def counted_outputs(self) -> set[str]:
+        """The outputs that count rows."""
+
+    @abstractmethod
+    def count_sensitivity(self) -> int:
+        """How many rows one person can add to a count."""
+
+    @abstractmethod
+    def sum_magnitude(self) -> int | None:
+        """max(|L|, |U|) of the clamping bounds on the summed column's encoded scale (``clamp_magnitude``); None
+        without bounds or without a summed column."""
+
+    @abstractmethod
+    def mean_precision_bits(self) -> int:
+        """The fraction bits the mean has beyond the sum's."""
+
+    def noise_draws(self, output: str, epsilon: Fraction) -> list[NoiseDraw]:
+        rows = self.count_sensitivity()
+        if output in self.counted_outputs():
+            return [self.draw(output, output, epsilon, rows)]
+        if output not in ("sum", "mean"):
+            raise NoiseError(f"{self.name} has no output {output!r}")
+        magnitude = self.sum_magnitude()
+        if magnitude is None:
+            raise NoiseError(
+                f"a noisy {output} needs clamping bounds: add clamp: {{min: …, max: …}} to the statistic (without "
+                "them one person could move the sum by any amount)"
+            )
+        if magnitude == 0:
+            raise NoiseError("clamping bounds of 0 and 0 leave nothing to add noise to")
+        if output == "sum":
+            return [self.draw(output, "sum", epsilon, rows * magnitude)]
+        half = epsilon / 2
+        return [
+            self.draw(output, "mean.sum", half, rows * magnitude),
+            self.draw(output, "mean.count", half, rows),
+        ]
+
+    def noisy_output(self, spec: OutputSpec) -> OutputSpec:
+        if spec.name != "mean":
+            return super().noisy_output(spec)
+        exact_sum = {s.name: s for s in self.outputs()}["sum"]
+        sum_width = noisy_width(exact_sum.width, exact_sum.signed, self.draws["mean"][0].params)
+        e = self.mean_precision_bits()
+        return OutputSpec(
+            "mean",
+            sum_width + e,
+            True,
+            exact_sum.frac + e,
+            description=self.noisy_mean_description,
+            rule="no_rows",
+        )
 
 
 class ColumnStatistic(Statistic[C]):

@@ -136,8 +136,8 @@ def config_from_arguments(args: argparse.Namespace) -> LinkConfig:
                 f"--cut-after: {text!r} is not DIRECTION:SIZE with DIRECTION to-server or to-client "
                 "(for example to-client:10MB)"
             )
-        direction: Direction = "to_server" if where == "to-server" else "to_client"
-        cuts.append(CutAfterBytes(direction, parse_size(size, "--cut-after")))
+        way: Direction = "to_server" if where == "to-server" else "to_client"
+        cuts.append(CutAfterBytes(way, parse_size(size, "--cut-after")))
     for text in args.cut_at:
         seconds = parse_duration(text, "--cut-at")
         if seconds <= 0:

@@ -197,15 +197,20 @@ class Connection:
         if side.transport is not None and not side.lost:
             side.transport.close()
 
-    def teardown(self, reset: bool) -> None:
-        """Close both endpoints (with a reset, or an orderly close) and drop what is still queued."""
-        self.closing = True
+    def stop_forwarding(self) -> None:
+        """Stop both directions, cancel the deliveries scheduled and the connection to the server if still
+        being made."""
         self.up.stop()
         self.down.stop()
         for handle in self.handles:
             handle.cancel()
         if self.connect_task is not None and not self.connect_task.done():
             self.connect_task.cancel()
+
+    def teardown(self, reset: bool) -> None:
+        """Close both endpoints (with a reset, or an orderly close) and drop what is still queued."""
+        self.closing = True
+        self.stop_forwarding()
         self.abort_side(self.client, reset)
         self.abort_side(self.server, reset)
         self.check_done()
@@ -213,12 +218,7 @@ class Connection:
     def sever(self) -> None:
         """A silent cut: drop what is queued; from now on read and drop, deliver nothing."""
         self.severed = True
-        self.up.stop()
-        self.down.stop()
-        for handle in self.handles:
-            handle.cancel()
-        if self.connect_task is not None and not self.connect_task.done():
-            self.connect_task.cancel()
+        self.stop_forwarding()
         for flow in (self.up, self.down):
             flow.stopped = False  # stopped forwarding, but still reading (and dropping)
             flow.blocks.clear()
