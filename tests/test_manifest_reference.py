@@ -139,7 +139,17 @@ def test_a_bad_manifest_in_a_diff_is_reported_with_its_field_path(
 
 
 def test_the_former_key_type_and_bare_threshold_are_read_with_a_note_and_keep_their_digest() -> None:
-    demo = load_manifest(ROOT / "configs" / "demo" / "manifest.yaml")  # still written the former way
+    current = (ROOT / "configs" / "demo" / "manifest.yaml").read_text(encoding="utf-8")
+    former_text = (
+        current.replace("type: identifier", "type: key")
+        .replace('threshold: {op: ">=", value: 10}', "threshold: 10")
+        .replace("at_least]", "above]")
+    )
+    assert (
+        former_text.count("type: key") == 2 and "threshold: 10\n" in former_text and "above]" in former_text
+    )
+    # The demo as it was written before the operators and identifier columns:
+    demo = parse_manifest(former_text)
     notes = [str(n) for n in deprecations(demo)]
     assert any(n.startswith("tables.garbler.columns[0].type: 'key' is the former name") for n in notes)
     assert any(n.startswith("statistic.threshold: a bare number counts values at least 10") for n in notes)

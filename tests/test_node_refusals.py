@@ -29,7 +29,9 @@ NOW = datetime(2026, 3, 2, 3, 30, tzinfo=UTC)  # an invented time, 30 minutes af
 
 def other_manifest(root: Path) -> Path:
     """The demo manifest with another threshold: the same job name, a different digest."""
-    text = (DEMO / "manifest.yaml").read_text(encoding="utf-8").replace("threshold: 10", "threshold: 12")
+    original = (DEMO / "manifest.yaml").read_text(encoding="utf-8")
+    text = original.replace('threshold: {op: ">=", value: 10}', 'threshold: {op: ">=", value: 12}')
+    assert text != original, "the demo manifest's threshold is no longer written as this test expects"
     path = root / "manifest-threshold-12.yaml"
     path.write_text(text, encoding="utf-8")
     return path

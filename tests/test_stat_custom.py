@@ -243,7 +243,8 @@ def test_the_examples_give_the_figures_computed_in_the_clear() -> None:
     assert got[Party.GARBLER] == {"withheld": False, "matches": len(both)}
     assert got[Party.EVALUATOR]["matches"] == len(both) and got[Party.EVALUATOR]["sum"] == int(both.sum())
     assert 0 <= float(np.mean(both)) - got[Party.EVALUATOR]["mean"] < 2**-8  # numpy.mean, rounded toward zero
-    assert got[Party.EVALUATOR]["above"] == int((both >= 10).sum())
+    # numpy comparison, threshold {op: ">=", value: 10}
+    assert got[Party.EVALUATOR]["at_least"] == int((both >= 10).sum())
 
     rates = [
         float(csv_column("default-rate-compare", p, "default_rate")[0]) for p in ("garbler", "evaluator")
