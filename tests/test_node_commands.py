@@ -365,6 +365,20 @@ async def test_history_and_sessions_read_a_stopped_nodes_store_and_log_and_show_
     assert "no session ffffffffffff" in capsys.readouterr().err
 
 
+async def test_a_running_node_lists_a_session_of_an_earlier_start_with_its_peer(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    pair = make_pair(tmp_path)
+    async with running(pair):
+        assert await cli("jobs", "run", JOB, "--config", str(pair.configs[LIBRARY])) == 0
+    capsys.readouterr()
+    async with running(pair):  # started again: the session is in the job store only, no longer live
+        assert await cli("sessions", "list", "--config", str(pair.configs[BATHS])) == 0
+        listing = capsys.readouterr().out.splitlines()
+    assert "PEER" in listing[0] and len(listing) == 2
+    assert LIBRARY in listing[1].split() and "completed" in listing[1]
+
+
 async def test_a_run_whose_window_is_closed_is_refused_locally_with_the_next_opening(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

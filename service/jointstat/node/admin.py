@@ -45,7 +45,7 @@ from jointstat.node.progress import SessionTracker
 from jointstat.node.store import RunRecord
 
 if TYPE_CHECKING:
-    from jointstat.node.config import JobConfig
+    from jointstat.node.config import JobConfig, NodeConfig
     from jointstat.node.daemon import Node
 
 log = logging.getLogger("jointstat.node")
@@ -255,7 +255,8 @@ class NodeAdmin:
         live = list(state.sessions.values())[::-1]
         out: list[dict[str, Any]] = [_brief(t) for t in live]
         seen = {t.session_id for t in live}
-        out += past_sessions(await asyncio.to_thread(state.store.runs, None, limit), seen)
+        runs = await asyncio.to_thread(state.store.runs, None, limit)
+        out += past_sessions(runs, seen, peer_of=job_peer(self._node.config))
         out.sort(key=lambda s: s["started_at"], reverse=True)
         return {"sessions": out[:limit]}
 
@@ -305,6 +306,18 @@ def resolve_session(given: str, known: list[str], node: str) -> str:
         shown = ", ".join(m[:16] for m in matches[:5])
         raise LookupError(f"{given} begins several sessions on node {node} ({shown}); give more characters")
     return matches[0]
+
+
+def job_peer(config: NodeConfig) -> Callable[[str], str | None]:
+    """The peer of a job by its name, or None for a job the config no longer has."""
+
+    def peer_of(job: str) -> str | None:
+        try:
+            return config.job(job).peer
+        except KeyError:
+            return None
+
+    return peer_of
 
 
 def past_sessions(

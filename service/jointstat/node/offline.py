@@ -18,7 +18,7 @@ from contextlib import AbstractContextManager
 from pathlib import Path
 from typing import Any
 
-from jointstat.node.admin import past_sessions, resolve_session, run_dict
+from jointstat.node.admin import job_peer, past_sessions, resolve_session, run_dict
 from jointstat.node.config import NodeConfig
 from jointstat.node.store import JobStore, StoreError
 
@@ -47,14 +47,8 @@ class StoppedNode(AbstractContextManager["StoppedNode"]):
     def history(self, job: str | None = None, limit: int = 50) -> list[dict[str, Any]]:
         return [run_dict(r) for r in self._store.runs(job, limit)]
 
-    def _peer(self, job: str) -> str | None:
-        try:
-            return self.config.job(job).peer
-        except KeyError:
-            return None
-
     def sessions(self, limit: int = 50) -> list[dict[str, Any]]:
-        out = past_sessions(self._store.runs(None, 10_000), set(), peer_of=self._peer)
+        out = past_sessions(self._store.runs(None, 10_000), set(), peer_of=job_peer(self.config))
         out.sort(key=lambda s: s["started_at"], reverse=True)
         return out[:limit]
 
