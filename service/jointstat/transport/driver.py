@@ -94,8 +94,9 @@ from jointstat.transport.stream import (
 
 # The least window, in table frames: a window of a few frames lets the garbler wait on every acknowledgement when the
 # round trip is mostly the peer's own work (loopback, a fast LAN). Measured with `bench session --and-gates 16777216`
-# on this machine: 3.45 s with 2 frames, 3.05 s with 8, 2.81 s with 16 (+10 MiB per process).
-WINDOW_FLOOR_FRAMES = 16
+# on this machine: 3.45 s with 2 frames, 2.1–3.05 s with 8, 2.81 s with 16; 8 keeps each process's peak within 10 %
+# from 2^22 to 2^26 AND gates (about 104 → 112 MiB), 16 did not (about 104 → 120 MiB).
+WINDOW_FLOOR_FRAMES = 8
 READ_AHEAD = 4  # frames read from the stream before the session has taken the ones before
 MAX_OT_WINDOW = 64
 
