@@ -138,7 +138,7 @@ def test_a_bad_manifest_in_a_diff_is_reported_with_its_field_path(
 # -- clearer names, former spellings -------------------------------------------------------------------------------
 
 
-def test_the_former_key_type_and_bare_threshold_are_read_with_a_note_and_keep_their_digest() -> None:
+def test_the_former_key_type_and_bare_threshold_are_read_with_a_note_and_kept_as_written() -> None:
     current = (ROOT / "configs" / "demo" / "manifest.yaml").read_text(encoding="utf-8")
     former_text = (
         current.replace("type: identifier", "type: key")
