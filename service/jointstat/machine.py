@@ -25,6 +25,7 @@ below ``ot`` and ``protocol``, next to ``canonical``.
 
 from __future__ import annotations
 
+from abc import ABC, abstractmethod
 from collections.abc import Callable, Mapping
 from typing import ClassVar, Generic, NoReturn, TypeVar
 
@@ -42,7 +43,7 @@ M = TypeVar("M")  # what a handler takes: the decoded message (None for a call s
 R = TypeVar("R")  # what a handler gives back to send: messages or frames
 
 
-class TableMachine(Generic[M, R]):
+class TableMachine(ABC, Generic[M, R]):
     """Dispatch of events through the subclass's ``TABLE``; see the module docstring for the order of the checks."""
 
     TABLE: ClassVar[Table] = {}
@@ -81,18 +82,18 @@ class TableMachine(Generic[M, R]):
         return out
 
     # -- how this kind of party fails: each kind of party says it ----------------------------------------------------
+    @abstractmethod
     def _refuse_ended(self, state: str, event: str) -> Exception:
         """The error for an event after the machine has ended (in one of ``ENDED``)."""
-        raise NotImplementedError
 
+    @abstractmethod
     def _refuse_unexpected(self, state: str, event: str) -> Exception:
         """The error for an event the table does not list for ``state``; moves the machine to failed."""
-        raise NotImplementedError
 
+    @abstractmethod
     def _handler_failed(self, state: str, event: str, exc: Exception) -> NoReturn:
         """Raise the error for an exception from the handler of ``(state, event)``; moves the machine to failed."""
-        raise NotImplementedError
 
+    @abstractmethod
     def _refuse_next(self, state: str, event: str, next_state: str) -> Exception:
         """The error for a handler that chose a state the table does not allow (a bug); moves the machine to failed."""
-        raise NotImplementedError

@@ -40,13 +40,14 @@ Source = Callable[[int], memoryview]
 class _Resumable:
     """A program run in a greenlet that switches back to whoever resumed it (module docstring)."""
 
-    def __init__(self) -> None:
+    def __init__(self, program: Callable[[], Any]) -> None:
+        self._program = program
         self._glet: greenlet | None = None
         self.finished = False
         self.result: Any = None
 
     def _body(self) -> None:
-        raise NotImplementedError
+        self.result = self._program()
 
     def _step(self) -> Any:
         """Run the program until it switches back (returns what it passed) or ends (None, ``finished`` set)."""
@@ -72,12 +73,8 @@ class TableProducer(_Resumable):
     """Runs a garbling program and hands out its tables chunk by chunk (module docstring)."""
 
     def __init__(self, run: Callable[[Sink], Any]) -> None:
-        super().__init__()
-        self._run = run
+        super().__init__(lambda: run(self._sink))
         self.bytes_out = 0
-
-    def _body(self) -> None:
-        self.result = self._run(self._sink)
 
     def _sink(self, chunk: memoryview) -> None:
         data = bytes(chunk)  # the backend reuses its chunk buffer once this returns
@@ -103,8 +100,7 @@ class TableConsumer(_Resumable):
     """Runs an evaluating program, feeding it the table stream as it arrives (module docstring)."""
 
     def __init__(self, run: Callable[[Source], Any], total: int | None = None) -> None:
-        super().__init__()
-        self._run = run
+        super().__init__(lambda: run(self._source))
         self._total = total
         self._pieces: deque[memoryview] = deque()
         self._offset = 0  # bytes of the first piece already taken
@@ -114,9 +110,6 @@ class TableConsumer(_Resumable):
         self.bytes_taken = 0
 
     # -- the program's side ----------------------------------------------------------------------------------
-    def _body(self) -> None:
-        self.result = self._run(self._source)
-
     def _source(self, n: int) -> memoryview:
         while self._available < n:
             if self._closed:

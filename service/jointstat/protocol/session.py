@@ -115,6 +115,7 @@ state and the frame; ``abort`` from the peer is accepted in every state before `
 from __future__ import annotations
 
 import os
+from abc import abstractmethod
 from collections import deque
 from collections.abc import Callable, Mapping
 from typing import Any, ClassVar, NoReturn, NotRequired, TypedDict
@@ -378,9 +379,9 @@ class SessionBase(TableMachine[fr.AnyFrame | None, list[bytes]]):
         self._resent_upto = 0  # every logical frame numbered below this has been handed out by a resume
         self._setup()
 
+    @abstractmethod
     def _setup(self) -> None:
         """Make this side's own state, once the shared state above is made (overridden by each side)."""
-        raise NotImplementedError
 
     # -- public view ----------------------------------------------------------------------------------------------
     @property
@@ -762,13 +763,13 @@ class SessionBase(TableMachine[fr.AnyFrame | None, list[bytes]]):
             )
 
     # -- oblivious transfer: the same plumbing on both sides ------------------------------------------------------------
+    @abstractmethod
     def _new_ot(self) -> CorrelatedOT:
         """This side's correlated OT party (overridden: the garbler's sender, the evaluator's receiver)."""
-        raise NotImplementedError
 
+    @abstractmethod
     def _after_ot(self, ot: CorrelatedOT, replies: list[bytes]) -> tuple[str, list[bytes]]:
         """Take the labels of a finished OT; the next state and the frames to send (overridden)."""
-        raise NotImplementedError
 
     def _on_hello(self, frame: fr.AnyFrame | None) -> tuple[str, list[bytes]]:
         assert frame is not None
