@@ -33,29 +33,29 @@ POLL_S = 0.25
 ENDED = ("completed", "aborted", "refused", "failed")
 
 
-def _client(args: argparse.Namespace) -> Any:
-    from jointstat.node.admin import AdminClient
+def _config(args: argparse.Namespace) -> Any:
+    """The node config named by ``--config``, ``$JOINTSTAT_CONFIG`` or the default path; a bad one is a UserError."""
     from jointstat.node.config import ConfigError, load_node_config
 
-    path = args.config or os.environ.get("JOINTSTAT_CONFIG") or DEFAULT_CONFIG
     try:
-        config = load_node_config(path)
+        return load_node_config(args.config or os.environ.get("JOINTSTAT_CONFIG") or DEFAULT_CONFIG)
     except ConfigError as exc:
         raise UserError(str(exc)) from None
+
+
+def _client(args: argparse.Namespace) -> Any:
+    from jointstat.node.admin import AdminClient
+
+    config = _config(args)
     return AdminClient(str(config.node.admin))
 
 
 def _records(args: argparse.Namespace) -> Any:
     """The running node's admin client, or — when no node answers — the stopped node's files (``node.offline``)."""
     from jointstat.node.admin import AdminClient, AdminError
-    from jointstat.node.config import ConfigError, load_node_config
     from jointstat.node.offline import OfflineError, StoppedNode
 
-    path = args.config or os.environ.get("JOINTSTAT_CONFIG") or DEFAULT_CONFIG
-    try:
-        config = load_node_config(path)
-    except ConfigError as exc:
-        raise UserError(str(exc)) from None
+    config = _config(args)
     client = AdminClient(str(config.node.admin), timeout=5.0)
     try:
         client.status()
@@ -343,14 +343,9 @@ def _jobs_history(args: argparse.Namespace) -> int:
 
 
 def _jobs_check(args: argparse.Namespace) -> int:
-    from jointstat.node.config import ConfigError, load_node_config
     from jointstat.node.dryrun import check_job
 
-    path = args.config or os.environ.get("JOINTSTAT_CONFIG") or DEFAULT_CONFIG
-    try:
-        config = load_node_config(path)
-    except ConfigError as exc:
-        raise UserError(str(exc)) from None
+    config = _config(args)
     try:
         job = config.job(args.name)
     except KeyError:
