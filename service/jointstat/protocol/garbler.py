@@ -157,9 +157,8 @@ class GarblerSession(SessionBase):
         self._evaluator_zero = None
         try:
             current = next(payloads, None)
-            if current is None:  # no garbler inputs and no AND gates: nothing to stream
-                yield from self._hand_out(self._dispatch_numbered(TABLES_SENT))
-                return
+            if current is None:  # _after_ot runs such a program itself and never enters 'streaming'
+                raise ProtocolError(AbortReason.INTERNAL, f"{self._who}: streaming with nothing to stream")
             while current is not None:
                 # Pull the next chunk first: it runs the program further, and after the last one the program has
                 # ended (its output labels are known) before the state may leave 'streaming'.
