@@ -14,13 +14,16 @@ program is measured on the count backend before, timed separately as ``setup_s``
 frame in both directions at the garbler's transport (frame bytes plus the 5-byte gRPC message prefix, see
 ``transport.driver``). Memory, per process: ``*_peak_rss_mib`` is its whole peak resident set size (the kernel's
 high-water mark), ``*_session_peak_rss_mib`` the peak during the session alone (the high-water mark is reset,
-through ``/proc/self/clear_refs``, just before; None where the kernel does not allow it). Each side checks its own
-outputs against the same program on the plain backend after the session (``outputs_correct``).
+through ``/proc/self/clear_refs``, just before; None where the kernel does not allow it). CPU, per process:
+``*_cpu_s`` is the CPU time (user and system, all threads: garbling or evaluating, the transcript hash, gRPC and
+TLS) the session took. Each side checks its own outputs against the same program on the plain backend after the
+session (``outputs_correct``).
 
 Link, on loopback (no ``--link``): after the session the evaluator pulls ``PUMP_BYTES`` from the garbler over a
 fresh stream of the same kind (gRPC, mutual TLS, 1 MiB messages, loopback, the same two processes) and times it:
 ``link_bytes_per_s`` is what the transport itself carries here, and ``link_utilisation`` the session's bytes per
-second over that.
+second over that; ``link_s`` is the time of that transfer and ``link_garbler_cpu_s``/``link_evaluator_cpu_s`` the
+CPU each process spent on it, so the session's CPU can be set against the transport's own.
 
 Link, emulated (``--link RATE --rtt TIME``): the evaluator connects through the link emulator in a process of its
 own (``harness.link.LinkProcess``: that rate each way, half the round trip as each one-way delay), the garbler
@@ -160,11 +163,14 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> None:
         if "pump" in order:
             conn.send({"pump_s": await _pump(f"127.0.0.1:{order['pump']}", tls)})
             continue
+        if "cpu" in order:
+            conn.send({"cpu_s": time.process_time()})
+            continue
         run, limits = order["run"], _limits(order["linked"])
         gc.collect()
         separate_peak = _reset_peak_rss()
         results = []
-        start = time.monotonic()
+        start, cpu_start = time.monotonic(), time.process_time()
         if server is not None:
             waiting = []
             for attempt in range(1, MAX_ATTEMPTS + 1):
@@ -184,11 +190,12 @@ async def _node_async(spec: dict[str, Any], conn: Connection) -> None:
                 results.append(result)
                 if result.completed or not _restartable(result):
                     break
-        end = time.monotonic()
+        end, cpu_s = time.monotonic(), time.process_time() - cpu_start
         result = results[-1]
         figures: dict[str, Any] = {
             **session_outcome(spec["role"], result, start, end),
             "setup_s": setup_s,
+            "cpu_s": cpu_s,
             "bytes_sent": sum(r.counters.bytes_sent for r in results),
             "bytes_received": sum(r.counters.bytes_received for r in results),
             "frames": sum(r.counters.frames_sent + r.counters.frames_received for r in results),
@@ -340,6 +347,12 @@ def _start_nodes(g_spec: dict[str, Any], e_spec: dict[str, Any]) -> tuple[Any, A
     return garbler, evaluator, g_parent, e_parent
 
 
+def _cpu_seconds(parent: Connection) -> float:
+    """A node process's CPU seconds so far (user and system, all its threads)."""
+    parent.send({"cpu": True})
+    return float(_receive(parent, "node")["cpu_s"])
+
+
 def _session_run(
     g_parent: Connection, e_parent: Connection, run: int, port: int, linked: bool
 ) -> dict[str, Any]:
@@ -377,8 +390,11 @@ def measure(
         port = _receive(g_parent, "garbler")["port"]
         if link is None:
             out["run"] = _session_run(g_parent, e_parent, 1, port, False)
+            cpu_before = [_cpu_seconds(parent) for parent in (g_parent, e_parent)]
             e_parent.send({"pump": port})
             out["pump_s"] = _receive(e_parent, "evaluator")["pump_s"]
+            cpu_after = [_cpu_seconds(parent) for parent in (g_parent, e_parent)]
+            out["pump_cpu_s"] = [after - before for before, after in zip(cpu_before, cpu_after, strict=True)]
         else:
             table_bytes = 32 * and_gates
             plans: list[tuple[str, tuple[CutAfterBytes, ...]]] = [("baseline", ())] if cuts else []
@@ -428,6 +444,8 @@ def _figures(sides: dict[str, Any]) -> dict[str, Any]:
         "frames": g["frames"],
         "evaluator_inputs_by_ot": g["evaluator_inputs"],
         "setup_s": round(max(g["setup_s"], e["setup_s"]), 3),
+        "garbler_cpu_s": round(g["cpu_s"], 3),
+        "evaluator_cpu_s": round(e["cpu_s"], 3),
         "outputs_correct": bool(g.get("outputs_correct") and e.get("outputs_correct")),
     }
 
@@ -452,6 +470,9 @@ def run(
         rate = PUMP_BYTES / out["pump_s"]
         figures["link_bytes_per_s"] = round(rate, 1)
         figures["link_utilisation"] = round((figures["bytes_on_wire"] / figures["wall_s"]) / rate, 3)
+        figures["link_s"] = round(out["pump_s"], 3)
+        figures["link_garbler_cpu_s"] = round(out["pump_cpu_s"][0], 3)
+        figures["link_evaluator_cpu_s"] = round(out["pump_cpu_s"][1], 3)
         emit("session benchmark (two node processes on loopback, mutual TLS)", figures, as_json)
         return 0 if figures["outputs_correct"] else 1
     assert rtt is not None
