@@ -104,6 +104,16 @@ Connect = Callable[[], Awaitable[FrameStream]]
 _Item = tuple[bytes, int | None] | None  # (frame, its number if the producer made it); None ends the writer
 
 
+async def _first_set(*events: asyncio.Event, timeout: float | None = None) -> None:
+    """Wait until one of ``events`` is set, or ``timeout`` seconds have passed (None: no limit)."""
+    waits = [asyncio.create_task(event.wait()) for event in events]
+    try:
+        await asyncio.wait(waits, timeout=timeout, return_when=asyncio.FIRST_COMPLETED)
+    finally:
+        for wait in waits:
+            wait.cancel()
+
+
 @dataclass
 class Offer:
     """A stream the server hands a running session: its first frame (hello or resume) and when it is over."""
@@ -383,15 +393,7 @@ class _Driver:
 
     async def _reader_catches_up(self, link: _Link) -> None:
         """Wait up to ``abort_grace_s`` until the session has ended or the reader has lost the link."""
-        ended = asyncio.create_task(self._ended.wait())
-        lost = asyncio.create_task(link.lost.wait())
-        try:
-            await asyncio.wait(
-                {ended, lost}, timeout=self.limits.abort_grace_s, return_when=asyncio.FIRST_COMPLETED
-            )
-        finally:
-            ended.cancel()
-            lost.cancel()
+        await _first_set(self._ended, link.lost, timeout=self.limits.abort_grace_s)
 
     async def _close_link(self, link: _Link, *, completed: bool) -> None:
         for task in link.tasks:
@@ -434,13 +436,7 @@ class _Driver:
         self._connected.set()
         self._room.set()
         self._progress()
-        ended = asyncio.create_task(self._ended.wait())
-        lost = asyncio.create_task(link.lost.wait())
-        try:
-            await asyncio.wait({ended, lost}, return_when=asyncio.FIRST_COMPLETED)
-        finally:
-            ended.cancel()
-            lost.cancel()
+        await _first_set(self._ended, link.lost)
         if not self._ended.is_set():
             self._connected.clear()
             await self._close_link(link, completed=False)
@@ -474,15 +470,7 @@ class _Driver:
                 pass
             await self._close_link(link, completed=True)
             return True
-        closed = asyncio.create_task(link.peer_closed.wait())
-        lost = asyncio.create_task(link.lost.wait())
-        try:
-            await asyncio.wait(
-                {closed, lost}, timeout=self.limits.idle_timeout_s, return_when=asyncio.FIRST_COMPLETED
-            )
-        finally:
-            closed.cancel()
-            lost.cancel()
+        await _first_set(link.peer_closed, link.lost, timeout=self.limits.idle_timeout_s)
         if link.lost.is_set() and not link.peer_closed.is_set():
             await self._close_link(link, completed=False)
             return False
