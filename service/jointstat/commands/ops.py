@@ -106,6 +106,18 @@ def _when(text: str | None) -> str:
     return t.astimezone(UTC).strftime("%Y-%m-%d %H:%M:%S UTC")
 
 
+def _json_or_nothing(args: argparse.Namespace, answer: Any, items: list[Any], empty: str) -> bool:
+    """Print ``answer`` as JSON if ``--json`` was given, or ``empty`` if there are no ``items`` to list; True if
+    either was printed (the command is then done)."""
+    if args.json:
+        print(json.dumps(answer, indent=2))
+        return True
+    if not items:
+        print(empty)
+        return True
+    return False
+
+
 def _table(rows: list[list[str]], header: list[str]) -> None:
     widths = [max(len(str(r[i])) for r in [header, *rows]) for i in range(len(header))]
     for row in [header, *rows]:
@@ -235,11 +247,7 @@ def _print_session(s: dict[str, Any]) -> None:
 def _jobs_list(args: argparse.Namespace) -> int:
     with _client(args) as client:
         jobs = _call(client.jobs)
-    if args.json:
-        print(json.dumps(jobs, indent=2))
-        return 0
-    if not jobs:
-        print("no jobs configured")
+    if _json_or_nothing(args, jobs, jobs, "no jobs configured"):
         return 0
     rows = []
     for j in jobs:
@@ -312,11 +320,7 @@ def result_lines(path: str | None) -> list[str]:
 def _jobs_history(args: argparse.Namespace) -> int:
     with _records(args) as client:
         runs = _call(client.history, args.name, args.limit)
-    if args.json:
-        print(json.dumps(runs, indent=2))
-        return 0
-    if not runs:
-        print("no runs recorded")
+    if _json_or_nothing(args, runs, runs, "no runs recorded"):
         return 0
     rows = [
         [
@@ -360,12 +364,8 @@ def _jobs_check(args: argparse.Namespace) -> int:
 def _jobs_budget(args: argparse.Namespace) -> int:
     with _records(args) as client:
         answer = _call(client.budgets, args.name)
-    if args.json:
-        print(json.dumps(answer, indent=2))
-        return 0
     budgets = answer["budgets"]
-    if not budgets:
-        print("no job has a privacy budget on this node")
+    if _json_or_nothing(args, answer, budgets, "no job has a privacy budget on this node"):
         return 0
     print(f"privacy budgets at {_when(answer['now'])}")
     for b in budgets:
@@ -386,11 +386,7 @@ def _jobs_budget(args: argparse.Namespace) -> int:
 def _sessions_list(args: argparse.Namespace) -> int:
     with _records(args) as client:
         sessions = _call(client.sessions, args.limit)
-    if args.json:
-        print(json.dumps(sessions, indent=2))
-        return 0
-    if not sessions:
-        print("no sessions")
+    if _json_or_nothing(args, sessions, sessions, "no sessions"):
         return 0
     rows = [
         [
