@@ -239,7 +239,20 @@ async def test_after_the_grace_period_both_sides_fail_without_output_and_a_late_
     assert any("no such session is running here" in line for line in server.refused)
 
 
-class NoAcks:
+class InlinePeer:
+    """A stream whose peer is played in line by the test: nothing to close or cancel, and the peer never goes."""
+
+    async def close(self, completed: bool) -> None:
+        pass
+
+    def cancel(self) -> None:
+        pass
+
+    def peer_gone(self) -> bool:
+        return False
+
+
+class NoAcks(InlinePeer):
     """The garbler's stream with the evaluator played in line, whose acknowledgements never arrive."""
 
     def __init__(self, evaluator: EvaluatorSession) -> None:
@@ -257,15 +270,6 @@ class NoAcks:
         for reply in self.evaluator.receive(data):
             if fr.decode(reply)[0] != fr.TABLES_ACK:
                 self.inbox.put_nowait(reply)
-
-    async def close(self, completed: bool) -> None:
-        pass
-
-    def cancel(self) -> None:
-        pass
-
-    def peer_gone(self) -> bool:
-        return False
 
 
 async def test_a_garbler_whose_evaluator_stops_acknowledging_holds_at_most_its_replay_limit(
@@ -285,7 +289,7 @@ async def test_a_garbler_whose_evaluator_stops_acknowledging_holds_at_most_its_r
         await task
 
 
-class Severed:
+class Severed(InlinePeer):
     """The evaluator's stream with the garbler played in line; reading fails the first time a frame of kind
     ``cut_before`` comes from the garbler (so that frame never arrives)."""
 
@@ -310,15 +314,6 @@ class Severed:
         if self.garbler.ready_to_stream:
             for frame in self.garbler.produce():
                 self.inbox.put_nowait(frame)
-
-    async def close(self, completed: bool) -> None:
-        pass
-
-    def cancel(self) -> None:
-        pass
-
-    def peer_gone(self) -> bool:
-        return False
 
 
 @pytest.mark.parametrize(
