@@ -236,8 +236,16 @@ def _outputs(kind: str) -> list[str]:
     return rows
 
 
+def _table(header: tuple[str, ...], cells: list[tuple[str, ...]]) -> list[str]:
+    """A Markdown table: the header row, its rule, then one row per tuple of cells."""
+    return [
+        "| " + " | ".join(header) + " |",
+        "| " + " | ".join("---" for _ in header) + " |",
+        *("| " + " | ".join(row) + " |" for row in cells),
+    ]
+
+
 def _comparisons() -> list[str]:
-    rows = ["| operator | holds when | the count it names |", "| --- | --- | --- |"]
     meaning = {
         ">": "the value is more than the one written",
         ">=": "the value is at least the one written",
@@ -246,8 +254,10 @@ def _comparisons() -> list[str]:
         "==": "the value equals the one written",
         "!=": "the value differs from the one written",
     }
-    for op, word in OPERATOR_WORDS.items():
-        rows.append(f"| `{op}` | {meaning[op]} | `{word}` |")
+    rows = _table(
+        ("operator", "holds when", "the count it names"),
+        [(f"`{op}`", meaning[op], f"`{word}`") for op, word in OPERATOR_WORDS.items()],
+    )
     return [
         "",
         "## Comparisons",
@@ -271,9 +281,7 @@ def _comparisons() -> list[str]:
 
 
 def _results() -> list[str]:
-    rows = ["| rule | withholds when |", "| --- | --- |"]
-    for name, text in RULES.items():
-        rows.append(f"| `{name}` | {text} |")
+    rows = _table(("rule", "withholds when"), [(f"`{name}`", text) for name, text in RULES.items()])
     return [
         "",
         "## Results and what withholds them",
@@ -293,9 +301,10 @@ def _results() -> list[str]:
 
 
 def _rounding() -> list[str]:
-    rows = ["| rounding | a value finer than the column's steps is rounded |", "| --- | --- |"]
-    for name, text in ROUNDING_WORDS.items():
-        rows.append(f"| `{name}` | {text} |")
+    rows = _table(
+        ("rounding", "a value finer than the column's steps is rounded"),
+        [(f"`{name}`", text) for name, text in ROUNDING_WORDS.items()],
+    )
     return [
         "",
         "## Input values and rounding",
